@@ -1,0 +1,108 @@
+"""Typed data objects passed between the stages after ranging.
+
+:class:`RodColumns` is what the columns stage produces and the decoding stage consumes: the
+count array rods x sites x metal channels with its geometry.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .exceptions import InputError
+
+__all__ = ["RodColumns"]
+
+
+@dataclass(frozen=True)
+class RodColumns:
+    """Per-rod depth profiles of metal counts.
+
+    Parameters
+    ----------
+    counts : (n_rods, n_sites, n_metals) ndarray of float
+        Metal atoms counted in each site of each rod, per metal channel (fractional where an
+        ion's channel is a probability split over metals).
+    mask : (n_rods, n_sites) ndarray of bool
+        True where the site lies inside the analysed specimen volume and is used.
+    metals : tuple of str
+        Metal symbols, in channel order.
+    rod_xy_nm : (n_rods, 2) ndarray of float, nm
+        Rod axis position at depth ``z_ref_nm``, reconstruction frame.
+    tilt : (2,) ndarray of float
+        Rod axis direction as (dx/dz, dy/dz): the axis of rod r at depth z is
+        ``rod_xy_nm[r] + tilt * (z - z_ref_nm)``.
+    z_ref_nm : float, nm
+        Reference depth of ``rod_xy_nm``.
+    site_z_nm : (n_sites,) ndarray of float, nm
+        Depth of each site centre, measured along z at the rod axis.
+    pitch_nm : float, nm
+        Site pitch along the rod.
+    neighbours : (n_pairs, 2) ndarray of int
+        Index pairs (i < j) of rods that are nearest neighbours in the packing.
+    resolvable : bool
+        Whether single rods are resolvable (expected crosstalk below the documented threshold).
+    crosstalk : float
+        Expected fraction of a rod's ions assigned to another rod.
+    params : dict
+        Fitted registration parameters and quality figures, JSON-serialisable.
+    """
+
+    counts: np.ndarray
+    mask: np.ndarray
+    metals: tuple
+    rod_xy_nm: np.ndarray
+    tilt: np.ndarray
+    z_ref_nm: float
+    site_z_nm: np.ndarray
+    pitch_nm: float
+    neighbours: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), dtype=np.int64))
+    resolvable: bool = True
+    crosstalk: float = 0.0
+    params: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        c = np.asarray(self.counts, dtype=float)
+        if c.ndim != 3:
+            raise InputError(f"counts must be (n_rods, n_sites, n_metals), got shape {c.shape}")
+        m = np.asarray(self.mask, dtype=bool)
+        if m.shape != c.shape[:2]:
+            raise InputError(f"mask shape {m.shape} does not match counts {c.shape[:2]}")
+        metals = tuple(self.metals)
+        if len(metals) != c.shape[2]:
+            raise InputError(f"{len(metals)} metals named for {c.shape[2]} channels")
+        xy = np.asarray(self.rod_xy_nm, dtype=float).reshape(-1, 2)
+        if xy.shape[0] != c.shape[0]:
+            raise InputError(f"rod_xy_nm has {xy.shape[0]} rods, counts {c.shape[0]}")
+        sz = np.asarray(self.site_z_nm, dtype=float)
+        if sz.shape != (c.shape[1],):
+            raise InputError(f"site_z_nm has shape {sz.shape}, expected ({c.shape[1]},)")
+        nb = np.asarray(self.neighbours, dtype=np.int64).reshape(-1, 2)
+        object.__setattr__(self, "counts", c)
+        object.__setattr__(self, "mask", m)
+        object.__setattr__(self, "metals", metals)
+        object.__setattr__(self, "rod_xy_nm", xy)
+        object.__setattr__(self, "tilt", np.asarray(self.tilt, dtype=float).reshape(2))
+        object.__setattr__(self, "site_z_nm", sz)
+        object.__setattr__(self, "neighbours", nb)
+
+    @property
+    def n_rods(self) -> int:
+        return int(self.counts.shape[0])
+
+    @property
+    def n_sites(self) -> int:
+        return int(self.counts.shape[1])
+
+    @property
+    def n_metals(self) -> int:
+        return int(self.counts.shape[2])
+
+    def rod_xy_at(self, z_nm) -> np.ndarray:
+        """Rod axis positions at depth(s) ``z_nm``: shape (n_rods, 2) or (n_rods, len(z), 2), nm."""
+        z = np.asarray(z_nm, dtype=float)
+        d = z - self.z_ref_nm
+        if d.ndim == 0:
+            return self.rod_xy_nm + self.tilt * d
+        return self.rod_xy_nm[:, None, :] + self.tilt[None, None, :] * d[None, :, None]

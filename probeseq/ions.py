@@ -1,0 +1,227 @@
+"""The ion list: one typed container for a reconstructed atom-probe run.
+
+Positions are in nm in the reconstruction frame; ``z`` is depth along the analysis direction,
+increasing into the specimen. Mass-to-charge is in Da. Readers convert units once, at the edge
+(:mod:`probeseq.io`); everything downstream assumes nm and Da.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field, replace
+from typing import Optional
+
+import numpy as np
+
+from .exceptions import InputError
+
+__all__ = ["IonList", "IonMeta", "LENGTH_UNITS", "OPTIONAL_COLUMNS", "REQUIRED_COLUMNS"]
+
+#: factor that converts a length in the named unit to nm
+LENGTH_UNITS = {"nm": 1.0, "angstrom": 0.1}
+REQUIRED_COLUMNS = ("x", "y", "z", "mass_to_charge")
+OPTIONAL_COLUMNS = ("multiplicity", "pulse", "voltage")
+
+
+@dataclass(frozen=True)
+class IonMeta:
+    """Where an ion list came from and what was done to it on reading.
+
+    Attributes
+    ----------
+    source : str
+        Path of the file read, or ``""`` for an ion list built in memory.
+    sha256 : str
+        Hex digest of the file's bytes, or ``""``.
+    length_unit : str
+        Unit of the positions *in the file* (``"nm"`` or ``"angstrom"``); the arrays are in nm.
+    n_dropped : int
+        Rows dropped on reading.
+    dropped : dict of str -> int
+        Why rows were dropped (``"non-finite"``, ``"non-positive mass_to_charge"``) and how many.
+    """
+
+    source: str = ""
+    sha256: str = ""
+    length_unit: str = "nm"
+    n_dropped: int = 0
+    dropped: dict = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class IonList:
+    """A reconstructed ion list.
+
+    Parameters
+    ----------
+    x, y, z : (n_ions,) ndarray of float, nm
+        Reconstructed positions; ``z`` is depth, increasing into the specimen.
+    mass_to_charge : (n_ions,) ndarray of float, Da
+        Mass-to-charge state ratio of each ion; must be finite and positive.
+    multiplicity, pulse, voltage : (n_ions,) ndarray or None
+        Optional per-ion columns (multiple-hit count, pulse number, voltage in V).
+    meta : IonMeta
+        Provenance.
+
+    Notes
+    -----
+    Validation happens once, here: equal lengths, 1-D float arrays, finite positions and positive
+    finite mass-to-charge. Use :meth:`from_arrays` to drop invalid rows instead of raising.
+    The arrays are made read-only.
+    """
+
+    x: np.ndarray
+    y: np.ndarray
+    z: np.ndarray
+    mass_to_charge: np.ndarray
+    multiplicity: Optional[np.ndarray] = None
+    pulse: Optional[np.ndarray] = None
+    voltage: Optional[np.ndarray] = None
+    meta: IonMeta = field(default_factory=IonMeta)
+
+    def __post_init__(self):
+        n = None
+        for name in REQUIRED_COLUMNS + OPTIONAL_COLUMNS:
+            a = getattr(self, name)
+            if a is None:
+                if name in REQUIRED_COLUMNS:
+                    raise InputError(f"ion list: column '{name}' is required")
+                continue
+            a = np.asarray(a)
+            if a.ndim != 1:
+                raise InputError(f"ion list: column '{name}' must be 1-D, got shape {a.shape}")
+            if name in REQUIRED_COLUMNS and a.dtype.kind != "f":
+                a = a.astype(np.float64)
+            if n is None:
+                n = a.shape[0]
+            elif a.shape[0] != n:
+                raise InputError(
+                    f"ion list: columns have unequal lengths ('{name}' has {a.shape[0]}, expected {n})"
+                )
+            if a.flags.writeable and a.flags.owndata:
+                a.flags.writeable = False
+            object.__setattr__(self, name, a)
+        for name in ("x", "y", "z"):
+            a = getattr(self, name)
+            if a.size and not np.isfinite(a).all():
+                raise InputError(f"ion list: column '{name}' holds NaN or infinite values")
+        m = self.mass_to_charge
+        if m.size and not (np.isfinite(m).all() and (m > 0).all()):
+            raise InputError("ion list: mass_to_charge must be finite and positive")
+
+    # ------------------------------------------------------------------ construction
+    @classmethod
+    def from_arrays(
+        cls,
+        x,
+        y,
+        z,
+        mass_to_charge,
+        multiplicity=None,
+        pulse=None,
+        voltage=None,
+        meta: IonMeta | None = None,
+        strict: bool = False,
+        where: str = "ion list",
+    ) -> "IonList":
+        """Build an ion list, dropping rows with NaN/inf values or non-positive mass-to-charge.
+
+        Parameters
+        ----------
+        strict : bool
+            Raise :class:`InputError` instead of dropping invalid rows.
+        where : str
+            Name of the source used in messages.
+
+        Returns
+        -------
+        IonList
+            With ``meta.n_dropped`` and ``meta.dropped`` counting what was removed.
+        """
+        meta = meta or IonMeta()
+        cols = {"x": x, "y": y, "z": z, "mass_to_charge": mass_to_charge,
+                "multiplicity": multiplicity, "pulse": pulse, "voltage": voltage}
+        cols = {k: (None if v is None else np.asarray(v)) for k, v in cols.items()}
+        lengths = {k: v.shape[0] for k, v in cols.items() if v is not None and v.ndim == 1}
+        if len(set(lengths.values())) > 1:
+            raise InputError(f"{where}: columns have unequal lengths {lengths}")
+        finite = np.ones(len(cols["x"]), dtype=bool)
+        for k, v in cols.items():
+            if v is not None and v.dtype.kind == "f":
+                finite &= np.isfinite(v)
+        positive = cols["mass_to_charge"] > 0
+        dropped = dict(meta.dropped)
+        n_nonfinite = int((~finite).sum())
+        n_nonpos = int((finite & ~positive).sum())
+        if strict and (n_nonfinite or n_nonpos):
+            what = []
+            if n_nonfinite:
+                first = int(np.flatnonzero(~finite)[0])
+                what.append(f"{n_nonfinite} rows with NaN or infinite values (first at data row {first + 1})")
+            if n_nonpos:
+                first = int(np.flatnonzero(finite & ~positive)[0])
+                what.append(f"{n_nonpos} rows with non-positive mass_to_charge (first at data row {first + 1})")
+            raise InputError(f"{where}: " + " and ".join(what) + " (--strict)")
+        keep = finite & positive
+        if n_nonfinite:
+            dropped["non-finite"] = dropped.get("non-finite", 0) + n_nonfinite
+        if n_nonpos:
+            dropped["non-positive mass_to_charge"] = dropped.get("non-positive mass_to_charge", 0) + n_nonpos
+        if not keep.all():
+            cols = {k: (None if v is None else v[keep]) for k, v in cols.items()}
+        meta = replace(meta, n_dropped=sum(dropped.values()), dropped=dropped)
+        return cls(meta=meta, **cols)
+
+    # ------------------------------------------------------------------ views
+    def __len__(self) -> int:
+        return int(self.x.shape[0])
+
+    @property
+    def n_ions(self) -> int:
+        """Number of ions."""
+        return len(self)
+
+    @property
+    def xyz(self) -> np.ndarray:
+        """(n_ions, 3) array of positions, nm (a copy)."""
+        return np.column_stack([self.x, self.y, self.z])
+
+    @property
+    def columns(self) -> dict:
+        """Mapping column name -> array, for the columns present."""
+        out = {k: getattr(self, k) for k in REQUIRED_COLUMNS}
+        for k in OPTIONAL_COLUMNS:
+            if getattr(self, k) is not None:
+                out[k] = getattr(self, k)
+        return out
+
+    def subset(self, mask) -> "IonList":
+        """A new ion list holding the rows selected by a boolean mask or index array."""
+        cols = {k: (None if getattr(self, k) is None else getattr(self, k)[mask])
+                for k in REQUIRED_COLUMNS + OPTIONAL_COLUMNS}
+        return IonList(meta=self.meta, **cols)
+
+    def summary(self) -> dict:
+        """Rows, extents (nm), mass-to-charge range (Da) and rows dropped, as plain numbers."""
+        out = {"n_ions": self.n_ions, "source": self.meta.source, "sha256": self.meta.sha256,
+               "length_unit_in_file": self.meta.length_unit, "rows_dropped": self.meta.n_dropped,
+               "dropped": dict(self.meta.dropped),
+               "columns": list(self.columns)}
+        if self.n_ions:
+            for k in ("x", "y", "z"):
+                a = getattr(self, k)
+                out[f"{k}_range_nm"] = [float(a.min()), float(a.max())]
+            out["mass_to_charge_range_da"] = [float(self.mass_to_charge.min()),
+                                              float(self.mass_to_charge.max())]
+        return out
+
+    @staticmethod
+    def concatenate(parts) -> "IonList":
+        """Join ion lists (e.g. streamed chunks) into one; metadata of the first is kept."""
+        parts = list(parts)
+        if not parts:
+            raise InputError("concatenate: no ion lists given")
+        cols = {}
+        for k in REQUIRED_COLUMNS + OPTIONAL_COLUMNS:
+            vals = [getattr(p, k) for p in parts]
+            cols[k] = None if any(v is None for v in vals) else np.concatenate(vals)
+        return IonList(meta=parts[0].meta, **cols)
