@@ -1,0 +1,216 @@
+"""Command-line interface: a thin layer over the library.
+
+Every command parses its options, calls one library function, writes what it returns and prints
+a short summary. Errors a user can act on are printed as one line ``error: ...`` with exit code 1
+(2 for a malformed command line); no traceback is ever shown unless ``PROBESEQ_DEBUG=1``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import sys
+import warnings
+from pathlib import Path
+from typing import Annotated, List, Optional
+
+import typer
+
+from ._version import __version__
+from .exceptions import InputError, ProbeseqError
+
+app = typer.Typer(
+    name="probeseq",
+    help="Read the metal sequence along the rods of mixed-metal framework crystals from "
+         "atom-probe tomography ion lists.",
+    add_completion=False,
+    no_args_is_help=True,
+    rich_markup_mode=None,
+    pretty_exceptions_enable=False,
+    context_settings={"help_option_names": ["-h", "--help"]},
+)
+
+_STATE = {"quiet": False, "verbose": False}
+
+
+def _version(value: bool):
+    if value:
+        typer.echo(f"probeseq {__version__}")
+        raise typer.Exit()
+
+
+@app.callback()
+def _root(
+    version: Annotated[Optional[bool], typer.Option("--version", callback=_version, is_eager=True,
+                                                    help="Print the version and exit.")] = None,
+):
+    """probeseq: from a reconstructed ion list to the metal sequence along each rod."""
+
+
+def say(msg: str = ""):
+    """Print a line to standard output unless --quiet."""
+    if not _STATE["quiet"]:
+        typer.echo(msg)
+
+
+def split_list(value: Optional[str], what: str) -> list:
+    """Split a comma-separated option value; empty items are an error."""
+    if value is None:
+        return []
+    items = [v.strip() for v in value.split(",")]
+    if any(not v for v in items):
+        raise InputError(f"{what}: empty item in '{value}' (give a comma-separated list, e.g. Co,Zn)")
+    return items
+
+
+# ---------------------------------------------------------------------- simulate
+@app.command()
+def simulate(
+    out: Annotated[Path, typer.Argument(help="Ion file to write (.csv, .tsv, .h5); the truth (.truth.json) "
+                                             "and lattice (.lattice.toml) are written beside it.")],
+    pattern: Annotated[str, typer.Option(help="random | short-repeat | long-block | copied")] = "random",
+    metals: Annotated[str, typer.Option(help="Comma-separated metal symbols.")] = "Co,Zn",
+    composition: Annotated[Optional[str], typer.Option(help="Comma-separated site fractions (default equal).")] = None,
+    persistence: Annotated[Optional[float], typer.Option(help="Markov persistence lam in [0, 1) "
+                                                               "(default 0.5 short-repeat, 0.9 long-block, 0 otherwise).")] = None,
+    copy_error: Annotated[float, typer.Option(help="Per-site copy error of the copied pattern.")] = 0.05,
+    packing: Annotated[str, typer.Option(help="honeycomb | triangular | square")] = "honeycomb",
+    a: Annotated[float, typer.Option("--a", help="Cell edge a, nm.")] = 2.6,
+    repeat: Annotated[float, typer.Option(help="Repeat along the rod, nm.")] = 0.68,
+    sites_per_repeat: Annotated[int, typer.Option(help="Metal sites per repeat.")] = 3,
+    top_radius: Annotated[float, typer.Option(help="Needle top radius, nm.")] = 7.0,
+    half_angle: Annotated[float, typer.Option(help="Needle half-angle, degrees.")] = 8.0,
+    depth: Annotated[float, typer.Option(help="Analysed depth, nm.")] = 40.0,
+    eta: Annotated[float, typer.Option(help="Detection efficiency in (0, 1].")] = 0.5,
+    sigma_xy: Annotated[float, typer.Option(help="Lateral blur, nm.")] = 0.10,
+    sigma_z: Annotated[float, typer.Option(help="Depth blur, nm.")] = 0.04,
+    mrp: Annotated[float, typer.Option(help="Mass resolving power m/dm (FWHM).")] = 600.0,
+    seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
+    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")] = False,
+):
+    """Simulate a run of a rod framework with known truth (synthetic data for tests and demos)."""
+    from .simulate import SimConfig, simulate_run
+
+    _STATE["quiet"] = quiet
+    mets = tuple(split_list(metals, "--metals"))
+    comp = None
+    if composition is not None:
+        try:
+            comp = tuple(float(v) for v in split_list(composition, "--composition"))
+        except ValueError:
+            raise InputError(f"--composition: '{composition}' is not a list of numbers") from None
+    ion_file_kind_check(out)
+    cfg = SimConfig(pattern=pattern, metals=mets, composition=comp, persistence=persistence,
+                    copy_error=copy_error, packing=packing, a_nm=a, repeat_nm=repeat,
+                    sites_per_repeat=sites_per_repeat, top_radius_nm=top_radius,
+                    half_angle_deg=half_angle, depth_nm=depth, eta=eta, sigma_xy_nm=sigma_xy,
+                    sigma_z_nm=sigma_z, mrp=mrp, seed=seed)
+    run = simulate_run(cfg)
+    paths = run.write(out)
+    c = run.truth["counts"]
+    say(f"wrote {paths['ions']}: {c['ions']} ions ({c['metal_ions']} metal, {c['organic_ions']} linker, "
+        f"{c['background_ions']} background) from {c['rods']} rods")
+    say(f"wrote {paths['truth']} and {paths['lattice']}")
+
+
+def ion_file_kind_check(path):
+    from .io import ion_file_kind
+
+    ion_file_kind(path)
+
+
+# ---------------------------------------------------------------------- inspect
+@app.command()
+def inspect(
+    ions: Annotated[Path, typer.Argument(help="Ion file (.csv, .tsv, .txt, .h5, .hdf5).")],
+    length_unit: Annotated[Optional[str], typer.Option(help="nm | angstrom (unit of positions in the file).")] = None,
+    position_dataset: Annotated[Optional[str], typer.Option(help="HDF5 path of an N x 3 position dataset.")] = None,
+    mass_dataset: Annotated[Optional[str], typer.Option(help="HDF5 path of the mass-to-charge dataset.")] = None,
+    strict: Annotated[bool, typer.Option(help="Treat NaN/inf or non-positive mass-to-charge as an error.")] = False,
+    as_json: Annotated[bool, typer.Option("--json", help="Print the summary as JSON.")] = False,
+):
+    """Summarise an ion file: rows, extents, mass-to-charge range, rows dropped."""
+    from .io import read_ions
+
+    ion_list = read_ions(ions, length_unit=length_unit, position_dataset=position_dataset,
+                         mass_dataset=mass_dataset, strict=strict)
+    s = ion_list.summary()
+    if as_json:
+        typer.echo(json.dumps(s, indent=2, sort_keys=True))
+        return
+    typer.echo(f"file            {s['source']}")
+    typer.echo(f"sha256          {s['sha256']}")
+    typer.echo(f"ions            {s['n_ions']}")
+    typer.echo(f"columns         {', '.join(s['columns'])}")
+    typer.echo(f"length unit     {s['length_unit_in_file']} in file (shown in nm)")
+    for k in ("x", "y", "z"):
+        lo, hi = s[f"{k}_range_nm"]
+        typer.echo(f"{k} range         {lo:.3f} .. {hi:.3f} nm")
+    lo, hi = s["mass_to_charge_range_da"]
+    typer.echo(f"mass-to-charge  {lo:.4f} .. {hi:.4f} Da")
+    why = ", ".join(f"{n} {k}" for k, n in s["dropped"].items()) or "none"
+    typer.echo(f"rows dropped    {s['rows_dropped']} ({why})")
+
+
+# ---------------------------------------------------------------------- entry point
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    text = str(message).splitlines()[0] if str(message) else category.__name__
+    sys.stderr.write(f"warning: {text}\n")
+
+
+def main(argv: Optional[List[str]] = None) -> int:
+    """Run the CLI; return the exit code. Never lets a traceback reach the user."""
+    try:  # typer >= 0.20 carries its own copy of click
+        from typer._click.exceptions import ClickException
+    except ImportError:  # pragma: no cover - older typer uses click itself
+        from click.exceptions import ClickException
+    _register_commands()
+    cmd = typer.main.get_command(app)
+    old = warnings.showwarning
+    warnings.showwarning = _show_warning
+    try:
+        rv = cmd.main(args=argv, prog_name="probeseq", standalone_mode=False)
+        return int(rv) if isinstance(rv, int) else 0
+    except typer.Exit as e:
+        return int(e.exit_code)
+    except typer.Abort:
+        sys.stderr.write("error: interrupted\n")
+        return 130
+    except ClickException as e:
+        if type(e).__name__ == "NoArgsIsHelpError" and getattr(e, "ctx", None) is not None:
+            typer.echo(e.ctx.get_help())
+            return 0
+        msg = " ".join(e.format_message().split())
+        sys.stderr.write(f"error: {msg} (see 'probeseq --help')\n")
+        return 2
+    except ProbeseqError as e:
+        sys.stderr.write(f"error: {' '.join(str(e).split())}\n")
+        return 1
+    except KeyboardInterrupt:
+        sys.stderr.write("error: interrupted; earlier results were left untouched\n")
+        return 130
+    except MemoryError:
+        sys.stderr.write("error: out of memory; try a smaller --chunk-size or an HDF5 input\n")
+        return 1
+    except Exception as e:  # last line of defence: one line, never a traceback
+        if os.environ.get("PROBESEQ_DEBUG"):
+            raise
+        sys.stderr.write(f"error: internal error ({type(e).__name__}: {' '.join(str(e).split())}); "
+                         "set PROBESEQ_DEBUG=1 for details\n")
+        return 3
+    finally:
+        warnings.showwarning = old
+
+
+def _register_commands():
+    """Import the modules that add further commands to ``app`` (kept lazy for a fast --help)."""
+    from . import cli_stages  # noqa: F401
+
+
+def run():
+    """Console-script entry point."""
+    sys.exit(main())
+
+
+if __name__ == "__main__":
+    run()

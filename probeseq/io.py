@@ -1,0 +1,417 @@
+"""Readers and writers of ion lists in open formats: CSV/TSV text and HDF5.
+
+Text (``.csv``; ``.tsv`` and ``.txt`` tab-separated): lines starting with ``#`` are comments, then
+one header row, then one ion per row. Required columns ``x, y, z, mass_to_charge``; optional
+``multiplicity, pulse, voltage``; other columns are ignored. Header names are matched without
+regard to case or surrounding spaces.
+
+HDF5 (``.h5``, ``.hdf5``): group ``/ions`` with 1-D datasets ``x, y, z, mass_to_charge`` (float32
+or float64, equal length; optional ``multiplicity, pulse, voltage``) and the attribute
+``length_unit`` (``"nm"`` or ``"angstrom"``; nm when absent). Any other layout is read with
+``position_dataset`` (an N x 3 dataset) and ``mass_dataset``. Reading is chunked: see
+:func:`iter_ion_chunks` for streaming files larger than memory.
+
+Positions are converted to nm once, here. Rows with NaN/inf values or non-positive mass-to-charge
+are dropped and counted in :class:`~probeseq.ions.IonMeta` (``strict=True`` makes them an error).
+Input files are only ever opened for reading.
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import os
+import warnings
+from pathlib import Path
+from typing import Iterator
+
+import numpy as np
+
+from .exceptions import DataQualityWarning, InputError
+from .ions import LENGTH_UNITS, OPTIONAL_COLUMNS, REQUIRED_COLUMNS, IonList, IonMeta
+
+__all__ = ["read_ions", "write_ions", "iter_ion_chunks", "file_sha256", "ion_file_kind", "count_ions"]
+
+TEXT_SUFFIXES = {".csv": ",", ".tsv": "\t", ".txt": "\t"}
+HDF5_SUFFIXES = {".h5", ".hdf5"}
+ALL_COLUMNS = REQUIRED_COLUMNS + OPTIONAL_COLUMNS
+DEFAULT_CHUNK = 4_000_000
+
+
+def file_sha256(path, block: int = 1 << 22) -> str:
+    """SHA-256 hex digest of a file's bytes."""
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        while True:
+            b = fh.read(block)
+            if not b:
+                break
+            h.update(b)
+    return h.hexdigest()
+
+
+def ion_file_kind(path) -> str:
+    """``"text"`` or ``"hdf5"`` from the file's extension; :class:`InputError` otherwise."""
+    suf = Path(path).suffix.lower()
+    if suf in TEXT_SUFFIXES:
+        return "text"
+    if suf in HDF5_SUFFIXES:
+        return "hdf5"
+    raise InputError(f"{path}: unknown ion file extension '{suf}' (expected .csv, .tsv, .txt, .h5 or .hdf5)")
+
+
+def _check_unit(length_unit, where):
+    if length_unit not in LENGTH_UNITS:
+        raise InputError(f"{where}: unknown length unit '{length_unit}' (expected one of: {', '.join(LENGTH_UNITS)})")
+    return LENGTH_UNITS[length_unit]
+
+
+def _check_file(path) -> Path:
+    p = Path(path)
+    if not p.exists():
+        raise InputError(f"ion file not found: {p}")
+    if not p.is_file():
+        raise InputError(f"{p}: is not a file")
+    if p.stat().st_size == 0:
+        raise InputError(f"{p}: file is empty")
+    return p
+
+
+def _warn_dropped(ions: IonList, where: str):
+    if ions.meta.n_dropped:
+        why = ", ".join(f"{n} {k}" for k, n in ions.meta.dropped.items())
+        warnings.warn(f"{where}: dropped {ions.meta.n_dropped} rows ({why})", DataQualityWarning, stacklevel=3)
+
+
+# ---------------------------------------------------------------------- text
+def _text_layout(p: Path, sep: str):
+    """(line number of the header (1-based), header names) after skipping # comments and blanks."""
+    with open(p, "r", encoding="utf-8", errors="replace") as fh:
+        for lineno, line in enumerate(fh, 1):
+            s = line.strip()
+            if not s or s.startswith("#"):
+                continue
+            names = [c.strip().lower() for c in s.split(sep)]
+            return lineno, names
+    raise InputError(f"{p}: no header row (the file holds only comments or blank lines)")
+
+
+def _resolve_columns(p: Path, names: list, sep: str):
+    missing = [c for c in REQUIRED_COLUMNS if c not in names]
+    if missing:
+        hints = []
+        for c in missing:
+            close = difflib.get_close_matches(c, names, n=1, cutoff=0.6)
+            if close:
+                hints.append(f"'{close[0]}' for '{c}'?")
+        found = ", ".join(n for n in names if n) or "none"
+        extra = ""
+        if len(names) == 1 and sep == "," and "\t" in names[0]:
+            extra = " (the file looks tab-separated: name it .tsv)"
+        elif len(names) == 1 and sep == "\t" and "," in names[0]:
+            extra = " (the file looks comma-separated: name it .csv)"
+        hint = (" did you mean " + " ".join(hints)) if hints else ""
+        raise InputError(f"{p}: missing required column(s) {', '.join(missing)}; found: {found}{extra}{hint}")
+    dup = sorted({n for n in names if names.count(n) > 1 and n in ALL_COLUMNS})
+    if dup:
+        raise InputError(f"{p}: column(s) named twice in the header: {', '.join(dup)}")
+    return [c for c in ALL_COLUMNS if c in names]
+
+
+def _find_bad_value(p: Path, sep: str, header_line: int, names: list, wanted: list):
+    """Line number and text of the first value that is not a number (slow path, for the message)."""
+    idx = {c: names.index(c) for c in wanted}
+    with open(p, "r", encoding="utf-8", errors="replace") as fh:
+        for lineno, line in enumerate(fh, 1):
+            if lineno <= header_line:
+                continue
+            s = line.strip()
+            if not s or s.startswith("#"):
+                continue
+            parts = s.split(sep)
+            if len(parts) < len(names):
+                return f"line {lineno}: expected {len(names)} fields, found {len(parts)}"
+            for c, i in idx.items():
+                v = parts[i].strip()
+                try:
+                    float(v)
+                except ValueError:
+                    return f"line {lineno}: column '{c}' holds '{v[:30]}', not a number"
+    return None
+
+
+def _read_text(p: Path, length_unit: str, strict: bool) -> IonList:
+    import pandas as pd
+
+    sep = TEXT_SUFFIXES[p.suffix.lower()]
+    header_line, names = _text_layout(p, sep)
+    wanted = _resolve_columns(p, names, sep)
+    usecols = [names.index(c) for c in wanted]
+    try:
+        df = pd.read_csv(p, sep=sep, comment="#", header=None, skiprows=header_line, usecols=usecols,
+                         dtype=np.float64, engine="c", skip_blank_lines=True, na_filter=True)
+    except pd.errors.EmptyDataError:
+        raise InputError(f"{p}: no data rows after the header") from None
+    except (ValueError, TypeError) as e:
+        where = _find_bad_value(p, sep, header_line, names, wanted)
+        raise InputError(f"{p}: {where}" if where else f"{p}: could not parse ({str(e).splitlines()[0]})") from None
+    except pd.errors.ParserError as e:
+        where = _find_bad_value(p, sep, header_line, names, wanted)
+        raise InputError(f"{p}: {where}" if where else f"{p}: malformed text ({str(e).splitlines()[0]})") from None
+    if len(df) == 0:
+        raise InputError(f"{p}: no data rows after the header")
+    order = {i: c for c, i in zip(wanted, usecols)}
+    cols = {order[i]: df[i].to_numpy() for i in sorted(order)}
+    return cols
+
+
+# ---------------------------------------------------------------------- hdf5
+def _open_h5(p: Path):
+    import h5py
+
+    try:
+        return h5py.File(p, "r")
+    except OSError as e:
+        msg = str(e).split("(")[0].strip() or "unreadable"
+        raise InputError(f"{p}: not a readable HDF5 file ({msg}); the file may be truncated or of another format") from None
+
+
+def _h5_layout(f, p: Path, position_dataset, mass_dataset):
+    """Mapping column -> (dataset, column index or None) and the file's length unit."""
+    import h5py
+
+    def get(path):
+        try:
+            obj = f[path]
+        except (KeyError, ValueError):
+            raise InputError(f"{p}: no dataset '{path}' in the file") from None
+        if not isinstance(obj, h5py.Dataset):
+            raise InputError(f"{p}: '{path}' is a group, not a dataset")
+        return obj
+
+    if position_dataset or mass_dataset:
+        if not (position_dataset and mass_dataset):
+            raise InputError(f"{p}: --position-dataset and --mass-dataset must be given together")
+        pos = get(position_dataset)
+        mass = get(mass_dataset)
+        if pos.ndim != 2 or pos.shape[1] != 3:
+            raise InputError(f"{p}: position dataset '{position_dataset}' must be N x 3, has shape {pos.shape}")
+        if mass.ndim != 1 and not (mass.ndim == 2 and mass.shape[1] == 1):
+            raise InputError(f"{p}: mass dataset '{mass_dataset}' must be 1-D, has shape {mass.shape}")
+        if mass.shape[0] != pos.shape[0]:
+            raise InputError(f"{p}: datasets of unequal length ('{position_dataset}' {pos.shape[0]} rows, "
+                             f"'{mass_dataset}' {mass.shape[0]})")
+        unit = pos.attrs.get("length_unit", f.attrs.get("length_unit", "nm"))
+        layout = {"x": (pos, 0), "y": (pos, 1), "z": (pos, 2), "mass_to_charge": (mass, None)}
+        return layout, _as_str(unit), int(pos.shape[0])
+    if "ions" not in f or not isinstance(f["ions"], h5py.Group):
+        top = ", ".join(sorted(f.keys())) or "nothing"
+        raise InputError(f"{p}: no group '/ions' (found: {top}); for another layout give "
+                         "--position-dataset and --mass-dataset")
+    g = f["ions"]
+    missing = [c for c in REQUIRED_COLUMNS if c not in g]
+    if missing:
+        raise InputError(f"{p}: /ions lacks dataset(s) {', '.join(missing)}; found: {', '.join(sorted(g.keys())) or 'none'}")
+    layout = {}
+    n = None
+    for c in ALL_COLUMNS:
+        if c not in g:
+            continue
+        d = g[c]
+        if not isinstance(d, h5py.Dataset) or d.ndim != 1:
+            raise InputError(f"{p}: /ions/{c} must be a 1-D dataset")
+        if d.dtype.kind not in "fiu":
+            raise InputError(f"{p}: /ions/{c} holds {d.dtype}, not numbers")
+        if n is None:
+            n = d.shape[0]
+        elif d.shape[0] != n:
+            raise InputError(f"{p}: datasets of unequal length (/ions/x has {n} rows, /ions/{c} has {d.shape[0]})")
+        layout[c] = (d, None)
+    unit = g.attrs.get("length_unit", f.attrs.get("length_unit", "nm"))
+    return layout, _as_str(unit), int(n)
+
+
+def _as_str(v):
+    if isinstance(v, bytes):
+        return v.decode()
+    if isinstance(v, np.ndarray) and v.shape == ():
+        v = v[()]
+        return v.decode() if isinstance(v, bytes) else str(v)
+    return str(v)
+
+
+def _read_block(layout, start, stop, p: Path):
+    cols = {}
+    try:
+        for c, (d, j) in layout.items():
+            if j is None:
+                a = d[start:stop]
+                cols[c] = a.reshape(-1) if a.ndim == 2 else a
+            else:
+                cols[c] = d[start:stop, j]
+    except OSError as e:
+        raise InputError(f"{p}: could not read rows {start}-{stop} ({str(e).split('(')[0].strip()}); "
+                         "the file may be truncated or corrupted") from None
+    return cols
+
+
+def count_ions(path, position_dataset=None, mass_dataset=None) -> int:
+    """Number of rows in an HDF5 ion file without reading the data."""
+    p = _check_file(path)
+    with _open_h5(p) as f:
+        return _h5_layout(f, p, position_dataset, mass_dataset)[2]
+
+
+def iter_ion_chunks(path, chunk_size: int = DEFAULT_CHUNK, length_unit: str | None = None,
+                    position_dataset: str | None = None, mass_dataset: str | None = None,
+                    strict: bool = False, checksum: bool = False) -> Iterator[IonList]:
+    """Stream an ion file as :class:`IonList` chunks of at most ``chunk_size`` rows.
+
+    HDF5 files are read slice by slice, so memory is bounded by the chunk; text files are read
+    whole and then sliced (convert large text files to HDF5 once with ``write_ions``).
+    """
+    p = _check_file(path)
+    kind = ion_file_kind(p)
+    if chunk_size < 1:
+        raise InputError(f"chunk_size must be >= 1, got {chunk_size}")
+    if kind == "text":
+        ions = read_ions(p, length_unit=length_unit or "nm", strict=strict, checksum=checksum)
+        for s in range(0, max(len(ions), 1), chunk_size):
+            yield ions.subset(slice(s, s + chunk_size))
+        return
+    sha = file_sha256(p) if checksum else ""
+    with _open_h5(p) as f:
+        layout, unit_in_file, n = _h5_layout(f, p, position_dataset, mass_dataset)
+        unit = length_unit or unit_in_file
+        factor = _check_unit(unit, str(p))
+        if n == 0:
+            raise InputError(f"{p}: the ion datasets are empty")
+        for s in range(0, n, chunk_size):
+            cols = _read_block(layout, s, min(n, s + chunk_size), p)
+            yield _finish(cols, factor, IonMeta(str(p), sha, unit), strict, f"{p} rows {s + 1}-{min(n, s + chunk_size)}")
+
+
+def _finish(cols, factor, meta, strict, where) -> IonList:
+    for c in ("x", "y", "z"):
+        if factor != 1.0:
+            cols[c] = cols[c] * cols[c].dtype.type(factor)
+    return IonList.from_arrays(meta=meta, strict=strict, where=where, **cols)
+
+
+def read_ions(path, length_unit: str | None = None, position_dataset: str | None = None,
+              mass_dataset: str | None = None, strict: bool = False, checksum: bool = True) -> IonList:
+    """Read an ion list from CSV/TSV text or HDF5.
+
+    Parameters
+    ----------
+    path : str or Path
+        ``.csv``, ``.tsv``/``.txt`` or ``.h5``/``.hdf5``.
+    length_unit : {"nm", "angstrom"}, optional
+        Unit of the positions in the file. Text files: default nm. HDF5: default the file's
+        ``length_unit`` attribute (nm when absent); given, it overrides the attribute.
+    position_dataset, mass_dataset : str, optional
+        HDF5 paths of an N x 3 position dataset and a mass-to-charge dataset, for files that do not
+        use the ``/ions`` layout.
+    strict : bool
+        Raise on NaN/inf values or non-positive mass-to-charge instead of dropping the rows.
+    checksum : bool
+        Compute the file's SHA-256 for the provenance (costs one extra read of the file).
+
+    Returns
+    -------
+    IonList
+        Positions in nm, mass-to-charge in Da, with provenance in ``meta``.
+    """
+    p = _check_file(path)
+    kind = ion_file_kind(p)
+    if kind == "text":
+        unit = length_unit or "nm"
+        factor = _check_unit(unit, str(p))
+        cols = _read_text(p, unit, strict)
+        sha = file_sha256(p) if checksum else ""
+        ions = _finish(cols, factor, IonMeta(str(p), sha, unit), strict, str(p))
+    else:
+        sha = file_sha256(p) if checksum else ""
+        with _open_h5(p) as f:
+            layout, unit_in_file, n = _h5_layout(f, p, position_dataset, mass_dataset)
+            unit = length_unit or unit_in_file
+            factor = _check_unit(unit, str(p))
+            if n == 0:
+                raise InputError(f"{p}: the ion datasets are empty")
+            cols = {}
+            for c, (d, j) in layout.items():
+                dtype = d.dtype if d.dtype.kind == "f" else np.float64
+                cols[c] = np.empty(n, dtype=dtype)
+            step = DEFAULT_CHUNK
+            for s in range(0, n, step):
+                block = _read_block(layout, s, min(n, s + step), p)
+                for c, a in block.items():
+                    cols[c][s:s + a.shape[0]] = a
+            ions = _finish(cols, factor, IonMeta(str(p), sha, unit), strict, str(p))
+    if len(ions) == 0:
+        raise InputError(f"{p}: no valid ions (all {ions.meta.n_dropped} rows dropped: {ions.meta.dropped})")
+    _warn_dropped(ions, str(p))
+    return ions
+
+
+# ---------------------------------------------------------------------- writers
+def write_ions(ions: IonList, path, fmt: str | None = None, compression: str | None = None,
+               chunk_rows: int = 1_000_000, float_format: str = "%.6g", dtype=None) -> Path:
+    """Write an ion list as CSV/TSV text or HDF5 (positions in nm).
+
+    The file is written to a temporary name beside the target and moved into place when complete,
+    so an interrupted write never leaves a half file under the target name.
+
+    Parameters
+    ----------
+    fmt : {"csv", "tsv", "hdf5"}, optional
+        Default from the extension.
+    compression : {None, "gzip", "lzf"}
+        HDF5 compression (uncompressed reads fastest).
+    chunk_rows : int
+        HDF5 chunk length in rows.
+    dtype : numpy dtype, optional
+        HDF5 dataset dtype (default: the arrays' own).
+    """
+    p = Path(path)
+    if fmt is None:
+        kind = ion_file_kind(p)
+        fmt = "hdf5" if kind == "hdf5" else ("csv" if p.suffix.lower() == ".csv" else "tsv")
+    fmt = fmt.lower()
+    if fmt not in ("csv", "tsv", "hdf5"):
+        raise InputError(f"unknown ion file format '{fmt}' (expected csv, tsv or hdf5)")
+    if compression not in (None, "gzip", "lzf"):
+        raise InputError(f"unknown compression '{compression}' (expected gzip or lzf)")
+    p.parent.mkdir(parents=True, exist_ok=True)
+    tmp = p.with_name(f".{p.name}.part{os.getpid()}")
+    cols = ions.columns
+    try:
+        if fmt == "hdf5":
+            import h5py
+
+            n = len(ions)
+            with h5py.File(tmp, "w") as f:
+                g = f.create_group("ions")
+                g.attrs["length_unit"] = "nm"
+                g.attrs["mass_to_charge_unit"] = "Da"
+                for c, a in cols.items():
+                    kw = {}
+                    if n:
+                        kw["chunks"] = (min(chunk_rows, n),)
+                        if compression:
+                            kw["compression"] = compression
+                    d = g.create_dataset(c, data=a if dtype is None else a.astype(dtype), **kw)
+                    d.attrs["unit"] = {"x": "nm", "y": "nm", "z": "nm", "mass_to_charge": "Da",
+                                       "voltage": "V"}.get(c, "1")
+        else:
+            import pandas as pd
+
+            sep = "," if fmt == "csv" else "\t"
+            with open(tmp, "w", encoding="utf-8", newline="") as fh:
+                fh.write("# ion list written by probeseq; positions in nm, mass_to_charge in Da\n")
+                pd.DataFrame(cols).to_csv(fh, sep=sep, index=False, float_format=float_format)
+        os.replace(tmp, p)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+    return p

@@ -1,0 +1,449 @@
+"""Forward simulator: synthetic atom-probe runs of a rod framework with known truth.
+
+The simulator is the ground truth for tests and benchmarks and the source of the sample data.
+Everything it makes is invented. The model, stage by stage:
+
+1. **Crystal.** A rod packing (:class:`~probeseq.lattice.Lattice` preset) seen down the rod axis,
+   shifted by a random lattice offset. Metal sites sit along each rod at the pitch
+   ``repeat / sites_per_repeat``; with ``helix_radius_nm > 0`` site ``k`` sits off the axis at angle
+   ``2 pi k / sites_per_repeat`` (rods are helical chains, not lines).
+2. **Sequence** of K metals with composition f per rod:
+   ``random`` independent sites; ``short-repeat`` / ``long-block`` a Markov chain with persistence
+   lam, ``P(stay in k) = f_k + lam (1 - f_k)`` (mean run length of k is ``1/((1 - lam)(1 - f_k))``),
+   defaults lam = 0.5 and 0.9; ``copied`` one master sequence (persistence ``persistence``, default 0)
+   that every rod repeats at the same depth, each site replaced by an independent draw with
+   probability ``copy_error``.
+3. **Specimen**: a needle (cone frustum) of top radius ``top_radius_nm``, half-angle
+   ``half_angle_deg`` and depth ``depth_nm``; only sites inside it can be detected.
+4. **Detection**: each site yields one ion with probability ``eta``; a metal leaves as M+, M2+ or
+   MO+ with ``branching``; isotopes are drawn with natural abundances (``periodictable``);
+   mass-to-charge has a Gaussian peak of FWHM ``m / mrp`` and, for a share ``tail_fraction`` of
+   ions, an exponential thermal tail towards high mass of mean ``tail_scale * m / mrp``. Linker
+   fragments (H+, C+, C2+, O+, CO+, ...) arrive at ``organic_per_site`` per site, spread through
+   the volume; a uniform background in mass-to-charge and space adds ``background_fraction`` of
+   all ions.
+5. **Reconstruction**: positions blurred laterally (``sigma_xy_nm``) and in depth (``sigma_z_nm``);
+   then the crystal is mapped into the reconstruction frame by a rotation about z
+   (``rotation_deg``), a lateral scale error (``scale``), an offset (``offset_nm``), and the rods are
+   tilted away from z by ``tilt_deg`` towards azimuth ``tilt_azimuth_deg``.
+
+The reconstruction frame is the one the tool sees: a rod axis at depth z is
+``rod_xy_nm + rod_tilt * z``.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .exceptions import InputError
+from .ions import IonList, IonMeta
+from .lattice import PRESETS, Lattice
+
+__all__ = ["SimConfig", "SimRun", "simulate_run", "PATTERNS", "DEFAULT_PERSISTENCE"]
+
+PATTERNS = ("random", "short-repeat", "long-block", "copied")
+DEFAULT_PERSISTENCE = {"random": 0.0, "short-repeat": 0.5, "long-block": 0.9, "copied": 0.0}
+
+# Linker-fragment ions of an organic framework and their relative rates (invented for the
+# simulator; the species are the usual small fragments of hydrocarbon/carboxylate linkers).
+ORGANIC_SPECIES = (
+    ("H", 1, 0.20), ("H2", 1, 0.08), ("C", 1, 0.12), ("C", 2, 0.08), ("O", 1, 0.10),
+    ("OH", 1, 0.06), ("H2O", 1, 0.08), ("CO", 1, 0.12), ("C2H2", 1, 0.06), ("CO2", 1, 0.10),
+)
+
+
+@dataclass(frozen=True)
+class SimConfig:
+    """Parameters of a simulated run (lengths in nm, angles in degrees). See module docstring."""
+
+    pattern: str = "random"
+    metals: tuple = ("Co", "Zn")
+    composition: tuple | None = None
+    persistence: float | None = None
+    copy_error: float = 0.05
+    packing: str = "honeycomb"
+    a_nm: float = 2.6
+    repeat_nm: float = 0.68
+    sites_per_repeat: int = 3
+    helix_radius_nm: float = 0.05
+    top_radius_nm: float = 7.0
+    half_angle_deg: float = 8.0
+    depth_nm: float = 40.0
+    eta: float = 0.5
+    branching: tuple = (0.35, 0.55, 0.10)
+    mrp: float = 600.0
+    tail_fraction: float = 0.5
+    tail_scale: float = 1.5
+    organic_per_site: float = 2.0
+    background_fraction: float = 0.03
+    sigma_xy_nm: float = 0.10
+    sigma_z_nm: float = 0.04
+    rotation_deg: float | None = None
+    scale: float | None = None
+    offset_nm: tuple | None = None
+    tilt_deg: float | None = None
+    tilt_azimuth_deg: float | None = None
+    seed: int = 0
+
+    def __post_init__(self):
+        if self.pattern not in PATTERNS:
+            raise InputError(f"--pattern must be one of {', '.join(PATTERNS)}, got '{self.pattern}'")
+        if self.packing not in PRESETS:
+            raise InputError(f"--packing must be one of {', '.join(sorted(PRESETS))}, got '{self.packing}'")
+        if len(self.metals) < 2:
+            raise InputError(f"--metals needs at least two metals, got {list(self.metals)}")
+        if len(set(self.metals)) != len(self.metals):
+            raise InputError(f"--metals lists a metal twice: {list(self.metals)}")
+        if self.composition is not None:
+            f = np.asarray(self.composition, float)
+            if f.shape != (len(self.metals),) or (f <= 0).any():
+                raise InputError(f"--composition needs {len(self.metals)} positive fractions, got {list(self.composition)}")
+        if not 0 < self.eta <= 1:
+            raise InputError(f"--eta (detection efficiency) must be in (0, 1], got {self.eta}")
+        if self.persistence is not None and not 0 <= self.persistence < 1:
+            raise InputError(f"--persistence must be in [0, 1), got {self.persistence}")
+        if not 0 <= self.copy_error <= 1:
+            raise InputError(f"--copy-error must be in [0, 1], got {self.copy_error}")
+        for k in ("a_nm", "repeat_nm", "top_radius_nm", "depth_nm", "mrp"):
+            if not getattr(self, k) > 0:
+                raise InputError(f"{k} must be positive, got {getattr(self, k)}")
+        for k in ("sigma_xy_nm", "sigma_z_nm", "organic_per_site", "helix_radius_nm"):
+            if getattr(self, k) < 0:
+                raise InputError(f"{k} must be >= 0, got {getattr(self, k)}")
+        if not 0 <= self.background_fraction < 1:
+            raise InputError(f"background_fraction must be in [0, 1), got {self.background_fraction}")
+        if not 0 <= self.half_angle_deg < 45:
+            raise InputError(f"half_angle_deg must be in [0, 45), got {self.half_angle_deg}")
+        b = np.asarray(self.branching, float)
+        if b.shape != (3,) or (b < 0).any() or b.sum() <= 0:
+            raise InputError(f"branching needs 3 non-negative fractions (M+, M2+, MO+), got {self.branching}")
+
+    @property
+    def composition_array(self) -> np.ndarray:
+        k = len(self.metals)
+        f = np.full(k, 1.0 / k) if self.composition is None else np.asarray(self.composition, float)
+        return f / f.sum()
+
+    @property
+    def persistence_value(self) -> float:
+        return DEFAULT_PERSISTENCE[self.pattern] if self.persistence is None else float(self.persistence)
+
+
+@dataclass(frozen=True)
+class SimRun:
+    """A simulated run: the ion list, the true lattice, and the truth per rod, site and ion."""
+
+    ions: IonList
+    lattice: Lattice
+    truth: dict
+    rod_xy_nm: np.ndarray
+    rod_tilt: np.ndarray
+    seq: np.ndarray
+    site_z_nm: np.ndarray
+    ion_rod: np.ndarray
+    ion_site: np.ndarray
+    ion_metal: np.ndarray
+    ion_species: np.ndarray
+    config: SimConfig = field(default_factory=SimConfig)
+
+    def write(self, out, fmt: str | None = None) -> dict:
+        """Write the ion list, ``<stem>.truth.json`` and ``<stem>.lattice.toml`` beside it.
+
+        Returns the paths written, by role.
+        """
+        from .io import write_ions
+
+        out = Path(out)
+        write_ions(self.ions, out, fmt=fmt)
+        stem = out.with_suffix("")
+        truth_path = stem.parent / (stem.name + ".truth.json")
+        lattice_path = stem.parent / (stem.name + ".lattice.toml")
+        truth_path.write_text(json.dumps(self.truth, indent=1, sort_keys=True))
+        lattice_path.write_text(self.lattice.to_toml())
+        return {"ions": str(out), "truth": str(truth_path), "lattice": str(lattice_path)}
+
+
+# ---------------------------------------------------------------------- isotope patterns
+def _formula_atoms(formula: str) -> list:
+    import periodictable as pt
+
+    f = pt.formula(formula)
+    return [(el, n) for el, n in f.atoms.items()]
+
+
+def ion_lines(formula: str, charge: int, min_abundance: float = 1e-5):
+    """Isotope lines of an ion: (m/z in Da, fraction), neutral isotope masses / charge.
+
+    Isotope masses and abundances from ``periodictable`` (AME2020 masses, CIAAW-2021 abundances).
+    """
+    masses = np.array([0.0])
+    probs = np.array([1.0])
+    for el, n in _formula_atoms(formula):
+        iso = [(i.mass, i.abundance / 100.0) for i in el if i.abundance > 0]
+        if not iso:
+            raise InputError(f"element {el} has no natural isotopes")
+        im = np.array([m for m, _ in iso])
+        ip = np.array([p for _, p in iso])
+        ip = ip / ip.sum()
+        for _ in range(int(n)):
+            masses = (masses[:, None] + im[None, :]).ravel()
+            probs = (probs[:, None] * ip[None, :]).ravel()
+            # merge lines that coincide to 1e-4 Da and prune negligible ones
+            key = np.round(masses, 4)
+            uk, inv = np.unique(key, return_inverse=True)
+            p2 = np.bincount(inv, probs)
+            m2 = np.bincount(inv, probs * masses) / p2
+            keep = p2 >= min_abundance
+            masses, probs = m2[keep], p2[keep] / p2[keep].sum()
+    return masses / charge, probs
+
+
+# ---------------------------------------------------------------------- sequences
+def _markov_sequences(rng, n_rods, n_sites, f, lam):
+    """(n_rods, n_sites) chains: at each step keep the state with prob lam, else redraw from f."""
+    k = len(f)
+    cdf = np.cumsum(f)
+    seq = np.empty((n_rods, n_sites), dtype=np.int8)
+    seq[:, 0] = np.minimum(np.searchsorted(cdf, rng.random(n_rods), side="right"), k - 1)
+    if n_sites > 1:
+        fresh = np.minimum(np.searchsorted(cdf, rng.random((n_rods, n_sites)), side="right"), k - 1)
+        keep = rng.random((n_rods, n_sites)) < lam
+        for t in range(1, n_sites):
+            seq[:, t] = np.where(keep[:, t], seq[:, t - 1], fresh[:, t])
+    return seq
+
+
+def simulate_sequences(cfg: SimConfig, n_rods: int, n_sites: int, rng) -> np.ndarray:
+    """True site sequences (n_rods, n_sites) of metal indices for the configured pattern."""
+    f = cfg.composition_array
+    lam = cfg.persistence_value
+    if cfg.pattern in ("random", "short-repeat", "long-block"):
+        return _markov_sequences(rng, n_rods, n_sites, f, lam)
+    master = _markov_sequences(rng, 1, n_sites, f, lam)[0]
+    seq = np.broadcast_to(master, (n_rods, n_sites)).copy()
+    err = rng.random((n_rods, n_sites)) < cfg.copy_error
+    fresh = np.minimum(np.searchsorted(np.cumsum(f), rng.random((n_rods, n_sites)), side="right"), len(f) - 1)
+    seq[err] = fresh[err]
+    return seq
+
+
+def _empirical_mean_runs(seq, inside, k):
+    """Mean run length per metal of the true sequences over inside sites (runs cut at the mask)."""
+    out = []
+    for m in range(k):
+        lengths = []
+        for r in range(seq.shape[0]):
+            s = np.where(inside[r], seq[r], -1)
+            is_m = np.concatenate([[False], s == m, [False]])
+            d = np.diff(is_m.astype(np.int8))
+            starts, ends = np.flatnonzero(d == 1), np.flatnonzero(d == -1)
+            lengths.append(ends - starts)
+        ln = np.concatenate(lengths) if lengths else np.array([])
+        out.append(float(ln.mean()) if ln.size else float("nan"))
+    return out
+
+
+# ---------------------------------------------------------------------- main
+def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
+    """Simulate one atom-probe run of a rod framework.
+
+    Parameters
+    ----------
+    cfg : SimConfig, optional
+        The configuration; keyword arguments override its fields (or build one).
+
+    Returns
+    -------
+    SimRun
+        Ions, true lattice and the truth (JSON-able ``truth`` plus per-rod and per-ion arrays).
+
+    Examples
+    --------
+    >>> run = simulate_run(pattern="long-block", depth_nm=10, top_radius_nm=4, seed=3)
+    >>> run.ions.n_ions > 1000
+    True
+    """
+    if cfg is None:
+        cfg = SimConfig(**kwargs)
+    elif kwargs:
+        cfg = SimConfig(**{**asdict(cfg), **kwargs})
+    rng = np.random.default_rng(cfg.seed)
+    lat = Lattice.from_preset(cfg.packing, cfg.a_nm, cfg.repeat_nm, cfg.sites_per_repeat)
+    k = len(cfg.metals)
+    pitch = lat.pitch_nm
+
+    # distortion (drawn when not given)
+    rot = float(rng.uniform(0, 360) if cfg.rotation_deg is None else cfg.rotation_deg)
+    scale = float(rng.uniform(0.96, 1.04) if cfg.scale is None else cfg.scale)
+    offset = np.array(rng.uniform(-1.0, 1.0, 2) if cfg.offset_nm is None else cfg.offset_nm, float)
+    tilt_deg = float(rng.uniform(0.3, 1.5) if cfg.tilt_deg is None else cfg.tilt_deg)
+    tilt_az = float(rng.uniform(0, 360) if cfg.tilt_azimuth_deg is None else cfg.tilt_azimuth_deg)
+    shift_frac = rng.random(2)
+    th = math.radians(rot)
+    R = scale * np.array([[math.cos(th), -math.sin(th)], [math.sin(th), math.cos(th)]])
+    t = math.tan(math.radians(tilt_deg))
+    tilt = np.array([t * math.cos(math.radians(tilt_az)), t * math.sin(math.radians(tilt_az))])
+
+    r_bottom = cfg.top_radius_nm + cfg.depth_nm * math.tan(math.radians(cfg.half_angle_deg))
+    reach = (r_bottom + np.abs(offset).max() + abs(t) * cfg.depth_nm) / min(scale, 1.0) + 2 * lat.a_nm
+    shift = shift_frac @ lat.cell_matrix.T
+    rods_cryst = lat.rod_positions(reach, center_nm=-shift) + shift
+    rod_xy = rods_cryst @ R.T + offset  # reconstruction frame at z = 0
+    n_sites = int(math.floor(cfg.depth_nm / pitch))
+    if n_sites < 1:
+        raise InputError(f"depth_nm {cfg.depth_nm} is shorter than one site pitch ({pitch:.3g} nm)")
+    phase = float(rng.random())
+    site_z = (np.arange(n_sites) + phase) * pitch
+
+    # which (rod, site) lie inside the needle (radius grows with depth)
+    axis = rod_xy[:, None, :] + tilt[None, None, :] * site_z[None, :, None]
+    radius_at = cfg.top_radius_nm + site_z * math.tan(math.radians(cfg.half_angle_deg))
+    inside = np.sqrt((axis ** 2).sum(-1)) < radius_at[None, :]
+    keep_rods = inside.any(1)
+    rod_xy, inside, axis = rod_xy[keep_rods], inside[keep_rods], axis[keep_rods]
+    n_rods = rod_xy.shape[0]
+    seq = simulate_sequences(cfg, n_rods, n_sites, rng)
+
+    # ---- metal ions
+    detected = inside & (rng.random(inside.shape) < cfg.eta)
+    r_idx, s_idx = np.nonzero(detected)
+    n_metal = r_idx.size
+    metal = seq[r_idx, s_idx].astype(np.int64)
+    ang = 2 * math.pi * s_idx / cfg.sites_per_repeat + rng.uniform(0, 2 * math.pi)
+    helix = cfg.helix_radius_nm * np.column_stack([np.cos(ang), np.sin(ang)]) @ R.T
+    zm = site_z[s_idx] + rng.normal(0, cfg.sigma_z_nm, n_metal) if cfg.sigma_z_nm else site_z[s_idx].copy()
+    xym = axis[r_idx, s_idx] + helix + rng.normal(0, cfg.sigma_xy_nm, (n_metal, 2))
+
+    species = []  # (formula, charge, kind, metal index)
+    lines = []
+    for mi, el in enumerate(cfg.metals):
+        for formula, charge in ((el, 1), (el, 2), (el + "O", 1)):
+            species.append((formula, charge, "metal", mi))
+            lines.append(ion_lines(formula, charge))
+    for formula, charge, _ in ORGANIC_SPECIES:
+        species.append((formula, charge, "organic", -1))
+        lines.append(ion_lines(formula, charge))
+    branching = np.asarray(cfg.branching, float) / np.sum(cfg.branching)
+    which = np.minimum(np.searchsorted(np.cumsum(branching), rng.random(n_metal), side="right"), 2)
+    sp_metal = metal * 3 + which
+
+    # ---- organic fragments, uniform through the needle volume
+    n_org = int(rng.poisson(cfg.organic_per_site * inside.sum() / max(cfg.eta, 1e-9) * cfg.eta))
+    rates = np.array([w for _, _, w in ORGANIC_SPECIES])
+    sp_org = 3 * k + np.minimum(np.searchsorted(np.cumsum(rates / rates.sum()), rng.random(n_org), side="right"),
+                                len(ORGANIC_SPECIES) - 1)
+    xyo, zo = _uniform_in_needle(rng, n_org, cfg)
+    xyo = xyo + tilt[None, :] * zo[:, None]
+
+    # ---- background, uniform in m/z and space
+    n_sig = n_metal + n_org
+    n_bg = int(rng.poisson(cfg.background_fraction / (1 - cfg.background_fraction) * n_sig))
+    xyb, zb = _uniform_in_needle(rng, n_bg, cfg)
+
+    # ---- mass-to-charge
+    sp_all = np.concatenate([sp_metal, sp_org])
+    mz = np.empty(sp_all.size)
+    for si, (mzs, ps) in enumerate(lines):
+        sel = np.flatnonzero(sp_all == si)
+        if sel.size:
+            mz[sel] = mzs[np.minimum(np.searchsorted(np.cumsum(ps), rng.random(sel.size), side="right"), len(ps) - 1)]
+    width = mz / cfg.mrp / 2.3548
+    mz = mz + rng.normal(0, 1, mz.size) * width
+    tailed = rng.random(mz.size) < cfg.tail_fraction
+    mz[tailed] += rng.exponential(1.0, tailed.sum()) * cfg.tail_scale * mz[tailed] / cfg.mrp
+    max_mz = max(float(m.max()) for m, _ in lines) * 1.15
+    mzb = rng.uniform(1.0, max_mz, n_bg)
+
+    x = np.concatenate([xym[:, 0], xyo[:, 0], xyb[:, 0]])
+    y = np.concatenate([xym[:, 1], xyo[:, 1], xyb[:, 1]])
+    z = np.concatenate([zm, zo, zb])
+    m = np.concatenate([mz, mzb])
+    ion_rod = np.concatenate([r_idx, np.full(n_org + n_bg, -1)])
+    ion_site = np.concatenate([s_idx, np.full(n_org + n_bg, -1)])
+    ion_metal = np.concatenate([metal, np.full(n_org + n_bg, -1)])
+    ion_species = np.concatenate([sp_all, np.full(n_bg, -1)])
+
+    # evaporation order: by depth with a little jitter; pulse numbers and a voltage ramp
+    order = np.argsort(z + rng.normal(0, 0.3, z.size), kind="stable")
+    x, y, z, m = x[order], y[order], z[order], m[order]
+    ion_rod, ion_site, ion_metal, ion_species = ion_rod[order], ion_site[order], ion_metal[order], ion_species[order]
+    pulse = np.cumsum(rng.geometric(0.01, z.size)).astype(np.float64)
+    voltage = 3000.0 + 3000.0 * np.clip(z / cfg.depth_nm, 0, 1) + rng.normal(0, 5, z.size)
+    ions = IonList(x=x, y=y, z=z, mass_to_charge=m, multiplicity=np.ones(z.size), pulse=pulse,
+                   voltage=voltage, meta=IonMeta(source="simulated"))
+
+    f = cfg.composition_array
+    lam = cfg.persistence_value
+    # along a rod every pattern (copied included: its master chain) has mean run 1/((1-lam)(1-f_k))
+    mean_run_model = {el: 1.0 / ((1 - lam) * (1 - f[i])) for i, el in enumerate(cfg.metals)}
+    site_counts = np.array([(seq[inside] == i).sum() for i in range(k)], float)
+    emp_runs = _empirical_mean_runs(seq, inside, k)
+    truth = {
+        "about": "Synthetic run from probeseq's forward simulator. rods[]: axis x = x0 + dxdz*z, "
+                 "y = y0 + dydz*z (reconstruction frame, nm); seq: digit i means metals[i], '.' outside the specimen.",
+        "pattern": cfg.pattern,
+        "label": "rod-to-rod-copied" if cfg.pattern == "copied" else cfg.pattern,
+        "along_rod": _along_rod_class(cfg.pattern, lam, mean_run_model),
+        "rod_to_rod": "copied" if cfg.pattern == "copied" else "independent",
+        "metals": list(cfg.metals),
+        "composition": {el: float(f[i]) for i, el in enumerate(cfg.metals)},
+        "composition_sites": {el: float(site_counts[i] / site_counts.sum()) for i, el in enumerate(cfg.metals)},
+        "persistence": lam,
+        "copy_error": cfg.copy_error if cfg.pattern == "copied" else None,
+        "mean_run_length": mean_run_model,
+        "mean_run_length_sites": {el: emp_runs[i] for i, el in enumerate(cfg.metals)},
+        "eta": cfg.eta,
+        "pitch_nm": pitch,
+        "d_nn_nm": lat.nearest_rod_distance_nm,
+        "sigma_xy_nm": cfg.sigma_xy_nm,
+        "sigma_z_nm": cfg.sigma_z_nm,
+        "distortion": {"rotation_deg": rot, "scale": scale, "offset_nm": offset.tolist(), "tilt_deg": tilt_deg,
+                       "tilt_azimuth_deg": tilt_az, "tilt_x": float(tilt[0]), "tilt_y": float(tilt[1]),
+                       "lattice_shift_frac": shift_frac.tolist(), "site_phase": phase},
+        "counts": {"ions": int(z.size), "rods": int(n_rods), "metal_sites": int(inside.sum()),
+                   "metal_ions": int(n_metal), "organic_ions": int(n_org), "background_ions": int(n_bg)},
+        "species": [{"formula": s[0], "charge": s[1], "kind": s[2], "metal": s[3]} for s in species],
+        "site_z_nm": [round(float(v), 5) for v in site_z],
+        "rods": [{"x0": round(float(rod_xy[r, 0]), 5), "y0": round(float(rod_xy[r, 1]), 5),
+                  "dxdz": round(float(tilt[0]), 7), "dydz": round(float(tilt[1]), 7),
+                  "z_nm": [round(float(v), 4) for v in site_z[inside[r]]],
+                  "seq": "".join(str(int(v)) for v in seq[r, inside[r]])} for r in range(n_rods)],
+        "config": {k2: (list(v) if isinstance(v, tuple) else v) for k2, v in asdict(cfg).items()},
+    }
+    seq_out = np.where(inside, seq, -1).astype(np.int64)
+    return SimRun(ions=ions, lattice=lat, truth=truth, rod_xy_nm=rod_xy, rod_tilt=tilt, seq=seq_out,
+                  site_z_nm=site_z, ion_rod=ion_rod, ion_site=ion_site, ion_metal=ion_metal,
+                  ion_species=ion_species, config=cfg)
+
+
+def _along_rod_class(pattern, lam, mean_runs, long_block_sites=8.0):
+    """The along-rod class of the truth; for copied rods, that of their master chain."""
+    if pattern != "copied":
+        return pattern
+    if lam == 0:
+        return "random"
+    return "long-block" if min(mean_runs.values()) >= long_block_sites else "short-repeat"
+
+
+def _uniform_in_needle(rng, n, cfg):
+    """n points uniform in the cone frustum (axis on z, reconstruction frame)."""
+    if n == 0:
+        return np.zeros((0, 2)), np.zeros(0)
+    ta = math.tan(math.radians(cfg.half_angle_deg))
+    r0, d = cfg.top_radius_nm, cfg.depth_nm
+    # depth density proportional to r(z)^2: sample by rejection
+    rmax2 = (r0 + d * ta) ** 2
+    z = np.empty(0)
+    while z.size < n:
+        cand = rng.uniform(0, d, 2 * (n - z.size) + 16)
+        acc = rng.random(cand.size) < (r0 + cand * ta) ** 2 / rmax2
+        z = np.concatenate([z, cand[acc]])
+    z = z[:n]
+    r = (r0 + z * ta) * np.sqrt(rng.random(n))
+    a = rng.uniform(0, 2 * math.pi, n)
+    return np.column_stack([r * np.cos(a), r * np.sin(a)]), z
