@@ -255,6 +255,23 @@ def _read_block(layout, start, stop, p: Path):
     return cols
 
 
+def _read_into(layout, cols, n, p: Path, step: int = DEFAULT_CHUNK):
+    """Read every column of ``layout`` into the preallocated arrays ``cols`` without temporaries."""
+    try:
+        for c, (d, j) in layout.items():
+            out = cols[c]
+            if j is None and d.ndim == 1 and d.dtype == out.dtype:
+                d.read_direct(out)  # straight into the destination: no temporary
+            else:
+                for s in range(0, n, step):
+                    e = min(n, s + step)
+                    a = d[s:e] if j is None else d[s:e, j]
+                    out[s:e] = a.reshape(-1)
+    except OSError as e:
+        raise InputError(f"{p}: could not read the ion datasets ({str(e).split('(')[0].strip()}); "
+                         "the file may be truncated or corrupted") from None
+
+
 def count_ions(path, position_dataset=None, mass_dataset=None) -> int:
     """Number of rows in an HDF5 ion file without reading the data."""
     p = _check_file(path)
@@ -342,11 +359,7 @@ def read_ions(path, length_unit: str | None = None, position_dataset: str | None
             for c, (d, j) in layout.items():
                 dtype = d.dtype if d.dtype.kind == "f" else np.float64
                 cols[c] = np.empty(n, dtype=dtype)
-            step = DEFAULT_CHUNK
-            for s in range(0, n, step):
-                block = _read_block(layout, s, min(n, s + step), p)
-                for c, a in block.items():
-                    cols[c][s:s + a.shape[0]] = a
+            _read_into(layout, cols, n, p)
             ions = _finish(cols, factor, IonMeta(str(p), sha, unit), strict, str(p))
     if len(ions) == 0:
         raise InputError(f"{p}: no valid ions (all {ions.meta.n_dropped} rows dropped: {ions.meta.dropped})")

@@ -14,12 +14,42 @@ import numpy as np
 
 from .exceptions import InputError
 
-__all__ = ["IonList", "IonMeta", "LENGTH_UNITS", "OPTIONAL_COLUMNS", "REQUIRED_COLUMNS"]
+__all__ = ["IonList", "IonMeta", "LENGTH_UNITS", "OPTIONAL_COLUMNS", "REQUIRED_COLUMNS", "valid_rows"]
 
 #: factor that converts a length in the named unit to nm
 LENGTH_UNITS = {"nm": 1.0, "angstrom": 0.1}
 REQUIRED_COLUMNS = ("x", "y", "z", "mass_to_charge")
 OPTIONAL_COLUMNS = ("multiplicity", "pulse", "voltage")
+
+
+def valid_rows(cols: dict, block: int = 1 << 18):
+    """Row masks (finite, positive): all float columns finite; mass_to_charge > 0.
+
+    Works in blocks of ``block`` rows so that 10^8-row columns need no large temporaries; the
+    finiteness of several columns is tested on their sum (NaN and inf propagate through a sum; a
+    row whose finite values overflow the sum is re-checked column by column).
+    """
+    floats = [v for v in cols.values() if v is not None and v.dtype.kind == "f"]
+    m = cols["mass_to_charge"]
+    n = m.shape[0]
+    finite = np.empty(n, dtype=bool)
+    positive = np.empty(n, dtype=bool)
+    buf = np.empty(min(n, block), dtype=np.result_type(*floats))
+    for s in range(0, n, block):
+        e = min(n, s + block)
+        acc = buf[: e - s]
+        np.add(floats[0][s:e], floats[1][s:e], out=acc) if len(floats) > 1 else np.copyto(acc, floats[0][s:e])
+        for v in floats[2:]:
+            np.add(acc, v[s:e], out=acc)
+        np.isfinite(acc, out=finite[s:e])
+        np.greater(m[s:e], 0, out=positive[s:e])
+    if not finite.all():
+        bad = np.flatnonzero(~finite)
+        ok = np.ones(bad.size, dtype=bool)
+        for v in floats:
+            ok &= np.isfinite(v[bad])
+        finite[bad[ok]] = True
+    return finite, positive
 
 
 @dataclass(frozen=True)
@@ -100,15 +130,28 @@ class IonList:
             if a.flags.writeable and a.flags.owndata:
                 a.flags.writeable = False
             object.__setattr__(self, name, a)
-        for name in ("x", "y", "z"):
-            a = getattr(self, name)
-            if a.size and not np.isfinite(a).all():
-                raise InputError(f"ion list: column '{name}' holds NaN or infinite values")
-        m = self.mass_to_charge
-        if m.size and not (np.isfinite(m).all() and (m > 0).all()):
-            raise InputError("ion list: mass_to_charge must be finite and positive")
+        if n:
+            finite, positive = valid_rows(self.columns)
+            if not finite.all():
+                raise InputError(f"ion list: {int((~finite).sum())} rows hold NaN or infinite values")
+            if not positive.all():
+                raise InputError("ion list: mass_to_charge must be finite and positive")
 
     # ------------------------------------------------------------------ construction
+    @classmethod
+    def _trusted(cls, meta, **cols) -> "IonList":
+        """Build without re-validating columns that :func:`valid_rows` has just checked."""
+        obj = cls.__new__(cls)
+        for name in REQUIRED_COLUMNS + OPTIONAL_COLUMNS:
+            a = cols.get(name)
+            if a is not None:
+                a = np.asarray(a)
+                if a.flags.writeable and a.flags.owndata:
+                    a.flags.writeable = False
+            object.__setattr__(obj, name, a)
+        object.__setattr__(obj, "meta", meta)
+        return obj
+
     @classmethod
     def from_arrays(
         cls,
@@ -141,18 +184,20 @@ class IonList:
         cols = {"x": x, "y": y, "z": z, "mass_to_charge": mass_to_charge,
                 "multiplicity": multiplicity, "pulse": pulse, "voltage": voltage}
         cols = {k: (None if v is None else np.asarray(v)) for k, v in cols.items()}
-        lengths = {k: v.shape[0] for k, v in cols.items() if v is not None and v.ndim == 1}
+        for k, v in cols.items():
+            if v is not None and v.ndim != 1:
+                raise InputError(f"{where}: column '{k}' must be 1-D, got shape {v.shape}")
+            if k in REQUIRED_COLUMNS and v is not None and v.dtype.kind != "f":
+                cols[k] = v.astype(np.float64)
+        lengths = {k: v.shape[0] for k, v in cols.items() if v is not None}
         if len(set(lengths.values())) > 1:
             raise InputError(f"{where}: columns have unequal lengths {lengths}")
-        finite = np.ones(len(cols["x"]), dtype=bool)
-        for k, v in cols.items():
-            if v is not None and v.dtype.kind == "f":
-                finite &= np.isfinite(v)
-        positive = cols["mass_to_charge"] > 0
-        dropped = dict(meta.dropped)
-        n_nonfinite = int((~finite).sum())
-        n_nonpos = int((finite & ~positive).sum())
-        if strict and (n_nonfinite or n_nonpos):
+        finite, positive = valid_rows(cols)
+        n_nonfinite = int(finite.size - np.count_nonzero(finite))
+        n_nonpos = int(np.count_nonzero(finite & ~positive)) if n_nonfinite or not positive.all() else 0
+        if n_nonfinite == 0 and n_nonpos == 0:
+            return cls._trusted(replace(meta, n_dropped=sum(meta.dropped.values())), **cols)
+        if strict:
             what = []
             if n_nonfinite:
                 first = int(np.flatnonzero(~finite)[0])
@@ -161,15 +206,15 @@ class IonList:
                 first = int(np.flatnonzero(finite & ~positive)[0])
                 what.append(f"{n_nonpos} rows with non-positive mass_to_charge (first at data row {first + 1})")
             raise InputError(f"{where}: " + " and ".join(what) + " (--strict)")
-        keep = finite & positive
+        dropped = dict(meta.dropped)
         if n_nonfinite:
             dropped["non-finite"] = dropped.get("non-finite", 0) + n_nonfinite
         if n_nonpos:
             dropped["non-positive mass_to_charge"] = dropped.get("non-positive mass_to_charge", 0) + n_nonpos
-        if not keep.all():
-            cols = {k: (None if v is None else v[keep]) for k, v in cols.items()}
+        keep = finite & positive
+        cols = {k: (None if v is None else v[keep]) for k, v in cols.items()}
         meta = replace(meta, n_dropped=sum(dropped.values()), dropped=dropped)
-        return cls(meta=meta, **cols)
+        return cls._trusted(meta, **cols)
 
     # ------------------------------------------------------------------ views
     def __len__(self) -> int:
