@@ -56,12 +56,14 @@ def best_of(fn, k=3):
 
 
 STREAM = """
-import resource, sys, numpy as np
+import sys, numpy as np
 from probeseq.io import iter_ion_chunks
 s = 0.0; n = 0
 for c in iter_ion_chunks(sys.argv[1], chunk_size=int(sys.argv[2])):
     s += float(np.sum(c.mass_to_charge, dtype=np.float64)); n += len(c)
-print(n, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0)
+# VmHWM (peak resident set of this process image); ru_maxrss would carry the parent's peak across exec
+hwm = [l for l in open("/proc/self/status") if l.startswith("VmHWM")][0].split()[1]
+print(n, int(hwm) / 1024.0)
 """
 
 
