@@ -12,7 +12,7 @@ import numpy as np
 
 from .exceptions import InputError
 
-__all__ = ["RodColumns"]
+__all__ = ["RodColumns", "save_columns", "load_columns", "COLUMNS_FILE_VERSION"]
 
 
 @dataclass(frozen=True)
@@ -106,3 +106,66 @@ class RodColumns:
         if d.ndim == 0:
             return self.rod_xy_nm + self.tilt * d
         return self.rod_xy_nm[:, None, :] + self.tilt[None, None, :] * d[None, :, None]
+
+
+COLUMNS_FILE_VERSION = 1
+
+
+def save_columns(columns: RodColumns, path) -> None:
+    """Write a :class:`RodColumns` to HDF5 (group ``/columns``, units as dataset attributes)."""
+    import json
+
+    import h5py
+
+    from .outputs import to_jsonable
+
+    with h5py.File(path, "w") as f:
+        g = f.create_group("columns")
+        g.attrs["format_version"] = COLUMNS_FILE_VERSION
+        g.attrs["metals"] = json.dumps(list(columns.metals))
+        g.attrs["z_ref_nm"] = columns.z_ref_nm
+        g.attrs["pitch_nm"] = columns.pitch_nm
+        g.attrs["resolvable"] = bool(columns.resolvable)
+        g.attrs["crosstalk"] = float(columns.crosstalk)
+        g.attrs["params_json"] = json.dumps(to_jsonable(columns.params), sort_keys=True)
+        for name, data, unit in (("counts", columns.counts, "metal atoms per site"),
+                                 ("mask", columns.mask.astype(np.uint8), "1 = site used"),
+                                 ("rod_xy_nm", columns.rod_xy_nm, "nm"),
+                                 ("tilt", columns.tilt, "dx/dz, dy/dz"),
+                                 ("site_z_nm", columns.site_z_nm, "nm"),
+                                 ("neighbours", columns.neighbours, "rod index pairs")):
+            d = g.create_dataset(name, data=data, compression="gzip" if data.size > 4096 else None)
+            d.attrs["unit"] = unit
+
+
+def load_columns(path) -> RodColumns:
+    """Read a :class:`RodColumns` written by :func:`save_columns`."""
+    import json
+    from pathlib import Path
+
+    import h5py
+
+    p = Path(path)
+    if not p.is_file():
+        raise InputError(f"columns file not found: {p}")
+    try:
+        f = h5py.File(p, "r")
+    except OSError:
+        raise InputError(f"{p}: not a readable HDF5 file") from None
+    with f:
+        if "columns" not in f:
+            raise InputError(f"{p}: no group '/columns' (not written by 'probeseq columns')")
+        g = f["columns"]
+        version = int(g.attrs.get("format_version", -1))
+        if version != COLUMNS_FILE_VERSION:
+            raise InputError(f"{p}: columns file format version {version}, this probeseq reads {COLUMNS_FILE_VERSION}")
+        try:
+            return RodColumns(
+                counts=g["counts"][...], mask=g["mask"][...].astype(bool),
+                metals=tuple(json.loads(g.attrs["metals"])), rod_xy_nm=g["rod_xy_nm"][...],
+                tilt=g["tilt"][...], z_ref_nm=float(g.attrs["z_ref_nm"]), site_z_nm=g["site_z_nm"][...],
+                pitch_nm=float(g.attrs["pitch_nm"]), neighbours=g["neighbours"][...],
+                resolvable=bool(g.attrs["resolvable"]), crosstalk=float(g.attrs["crosstalk"]),
+                params=json.loads(g.attrs["params_json"]))
+        except KeyError as e:
+            raise InputError(f"{p}: columns file lacks {e}") from None

@@ -28,7 +28,8 @@ Everything it makes is invented. The model, stage by stage:
    tilted away from z by ``tilt_deg`` towards azimuth ``tilt_azimuth_deg``.
 
 The reconstruction frame is the one the tool sees: a rod axis at depth z is
-``rod_xy_nm + rod_tilt * z``.
+``rod_xy_nm + rod_tilt * z``. The tilt is a rotation of the crystal, so the planes of sites stay
+perpendicular to the rods: site depths depend on the lateral position (``SimRun.site_z_nm``).
 """
 
 from __future__ import annotations
@@ -136,7 +137,12 @@ class SimConfig:
 
 @dataclass(frozen=True)
 class SimRun:
-    """A simulated run: the ion list, the true lattice, and the truth per rod, site and ion."""
+    """A simulated run: the ion list, the true lattice, and the truth per rod, site and ion.
+
+    ``site_z_nm`` is (n_rods, n_sites): the depth of every site in the reconstruction frame. With a
+    tilt, the site planes are perpendicular to the tilted rods, so site k of neighbouring rods sits
+    at slightly different depths. ``seq`` is (n_rods, n_sites), -1 outside the specimen.
+    """
 
     ions: IonList
     lattice: Lattice
@@ -286,26 +292,38 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     shift_frac = rng.random(2)
     th = math.radians(rot)
     R = scale * np.array([[math.cos(th), -math.sin(th)], [math.sin(th), math.cos(th)]])
-    t = math.tan(math.radians(tilt_deg))
-    tilt = np.array([t * math.cos(math.radians(tilt_az)), t * math.sin(math.radians(tilt_az))])
+    # tilt: a rotation of the crystal by tilt_deg about the in-plane axis perpendicular to the
+    # azimuth, so that the rod axis e_z goes to (sin t cos az, sin t sin az, cos t); the site planes
+    # stay perpendicular to the rods (sites of neighbouring rods are shifted in depth accordingly)
+    tr, az = math.radians(tilt_deg), math.radians(tilt_az)
+    u = np.array([-math.sin(az), math.cos(az), 0.0])
+    K = np.array([[0, -u[2], u[1]], [u[2], 0, -u[0]], [-u[1], u[0], 0]])
+    Rt = np.eye(3) + math.sin(tr) * K + (1 - math.cos(tr)) * (K @ K)
+    d_tilted = Rt[:, 2]
+    tilt = (R @ d_tilted[:2]) / d_tilted[2]  # (dx/dz, dy/dz) in the reconstruction frame
+    t = math.tan(tr)
 
     r_bottom = cfg.top_radius_nm + cfg.depth_nm * math.tan(math.radians(cfg.half_angle_deg))
     reach = (r_bottom + np.abs(offset).max() + abs(t) * cfg.depth_nm) / min(scale, 1.0) + 2 * lat.a_nm
     shift = shift_frac @ lat.cell_matrix.T
     rods_cryst = lat.rod_positions(reach, center_nm=-shift) + shift
-    rod_xy = rods_cryst @ R.T + offset  # reconstruction frame at z = 0
     n_sites = int(math.floor(cfg.depth_nm / pitch))
     if n_sites < 1:
         raise InputError(f"depth_nm {cfg.depth_nm} is shorter than one site pitch ({pitch:.3g} nm)")
     phase = float(rng.random())
-    site_z = (np.arange(n_sites) + phase) * pitch
+    zc = (np.arange(n_sites) + phase) * pitch  # site positions along the rod, crystal frame
+
+    # site positions in the reconstruction frame: (n_rods, n_sites) depth and (n_rods, n_sites, 2) lateral
+    site_zr = Rt[2, 0] * rods_cryst[:, :1] + Rt[2, 1] * rods_cryst[:, 1:2] + Rt[2, 2] * zc[None, :]
+    lat_t = (rods_cryst @ Rt[:2, :2].T)[:, None, :] + Rt[None, None, :2, 2] * zc[None, :, None]
+    axis = lat_t @ R.T + offset
+    rod_xy = axis[:, 0, :] - tilt[None, :] * site_zr[:, :1]  # axis at z = 0
 
     # which (rod, site) lie inside the needle (radius grows with depth)
-    axis = rod_xy[:, None, :] + tilt[None, None, :] * site_z[None, :, None]
-    radius_at = cfg.top_radius_nm + site_z * math.tan(math.radians(cfg.half_angle_deg))
-    inside = np.sqrt((axis ** 2).sum(-1)) < radius_at[None, :]
+    radius_at = cfg.top_radius_nm + site_zr * math.tan(math.radians(cfg.half_angle_deg))
+    inside = (np.sqrt((axis ** 2).sum(-1)) < radius_at) & (site_zr >= 0) & (site_zr <= cfg.depth_nm)
     keep_rods = inside.any(1)
-    rod_xy, inside, axis = rod_xy[keep_rods], inside[keep_rods], axis[keep_rods]
+    rod_xy, inside, axis, site_zr = rod_xy[keep_rods], inside[keep_rods], axis[keep_rods], site_zr[keep_rods]
     n_rods = rod_xy.shape[0]
     seq = simulate_sequences(cfg, n_rods, n_sites, rng)
 
@@ -316,7 +334,7 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     metal = seq[r_idx, s_idx].astype(np.int64)
     ang = 2 * math.pi * s_idx / cfg.sites_per_repeat + rng.uniform(0, 2 * math.pi)
     helix = cfg.helix_radius_nm * np.column_stack([np.cos(ang), np.sin(ang)]) @ R.T
-    zm = site_z[s_idx] + rng.normal(0, cfg.sigma_z_nm, n_metal) if cfg.sigma_z_nm else site_z[s_idx].copy()
+    zm = site_zr[r_idx, s_idx] + (rng.normal(0, cfg.sigma_z_nm, n_metal) if cfg.sigma_z_nm else 0.0)
     xym = axis[r_idx, s_idx] + helix + rng.normal(0, cfg.sigma_xy_nm, (n_metal, 2))
 
     species = []  # (formula, charge, kind, metal index)
@@ -408,16 +426,16 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
         "counts": {"ions": int(z.size), "rods": int(n_rods), "metal_sites": int(inside.sum()),
                    "metal_ions": int(n_metal), "organic_ions": int(n_org), "background_ions": int(n_bg)},
         "species": [{"formula": s[0], "charge": s[1], "kind": s[2], "metal": s[3]} for s in species],
-        "site_z_nm": [round(float(v), 5) for v in site_z],
+        "site_s_nm": [round(float(v), 5) for v in zc],
         "rods": [{"x0": round(float(rod_xy[r, 0]), 5), "y0": round(float(rod_xy[r, 1]), 5),
                   "dxdz": round(float(tilt[0]), 7), "dydz": round(float(tilt[1]), 7),
-                  "z_nm": [round(float(v), 4) for v in site_z[inside[r]]],
+                  "z_nm": [round(float(v), 4) for v in site_zr[r, inside[r]]],
                   "seq": "".join(str(int(v)) for v in seq[r, inside[r]])} for r in range(n_rods)],
         "config": {k2: (list(v) if isinstance(v, tuple) else v) for k2, v in asdict(cfg).items()},
     }
     seq_out = np.where(inside, seq, -1).astype(np.int64)
     return SimRun(ions=ions, lattice=lat, truth=truth, rod_xy_nm=rod_xy, rod_tilt=tilt, seq=seq_out,
-                  site_z_nm=site_z, ion_rod=ion_rod, ion_site=ion_site, ion_metal=ion_metal,
+                  site_z_nm=site_zr, ion_rod=ion_rod, ion_site=ion_site, ion_metal=ion_metal,
                   ion_species=ion_species, config=cfg)
 
 

@@ -1,0 +1,312 @@
+"""The whole analysis, stage by stage: ranging -> columns -> decoding -> statistics -> classification.
+
+:func:`analyze` runs the stages in order on an ion list and returns an :class:`AnalysisResult`;
+:func:`write_analysis` writes its output folder (``results.json``, ``tracks.csv``, ``runs.csv`` and
+the intermediate files). Each stage is a pure library call; this module only joins them, times
+them and reports progress through an optional callback.
+"""
+
+from __future__ import annotations
+
+import csv
+import platform
+import sys
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Optional
+
+import numpy as np
+
+from ._version import __version__
+from .data import RodColumns
+from .exceptions import DataQualityWarning, InputError
+from .ions import IonList
+from .lattice import Lattice
+
+__all__ = ["AnalysisOptions", "AnalysisResult", "analyze", "write_analysis", "RESULTS_SCHEMA_VERSION",
+           "TRACKS_COLUMNS", "RUNS_COLUMNS"]
+
+#: version of the results.json layout; bumped when a key changes meaning or moves
+RESULTS_SCHEMA_VERSION = 1
+TRACKS_COLUMNS = ("rod", "rod_x_nm", "rod_y_nm", "site", "z_nm", "state", "posterior")
+RUNS_COLUMNS = ("rod", "first_site", "last_site", "length_sites", "length_nm", "z_start_nm", "z_end_nm",
+                "metal", "mean_posterior")
+
+Progress = Optional[Callable[[str, str], None]]
+
+
+@dataclass(frozen=True)
+class AnalysisOptions:
+    """Every setting of an analysis (recorded in the provenance).
+
+    Attributes
+    ----------
+    seed : int
+        Seed of every random choice (EM starts, bootstraps, nulls); the same seed gives the same results.
+    n_starts : int
+        EM starts of the decoder.
+    n_boot : int
+        Bootstrap resamples over rods.
+    long_block_sites : float, sites
+        Mean run length of the least abundant metal at or above which runs are long blocks.
+    alpha : float
+        Significance level of the tests.
+    copy_threshold : float
+        Neighbouring-rod correlation at or above which (when significant) rods count as copied.
+    rotation_deg, scale, offset_nm
+        Registration overrides (None = fit).
+    uncertain_below : float
+        Sites whose best posterior is below this are flagged uncertain.
+    """
+
+    seed: int = 0
+    n_starts: int = 4
+    n_boot: int = 200
+    long_block_sites: float = 8.0
+    alpha: float = 0.01
+    copy_threshold: float = 0.3
+    rotation_deg: Optional[float] = None
+    scale: Optional[float] = None
+    offset_nm: Optional[tuple] = None
+    uncertain_below: float = 0.8
+    species: Optional[tuple] = None
+
+    def __post_init__(self):
+        if not (isinstance(self.alpha, (int, float)) and 0 < self.alpha < 1):
+            raise InputError(f"--alpha must be in (0, 1), got {self.alpha}")
+        if not (isinstance(self.long_block_sites, (int, float)) and self.long_block_sites >= 1):
+            raise InputError(f"--long-block-sites must be >= 1 site, got {self.long_block_sites}")
+        if not (isinstance(self.copy_threshold, (int, float)) and 0 <= self.copy_threshold <= 1):
+            raise InputError(f"--copy-threshold must be in [0, 1], got {self.copy_threshold}")
+        if not (isinstance(self.n_boot, int) and self.n_boot >= 20):
+            raise InputError(f"--n-boot must be an integer >= 20, got {self.n_boot}")
+        if not (isinstance(self.n_starts, int) and self.n_starts >= 1):
+            raise InputError(f"--n-starts must be an integer >= 1, got {self.n_starts}")
+        if not 0.5 <= self.uncertain_below <= 1:
+            raise InputError(f"--uncertain-below must be in [0.5, 1], got {self.uncertain_below}")
+
+    def to_dict(self) -> dict:
+        return {k: (list(v) if isinstance(v, tuple) else v) for k, v in self.__dict__.items()}
+
+
+@dataclass(frozen=True)
+class AnalysisResult:
+    """Everything :func:`analyze` found, stage by stage."""
+
+    metals: tuple
+    lattice: Lattice
+    options: AnalysisOptions
+    ions_summary: dict
+    ranging: object
+    n_metal_ions: int
+    columns: RodColumns
+    decoded: object
+    groups: object
+    statistics: object
+    classification: object
+    timings_s: dict
+    warnings: tuple
+    provenance: dict = field(default_factory=dict)
+
+    # ------------------------------------------------------------------ tables
+    def tracks_table(self) -> dict:
+        """One row per decoded (unmasked) site: the columns of ``tracks.csv`` as 1-D arrays."""
+        col, dec = self.columns, self.decoded
+        r, s = np.nonzero(col.mask)
+        z = col.site_z_nm[s]
+        xy = col.rod_xy_nm[r] + col.tilt[None, :] * (z - col.z_ref_nm)[:, None]
+        state = dec.viterbi[r, s]
+        post = dec.posteriors[r, s, state]
+        return {"rod": r, "rod_x_nm": xy[:, 0], "rod_y_nm": xy[:, 1], "site": s, "z_nm": z,
+                "state": np.asarray(self.metals, dtype=object)[state], "posterior": post}
+
+    def runs_table(self) -> dict:
+        """Runs of equal metal along each rod's Viterbi path (``runs.csv``)."""
+        runs = self.decoded.runs
+        col = self.columns
+        first, last = np.asarray(runs["first_site"], int), np.asarray(runs["last_site"], int)
+        length = np.asarray(runs["length"], int)
+        return {"rod": np.asarray(runs["rod"], int), "first_site": first, "last_site": last,
+                "length_sites": length, "length_nm": length * col.pitch_nm,
+                "z_start_nm": col.site_z_nm[first] if first.size else first.astype(float),
+                "z_end_nm": col.site_z_nm[last] if last.size else last.astype(float),
+                "metal": np.asarray(self.metals, dtype=object)[np.asarray(runs["metal"], int)],
+                "mean_posterior": np.asarray(runs["mean_posterior"], float)}
+
+    # ------------------------------------------------------------------ results.json
+    def to_dict(self) -> dict:
+        """The ``results.json`` layout (schema version :data:`RESULTS_SCHEMA_VERSION`)."""
+        st = self.statistics.to_dict()
+        cls = self.classification.to_dict()
+        comp = {m: st["composition"][m] for m in self.metals}
+        col = self.columns
+        dec = self.decoded.to_dict()
+        return {
+            "schema_version": RESULTS_SCHEMA_VERSION,
+            "provenance": self.provenance,
+            "classification": cls,
+            "composition": comp,
+            "composition_interval": {m: st["intervals"].get(f"composition.{m}") for m in self.metals},
+            "statistics": st,
+            "columns": {"n_rods": int(col.n_rods), "n_sites": int(col.n_sites),
+                        "n_sites_used": int(col.mask.sum()), "pitch_nm": col.pitch_nm,
+                        "resolvable": bool(col.resolvable), "crosstalk": float(col.crosstalk),
+                        "n_metal_ions": int(self.n_metal_ions),
+                        "metal_atoms_in_rods": float(col.counts.sum()),
+                        "registration": col.params},
+            "decoding": dec,
+            "groups": None if self.groups is None else self.groups.to_dict(),
+            "ranging": self.ranging.to_dict(),
+            "ions": self.ions_summary,
+            "warnings": list(self.warnings),
+            "timings_s": self.timings_s,
+        }
+
+
+class _Clock:
+    def __init__(self, progress: Progress):
+        self.t0 = time.perf_counter()
+        self.timings = {}
+        self.progress = progress
+
+    def stage(self, name: str, message: str):
+        if self.progress is not None:
+            self.progress(name, message)
+        return _Timed(self, name)
+
+
+class _Timed:
+    def __init__(self, clock, name):
+        self.clock, self.name = clock, name
+
+    def __enter__(self):
+        self.t = time.perf_counter()
+        return self
+
+    def __exit__(self, *exc):
+        self.clock.timings[self.name] = round(time.perf_counter() - self.t, 4)
+        return False
+
+
+def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: AnalysisOptions | None = None,
+            progress: Progress = None, provenance: dict | None = None) -> AnalysisResult:
+    """Run the whole pipeline on an ion list.
+
+    Parameters
+    ----------
+    ions : IonList
+    metals : sequence of str
+        Metal symbols, in channel order.
+    lattice : Lattice
+    ranges : RangeSet, optional
+        Ranges to use (e.g. an edited file) instead of automatic ranging.
+    options : AnalysisOptions, optional
+    progress : callable(stage, message), optional
+        Called as each stage starts.
+    provenance : dict, optional
+        Recorded in the results (command line, input checksum...).
+
+    Returns
+    -------
+    AnalysisResult
+    """
+    from .classify import classify
+    from .columns import build_columns
+    from .decode import fit_decoder
+    from .ranging import assign_channels, auto_range
+    from .stats import compute_statistics
+
+    opts = options or AnalysisOptions()
+    metals = tuple(metals)
+    if len(metals) < 2:
+        raise InputError(f"--metals needs at least two metals, got {list(metals)}")
+    if not isinstance(ions, IonList) or len(ions) == 0:
+        raise InputError("no ions to analyse")
+    clock = _Clock(progress)
+    caught = []
+    with warnings.catch_warnings(record=True) as wlist:
+        warnings.simplefilter("always", DataQualityWarning)
+        warnings.simplefilter("always")
+        with clock.stage("ranging", "ranging the mass spectrum"):
+            rr = auto_range(ions.mass_to_charge, metals, species=opts.species, ranges=ranges)
+            assign = assign_channels(ions.mass_to_charge, rr.ranges, metals)
+            w_all = assign.weights()
+            sel = w_all.sum(1) > 0
+            n_metal = int(sel.sum())
+        if n_metal == 0:
+            raise InputError(f"no ions fall in ranges of the metals {', '.join(metals)}")
+        with clock.stage("columns", f"registering the rod lattice on {n_metal} metal ions"):
+            cols = build_columns(ions.x[sel], ions.y[sel], ions.z[sel], w_all[sel], metals, lattice,
+                                 rotation_deg=opts.rotation_deg, scale=opts.scale, offset_nm=opts.offset_nm,
+                                 random_state=opts.seed)
+        del w_all
+        with clock.stage("decoding", f"fitting the rod model to {cols.n_rods} rods x {cols.n_sites} sites"):
+            dec = fit_decoder(cols, n_starts=opts.n_starts, random_state=opts.seed,
+                              uncertain_below=opts.uncertain_below)
+        groups = None
+        if not cols.resolvable:
+            from .groups import analyze_groups
+
+            with clock.stage("groups", "single rods are not resolvable: analysing groups of rods"):
+                groups = analyze_groups(cols, random_state=opts.seed)
+        with clock.stage("statistics", f"statistics with {opts.n_boot} bootstrap resamples over rods"):
+            st = compute_statistics(dec, cols, n_boot=opts.n_boot, random_state=opts.seed)
+        with clock.stage("classification", "classifying the arrangement"):
+            cl = classify(st, dec.lr_pvalue, long_block_sites=opts.long_block_sites, alpha=opts.alpha,
+                          copy_threshold=opts.copy_threshold)
+        caught = [str(w.message).splitlines()[0] for w in wlist]
+    warn = list(dict.fromkeys(caught + list(getattr(dec, "warnings", []))))
+    if not cols.resolvable:
+        warn.insert(0, f"single rods are not resolvable (expected crosstalk {cols.crosstalk:.2f}); "
+                       "per-rod sequences are unreliable, see the groups-of-rods analysis")
+    clock.timings["total"] = round(time.perf_counter() - clock.t0, 4)
+    prov = {"tool": "probeseq", "version": __version__, "python": sys.version.split()[0],
+            "platform": platform.platform(), "options": opts.to_dict(), "metals": list(metals),
+            "lattice": lattice.to_dict(), "lattice_source": lattice.name, "seed": opts.seed,
+            "input": {"source": ions.meta.source, "sha256": ions.meta.sha256}}
+    prov.update(provenance or {})
+    return AnalysisResult(metals=metals, lattice=lattice, options=opts, ions_summary=ions.summary(), ranging=rr,
+                          n_metal_ions=n_metal, columns=cols, decoded=dec, groups=groups, statistics=st,
+                          classification=cl, timings_s=clock.timings, warnings=tuple(warn), provenance=prov)
+
+
+def _write_table(path: Path, table: dict, columns, fmt: dict | None = None):
+    fmt = fmt or {}
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(columns)
+        cols = [table[c] for c in columns]
+        n = len(cols[0]) if cols else 0
+        formatted = []
+        for c, a in zip(columns, cols):
+            f = fmt.get(c)
+            if f is None:
+                formatted.append([str(v) for v in a])
+            else:
+                formatted.append([f % v for v in a])
+        for i in range(n):
+            w.writerow([col[i] for col in formatted])
+
+
+def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: Callable | None = None) -> Path:
+    """Write an analysis output folder (staged: complete or not at all).
+
+    Files: ``results.json``, ``tracks.csv``, ``runs.csv``, ``ranges.toml``, ``columns.h5``; ``extra``
+    (called with the staging folder) may add more (figures, report).
+    """
+    from .data import save_columns
+    from .outputs import staged_outdir, write_json
+
+    with staged_outdir(outdir, force=force) as st:
+        write_json(st / "results.json", result.to_dict())
+        _write_table(st / "tracks.csv", result.tracks_table(), TRACKS_COLUMNS,
+                     {"rod_x_nm": "%.4f", "rod_y_nm": "%.4f", "z_nm": "%.4f", "posterior": "%.4f"})
+        _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS,
+                     {"length_nm": "%.4f", "z_start_nm": "%.4f", "z_end_nm": "%.4f", "mean_posterior": "%.4f"})
+        result.ranging.ranges.to_toml(st / "ranges.toml")
+        save_columns(result.columns, st / "columns.h5")
+        if extra is not None:
+            extra(st)
+    return Path(outdir)
