@@ -1,5 +1,335 @@
-"""CLI commands of the pipeline stages (ranging, columns, decoding, analysis), joined to ``app``."""
+"""CLI commands of the pipeline stages (ranging, columns, decoding, analysis), joined to ``app``.
+
+Each command is a thin wrapper: parse, call one library function, write, summarise.
+"""
 
 from __future__ import annotations
 
-from .cli import app  # noqa: F401
+import json
+import shlex
+import sys
+import time
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+
+from .cli import _STATE, app, say, split_list
+from .exceptions import InputError
+
+# ---------------------------------------------------------------------- shared options
+LengthUnit = Annotated[Optional[str], typer.Option(help="nm | angstrom: unit of the positions in the ion file.")]
+PosDataset = Annotated[Optional[str], typer.Option(help="HDF5 path of an N x 3 position dataset (other layouts).")]
+MassDataset = Annotated[Optional[str], typer.Option(help="HDF5 path of the mass-to-charge dataset (other layouts).")]
+Strict = Annotated[bool, typer.Option(help="Treat NaN/inf or non-positive mass-to-charge rows as an error.")]
+Metals = Annotated[Optional[str], typer.Option(help="Comma-separated metal symbols, e.g. Co,Zn.")]
+LatticeOpt = Annotated[Optional[str], typer.Option(help="Lattice TOML file, or a preset: honeycomb | triangular | square.")]
+AOpt = Annotated[Optional[float], typer.Option("--a", help="Cell edge a, nm (with a preset).")]
+RepeatOpt = Annotated[Optional[float], typer.Option(help="Repeat along the rod, nm (with a preset).")]
+SitesOpt = Annotated[int, typer.Option(help="Metal sites per repeat (with a preset).")]
+RangesOpt = Annotated[Optional[Path], typer.Option(help="Range file (TOML) to use instead of automatic ranging.")]
+Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")]
+Verbose = Annotated[bool, typer.Option("--verbose", "-v", help="Print more detail.")]
+Force = Annotated[bool, typer.Option(help="Replace an existing output folder (only once the new one is complete).")]
+
+
+def _parse_offset(text: Optional[str]):
+    if text is None:
+        return None
+    try:
+        vals = [float(v) for v in split_list(text, "--offset-nm")]
+    except ValueError:
+        raise InputError(f"--offset-nm: '{text}' is not two numbers 'x,y' (nm)") from None
+    if len(vals) != 2:
+        raise InputError(f"--offset-nm takes two numbers 'x,y' in nm, got {len(vals)}")
+    return tuple(vals)
+
+
+def _lattice(spec, a, repeat, sites_per_repeat):
+    from .lattice import Lattice
+
+    if spec is None:
+        raise InputError("--lattice is required (a lattice TOML file or a preset name)")
+    return Lattice.from_spec(spec, a=a, repeat=repeat, sites_per_repeat=sites_per_repeat)
+
+
+def _metals(text):
+    mets = split_list(text, "--metals")
+    if len(mets) < 2:
+        raise InputError("--metals needs at least two metals, e.g. --metals Co,Zn")
+    return tuple(mets)
+
+
+def _read(path, length_unit, position_dataset, mass_dataset, strict):
+    from .io import read_ions
+
+    return read_ions(path, length_unit=length_unit, position_dataset=position_dataset,
+                     mass_dataset=mass_dataset, strict=strict)
+
+
+class _Reporter:
+    """Progress lines on standard error (unless quiet), and a copy for ``log.txt``."""
+
+    def __init__(self, quiet: bool, verbose: bool):
+        self.quiet, self.verbose = quiet, verbose
+        self.t0 = time.perf_counter()
+        self.lines = []
+
+    def __call__(self, stage: str, message: str):
+        line = f"[{time.perf_counter() - self.t0:7.1f} s] {stage}: {message}"
+        self.lines.append(line)
+        if not self.quiet:
+            sys.stderr.write(line + "\n")
+            sys.stderr.flush()
+
+    def note(self, message: str):
+        self.lines.append(message)
+        if self.verbose and not self.quiet:
+            sys.stderr.write(message + "\n")
+
+
+# ---------------------------------------------------------------------- range
+@app.command("range")
+def range_cmd(
+    ions: Annotated[Path, typer.Argument(help="Ion file (.csv, .tsv, .txt, .h5).")],
+    metals: Metals = None,
+    species: Annotated[Optional[str], typer.Option(help="Comma-separated framework ions to predict instead of the "
+                                                        "defaults, e.g. CO,H2O,C++ (one + per charge).")] = None,
+    out: Annotated[Path, typer.Option(help="Range file (TOML) to write.")] = Path("ranges.toml"),
+    figure: Annotated[Optional[Path], typer.Option(help="Spectrum figure to write (.png or .svg).")] = None,
+    ranges: RangesOpt = None,
+    length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
+    strict: Strict = False, quiet: Quiet = False,
+):
+    """Range the mass spectrum: find peaks, match ions, calibrate, and write an editable range file."""
+    from .ranging import RangeSet, auto_range
+
+    _STATE["quiet"] = quiet
+    mets = _metals(metals)
+    il = _read(ions, length_unit, position_dataset, mass_dataset, strict)
+    given = RangeSet.from_toml(ranges) if ranges is not None else None
+    rr = auto_range(il.mass_to_charge, mets, species=split_list(species, "--species") or None, ranges=given)
+    if Path(out).exists() and ranges is not None and Path(out).resolve() == Path(ranges).resolve():
+        raise InputError(f"--out {out} is the --ranges file given: choose another name (inputs are never changed)")
+    rr.to_toml(out)
+    say(f"wrote {out}: {len(rr.ranges)} ranges")
+    d = rr.to_dict()
+    comp = d.get("composition", {})
+    for m in mets:
+        c = comp.get(m, {})
+        if c:
+            say(f"  {m:3s} {100 * c['fraction']:6.2f} % +- {100 * c['sigma']:.2f} % (atomic, of metal atoms)")
+    if len(rr.unmatched):
+        say(f"  {len(rr.unmatched)} strong peaks unmatched (left unranged): " + "; ".join(rr.unmatched_nearest[:6]))
+    if figure is not None:
+        from .ranging_plot import plot_spectrum
+
+        plot_spectrum(rr, il.mass_to_charge, figure)
+        say(f"wrote {figure}")
+
+
+# ---------------------------------------------------------------------- columns
+@app.command()
+def columns(
+    ions: Annotated[Path, typer.Argument(help="Ion file (.csv, .tsv, .txt, .h5).")],
+    metals: Metals = None,
+    lattice: LatticeOpt = None, a: AOpt = None, repeat: RepeatOpt = None, sites_per_repeat: SitesOpt = 3,
+    ranges: RangesOpt = None,
+    out: Annotated[Path, typer.Option(help="Output folder.")] = Path("columns_out"),
+    rotation_deg: Annotated[Optional[float], typer.Option(help="Fix the lattice rotation, degrees.")] = None,
+    scale: Annotated[Optional[float], typer.Option(help="Fix the lateral scale (reconstruction / crystal).")] = None,
+    offset_nm: Annotated[Optional[str], typer.Option(help="Fix the lattice offset 'x,y', nm.")] = None,
+    seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
+    length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
+    strict: Strict = False, force: Force = False, quiet: Quiet = False,
+):
+    """Register the rod lattice and cut the rods into sites: writes columns.h5, registration.json, a figure."""
+    from .columns import build_columns
+    from .columns_plot import plot_rod_density
+    from .data import save_columns
+    from .outputs import check_outdir, staged_outdir, write_json
+    from .ranging import RangeSet, assign_channels, auto_range
+
+    _STATE["quiet"] = quiet
+    check_outdir(out, force)
+    mets = _metals(metals)
+    lat = _lattice(lattice, a, repeat, sites_per_repeat)
+    il = _read(ions, length_unit, position_dataset, mass_dataset, strict)
+    given = RangeSet.from_toml(ranges) if ranges is not None else None
+    rr = auto_range(il.mass_to_charge, mets, ranges=given)
+    w = assign_channels(il.mass_to_charge, rr.ranges, mets).weights()
+    sel = w.sum(1) > 0
+    cols = build_columns(il.x[sel], il.y[sel], il.z[sel], w[sel], mets, lat, rotation_deg=rotation_deg,
+                         scale=scale, offset_nm=_parse_offset(offset_nm), random_state=seed)
+    with staged_outdir(out, force=force) as st:
+        save_columns(cols, st / "columns.h5")
+        write_json(st / "registration.json", {"resolvable": cols.resolvable, "crosstalk": cols.crosstalk,
+                                              "n_rods": cols.n_rods, "n_sites": cols.n_sites, **cols.params})
+        rr.to_toml(st / "ranges.toml")
+        plot_rod_density(il.x[sel], il.y[sel], il.z[sel], cols, st / "density.png")
+    reg = cols.params.get("registration", {})
+    say(f"wrote {out}: {cols.n_rods} rods x {cols.n_sites} sites ({int(cols.mask.sum())} used)")
+    if reg:
+        say(f"  rotation {reg.get('rotation_deg', float('nan')):.2f} deg, scale {reg.get('scale', float('nan')):.4f}, "
+            f"lateral spread {reg.get('sigma_xy_nm', float('nan')):.3f} nm")
+    say(f"  expected crosstalk {cols.crosstalk:.3f}: single rods {'resolvable' if cols.resolvable else 'NOT resolvable'}")
+
+
+# ---------------------------------------------------------------------- decode
+@app.command()
+def decode(
+    columns_dir: Annotated[Path, typer.Argument(help="Folder written by 'probeseq columns'.")],
+    out: Annotated[Path, typer.Option(help="Output folder.")] = Path("decode_out"),
+    n_starts: Annotated[int, typer.Option(help="EM starts.")] = 4,
+    seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
+    force: Force = False, quiet: Quiet = False,
+):
+    """Fit the hidden Markov model to every rod and decode the metal sequences."""
+    from .data import load_columns
+    from .decode import fit_decoder
+    from .outputs import check_outdir, staged_outdir, write_json
+
+    _STATE["quiet"] = quiet
+    check_outdir(out, force)
+    cols = load_columns(Path(columns_dir) / "columns.h5")
+    dec = fit_decoder(cols, n_starts=n_starts, random_state=seed)
+    groups = None
+    if not cols.resolvable:
+        from .groups import analyze_groups
+
+        groups = analyze_groups(cols, random_state=seed)
+    with staged_outdir(out, force=force) as st:
+        write_json(st / "decoding.json", {"decoding": dec.to_dict(),
+                                          "groups": None if groups is None else groups.to_dict()})
+        _write_decoded_tables(st, cols, dec)
+    say(f"wrote {out}: {cols.n_rods} rods decoded; log-likelihood {dec.loglik:.1f}, "
+        f"detection efficiency {dec.eta:.3f}, persistence {dec.persistence:.3f}")
+    say(f"  independent sites: likelihood-ratio {dec.lr_stat:.1f} (df {dec.lr_df}), p = {dec.lr_pvalue:.3g}; "
+        f"BIC {dec.bic:.1f} vs {dec.bic_indep:.1f}")
+
+
+def _write_decoded_tables(folder, cols, dec):
+    import numpy as np
+
+    from .pipeline import RUNS_COLUMNS, TRACKS_COLUMNS, _write_table
+
+    r, s = np.nonzero(cols.mask)
+    z = cols.site_z_nm[s]
+    xy = cols.rod_xy_nm[r] + cols.tilt[None, :] * (z - cols.z_ref_nm)[:, None]
+    st = dec.viterbi[r, s]
+    metals = np.asarray(cols.metals, dtype=object)
+    _write_table(folder / "tracks.csv", {"rod": r, "rod_x_nm": xy[:, 0], "rod_y_nm": xy[:, 1], "site": s,
+                                         "z_nm": z, "state": metals[st], "posterior": dec.posteriors[r, s, st]},
+                 TRACKS_COLUMNS, {"rod_x_nm": "%.4f", "rod_y_nm": "%.4f", "z_nm": "%.4f", "posterior": "%.4f"})
+    runs = dec.runs
+    first, last = np.asarray(runs["first_site"], int), np.asarray(runs["last_site"], int)
+    length = np.asarray(runs["length"], int)
+    _write_table(folder / "runs.csv", {"rod": runs["rod"], "first_site": first, "last_site": last,
+                                       "length_sites": length, "length_nm": length * cols.pitch_nm,
+                                       "z_start_nm": cols.site_z_nm[first], "z_end_nm": cols.site_z_nm[last],
+                                       "metal": metals[np.asarray(runs["metal"], int)],
+                                       "mean_posterior": runs["mean_posterior"]},
+                 RUNS_COLUMNS, {"length_nm": "%.4f", "z_start_nm": "%.4f", "z_end_nm": "%.4f",
+                                "mean_posterior": "%.4f"})
+
+
+# ---------------------------------------------------------------------- analyze
+@app.command()
+def analyze(
+    ions: Annotated[Path, typer.Argument(help="Ion file (.csv, .tsv, .txt, .h5), or a run folder holding the "
+                                              "ion file and run.toml.")],
+    metals: Metals = None,
+    lattice: LatticeOpt = None, a: AOpt = None, repeat: RepeatOpt = None, sites_per_repeat: SitesOpt = 3,
+    out: Annotated[Optional[Path], typer.Option(help="Output folder (default: analysis_<name>).")] = None,
+    ranges: RangesOpt = None,
+    seed: Annotated[int, typer.Option(help="Random seed; the same seed gives the same results.")] = 0,
+    long_block_sites: Annotated[float, typer.Option(help="Mean run length (sites) of the least abundant metal at "
+                                                         "or over which runs are long blocks.")] = 8.0,
+    alpha: Annotated[float, typer.Option(help="Significance level of the tests.")] = 0.01,
+    copy_threshold: Annotated[float, typer.Option(help="Neighbouring-rod correlation at or over which "
+                                                       "(if significant) rods are copied.")] = 0.3,
+    n_boot: Annotated[int, typer.Option(help="Bootstrap resamples over rods.")] = 200,
+    n_starts: Annotated[int, typer.Option(help="EM starts of the decoder.")] = 4,
+    rotation_deg: Annotated[Optional[float], typer.Option(help="Fix the lattice rotation, degrees.")] = None,
+    scale: Annotated[Optional[float], typer.Option(help="Fix the lateral scale (reconstruction / crystal).")] = None,
+    offset_nm: Annotated[Optional[str], typer.Option(help="Fix the lattice offset 'x,y', nm.")] = None,
+    length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
+    strict: Strict = False, force: Force = False, quiet: Quiet = False, verbose: Verbose = False,
+):
+    """Run the whole analysis: ranging, columns, decoding, statistics and classification."""
+    from .lattice import Lattice
+    from .pipeline import AnalysisOptions
+    from .pipeline import analyze as run_analysis
+    from .pipeline import write_analysis
+    from .outputs import check_outdir
+    from .ranging import RangeSet
+    from .runinfo import read_run_folder
+
+    _STATE["quiet"] = quiet
+    sample = {}
+    src = Path(ions)
+    if src.is_dir():
+        desc = read_run_folder(src)
+        sample = dict(desc.sample)
+        ion_path = desc.ions
+        mets = _metals(metals) if metals else desc.metals
+        if lattice is None:
+            lat = Lattice.from_spec(desc.lattice, a=desc.lattice_args.get("a"),
+                                    repeat=desc.lattice_args.get("repeat"),
+                                    sites_per_repeat=desc.lattice_args.get("sites_per_repeat", 3))
+        else:
+            lat = _lattice(lattice, a, repeat, sites_per_repeat)
+        ranges = ranges or desc.ranges
+        sample["detection_efficiency_given"] = desc.detection_efficiency
+        name = desc.name
+    else:
+        ion_path = src
+        if metals is None:
+            raise InputError("--metals is required (or give a run folder with run.toml)")
+        mets = _metals(metals)
+        lat = _lattice(lattice, a, repeat, sites_per_repeat)
+        name = src.stem
+    outdir = Path(out) if out is not None else Path(f"analysis_{name}")
+    check_outdir(outdir, force)
+    opts = AnalysisOptions(seed=seed, n_starts=n_starts, n_boot=n_boot, long_block_sites=long_block_sites,
+                           alpha=alpha, copy_threshold=copy_threshold, rotation_deg=rotation_deg, scale=scale,
+                           offset_nm=_parse_offset(offset_nm))
+    rep = _Reporter(quiet, verbose)
+    rep("reading", f"{ion_path}")
+    t_read = time.perf_counter()
+    il = _read(ion_path, length_unit, position_dataset, mass_dataset, strict)
+    t_read = time.perf_counter() - t_read
+    rs = RangeSet.from_toml(ranges) if ranges is not None else None
+    prov = {"command_line": "probeseq " + " ".join(shlex.quote(a) for a in sys.argv[1:]),
+            "sample": sample, "run_name": name}
+    res = run_analysis(il, mets, lat, ranges=rs, options=opts, progress=rep, provenance=prov)
+    res.timings_s["read"] = round(t_read, 4)
+    res.timings_s["total"] = round(res.timings_s["total"] + t_read, 4)
+
+    def extra(folder):
+        (folder / "log.txt").write_text("\n".join(rep.lines + [""] + _summary_lines(res)) + "\n", encoding="utf-8")
+
+    rep("writing", f"{outdir}")
+    write_analysis(res, outdir, force=force, extra=extra)
+    for line in _summary_lines(res):
+        say(line)
+
+
+def _summary_lines(res) -> list:
+    c = res.classification
+    st = res.statistics
+    lines = [f"verdict: {c.label} (along rods: {c.along_rod}; rod to rod: {c.rod_to_rod}; "
+             f"confidence {c.confidence:.2f})"]
+    lines.append(f"{'metal':6s} {'fraction':>18s} {'mean run (sites)':>24s} {'x independent':>14s}")
+    for m in res.metals:
+        f, flo, fhi = st.interval(f"composition.{m}")
+        r, rlo, rhi = st.interval(f"mean_run_length_sites.{m}")
+        ratio = st.estimates.get(f"run_length_ratio.{m}", float("nan"))
+        lines.append(f"{m:6s} {f:8.3f} [{flo:.3f}-{fhi:.3f}] {r:10.2f} [{rlo:.2f}-{rhi:.2f}] {ratio:14.2f}")
+    col = res.columns
+    lines.append(f"rods {col.n_rods}, sites used {int(col.mask.sum())}, detection efficiency "
+                 f"{res.decoded.eta:.3f}, persistence {st.estimates.get('persistence', float('nan')):.3f}")
+    for w in res.warnings:
+        lines.append(f"warning: {w}")
+    lines.append("timings (s): " + ", ".join(f"{k} {v:.2f}" for k, v in res.timings_s.items()))
+    return lines
