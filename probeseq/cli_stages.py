@@ -214,7 +214,7 @@ def _write_decoded_tables(folder, cols, dec):
     from .pipeline import RUNS_COLUMNS, TRACKS_COLUMNS, _write_table
 
     r, s = np.nonzero(cols.mask)
-    z = cols.site_z_nm[s]
+    z = cols.site_z_nm[s] + cols.site_z_offset_nm[r]
     xy = cols.rod_xy_nm[r] + cols.tilt[None, :] * (z - cols.z_ref_nm)[:, None]
     st = dec.viterbi[r, s]
     metals = np.asarray(cols.metals, dtype=object)
@@ -226,7 +226,8 @@ def _write_decoded_tables(folder, cols, dec):
     length = np.asarray(runs["length"], int)
     _write_table(folder / "runs.csv", {"rod": runs["rod"], "first_site": first, "last_site": last,
                                        "length_sites": length, "length_nm": length * cols.pitch_nm,
-                                       "z_start_nm": cols.site_z_nm[first], "z_end_nm": cols.site_z_nm[last],
+                                       "z_start_nm": cols.site_z_nm[first] + cols.site_z_offset_nm[runs["rod"]],
+                                       "z_end_nm": cols.site_z_nm[last] + cols.site_z_offset_nm[runs["rod"]],
                                        "metal": metals[np.asarray(runs["metal"], int)],
                                        "mean_posterior": runs["mean_posterior"]},
                  RUNS_COLUMNS, {"length_nm": "%.4f", "z_start_nm": "%.4f", "z_end_nm": "%.4f",
@@ -333,3 +334,54 @@ def _summary_lines(res) -> list:
         lines.append(f"warning: {w}")
     lines.append("timings (s): " + ", ".join(f"{k} {v:.2f}" for k, v in res.timings_s.items()))
     return lines
+
+
+# ---------------------------------------------------------------------- compare
+@app.command()
+def compare(
+    outdirs: Annotated[list[Path], typer.Argument(help="Analysis output folders, or folders holding them.")],
+    by: Annotated[str, typer.Option(help="Metadata field ([sample] of run.toml) to order the runs by.")] =
+        "synthesis_temperature_c",
+    out: Annotated[Path, typer.Option(help="Output folder for comparison.csv, comparison.json and the figure.")] =
+        Path("comparison"),
+    seed: Annotated[int, typer.Option(help="Random seed of the difference tests.")] = 0,
+    force: Force = False, quiet: Quiet = False,
+):
+    """Compare analysed runs: statistics with intervals ordered by a metadata field, and difference tests."""
+    from .compare import compare_runs, load_runs, plot_comparison
+    from .outputs import check_outdir, staged_outdir, write_json
+    from .pipeline import _write_table
+
+    _STATE["quiet"] = quiet
+    check_outdir(out, force)
+    comp = compare_runs(load_runs(outdirs), order_by=by, random_state=seed)
+    rows = comp.table_rows()
+    cols = ("run", "order_value", "label", "statistic", "estimate", "low", "high")
+    table = {c: [r[c] if r[c] is not None else "" for r in rows] for c in cols}
+    with staged_outdir(out, force=force) as st:
+        _write_table(st / "comparison.csv", table, cols)
+        dcols = ("run_a", "run_b", "statistic", "difference", "low", "high", "p_value")
+        _write_table(st / "differences.csv", {c: [d[c] if d[c] is not None else "" for d in comp.differences]
+                                              for c in dcols}, dcols)
+        write_json(st / "comparison.json", comp.to_dict())
+        plot_comparison(comp, st / "comparison.png")
+        plot_comparison(comp, st / "comparison.svg")
+    say(f"{'run':28s} {by:>12s} {'label':>18s}  key statistics (estimate [95 % interval])")
+    show = [s for s in comp.statistics if s.startswith("mean_run_length_sites.") or s == "persistence"]
+    for rec in comp.runs:
+        parts = []
+        for s in show:
+            iv = rec.intervals.get(s) or {}
+            e, lo, hi = iv.get("estimate"), iv.get("low"), iv.get("high")
+            if e is not None:
+                parts.append(f"{s.replace('mean_run_length_sites.', 'run ')} {e:.2f} [{lo or float('nan'):.2f}-"
+                             f"{hi or float('nan'):.2f}]")
+        say(f"{rec.name[:28]:28s} {str(rec.metadata.get(by, '-')):>12s} {rec.label:>18s}  " + "; ".join(parts))
+    sig = [d for d in comp.differences if d["p_value"] is not None and d["p_value"] == d["p_value"]
+           and d["p_value"] < 0.01 and (d["statistic"] in show)]
+    for d in sig:
+        say(f"  {d['run_a']} vs {d['run_b']}: {d['statistic']} differs by {d['difference']:.3g} "
+            f"(95 % interval {d['low']:.3g} to {d['high']:.3g}, bootstrap p = {d['p_value']:.3g})")
+    for n in comp.notes:
+        say(f"note: {n}")
+    say(f"wrote {out}/comparison.csv, differences.csv, comparison.json, comparison.png/.svg")

@@ -47,6 +47,10 @@ class RodColumns:
         Expected fraction of a rod's ions assigned to another rod.
     params : dict
         Fitted registration parameters and quality figures, JSON-serialisable.
+    site_z_offset_nm : (n_rods,) ndarray of float, nm
+        Depth offset of each rod's sites: site k of rod r lies at depth
+        ``site_z_nm[k] + site_z_offset_nm[r]``. With tilted rods the planes of sites are
+        perpendicular to the rods, not to z, so their depth depends on the lateral position.
     """
 
     counts: np.ndarray
@@ -61,6 +65,7 @@ class RodColumns:
     resolvable: bool = True
     crosstalk: float = 0.0
     params: dict = field(default_factory=dict)
+    site_z_offset_nm: np.ndarray | None = None
 
     def __post_init__(self):
         c = np.asarray(self.counts, dtype=float)
@@ -79,6 +84,10 @@ class RodColumns:
         if sz.shape != (c.shape[1],):
             raise InputError(f"site_z_nm has shape {sz.shape}, expected ({c.shape[1]},)")
         nb = np.asarray(self.neighbours, dtype=np.int64).reshape(-1, 2)
+        off = np.zeros(c.shape[0]) if self.site_z_offset_nm is None else np.asarray(self.site_z_offset_nm, float)
+        if off.shape != (c.shape[0],):
+            raise InputError(f"site_z_offset_nm has shape {off.shape}, expected ({c.shape[0]},)")
+        object.__setattr__(self, "site_z_offset_nm", off)
         object.__setattr__(self, "counts", c)
         object.__setattr__(self, "mask", m)
         object.__setattr__(self, "metals", metals)
@@ -98,6 +107,10 @@ class RodColumns:
     @property
     def n_metals(self) -> int:
         return int(self.counts.shape[2])
+
+    def site_depths_nm(self) -> np.ndarray:
+        """(n_rods, n_sites) depth of every site at its rod's axis, nm."""
+        return self.site_z_nm[None, :] + self.site_z_offset_nm[:, None]
 
     def rod_xy_at(self, z_nm) -> np.ndarray:
         """Rod axis positions at depth(s) ``z_nm``: shape (n_rods, 2) or (n_rods, len(z), 2), nm."""
@@ -133,7 +146,8 @@ def save_columns(columns: RodColumns, path) -> None:
                                  ("rod_xy_nm", columns.rod_xy_nm, "nm"),
                                  ("tilt", columns.tilt, "dx/dz, dy/dz"),
                                  ("site_z_nm", columns.site_z_nm, "nm"),
-                                 ("neighbours", columns.neighbours, "rod index pairs")):
+                                 ("neighbours", columns.neighbours, "rod index pairs"),
+                                 ("site_z_offset_nm", columns.site_z_offset_nm, "nm")):
             d = g.create_dataset(name, data=data, compression="gzip" if data.size > 4096 else None)
             d.attrs["unit"] = unit
 
@@ -166,6 +180,7 @@ def load_columns(path) -> RodColumns:
                 tilt=g["tilt"][...], z_ref_nm=float(g.attrs["z_ref_nm"]), site_z_nm=g["site_z_nm"][...],
                 pitch_nm=float(g.attrs["pitch_nm"]), neighbours=g["neighbours"][...],
                 resolvable=bool(g.attrs["resolvable"]), crosstalk=float(g.attrs["crosstalk"]),
-                params=json.loads(g.attrs["params_json"]))
+                params=json.loads(g.attrs["params_json"]),
+                site_z_offset_nm=g["site_z_offset_nm"][...] if "site_z_offset_nm" in g else None)
         except KeyError as e:
             raise InputError(f"{p}: columns file lacks {e}") from None

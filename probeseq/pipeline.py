@@ -115,7 +115,7 @@ class AnalysisResult:
         """One row per decoded (unmasked) site: the columns of ``tracks.csv`` as 1-D arrays."""
         col, dec = self.columns, self.decoded
         r, s = np.nonzero(col.mask)
-        z = col.site_z_nm[s]
+        z = col.site_z_nm[s] + col.site_z_offset_nm[r]
         xy = col.rod_xy_nm[r] + col.tilt[None, :] * (z - col.z_ref_nm)[:, None]
         state = dec.viterbi[r, s]
         post = dec.posteriors[r, s, state]
@@ -128,10 +128,11 @@ class AnalysisResult:
         col = self.columns
         first, last = np.asarray(runs["first_site"], int), np.asarray(runs["last_site"], int)
         length = np.asarray(runs["length"], int)
-        return {"rod": np.asarray(runs["rod"], int), "first_site": first, "last_site": last,
+        rod = np.asarray(runs["rod"], int)
+        off = col.site_z_offset_nm[rod]
+        return {"rod": rod, "first_site": first, "last_site": last,
                 "length_sites": length, "length_nm": length * col.pitch_nm,
-                "z_start_nm": col.site_z_nm[first] if first.size else first.astype(float),
-                "z_end_nm": col.site_z_nm[last] if last.size else last.astype(float),
+                "z_start_nm": col.site_z_nm[first] + off, "z_end_nm": col.site_z_nm[last] + off,
                 "metal": np.asarray(self.metals, dtype=object)[np.asarray(runs["metal"], int)],
                 "mean_posterior": np.asarray(runs["mean_posterior"], float)}
 
@@ -290,6 +291,32 @@ def _write_table(path: Path, table: dict, columns, fmt: dict | None = None):
             w.writerow([col[i] for col in formatted])
 
 
+def _write_replicates(stats, path):
+    """Bootstrap replicates of every statistic (for ``compare``'s tests of differences)."""
+    import h5py
+
+    with h5py.File(path, "w") as f:
+        g = f.create_group("replicates")
+        g.attrs["n_boot"] = int(stats.n_boot)
+        g.attrs["about"] = "bootstrap over rods: one value per resample, same order in every dataset"
+        for name, rep in sorted(stats.replicates.items()):
+            if rep is None:
+                continue
+            d = g.create_dataset(name, data=np.asarray(rep, dtype=float))
+            d.attrs["estimate"] = float(stats.estimates.get(name, np.nan))
+
+
+def read_replicates(outdir) -> dict:
+    """Bootstrap replicates written by :func:`write_analysis`: name -> (n_boot,) array."""
+    import h5py
+
+    p = Path(outdir) / "bootstrap.h5"
+    if not p.is_file():
+        return {}
+    with h5py.File(p, "r") as f:
+        return {k: f["replicates"][k][...] for k in f["replicates"]}
+
+
 def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: Callable | None = None) -> Path:
     """Write an analysis output folder (staged: complete or not at all).
 
@@ -307,6 +334,7 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
                      {"length_nm": "%.4f", "z_start_nm": "%.4f", "z_end_nm": "%.4f", "mean_posterior": "%.4f"})
         result.ranging.ranges.to_toml(st / "ranges.toml")
         save_columns(result.columns, st / "columns.h5")
+        _write_replicates(result.statistics, st / "bootstrap.h5")
         if extra is not None:
             extra(st)
     return Path(outdir)
