@@ -385,3 +385,53 @@ def compare(
     for n in comp.notes:
         say(f"note: {n}")
     say(f"wrote {out}/comparison.csv, differences.csv, comparison.json, comparison.png/.svg")
+
+
+# ---------------------------------------------------------------------- plan
+@app.command()
+def plan(
+    metals: Metals = None,
+    lattice: LatticeOpt = None, a: AOpt = None, repeat: RepeatOpt = None, sites_per_repeat: SitesOpt = 3,
+    efficiency: Annotated[float, typer.Option(help="Detection efficiency of the instrument, (0, 1].")] = 0.5,
+    lateral_resolution: Annotated[float, typer.Option(help="Lateral resolution (spread of positions), nm.")] = 0.15,
+    runs_per_pattern: Annotated[int, typer.Option(help="Simulated runs per arrangement.")] = 4,
+    runs_per_persistence: Annotated[int, typer.Option(help="Simulated runs per persistence of the scan.")] = 3,
+    radius: Annotated[float, typer.Option(help="Needle top radius of the simulated runs, nm.")] = 5.0,
+    depth: Annotated[float, typer.Option(help="Depth of the simulated runs, nm.")] = 25.0,
+    out: Annotated[Optional[Path], typer.Option(help="Write the plan as JSON here.")] = None,
+    seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
+    quiet: Quiet = False,
+):
+    """Before acquiring: simulate runs under your conditions and report what the analysis can tell apart."""
+    from .outputs import write_json
+    from .plan import plan_experiment
+
+    _STATE["quiet"] = quiet
+    mets = _metals(metals)
+    lat = _lattice(lattice, a, repeat, sites_per_repeat)
+
+    def prog(i, n):
+        if not quiet:
+            sys.stderr.write(f"\rsimulated and analysed {i}/{n} runs")
+            sys.stderr.flush()
+            if i == n:
+                sys.stderr.write("\n")
+
+    res = plan_experiment(mets, lat, efficiency=efficiency, lateral_resolution_nm=lateral_resolution,
+                          n_per_pattern=runs_per_pattern, n_per_persistence=runs_per_persistence,
+                          top_radius_nm=radius, depth_nm=depth, seed=seed, progress=prog)
+    say(f"expected confusion (rows: true arrangement, columns: label given), {res.n_runs} simulated runs")
+    say(f"{'':18s}" + "".join(f"{lab[:12]:>13s}" for lab in res.labels))
+    for i, p in enumerate(res.patterns):
+        say(f"{p:18s}" + "".join(f"{v:13d}" for v in res.confusion[i]))
+    say(f"labels right: {100 * res.accuracy:.0f} %")
+    for lam, r in zip(res.persistences, res.detection_rate):
+        say(f"persistence {lam:.2f}: told from random in {100 * r:.0f} % of runs")
+    if res.smallest_detectable_persistence is None:
+        say(f"no persistence in the scan is told from random in {100 * res.power:.0f} % of runs")
+    else:
+        say(f"smallest persistence told from random in >= {100 * res.power:.0f} % of runs: "
+            f"{res.smallest_detectable_persistence:.2f}")
+    if out is not None:
+        write_json(out, res.to_dict())
+        say(f"wrote {out}")

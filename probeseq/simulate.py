@@ -36,7 +36,7 @@ from __future__ import annotations
 
 import json
 import math
-from dataclasses import asdict, dataclass, field
+from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -90,10 +90,13 @@ class SimConfig:
     tilt_deg: float | None = None
     tilt_azimuth_deg: float | None = None
     seed: int = 0
+    lattice: Lattice | None = None
 
     def __post_init__(self):
         if self.pattern not in PATTERNS:
             raise InputError(f"--pattern must be one of {', '.join(PATTERNS)}, got '{self.pattern}'")
+        if self.lattice is not None and not isinstance(self.lattice, Lattice):
+            raise InputError(f"lattice must be a Lattice, got {type(self.lattice).__name__}")
         if self.packing not in PRESETS:
             raise InputError(f"--packing must be one of {', '.join(sorted(PRESETS))}, got '{self.packing}'")
         if len(self.metals) < 2:
@@ -277,9 +280,10 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     if cfg is None:
         cfg = SimConfig(**kwargs)
     elif kwargs:
-        cfg = SimConfig(**{**asdict(cfg), **kwargs})
+        cfg = SimConfig(**{**{f: getattr(cfg, f) for f in cfg.__dataclass_fields__}, **kwargs})
     rng = np.random.default_rng(cfg.seed)
-    lat = Lattice.from_preset(cfg.packing, cfg.a_nm, cfg.repeat_nm, cfg.sites_per_repeat)
+    lat = cfg.lattice if cfg.lattice is not None else Lattice.from_preset(cfg.packing, cfg.a_nm, cfg.repeat_nm,
+                                                                              cfg.sites_per_repeat)
     k = len(cfg.metals)
     pitch = lat.pitch_nm
 
@@ -431,7 +435,8 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
                   "dxdz": round(float(tilt[0]), 7), "dydz": round(float(tilt[1]), 7),
                   "z_nm": [round(float(v), 4) for v in site_zr[r, inside[r]]],
                   "seq": "".join(str(int(v)) for v in seq[r, inside[r]])} for r in range(n_rods)],
-        "config": {k2: (list(v) if isinstance(v, tuple) else v) for k2, v in asdict(cfg).items()},
+        "config": {k2: (lat.to_dict() if k2 == "lattice" else list(v) if isinstance(v, tuple) else v)
+                   for k2, v in ((f, getattr(cfg, f)) for f in cfg.__dataclass_fields__)},
     }
     seq_out = np.where(inside, seq, -1).astype(np.int64)
     return SimRun(ions=ions, lattice=lat, truth=truth, rod_xy_nm=rod_xy, rod_tilt=tilt, seq=seq_out,
