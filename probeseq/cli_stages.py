@@ -435,3 +435,25 @@ def plan(
     if out is not None:
         write_json(out, res.to_dict())
         say(f"wrote {out}")
+
+
+# ---------------------------------------------------------------------- export
+@app.command()
+def export(
+    outdir: Annotated[Path, typer.Argument(help="An 'analyze' output folder.")],
+    format: Annotated[str, typer.Option("--format", help="csv | json | hdf5 | svg | pdf | png")] = "csv",
+    rods: Annotated[Optional[str], typer.Option(help="Rod ids, e.g. 3,5,10-12 (default all).")] = None,
+    depth: Annotated[Optional[str], typer.Option(help="Depth window 'A:B' in nm (default all).")] = None,
+    out: Annotated[Optional[Path], typer.Option(help="File to write (default OUTDIR/exports/tracks.<ext>).")] = None,
+    size: Annotated[str, typer.Option(help="Figure width preset: one-column | two-column.")] = "two-column",
+    dpi: Annotated[int, typer.Option(help="Resolution of PNG figures.")] = 300,
+    quiet: Quiet = False,
+):
+    """Export decoded tracks (tables, JSON, self-describing HDF5) or the tracks figure (SVG, PDF, PNG)."""
+    from .export import export_outdir, load_outdir, parse_depth, parse_rods
+
+    _STATE["quiet"] = quiet
+    of = load_outdir(outdir)
+    path = export_outdir(outdir, format, out=out, rods=parse_rods(rods, of.columns.n_rods),
+                         depth_nm=parse_depth(depth), size=size, dpi=dpi)
+    say(f"wrote {path}")

@@ -9,6 +9,7 @@ them and reports progress through an optional callback.
 from __future__ import annotations
 
 import csv
+import json
 import platform
 import sys
 import time
@@ -26,6 +27,7 @@ from .ions import IonList
 from .lattice import Lattice
 
 __all__ = ["AnalysisOptions", "AnalysisResult", "analyze", "write_analysis", "RESULTS_SCHEMA_VERSION",
+           "DecodedTracks", "save_decoded", "load_decoded", "read_replicates",
            "TRACKS_COLUMNS", "RUNS_COLUMNS"]
 
 #: version of the results.json layout; bumped when a key changes meaning or moves
@@ -291,6 +293,53 @@ def _write_table(path: Path, table: dict, columns, fmt: dict | None = None):
             w.writerow([col[i] for col in formatted])
 
 
+def save_decoded(decoded, path):
+    """Viterbi paths, posteriors, mask and uncertainty flags of a decoding (HDF5 ``/decoded``)."""
+    import h5py
+
+    with h5py.File(path, "w") as f:
+        g = f.create_group("decoded")
+        g.attrs["metals"] = json.dumps(list(decoded.metals))
+        g.attrs["uncertain_below"] = float(decoded.uncertain_below)
+        for name, data, unit in (("viterbi", decoded.viterbi.astype(np.int8), "metal index, -1 = masked"),
+                                 ("posteriors", decoded.posteriors.astype(np.float32), "probability"),
+                                 ("mask", decoded.mask.astype(np.uint8), "1 = site used"),
+                                 ("uncertain", decoded.uncertain.astype(np.uint8), "1 = best posterior below uncertain_below"),
+                                 ("stationary", np.asarray(decoded.stationary, float), "probability"),
+                                 ("transmat", np.asarray(decoded.transmat, float), "probability")):
+            d = g.create_dataset(name, data=data, compression="gzip" if data.size > 4096 else None)
+            d.attrs["unit"] = unit
+
+
+@dataclass(frozen=True)
+class DecodedTracks:
+    """The per-site part of a decoding, as read back from ``decoded.h5``."""
+
+    metals: tuple
+    viterbi: np.ndarray
+    posteriors: np.ndarray
+    mask: np.ndarray
+    uncertain: np.ndarray
+    stationary: np.ndarray
+    transmat: np.ndarray
+    uncertain_below: float
+
+
+def load_decoded(path) -> DecodedTracks:
+    """Read ``decoded.h5`` written by :func:`save_decoded`."""
+    import h5py
+
+    p = Path(path)
+    if not p.is_file():
+        raise InputError(f"{p}: not found (the output folder is incomplete or from an older probeseq)")
+    with h5py.File(p, "r") as f:
+        g = f["decoded"]
+        return DecodedTracks(metals=tuple(json.loads(g.attrs["metals"])), viterbi=g["viterbi"][...].astype(np.int64),
+                             posteriors=g["posteriors"][...].astype(float), mask=g["mask"][...].astype(bool),
+                             uncertain=g["uncertain"][...].astype(bool), stationary=g["stationary"][...],
+                             transmat=g["transmat"][...], uncertain_below=float(g.attrs["uncertain_below"]))
+
+
 def _write_replicates(stats, path):
     """Bootstrap replicates of every statistic (for ``compare``'s tests of differences)."""
     import h5py
@@ -335,6 +384,7 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
         result.ranging.ranges.to_toml(st / "ranges.toml")
         save_columns(result.columns, st / "columns.h5")
         _write_replicates(result.statistics, st / "bootstrap.h5")
+        save_decoded(result.decoded, st / "decoded.h5")
         if extra is not None:
             extra(st)
     return Path(outdir)
