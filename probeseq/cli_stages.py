@@ -260,8 +260,7 @@ def analyze(
     """Run the whole analysis: ranging, columns, decoding, statistics and classification."""
     from .lattice import Lattice
     from .pipeline import AnalysisOptions
-    from .pipeline import analyze as run_analysis
-    from .pipeline import write_analysis
+    from .pipeline import analyze_file, write_analysis
     from .outputs import check_outdir
     from .ranging import RangeSet
     from .runinfo import read_run_folder
@@ -296,16 +295,12 @@ def analyze(
                            alpha=alpha, copy_threshold=copy_threshold, rotation_deg=rotation_deg, scale=scale,
                            offset_nm=_parse_offset(offset_nm))
     rep = _Reporter(quiet, verbose)
-    rep("reading", f"{ion_path}")
-    t_read = time.perf_counter()
-    il = _read(ion_path, length_unit, position_dataset, mass_dataset, strict)
-    t_read = time.perf_counter() - t_read
     rs = RangeSet.from_toml(ranges) if ranges is not None else None
     prov = {"command_line": "probeseq " + " ".join(shlex.quote(a) for a in sys.argv[1:]),
             "sample": sample, "run_name": name}
-    res = run_analysis(il, mets, lat, ranges=rs, options=opts, progress=rep, provenance=prov)
-    res.timings_s["read"] = round(t_read, 4)
-    res.timings_s["total"] = round(res.timings_s["total"] + t_read, 4)
+    res = analyze_file(ion_path, mets, lat, ranges=rs, options=opts, progress=rep, provenance=prov,
+                       length_unit=length_unit, position_dataset=position_dataset, mass_dataset=mass_dataset,
+                       strict=strict)
 
     def extra(folder):
         (folder / "log.txt").write_text("\n".join(rep.lines + [""] + _summary_lines(res)) + "\n", encoding="utf-8")

@@ -10,11 +10,10 @@ from __future__ import annotations
 
 import csv
 import json
-import platform
 import sys
 import time
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Callable, Optional
 
@@ -26,7 +25,7 @@ from .exceptions import DataQualityWarning, InputError
 from .ions import IonList
 from .lattice import Lattice
 
-__all__ = ["AnalysisOptions", "AnalysisResult", "analyze", "write_analysis", "RESULTS_SCHEMA_VERSION",
+__all__ = ["AnalysisOptions", "AnalysisResult", "analyze", "analyze_file", "write_analysis", "RESULTS_SCHEMA_VERSION",
            "DecodedTracks", "save_decoded", "load_decoded", "read_replicates",
            "TRACKS_COLUMNS", "RUNS_COLUMNS"]
 
@@ -195,7 +194,7 @@ class _Timed:
 
 def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: AnalysisOptions | None = None,
             progress: Progress = None, provenance: dict | None = None) -> AnalysisResult:
-    """Run the whole pipeline on an ion list.
+    """Run the whole pipeline on an ion list held in memory.
 
     Parameters
     ----------
@@ -214,28 +213,23 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
     Returns
     -------
     AnalysisResult
+
+    See Also
+    --------
+    analyze_file : the same from a file, streamed in chunks when it is large.
     """
-    from .classify import classify
     from .columns import build_columns
-    from .decode import fit_decoder
     from .ranging import assign_channels, auto_range
-    from .stats import compute_statistics
 
     opts = options or AnalysisOptions()
-    metals = tuple(metals)
-    if len(metals) < 2:
-        raise InputError(f"--metals needs at least two metals, got {list(metals)}")
+    metals = _check_metals(metals)
     if not isinstance(ions, IonList) or len(ions) == 0:
         raise InputError("no ions to analyse")
-    clock = _Clock(progress)
-    caught = []
-    with warnings.catch_warnings(record=True) as wlist:
-        warnings.simplefilter("always", DataQualityWarning)
-        warnings.simplefilter("always")
-        with clock.stage("ranging", "ranging the mass spectrum"):
+
+    def counts_stage(clock):
+        with clock.stage("ranging", f"ranging the mass spectrum of {len(ions)} ions"):
             rr = auto_range(ions.mass_to_charge, metals, species=opts.species, ranges=ranges)
-            assign = assign_channels(ions.mass_to_charge, rr.ranges, metals)
-            w_all = assign.weights()
+            w_all = assign_channels(ions.mass_to_charge, rr.ranges, metals).weights()
             sel = w_all.sum(1) > 0
             n_metal = int(sel.sum())
         if n_metal == 0:
@@ -244,7 +238,30 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
             cols = build_columns(ions.x[sel], ions.y[sel], ions.z[sel], w_all[sel], metals, lattice,
                                  rotation_deg=opts.rotation_deg, scale=opts.scale, offset_nm=opts.offset_nm,
                                  random_state=opts.seed)
-        del w_all
+        return rr, cols, n_metal
+
+    return _run(counts_stage, metals, lattice, opts, progress, provenance, ions.summary(), ions.meta)
+
+
+def _check_metals(metals) -> tuple:
+    metals = tuple(metals)
+    if len(metals) < 2:
+        raise InputError(f"--metals needs at least two metals, got {list(metals)}")
+    return metals
+
+
+def _run(counts_stage, metals, lattice, opts, progress, provenance, ions_summary, meta) -> AnalysisResult:
+    """The stages after the count array, shared by the in-memory and the streamed analysis."""
+    from .classify import classify
+    from .decode import fit_decoder
+    from .stats import compute_statistics
+
+    clock = _Clock(progress)
+    with warnings.catch_warnings(record=True) as wlist:
+        warnings.simplefilter("always")
+        t_counts = time.perf_counter()
+        rr, cols, n_metal = counts_stage(clock)
+        clock.timings["to_counts"] = round(time.perf_counter() - t_counts, 4)
         with clock.stage("decoding", f"fitting the rod model to {cols.n_rods} rods x {cols.n_sites} sites"):
             dec = fit_decoder(cols, n_starts=opts.n_starts, random_state=opts.seed,
                               uncertain_below=opts.uncertain_below)
@@ -266,13 +283,111 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
                        "per-rod sequences are unreliable, see the groups-of-rods analysis")
     clock.timings["total"] = round(time.perf_counter() - clock.t0, 4)
     prov = {"tool": "probeseq", "version": __version__, "python": sys.version.split()[0],
-            "platform": platform.platform(), "options": opts.to_dict(), "metals": list(metals),
+            "options": opts.to_dict(), "metals": list(metals),
             "lattice": lattice.to_dict(), "lattice_source": lattice.name, "seed": opts.seed,
-            "input": {"source": ions.meta.source, "sha256": ions.meta.sha256}}
+            "input": {"source": meta.source, "sha256": meta.sha256}}
     prov.update(provenance or {})
-    return AnalysisResult(metals=metals, lattice=lattice, options=opts, ions_summary=ions.summary(), ranging=rr,
+    return AnalysisResult(metals=metals, lattice=lattice, options=opts, ions_summary=ions_summary, ranging=rr,
                           n_metal_ions=n_metal, columns=cols, decoded=dec, groups=groups, statistics=st,
                           classification=cl, timings_s=clock.timings, warnings=tuple(warn), provenance=prov)
+
+
+#: files with more ions than this are analysed in streamed chunks by :func:`analyze_file`
+STREAM_ABOVE_IONS = 20_000_000
+
+
+def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: AnalysisOptions | None = None,
+                 progress: Progress = None, provenance: dict | None = None, length_unit=None,
+                 position_dataset=None, mass_dataset=None, strict: bool = False,
+                 stream_above: int = STREAM_ABOVE_IONS, chunk_size: int = 4_000_000,
+                 sample_ions: int = 10_000_000) -> AnalysisResult:
+    """Run the whole pipeline on an ion file; large HDF5 files are streamed in chunks.
+
+    A file of at most ``stream_above`` ions (and every text file) is read whole and passed to
+    :func:`analyze`. A larger HDF5 file is read twice in chunks of ``chunk_size`` ions, so peak
+    memory is bounded by the count array, a chunk and a sample:
+
+    1. an evenly strided sample of at most ``sample_ions`` ions is kept; the spectrum is ranged on
+       its mass-to-charge values and the lattice registered on its metal ions (registration uses
+       at most about 10^6 metal ions either way);
+    2. every chunk is ranged with the fitted ranges (lookup table) and its metal ions are binned into
+       the count array.
+
+    ``timings_s.read_to_counts`` is the wall time from the first read to the finished count array.
+    """
+    from .io import count_ions, file_sha256, ion_file_kind, iter_ion_chunks, read_ions
+
+    opts = options or AnalysisOptions()
+    metals = _check_metals(metals)
+    kind = ion_file_kind(path)
+    t0 = time.perf_counter()
+    n = count_ions(path, position_dataset, mass_dataset) if kind == "hdf5" else 0
+    if kind == "text" or n <= stream_above:
+        if progress:
+            progress("reading", f"{path}")
+        ions = read_ions(path, length_unit=length_unit, position_dataset=position_dataset,
+                         mass_dataset=mass_dataset, strict=strict)
+        t_read = time.perf_counter() - t0
+        res = analyze(ions, metals, lattice, ranges=ranges, options=opts, progress=progress, provenance=provenance)
+        res.timings_s["read"] = round(t_read, 4)
+        res.timings_s["read_to_counts"] = round(t_read + res.timings_s["to_counts"], 4)
+        res.timings_s["total"] = round(time.perf_counter() - t0, 4)
+        return res
+
+    from .columns import ColumnBinner, plan_columns, register_lattice
+    from .ions import IonMeta
+    from .ranging import assign_channels, auto_range
+
+    read_kw = dict(length_unit=length_unit, position_dataset=position_dataset, mass_dataset=mass_dataset,
+                   strict=strict)
+    stride = max(1, -(-n // sample_ions))
+    state = {}
+
+    def counts_stage(clock):
+        with clock.stage("sampling", f"reading an evenly strided sample of {n // stride} of {n} ions"):
+            parts = []
+            dropped = {}
+            for chunk in iter_ion_chunks(path, chunk_size=chunk_size, **read_kw):
+                parts.append(chunk.subset(slice(0, None, stride)))
+                for k, v in chunk.meta.dropped.items():
+                    dropped[k] = dropped.get(k, 0) + v
+            sample = IonList.concatenate(parts)
+            del parts
+        with clock.stage("ranging", f"ranging the mass spectrum of {len(sample)} sampled ions"):
+            rr = auto_range(sample.mass_to_charge, metals, species=opts.species, ranges=ranges)
+            w = assign_channels(sample.mass_to_charge, rr.ranges, metals).weights()
+            sel = w.sum(1) > 0
+        if not sel.any():
+            raise InputError(f"no ions fall in ranges of the metals {', '.join(metals)}")
+        with clock.stage("columns", f"registering the rod lattice on {int(sel.sum())} sampled metal ions"):
+            x, y, z = sample.x[sel], sample.y[sel], sample.z[sel]
+            reg = register_lattice(x, y, z, lattice, rotation_deg=opts.rotation_deg, scale=opts.scale,
+                                   offset_nm=opts.offset_nm, random_state=opts.seed)
+            geom = plan_columns(x, y, z, reg, random_state=opts.seed)
+        state["summary"] = sample.summary()
+        state["dropped"] = dropped
+        del sample, w, x, y, z
+        binner = ColumnBinner(geom, len(metals))
+        n_metal = 0
+        with clock.stage("binning", f"ranging and binning all {n} ions in chunks of {chunk_size}"):
+            for chunk in iter_ion_chunks(path, chunk_size=chunk_size, **read_kw):
+                wc = assign_channels(chunk.mass_to_charge, rr.ranges, metals).weights()
+                selc = wc.sum(1) > 0
+                n_metal += int(selc.sum())
+                binner.add(chunk.x[selc], chunk.y[selc], chunk.z[selc], wc[selc])
+            cols = binner.result(metals)
+        clock.timings["read_to_counts"] = round(time.perf_counter() - t0, 4)
+        return rr, cols, n_metal
+
+    sha = file_sha256(path)
+    meta = IonMeta(str(path), sha, length_unit or "nm")
+    res = _run(counts_stage, metals, lattice, opts, progress, provenance, {}, meta)
+    summary = dict(state["summary"])
+    summary.update({"n_ions": n, "sampled_ions": int(summary.get("n_ions", 0)), "sample_stride": stride,
+                    "rows_dropped": int(sum(state["dropped"].values())), "dropped": state["dropped"],
+                    "sha256": sha, "source": str(path), "streamed": True})
+    res.timings_s["total"] = round(time.perf_counter() - t0, 4)
+    return replace(res, ions_summary=summary)
 
 
 def _write_table(path: Path, table: dict, columns, fmt: dict | None = None):
