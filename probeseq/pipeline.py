@@ -230,17 +230,41 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
         with clock.stage("ranging", f"ranging the mass spectrum of {len(ions)} ions"):
             rr = auto_range(ions.mass_to_charge, metals, species=opts.species, ranges=ranges)
             w_all = assign_channels(ions.mass_to_charge, rr.ranges, metals).weights()
-            sel = w_all.sum(1) > 0
+            ch = realise_channels(w_all, np.random.default_rng(opts.seed))
+            sel = ch >= 0
             n_metal = int(sel.sum())
         if n_metal == 0:
             raise InputError(f"no ions fall in ranges of the metals {', '.join(metals)}")
         with clock.stage("columns", f"registering the rod lattice on {n_metal} metal ions"):
-            cols = build_columns(ions.x[sel], ions.y[sel], ions.z[sel], w_all[sel], metals, lattice,
+            cols = build_columns(ions.x[sel], ions.y[sel], ions.z[sel], ch[sel], metals, lattice,
                                  rotation_deg=opts.rotation_deg, scale=opts.scale, offset_nm=opts.offset_nm,
                                  random_state=opts.seed)
         return rr, cols, n_metal
 
     return _run(counts_stage, metals, lattice, opts, progress, provenance, ions.summary(), ions.meta)
+
+
+def realise_channels(weights, rng) -> np.ndarray:
+    """Draw each ion's metal from its channel weights: (n, K) float -> (n,) int (-1 = not a metal).
+
+    Ions in ranges shared between species carry fractional metal weights (an ion in a range shared
+    by 64Zn2+ and O2+ is a Zn ion with probability w). The rod model counts whole ions per site, so
+    each ion is given one identity drawn with these probabilities: the expected counts equal the
+    weights, and every site holds whole ions, as the emission model assumes.
+    """
+    w = np.asarray(weights, dtype=np.float64)
+    if w.ndim != 2:
+        raise InputError(f"weights must be (n_ions, n_metals), got shape {w.shape}")
+    frac = (w > 0) & (w < 1)
+    if not frac.any():
+        out = np.full(w.shape[0], -1, dtype=np.int64)
+        hit = w.max(1) >= 1
+        out[hit] = np.argmax(w[hit], 1)
+        return out
+    cum = np.cumsum(np.minimum(w, 1.0), axis=1)
+    u = rng.random(w.shape[0])
+    k = (u[:, None] >= cum).sum(1)
+    return np.where(k < w.shape[1], k, -1)
 
 
 def _check_metals(metals) -> tuple:
@@ -369,12 +393,13 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
         del sample, w, x, y, z
         binner = ColumnBinner(geom, len(metals))
         n_metal = 0
+        rng = np.random.default_rng(opts.seed)
         with clock.stage("binning", f"ranging and binning all {n} ions in chunks of {chunk_size}"):
             for chunk in iter_ion_chunks(path, chunk_size=chunk_size, **read_kw):
-                wc = assign_channels(chunk.mass_to_charge, rr.ranges, metals).weights()
-                selc = wc.sum(1) > 0
+                ch = realise_channels(assign_channels(chunk.mass_to_charge, rr.ranges, metals).weights(), rng)
+                selc = ch >= 0
                 n_metal += int(selc.sum())
-                binner.add(chunk.x[selc], chunk.y[selc], chunk.z[selc], wc[selc])
+                binner.add(chunk.x[selc], chunk.y[selc], chunk.z[selc], ch[selc])
             cols = binner.result(metals)
         clock.timings["read_to_counts"] = round(time.perf_counter() - t0, 4)
         return rr, cols, n_metal
