@@ -316,9 +316,11 @@ def _summary_lines(res) -> list:
     st = res.statistics
     lines = [f"verdict: {c.label} (along rods: {c.along_rod}; rod to rod: {c.rod_to_rod}; "
              f"confidence {c.confidence:.2f})"]
+    d = res.to_dict()
     lines.append(f"{'metal':6s} {'fraction':>18s} {'mean run (sites)':>24s} {'x independent':>14s}")
     for m in res.metals:
-        f, flo, fhi = st.interval(f"composition.{m}")
+        iv = d["composition_interval"][m] or {}
+        f, flo, fhi = d["composition"][m], iv.get("low", float("nan")), iv.get("high", float("nan"))
         r, rlo, rhi = st.interval(f"mean_run_length_sites.{m}")
         ratio = st.estimates.get(f"run_length_ratio.{m}", float("nan"))
         lines.append(f"{m:6s} {f:8.3f} [{flo:.3f}-{fhi:.3f}] {r:10.2f} [{rlo:.2f}-{rhi:.2f}] {ratio:14.2f}")

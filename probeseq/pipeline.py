@@ -142,7 +142,20 @@ class AnalysisResult:
         """The ``results.json`` layout (schema version :data:`RESULTS_SCHEMA_VERSION`)."""
         st = self.statistics.to_dict()
         cls = self.classification.to_dict()
-        comp = {m: st["composition"][m] for m in self.metals}
+        rd = self.ranging.to_dict()
+        rcomp = rd.get("composition", {})
+        # composition: the spectrum's (background-subtracted, overlaps deconvolved, all metal ions);
+        # the rod model's site occupancy is kept beside it (statistics.composition)
+        comp, comp_iv = {}, {}
+        for m in self.metals:
+            c = rcomp.get(m) or {}
+            f, sd = c.get("fraction"), c.get("sigma")
+            if f is None:
+                f = st["composition"][m]
+                comp_iv[m] = st["intervals"].get(f"composition.{m}")
+            else:
+                comp_iv[m] = {"estimate": f, "low": f - 1.96 * (sd or 0.0), "high": f + 1.96 * (sd or 0.0)}
+            comp[m] = f
         col = self.columns
         dec = self.decoded.to_dict()
         return {
@@ -150,7 +163,10 @@ class AnalysisResult:
             "provenance": self.provenance,
             "classification": cls,
             "composition": comp,
-            "composition_interval": {m: st["intervals"].get(f"composition.{m}") for m in self.metals},
+            "composition_interval": comp_iv,
+            "composition_source": "mass spectrum: atomic fractions of metal atoms, background subtracted, "
+                                  "overlaps deconvolved (95 % interval from counting and background errors)",
+            "composition_sites_model": {m: st["composition"][m] for m in self.metals},
             "statistics": st,
             "columns": {"n_rods": int(col.n_rods), "n_sites": int(col.n_sites),
                         "n_sites_used": int(col.mask.sum()), "pitch_nm": col.pitch_nm,

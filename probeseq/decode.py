@@ -1,0 +1,1090 @@
+"""Decode each rod's depth profile of metal counts into a sequence of metal sites.
+
+The model (one hidden-Markov chain per rod, all parameters shared by the rods of a run)
+--------------------------------------------------------------------------------------
+Hidden state of site t of a rod: the metal k in {0..K-1} occupying it.
+
+Transitions: one K x K matrix ``A`` for all rods; the first site of every rod is drawn from
+the stationary distribution ``f`` of ``A`` (``f A = f``), which is also the composition.
+Masked sites (outside the analysed volume) have emission likelihood 1; leading and trailing
+masked sites are dropped, which is exact with a stationary start, and gaps inside a rod are
+bridged by the chain.
+
+Emissions: the counts ``x = (x_0..x_{K-1})`` of the K metal channels at a site in state k are
+
+* the site's own ion, detected with probability ``eta`` (at most one own ion per site), in
+  channel k, plus
+* extra counts in every channel j, Poisson with mean ``mu_j`` (``extra_rate``), the same in
+  every state: ions from neighbouring rods (crosstalk), from depth blur and from background.
+
+So, for integer counts, ``P(x | k) = (1 - eta) Pois(x; mu) + eta Pois(x - e_k; mu)`` with
+``Pois(x; mu) = prod_j mu_j^x_j exp(-mu_j) / x_j!``, which factorises as::
+
+    P(x | k) = Pois(x; mu) * (1 - eta + eta * x_k / mu_k)
+
+because ``Pois(x - e_k; mu) / Pois(x; mu) = x_k / mu_k`` (0 when ``x_k = 0``). Only the
+state factor informs the decoding; an empty site has the factor ``1 - eta`` in every state and
+is informative only through the transitions.
+
+Fractional counts (an ion whose channel the ranging could only give as probabilities) are
+read as whole ions plus at most one *split ion* per site: ``x = n + phi`` with integer parts
+``n`` and fractional parts ``phi``; the split ion is in channel j with probability
+``pi_j = phi_j / max(1, sum phi)`` and absent with ``pi_0 = 1 - sum pi``. The likelihood is
+the mixture over where the split ion is, ``P(x | k) = pi_0 P(n | k) + sum_j pi_j P(n + e_j | k)``
+with the integer model above, which factorises the same way::
+
+    P(x | k) = Pois(n; mu) * B * (1 - eta + eta * xe_k / mu_k),
+    c_j = pi_j mu_j / (n_j + 1),  B = pi_0 + sum_j c_j,  xe = n + c / B.
+
+``xe`` (the effective counts) equals ``x`` for integer counts, so integer data are treated
+exactly; the split ion's channel is one more latent variable of the EM. (The plain continuation
+of the Poisson density to real counts with the Gamma function is not used: its likelihood
+grows without bound as ``mu_k -> 0`` when many counts are below 1.) When the fractional parts
+of a site sum to more than 1 they are scaled to 1, i.e. two or more split ions at one site
+are approximated by one.
+
+Only ``mu`` is identified by the data. It is reported split as ``mu_j = c f_j + b_j`` with the
+crosstalk rate ``c`` the largest value for which every background ``b_j >= 0`` (i.e. all
+composition-proportional extras are counted as crosstalk); see :class:`DecoderParams`.
+
+Fit
+---
+EM over all rods at once. Latent variables: the states, per site whether the own ion was
+detected, and the channel of a split ion. With state posteriors ``gamma_tk`` and the
+detection posterior ``r_tk = eta xe_k / mu_k / (1 - eta + eta xe_k / mu_k)``:
+``eta = sum gamma r / N``, ``mu_j = sum_t (E[y_tj] - gamma_tj r_tj) / N`` (N observed sites,
+``E[y]`` the expected whole counts, ``x`` for integer counts),
+and ``A`` from the expected transitions by a generalised-EM step
+(:func:`probeseq.hmm.update_transmat`), so the likelihood never decreases. Starts:
+``n_starts`` (one from moment estimates, the others random) each run ``SCREEN_ITER``
+iterations on a subset of at most ``SCREEN_SITES`` observed sites (rods cut into segments of
+``SCREEN_SEGMENT`` sites); the best continues on all rods until the log-likelihood changes by
+less than ``tol`` per observed site, or ``max_iter``.
+The independent-sites model (every row of ``A`` equal to the composition, no memory) is fitted
+the same way for the likelihood-ratio test (df ``(K-1)^2``, chi-square) and the BIC.
+
+Decoding
+--------
+Viterbi path and posterior marginals per site with the fitted (or given) parameters; a site
+is *uncertain* when its largest posterior is below ``uncertain_below`` (default 0.8).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+from scipy.special import gammaln
+
+from .data import RodColumns
+from .exceptions import ConvergenceWarning, DataQualityWarning, InputError
+from .hmm import forward_backward_scaled, run_em, stationary_distribution, update_transmat, viterbi
+
+__all__ = [
+    "DecoderParams",
+    "DecodeResult",
+    "fit_decoder",
+    "decode",
+    "emission_factors",
+    "emission_baseline",
+    "split_counts",
+    "runs_table",
+    "sample_model",
+    "UNCERTAIN_BELOW",
+]
+
+UNCERTAIN_BELOW = 0.8
+"""Default level: a site whose largest posterior is below it is flagged uncertain."""
+ETA_BOUNDS = (1e-4, 1.0 - 1e-4)
+"""Range the detection efficiency is kept in during the fit."""
+MIN_RATE = 1e-6
+"""Floor of every extra-count rate mu_j, counts per site."""
+LOW_COUNT_SHARE = 0.01
+"""A metal with a smaller share of all metal counts is reported as poorly supported."""
+LOW_COUNT_MIN = 20.0
+"""A metal with fewer counts than this is reported as poorly supported."""
+SCREEN_ITER = 10
+"""EM iterations each start runs before the best start is chosen."""
+SCREEN_SITES = 200_000
+"""Largest number of observed sites used for screening the starts."""
+SCREEN_SEGMENT = 250
+"""For screening, rods longer than twice this are cut into segments of this many sites."""
+
+
+# --------------------------------------------------------------------------------------------
+# parameters
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class DecoderParams:
+    """Parameters of the rod model (see the module docstring).
+
+    Parameters
+    ----------
+    transmat : (K, K) ndarray of float
+        Transition matrix between metals of consecutive sites; rows sum to 1.
+    eta : float
+        Probability that a site's own ion is detected (detection efficiency), in (0, 1).
+    extra_rate : (K,) ndarray of float, counts per site
+        Mean number of extra counts (crosstalk + background) per site in each channel, > 0.
+    """
+
+    transmat: np.ndarray
+    eta: float
+    extra_rate: np.ndarray
+
+    def __post_init__(self):
+        a = np.asarray(self.transmat, dtype=float)
+        if a.ndim != 2 or a.shape[0] != a.shape[1] or a.shape[0] < 2:
+            raise InputError(f"params.transmat must be a (K, K) matrix with K >= 2, got shape {a.shape}")
+        if not (np.all(np.isfinite(a)) and np.all(a >= 0) and np.allclose(a.sum(1), 1.0, atol=1e-8)):
+            raise InputError("params.transmat must be non-negative with rows summing to 1")
+        eta = float(self.eta)
+        if not 0.0 < eta < 1.0:
+            raise InputError(f"params.eta must be in (0, 1), got {self.eta!r}")
+        mu = np.asarray(self.extra_rate, dtype=float).reshape(-1)
+        if mu.shape != (a.shape[0],) or not np.all(np.isfinite(mu)) or np.any(mu <= 0):
+            raise InputError(
+                f"params.extra_rate must be {a.shape[0]} positive rates (counts per site), got {self.extra_rate!r}"
+            )
+        object.__setattr__(self, "transmat", a / a.sum(1, keepdims=True))
+        object.__setattr__(self, "eta", eta)
+        object.__setattr__(self, "extra_rate", mu)
+
+    @classmethod
+    def from_components(cls, transmat, eta, crosstalk, background) -> "DecoderParams":
+        """Build from a crosstalk rate and per-channel background: ``mu = c f + b``.
+
+        Parameters
+        ----------
+        transmat : (K, K) ndarray of float
+        eta : float
+        crosstalk : float, counts per site
+            Extra counts per site whose composition is the stationary composition ``f``.
+        background : float or (K,) ndarray of float, counts per site
+            Extra counts per site in each channel; values <= 0 are raised to ``MIN_RATE``.
+        """
+        f = stationary_distribution(np.asarray(transmat, dtype=float))
+        b = np.broadcast_to(np.asarray(background, dtype=float), f.shape)
+        mu = np.maximum(float(crosstalk) * f + b, MIN_RATE)
+        return cls(transmat=transmat, eta=eta, extra_rate=mu)
+
+    @property
+    def n_metals(self) -> int:
+        return int(self.transmat.shape[0])
+
+    @property
+    def stationary(self) -> np.ndarray:
+        """Stationary distribution of ``transmat`` (the composition), (K,)."""
+        return stationary_distribution(self.transmat)
+
+    @property
+    def persistence(self) -> float:
+        """``lam = (trace(A) - 1) / (K - 1)``; for ``A = lam I + (1 - lam) 1 f`` this is lam.
+
+        For two metals it equals ``1 - (p01 + p10)``, the second eigenvalue of ``A``.
+        """
+        k = self.n_metals
+        return float((np.trace(self.transmat) - 1.0) / (k - 1))
+
+    @property
+    def crosstalk(self) -> float:
+        """Largest ``c`` with ``mu - c f >= 0``, counts per site (see module docstring)."""
+        f = self.stationary
+        ok = f > 1e-12
+        return float(np.min(self.extra_rate[ok] / f[ok])) if ok.any() else 0.0
+
+    @property
+    def background(self) -> np.ndarray:
+        """``mu - crosstalk * f``, counts per site per channel (>= 0, at least one is 0)."""
+        return np.clip(self.extra_rate - self.crosstalk * self.stationary, 0.0, None)
+
+    def to_dict(self) -> dict:
+        return {
+            "transmat": self.transmat.tolist(),
+            "eta": self.eta,
+            "extra_rate": self.extra_rate.tolist(),
+            "stationary": self.stationary.tolist(),
+            "persistence": self.persistence,
+            "crosstalk": self.crosstalk,
+            "background": self.background.tolist(),
+        }
+
+
+def split_counts(counts):
+    """Integer parts and split-ion probabilities of (possibly fractional) counts.
+
+    Parameters
+    ----------
+    counts : (..., K) ndarray of float
+
+    Returns
+    -------
+    n : (..., K) ndarray of float
+        Integer parts (whole ions per channel).
+    pi : (..., K) ndarray of float
+        Probability that the site's split ion is in each channel: the fractional parts,
+        divided by their sum when that exceeds 1.
+    pi_none : (...,) ndarray of float
+        Probability that there is no split ion (``1 - sum(pi)``).
+    """
+    x = np.asarray(counts, dtype=float)
+    n = np.floor(x + 1e-9)
+    phi = x - n
+    phi[phi < 1e-9] = 0.0
+    m = phi.sum(axis=-1)
+    pi = phi / np.maximum(m, 1.0)[..., None]
+    return n, pi, np.clip(1.0 - pi.sum(axis=-1), 0.0, 1.0)
+
+
+def _split_terms(n, pi, pi_none, mu):
+    """c_j = pi_j mu_j / (n_j + 1), B = pi_none + sum c, effective counts n + c / B."""
+    c = pi * (mu / (n + 1.0))
+    b = pi_none + c.sum(axis=-1)
+    return c, b, n + c / b[..., None]
+
+
+def emission_factors(counts, params: DecoderParams) -> np.ndarray:
+    """State-dependent factor of the emission likelihood of every site.
+
+    ``P(x | k) = Pois(n; mu) B(x; mu) (1 - eta + eta xe_k / mu_k)`` (module docstring); this
+    returns ``1 - eta + eta xe_k / mu_k`` with the effective counts ``xe`` (``xe = x`` for
+    integer counts).
+
+    Parameters
+    ----------
+    counts : (..., K) ndarray of float
+        Counts per metal channel.
+    params : DecoderParams
+
+    Returns
+    -------
+    (..., K) ndarray of float
+    """
+    n, pi, pi_none = split_counts(counts)
+    _, _, xe = _split_terms(n, pi, pi_none, params.extra_rate)
+    return (1.0 - params.eta) + xe * (params.eta / params.extra_rate)
+
+
+def emission_baseline(counts, extra_rate) -> np.ndarray:
+    """State-independent factor ``log(Pois(n; mu) B(x; mu))`` of every site (natural log).
+
+    Parameters
+    ----------
+    counts : (..., K) ndarray of float
+    extra_rate : (K,) ndarray of float, counts per site
+
+    Returns
+    -------
+    (...,) ndarray of float
+    """
+    mu = np.asarray(extra_rate, dtype=float)
+    n, pi, pi_none = split_counts(counts)
+    _, b, _ = _split_terms(n, pi, pi_none, mu)
+    return (n * np.log(mu) - mu - gammaln(n + 1.0)).sum(axis=-1) + np.log(b)
+
+
+# --------------------------------------------------------------------------------------------
+# data preparation
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class _Prepared:
+    """Counts with each rod shifted to start at its first observed site (time-major)."""
+
+    x: np.ndarray  # (L, R', K) zeros at unobserved cells
+    obs: np.ndarray  # (L, R') bool
+    rods: np.ndarray  # (R',) index into the columns' rods
+    first: np.ndarray  # (R',)
+    span: np.ndarray  # (R',) last - first + 1
+    n_obs: int
+    n_hidden_cells: int  # unobserved cells of the (L, R') array
+    sum_x: np.ndarray  # (K,)
+    log_factorial: float  # sum of gammaln(n + 1) of the integer parts over observed sites
+    em_pair_weight: np.ndarray  # (R', L): transition t-1 -> t inside the rod's span
+    obs_pair_weight: np.ndarray  # (R', L): both sites observed
+    x_obs: np.ndarray  # (N, K) counts of the observed sites
+    nz_flat: np.ndarray  # flat indices into x of the nonzero integer parts (whole-count cells)
+    nz_k: np.ndarray  # their channel
+    nz_x: np.ndarray  # their value
+    sum_n: np.ndarray  # (K,) sum of the integer parts over observed sites
+    fs_cell: np.ndarray  # flat (t, r) cell index of the sites with a split ion
+    fs_n: np.ndarray  # (F, K) their integer parts
+    fs_pi: np.ndarray  # (F, K) split-ion channel probabilities
+    fs_pi_none: np.ndarray  # (F,)
+    totals_mean: float
+    totals_var: float
+
+
+def _sum_log_factorial(values: np.ndarray) -> float:
+    """sum of log Gamma(x + 1) over positive counts (a table lookup when all are integers)."""
+    if values.size == 0:
+        return 0.0
+    as_int = values.astype(np.int64)
+    if np.array_equal(as_int, values) and as_int.max() < 100_000:
+        hist = np.bincount(as_int)
+        return float(hist @ gammaln(np.arange(hist.size) + 1.0))
+    return float(gammaln(values + 1.0).sum())
+
+
+def _prepare(counts: np.ndarray, mask: np.ndarray, rods=None) -> _Prepared:
+    n_rods, n_sites, k = counts.shape
+    if rods is None:
+        rods = np.flatnonzero(mask.any(axis=1))
+    rods = np.asarray(rods, dtype=np.int64)
+    m = mask[rods]
+    first = m.argmax(axis=1)
+    last = n_sites - 1 - m[:, ::-1].argmax(axis=1)
+    span = last - first + 1
+    length = int(span.max())
+    t = np.arange(length)
+    inside = t[None, :] < span[:, None]
+    if len(rods) == n_rods and not first.any():
+        # every rod starts at site 0: no shift needed
+        obs = m[:, :length]
+        x_t = np.ascontiguousarray(counts[:, :length].transpose(1, 0, 2))
+    else:
+        idx = np.minimum(first[:, None] + t[None, :], n_sites - 1)
+        obs = np.take_along_axis(m, idx, axis=1) & inside  # (R', L)
+        x_t = counts.transpose(1, 0, 2)[idx.T, rods[None, :]]
+    if obs.all():
+        x_obs = x_t.reshape(-1, k)
+    else:
+        x_t *= obs.T[:, :, None]
+        x_obs = x_t[obs.T]
+    totals = x_obs @ np.ones(k)
+    cells = x_t.reshape(-1, k)
+    frac = np.flatnonzero(np.any(np.abs(cells - np.round(cells)) > 1e-9, axis=1))
+    fs_n, fs_pi, fs_pi_none = split_counts(cells[frac])
+    whole = cells.copy()
+    whole[frac] = 0.0  # split-ion sites are handled separately
+    nz_flat = np.flatnonzero(whole.reshape(-1) > 0)
+    nz_x = whole.reshape(-1)[nz_flat]
+    n_all = np.floor(x_obs + 1e-9)
+    nz = n_all[n_all > 0]
+    em_w = np.zeros((len(rods), length))
+    em_w[:, 1:] = inside[:, 1:]
+    ob_w = np.zeros((len(rods), length))
+    ob_w[:, 1:] = obs[:, 1:] & obs[:, :-1]
+    n_obs = int(obs.sum())
+    return _Prepared(
+        x=x_t,
+        obs=np.ascontiguousarray(obs.T),
+        rods=rods,
+        first=first,
+        span=span,
+        n_obs=n_obs,
+        n_hidden_cells=int(obs.size - n_obs),
+        sum_x=x_obs.sum(axis=0),
+        log_factorial=_sum_log_factorial(nz),
+        em_pair_weight=em_w,
+        obs_pair_weight=ob_w,
+        x_obs=x_obs,
+        nz_flat=nz_flat,
+        nz_k=(nz_flat % k).astype(np.int64),
+        nz_x=nz_x,
+        sum_n=n_all.sum(axis=0),
+        fs_cell=frac,
+        fs_n=fs_n,
+        fs_pi=fs_pi,
+        fs_pi_none=fs_pi_none,
+        totals_mean=float(totals.mean()),
+        totals_var=float(totals.var()),
+    )
+
+
+def _subset(prep: _Prepared, counts, mask, max_sites: int, segment: int, rng) -> _Prepared:
+    """Rods drawn at random up to ``max_sites`` observed sites, cut into segments of
+    ``segment`` sites that are treated as separate rods (for screening the starts only: the
+    loops over depth get shorter, at the cost of the few transitions across the cuts)."""
+    if prep.n_obs > max_sites:
+        per_rod = prep.obs.sum(axis=0)
+        order = rng.permutation(len(prep.rods))
+        keep = order[: max(2, int(np.searchsorted(np.cumsum(per_rod[order]), max_sites)))]
+        rods = np.sort(prep.rods[keep])
+    else:
+        rods = prep.rods
+    c, m = counts[rods], mask[rods]
+    n_sites = c.shape[1]
+    if n_sites > 2 * segment:
+        n_seg = -(-n_sites // segment)
+        pad = n_seg * segment - n_sites
+        c = np.pad(c, ((0, 0), (0, pad), (0, 0))).reshape(-1, segment, c.shape[2])
+        m = np.pad(m, ((0, 0), (0, pad))).reshape(-1, segment)
+    elif prep.n_obs <= max_sites:
+        return prep
+    return _prepare(c, m)
+
+
+def _unique_rows(x: np.ndarray):
+    """Distinct count vectors and their multiplicities (the independent-sites model only
+    needs these)."""
+    k = x.shape[1]
+    if x.size and np.array_equal(x, np.round(x)) and x.max() < 2**15:
+        base = int(x.max()) + 1
+        if base**k < 2**62:
+            key = x.astype(np.int64) @ (base ** np.arange(k, dtype=np.int64))
+            uk, inv_first, cnt = np.unique(key, return_index=True, return_counts=True)
+            return x[inv_first], cnt.astype(float)
+    rows, cnt = np.unique(x, axis=0, return_counts=True)
+    return rows, cnt.astype(float)
+
+
+# --------------------------------------------------------------------------------------------
+# E and M steps
+# --------------------------------------------------------------------------------------------
+
+
+def _baseline(prep: _Prepared, mu: np.ndarray, b_split=None) -> float:
+    """Sum over observed sites of log(Pois(n; mu) B) (the state-independent part)."""
+    out = float(np.dot(prep.sum_n, np.log(mu)) - prep.n_obs * mu.sum() - prep.log_factorial)
+    if b_split is not None and b_split.size:
+        out += float(np.log(b_split).sum())
+    return out
+
+
+def _emission_tm(prep: _Prepared, params: DecoderParams):
+    """Emission factors (L, R', K), time-major (1 - eta at empty and unobserved cells), and
+    the split-ion terms of the sites that have one."""
+    eta, mu = params.eta, params.extra_rate
+    emis = np.full(prep.x.shape, 1.0 - eta)
+    emis.reshape(-1)[prep.nz_flat] += prep.nz_x * (eta / mu)[prep.nz_k]
+    split = None
+    if prep.fs_cell.size:
+        c, b, xe = _split_terms(prep.fs_n, prep.fs_pi, prep.fs_pi_none, mu)
+        fac = (1.0 - eta) + xe * (eta / mu)
+        emis.reshape(-1, mu.size)[prep.fs_cell] = fac
+        split = (c, b, xe, fac)
+    return emis, split
+
+
+def _split_expected_counts(n, c, b, gamma, eta, mu, fac):
+    """E[y_j | x] at split-ion sites: the integer parts plus the posterior probability that the
+    split ion is in channel j, given the state posteriors ``gamma`` (S, K)."""
+    base = ((1.0 - eta) + n * (eta / mu)) / fac
+    s = (gamma * base).sum(axis=1)
+    return n + (c / b[:, None]) * (s[:, None] + gamma * (eta / mu) / fac)
+
+
+def _hmm_estep(prep: _Prepared, params: DecoderParams, *, final: bool = False):
+    """Forward-backward on the prepared rods; returns loglik, the result and the expected own
+    ions and expected counts per channel."""
+    eta, mu = params.eta, params.extra_rate
+    k = mu.size
+    emis, split = _emission_tm(prep, params)
+    fb = forward_backward_scaled(
+        emis,  # used as work space
+        params.transmat,
+        params.stationary,
+        pair_weight=prep.obs_pair_weight if final else prep.em_pair_weight,
+        compute_xi=True,
+        xi_per_sequence=final,
+        emission_is_time_major=True,
+        overwrite_emission=True,
+    )
+    del emis
+    # unobserved cells carried the state-independent factor 1 - eta: remove it
+    ll_rods = fb.loglik - (~prep.obs).sum(axis=0) * math.log(1.0 - eta)
+    loglik = float(ll_rods.sum()) + _baseline(prep, mu, None if split is None else split[1])
+    if final:
+        return loglik, fb, None
+    # detection posterior r_k = eta xe_k / mu_k / factor_k, zero where xe_k = 0: the sums run
+    # over the nonzero whole counts and the split-ion sites only
+    gamma_flat = fb.posteriors.transpose(1, 0, 2).reshape(-1)  # time-major, contiguous
+    q = prep.nz_x * (eta / mu)[prep.nz_k]
+    own = np.bincount(prep.nz_k, weights=gamma_flat[prep.nz_flat] * (q / ((1.0 - eta) + q)), minlength=k)
+    own = own.astype(float)
+    counts = prep.sum_n.copy()
+    if split is not None:
+        c, b, xe, fac = split
+        g = gamma_flat.reshape(-1, k)[prep.fs_cell]
+        own += (g * (xe * (eta / mu) / fac)).sum(axis=0)
+        counts += (_split_expected_counts(prep.fs_n, c, b, g, eta, mu, fac) - prep.fs_n).sum(axis=0)
+    return loglik, fb, (own, counts)
+
+
+def _hmm_step(prep: _Prepared):
+    def step(params: DecoderParams):
+        loglik, fb, (own, counts) = _hmm_estep(prep, params)
+        n = prep.n_obs
+        eta = float(np.clip(own.sum() / n, *ETA_BOUNDS))
+        mu = np.maximum((counts - own) / n, MIN_RATE)
+        first_post = fb.posteriors[:, 0, :].sum(axis=0)
+        a = update_transmat(fb.xi, first_post, params.transmat)
+        return loglik, DecoderParams(transmat=a, eta=eta, extra_rate=mu)
+
+    return step
+
+
+def _indep_step(prep: _Prepared):
+    x, mult = _unique_rows(prep.x_obs)
+    n_int, pi, pi_none = split_counts(x)
+    n = prep.n_obs
+    lf = float(mult @ gammaln(n_int + 1.0).sum(axis=1))
+    sum_n = mult @ n_int
+
+    def step(state):
+        comp, eta, mu = state
+        c, b, xe = _split_terms(n_int, pi, pi_none, mu)  # (U, K) distinct count vectors
+        fac = (1.0 - eta) + xe * (eta / mu)
+        w = fac * comp
+        tot = w.sum(axis=1)
+        base = float(sum_n @ np.log(mu)) - n * mu.sum() - lf + float(mult @ np.log(b))
+        loglik = float(mult @ np.log(tot)) + base
+        gamma = w / tot[:, None]
+        own = mult @ (gamma * (xe * (eta / mu) / fac))
+        counts = mult @ _split_expected_counts(n_int, c, b, gamma, eta, mu, fac)
+        comp_new = (mult @ gamma) / n
+        eta_new = float(np.clip(own.sum() / n, *ETA_BOUNDS))
+        mu_new = np.maximum((counts - own) / n, MIN_RATE)
+        return loglik, (comp_new, eta_new, mu_new)
+
+    return step
+
+
+def _initial_params(prep: _Prepared, rng, k: int, random: bool) -> DecoderParams:
+    comp = prep.sum_x / prep.sum_x.sum()
+    mean_t = prep.totals_mean
+    if random:
+        eta = float(rng.uniform(0.15, 0.9))
+        lam = float(rng.uniform(0.0, 0.95))
+        comp = 0.7 * comp + 0.3 * rng.dirichlet(np.ones(k))
+    else:
+        # moments of the per-site total: Bernoulli(eta) + Poisson(M) has mean - variance = eta^2
+        eta = math.sqrt(max(mean_t - prep.totals_var, 0.0025))
+        lam = 0.5
+    eta = float(np.clip(min(eta, 0.95 * mean_t if mean_t > 0 else eta), 0.05, 0.95))
+    a = lam * np.eye(k) + (1.0 - lam) * comp[None, :]
+    if random:
+        a = 0.9 * a + 0.1 * rng.dirichlet(np.ones(k), size=k)
+    m = prep.sum_x / prep.n_obs
+    mu = np.maximum(np.maximum(m - eta * comp, 0.05 * m), MIN_RATE)
+    return DecoderParams(transmat=a / a.sum(1, keepdims=True), eta=eta, extra_rate=mu)
+
+
+# --------------------------------------------------------------------------------------------
+# results
+# --------------------------------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class DecodeResult:
+    """Fitted rod model, decoded sequences and model comparison.
+
+    Attributes
+    ----------
+    metals : tuple of str
+        Metal symbols in channel (state) order.
+    transmat : (K, K) ndarray of float
+        Transition matrix.
+    stationary : (K,) ndarray of float
+        Stationary distribution = composition.
+    persistence : float
+        ``(trace(A) - 1) / (K - 1)`` (``1 - p01 - p10`` for two metals).
+    eta : float
+        Detection efficiency of a site's own ion.
+    extra_rate : (K,) ndarray of float, counts per site
+        Mean extra counts per site per channel (the identified quantity).
+    crosstalk : float, counts per site
+        Composition-proportional part of the extras (largest value leaving background >= 0).
+    background : (K,) ndarray of float, counts per site
+        Remaining extras per channel.
+    extra_fraction : float
+        Share of the counts that are extras: ``sum(mu) / (eta + sum(mu))``.
+    loglik : float
+        Log-likelihood of the hidden-Markov model (natural log).
+    n_iter : int
+        EM iterations on all rods (0 when parameters were given).
+    converged : bool
+    n_params : int
+        ``K (K - 1) + 1 + K`` free parameters.
+    loglik_indep, n_params_indep : float, int
+        The independent-sites model (nan when not fitted).
+    lr_stat, lr_df, lr_pvalue : float, int, float
+        Likelihood ratio ``2 (loglik - loglik_indep)``, df ``(K - 1)^2``, chi-square p-value.
+    bic, bic_indep : float
+        ``-2 loglik + n_params ln(n_obs)``.
+    n_obs : int
+        Observed (unmasked) sites.
+    viterbi : (n_rods, n_sites) ndarray of int
+        Most probable metal index per site, -1 at masked sites.
+    posteriors : (n_rods, n_sites, K) ndarray of float
+        Posterior metal probabilities, 0 at masked sites.
+    mask : (n_rods, n_sites) ndarray of bool
+    uncertain : (n_rods, n_sites) ndarray of bool
+        Observed sites whose largest posterior is below ``uncertain_below``.
+    uncertain_below : float
+    per_rod_transitions : (n_rods, K, K) ndarray of float
+        Expected transition counts between consecutive observed sites, per rod.
+    per_rod_occupancy : (n_rods, K) ndarray of float
+        Expected number of observed sites in each metal, per rod.
+    runs : dict of str -> (n_runs,) ndarray
+        ``rod, first_site, last_site, length, metal`` (int) and ``mean_posterior`` (float) of
+        every run of equal metal in the Viterbi paths, broken at masked sites.
+    start_logliks : (n_starts,) ndarray of float
+        Log-likelihood of every start after screening (on the screening subset).
+    loglik_history : (n_evaluated,) ndarray of float
+        Log-likelihood at every EM iteration on all rods.
+    warnings : list of str
+    """
+
+    metals: tuple
+    transmat: np.ndarray
+    stationary: np.ndarray
+    persistence: float
+    eta: float
+    extra_rate: np.ndarray
+    crosstalk: float
+    background: np.ndarray
+    extra_fraction: float
+    loglik: float
+    n_iter: int
+    converged: bool
+    n_params: int
+    loglik_indep: float
+    n_params_indep: int
+    lr_stat: float
+    lr_df: int
+    lr_pvalue: float
+    bic: float
+    bic_indep: float
+    n_obs: int
+    viterbi: np.ndarray
+    posteriors: np.ndarray
+    mask: np.ndarray
+    uncertain: np.ndarray
+    uncertain_below: float
+    per_rod_transitions: np.ndarray
+    per_rod_occupancy: np.ndarray
+    runs: dict
+    start_logliks: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    loglik_history: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    warnings: list = field(default_factory=list)
+
+    @property
+    def params(self) -> DecoderParams:
+        """The parameters as a :class:`DecoderParams` (to decode other columns with them)."""
+        return DecoderParams(transmat=self.transmat, eta=self.eta, extra_rate=self.extra_rate)
+
+    def to_dict(self) -> dict:
+        """JSON-serialisable summary (no per-site arrays)."""
+
+        def num(v):
+            v = float(v)
+            return v if math.isfinite(v) else None
+
+        obs = self.mask
+        lengths = self.runs["length"]
+        metal = self.runs["metal"]
+        mean_run = {
+            m: (num(lengths[metal == i].mean()) if np.any(metal == i) else None)
+            for i, m in enumerate(self.metals)
+        }
+        return {
+            "metals": list(self.metals),
+            "model": "tied-emission hidden Markov model (see probeseq.decode)",
+            "transmat": self.transmat.tolist(),
+            "stationary": self.stationary.tolist(),
+            "persistence": num(self.persistence),
+            "eta": num(self.eta),
+            "extra_rate_per_site": self.extra_rate.tolist(),
+            "crosstalk_per_site": num(self.crosstalk),
+            "background_per_site": self.background.tolist(),
+            "extra_fraction": num(self.extra_fraction),
+            "loglik": num(self.loglik),
+            "n_iter": int(self.n_iter),
+            "converged": bool(self.converged),
+            "n_params": int(self.n_params),
+            "loglik_indep": num(self.loglik_indep),
+            "n_params_indep": int(self.n_params_indep),
+            "lr_stat": num(self.lr_stat),
+            "lr_df": int(self.lr_df),
+            "lr_pvalue": num(self.lr_pvalue),
+            "bic": num(self.bic),
+            "bic_indep": num(self.bic_indep),
+            "n_rods": int(obs.shape[0]),
+            "n_sites": int(obs.shape[1]),
+            "n_obs": int(self.n_obs),
+            "uncertain_below": num(self.uncertain_below),
+            "n_uncertain": int(self.uncertain.sum()),
+            "fraction_uncertain": num(self.uncertain.sum() / max(self.n_obs, 1)),
+            "n_runs": int(lengths.size),
+            "mean_run_length_sites": mean_run,
+            "start_logliks": [num(v) for v in self.start_logliks],
+            "warnings": list(self.warnings),
+        }
+
+
+def runs_table(path, mask, posteriors) -> dict:
+    """Runs of equal metal along each rod's decoded path, broken at masked sites.
+
+    Parameters
+    ----------
+    path : (n_rods, n_sites) ndarray of int
+        Metal index per site, -1 at masked sites.
+    mask : (n_rods, n_sites) ndarray of bool
+    posteriors : (n_rods, n_sites, K) ndarray of float
+
+    Returns
+    -------
+    dict of str -> (n_runs,) ndarray
+        ``rod, first_site, last_site, length, metal`` (int64) and ``mean_posterior`` (mean
+        posterior of the run's metal over its sites), ordered by rod then site.
+    """
+    v = np.where(mask, path, -1).astype(np.int64)
+    n_rods, n_sites = v.shape
+    valid = v >= 0
+    start = valid.copy()
+    start[:, 1:] &= v[:, 1:] != v[:, :-1]
+    end = valid.copy()
+    end[:, :-1] &= v[:, :-1] != v[:, 1:]
+    s_idx = np.flatnonzero(start.ravel())
+    e_idx = np.flatnonzero(end.ravel())
+    p = np.take_along_axis(posteriors, np.clip(v, 0, None)[:, :, None], axis=2)[:, :, 0]
+    p = np.where(valid, p, 0.0).ravel()
+    cs = np.concatenate([[0.0], np.cumsum(p)])
+    length = e_idx - s_idx + 1
+    mean_post = (cs[e_idx + 1] - cs[s_idx]) / np.maximum(length, 1)
+    return {
+        "rod": (s_idx // n_sites).astype(np.int64),
+        "first_site": (s_idx % n_sites).astype(np.int64),
+        "last_site": (e_idx % n_sites).astype(np.int64),
+        "length": length.astype(np.int64),
+        "metal": v.ravel()[s_idx],
+        "mean_posterior": mean_post,
+    }
+
+
+# --------------------------------------------------------------------------------------------
+# checks
+# --------------------------------------------------------------------------------------------
+
+
+def _check_columns(columns) -> list:
+    if not isinstance(columns, RodColumns):
+        raise InputError(f"columns must be a probeseq.data.RodColumns, got {type(columns).__name__}")
+    c, m = columns.counts, columns.mask
+    if c.shape[2] < 2:
+        raise InputError(f"columns.counts: decoding needs at least two metal channels, got {c.shape[2]}")
+    if not m.any():
+        raise InputError(f"columns.mask: all {m.size} sites are masked; nothing to decode")
+    if not (np.isfinite(c).all() and c.min() >= 0):
+        cm = c[m]
+        if not np.all(np.isfinite(cm)):
+            raise InputError("columns.counts: found non-finite values at unmasked sites")
+        if np.any(cm < 0):
+            raise InputError("columns.counts: found negative counts at unmasked sites")
+        c = np.where(m[:, :, None], c, 0.0)
+    per_metal = m.reshape(-1).astype(float) @ c.reshape(-1, c.shape[2])
+    have = [columns.metals[i] for i in np.flatnonzero(per_metal > 0)]
+    if len(have) < 2:
+        raise InputError(
+            f"columns.counts: need counts in at least two metal channels, found counts only in {have}"
+        )
+    notes = []
+    total = per_metal.sum()
+    for i, name in enumerate(columns.metals):
+        share = per_metal[i] / total
+        if per_metal[i] < LOW_COUNT_MIN or share < LOW_COUNT_SHARE:
+            msg = (
+                f"metal {name} has almost no counts ({per_metal[i]:.1f}, {100 * share:.2f} % of metal counts;"
+                f" expected >= {LOW_COUNT_MIN:g} and >= {100 * LOW_COUNT_SHARE:g} %): the counts cannot"
+                f" support it as a state; its transition row and composition are poorly determined"
+            )
+            notes.append(msg)
+    return notes
+
+
+def _check_options(n_starts, max_iter, tol, uncertain_below):
+    if not isinstance(n_starts, (int, np.integer)) or isinstance(n_starts, bool) or n_starts < 1:
+        raise InputError(f"n_starts must be an integer >= 1, got {n_starts!r}")
+    if not isinstance(max_iter, (int, np.integer)) or isinstance(max_iter, bool) or max_iter < 1:
+        raise InputError(f"max_iter must be an integer >= 1, got {max_iter!r}")
+    if not (isinstance(tol, (int, float)) and math.isfinite(tol) and tol > 0):
+        raise InputError(f"tol must be a positive number (log-likelihood per site), got {tol!r}")
+    _check_uncertain(uncertain_below)
+
+
+def _check_uncertain(uncertain_below):
+    if not (isinstance(uncertain_below, (int, float)) and 0 < uncertain_below <= 1):
+        raise InputError(f"uncertain_below must be a probability in (0, 1], got {uncertain_below!r}")
+
+
+# --------------------------------------------------------------------------------------------
+# public entry points
+# --------------------------------------------------------------------------------------------
+
+
+def _decode_prepared(columns: RodColumns, prep: _Prepared, params: DecoderParams, uncertain_below: float):
+    """Posteriors, Viterbi, per-rod statistics and runs for given parameters."""
+    n_rods, n_sites, k = columns.counts.shape
+    loglik, fb, _ = _hmm_estep(prep, params, final=True)
+    log_emis, _ = _emission_tm(prep, params)
+    np.log(log_emis, out=log_emis)
+    _, path_al = viterbi(log_emis, params.transmat, params.stationary, lengths=prep.span, time_major=True)
+    del log_emis
+
+    mask = columns.mask
+    length = prep.x.shape[0]
+    if len(prep.rods) == n_rods and not prep.first.any() and length == n_sites:
+        post = fb.posteriors  # (R, T, K) view of the time-major array
+        path = path_al
+    else:
+        t = np.arange(length)
+        inside = t[None, :] < prep.span[:, None]
+        rod_idx = np.broadcast_to(prep.rods[:, None], inside.shape)[inside]
+        site_idx = (prep.first[:, None] + t[None, :])[inside]
+        post = np.zeros((n_rods, n_sites, k))
+        post[rod_idx, site_idx] = fb.posteriors[inside]
+        path = np.full((n_rods, n_sites), -1, dtype=np.int64)
+        path[rod_idx, site_idx] = path_al[inside]
+    if not mask.all():
+        post[~mask] = 0.0
+        path[~mask] = -1
+    per_rod_xi = np.zeros((n_rods, k, k))
+    per_rod_xi[prep.rods] = fb.xi
+    occupancy = np.einsum("rtk->rk", post)
+    best = post[:, :, 0].copy()
+    for i in range(1, k):
+        np.maximum(best, post[:, :, i], out=best)
+    uncertain = mask & (best < uncertain_below)
+    runs = runs_table(path, mask, post)
+    return loglik, path, post, uncertain, per_rod_xi, occupancy, runs
+
+
+def _n_params(k: int) -> tuple[int, int]:
+    return k * (k - 1) + 1 + k, (k - 1) + 1 + k
+
+
+def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n_iter, converged,
+                  loglik_indep, start_logliks, history, notes) -> DecodeResult:
+    path, post, uncertain, per_rod_xi, occupancy, runs = decoded
+    k = params.n_metals
+    n_par, n_par_ind = _n_params(k)
+    df = (k - 1) ** 2
+    log_n = math.log(max(n_obs, 1))
+    if np.isfinite(loglik_indep):
+        lr = 2.0 * (loglik - loglik_indep)
+        if lr < -1e-6 * max(1.0, abs(loglik)):
+            notes.append(
+                f"the independent-sites fit has a higher log-likelihood than the Markov fit by {-lr / 2:.3g};"
+                " the Markov fit may sit in a local optimum (try more starts)"
+            )
+        lr = max(lr, 0.0)
+        pval = float(stats.chi2.sf(lr, df))
+        bic_ind = -2.0 * loglik_indep + n_par_ind * log_n
+    else:
+        lr, pval, bic_ind = float("nan"), float("nan"), float("nan")
+    mu = params.extra_rate
+    return DecodeResult(
+        metals=tuple(columns.metals),
+        transmat=params.transmat.copy(),
+        stationary=params.stationary,
+        persistence=params.persistence,
+        eta=params.eta,
+        extra_rate=mu.copy(),
+        crosstalk=params.crosstalk,
+        background=params.background,
+        extra_fraction=float(mu.sum() / (params.eta + mu.sum())),
+        loglik=float(loglik),
+        n_iter=int(n_iter),
+        converged=bool(converged),
+        n_params=n_par,
+        loglik_indep=float(loglik_indep),
+        n_params_indep=n_par_ind,
+        lr_stat=float(lr),
+        lr_df=df,
+        lr_pvalue=pval,
+        bic=float(-2.0 * loglik + n_par * log_n),
+        bic_indep=float(bic_ind),
+        n_obs=int(n_obs),
+        viterbi=path,
+        posteriors=post,
+        mask=columns.mask.copy(),
+        uncertain=uncertain,
+        uncertain_below=float(uncertain_below),
+        per_rod_transitions=per_rod_xi,
+        per_rod_occupancy=occupancy,
+        runs=runs,
+        start_logliks=np.asarray(start_logliks, dtype=float),
+        loglik_history=np.asarray(history, dtype=float),
+        warnings=list(notes),
+    )
+
+
+def decode(columns: RodColumns, params: DecoderParams, uncertain_below: float = UNCERTAIN_BELOW) -> DecodeResult:
+    """Decode every rod with given (fixed) parameters; no fitting.
+
+    Parameters
+    ----------
+    columns : RodColumns
+        Counts per rod, site and metal channel.
+    params : DecoderParams
+        Model parameters, e.g. the true ones of a simulation or a fit to another run.
+    uncertain_below : float
+        Sites whose largest posterior is below this level are flagged uncertain.
+
+    Returns
+    -------
+    DecodeResult
+        With ``n_iter = 0`` and the independent-sites fields set to nan.
+    """
+    notes = _check_columns(columns)
+    _check_uncertain(uncertain_below)
+    if not isinstance(params, DecoderParams):
+        raise InputError(f"params must be a DecoderParams, got {type(params).__name__}")
+    if params.n_metals != columns.n_metals:
+        raise InputError(f"params describe {params.n_metals} metals, columns have {columns.n_metals}")
+    for msg in notes:
+        warnings.warn(msg, DataQualityWarning, stacklevel=2)
+    prep = _prepare(columns.counts, columns.mask)
+    loglik, *decoded = _decode_prepared(columns, prep, params, uncertain_below)
+    return _build_result(
+        columns, params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below, n_iter=0,
+        converged=True, loglik_indep=float("nan"), start_logliks=[], history=[loglik], notes=notes,
+    )
+
+
+def fit_decoder(
+    columns: RodColumns,
+    n_starts: int = 4,
+    max_iter: int = 200,
+    tol: float = 1e-6,
+    random_state=None,
+    uncertain_below: float = UNCERTAIN_BELOW,
+) -> DecodeResult:
+    """Fit the rod model to all rods by EM, then decode every rod.
+
+    Parameters
+    ----------
+    columns : RodColumns
+        Counts per rod, site and metal channel, with the mask of used sites.
+    n_starts : int
+        Number of EM starts (the first from moment estimates, the others random); each runs
+        ``SCREEN_ITER`` iterations on a subset of at most ``SCREEN_SITES`` observed sites and
+        the best continues on all rods.
+    max_iter : int
+        Iteration limit of the EM on all rods (and of each independent-sites fit).
+    tol : float, log-likelihood per observed site
+        Convergence when the log-likelihood changes by less than ``tol * n_obs``.
+    random_state : None, int or numpy.random.Generator
+        Seed of the random starts and of the screening subset.
+    uncertain_below : float
+        Sites whose largest posterior is below this level are flagged uncertain.
+
+    Returns
+    -------
+    DecodeResult
+
+    Raises
+    ------
+    InputError
+        Fewer than two metals with counts, all sites masked, negative or non-finite counts,
+        bad options.
+
+    Warns
+    -----
+    DataQualityWarning
+        A metal has almost no counts.
+    ConvergenceWarning
+        A fit reached ``max_iter``; the message gives the last change in log-likelihood and the
+        best fit found is still returned.
+    """
+    notes = _check_columns(columns)
+    _check_options(n_starts, max_iter, tol, uncertain_below)
+    for msg in notes:
+        warnings.warn(msg, DataQualityWarning, stacklevel=2)
+    rng = np.random.default_rng(random_state)
+    k = columns.n_metals
+    prep = _prepare(columns.counts, columns.mask)
+    tol_abs = tol * prep.n_obs
+
+    # screening of the starts
+    screen = _subset(prep, columns.counts, columns.mask, SCREEN_SITES, SCREEN_SEGMENT, rng)
+    screen_step = _hmm_step(screen)
+    starts = []
+    for i in range(n_starts):
+        p0 = _initial_params(screen, rng, k, random=i > 0)
+        tr = run_em(screen_step, p0, max_iter=min(SCREEN_ITER, max_iter), tol=tol * screen.n_obs)
+        starts.append(tr)
+    start_ll = [tr.loglik for tr in starts]
+    best = starts[int(np.argmax(start_ll))]
+
+    trace = run_em(_hmm_step(prep), best.params, max_iter=max_iter, tol=tol_abs)
+    params = trace.params
+    if not trace.converged:
+        msg = (
+            f"hidden-Markov fit did not converge in max_iter={max_iter} iterations: last change in"
+            f" log-likelihood {trace.last_change:.4g} (tolerance {tol_abs:.4g}); returning the best fit"
+        )
+        notes.append(msg)
+        warnings.warn(msg, ConvergenceWarning, stacklevel=2)
+
+    # independent-sites model, from the Markov fit and from the moment start
+    ind_step = _indep_step(prep)
+    p_mom = _initial_params(prep, rng, k, random=False)
+    ind_traces = [
+        run_em(ind_step, (params.stationary, params.eta, params.extra_rate), max_iter=max_iter, tol=tol_abs),
+        run_em(ind_step, (p_mom.stationary, p_mom.eta, p_mom.extra_rate), max_iter=max_iter, tol=tol_abs),
+    ]
+    ind = max(ind_traces, key=lambda tr: tr.loglik)
+    if not ind.converged:
+        msg = (
+            f"independent-sites fit did not converge in max_iter={max_iter} iterations: last change in"
+            f" log-likelihood {ind.last_change:.4g} (tolerance {tol_abs:.4g}); using the best fit"
+        )
+        notes.append(msg)
+        warnings.warn(msg, ConvergenceWarning, stacklevel=2)
+
+    if not columns.resolvable:
+        notes.append(
+            "columns report single rods as not resolvable: per-rod sequences mix neighbouring rods;"
+            " see probeseq.groups.analyze_groups"
+        )
+    loglik, *decoded = _decode_prepared(columns, prep, params, uncertain_below)
+    return _build_result(
+        columns, params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below,
+        n_iter=trace.n_iter, converged=trace.converged, loglik_indep=ind.loglik,
+        start_logliks=start_ll, history=trace.history, notes=notes,
+    )
+
+
+def sample_model(params: DecoderParams, n_rods: int, n_sites: int, random_state=None):
+    """Draw rods from the model itself (for parametric bootstrap and checks).
+
+    Parameters
+    ----------
+    params : DecoderParams
+    n_rods, n_sites : int
+    random_state : None, int or numpy.random.Generator
+
+    Returns
+    -------
+    counts : (n_rods, n_sites, K) ndarray of float
+        Own ion (probability ``eta``) plus Poisson(``extra_rate``) extras per channel.
+    states : (n_rods, n_sites) ndarray of int
+        The metal of every site; the chain starts stationary.
+    """
+    if n_rods < 1 or n_sites < 1:
+        raise InputError(f"n_rods and n_sites must be >= 1, got {n_rods}, {n_sites}")
+    rng = np.random.default_rng(random_state)
+    k = params.n_metals
+    cum = np.cumsum(params.transmat, axis=1)
+    cum[:, -1] = 1.0
+    states = np.empty((n_rods, n_sites), dtype=np.int64)
+    f_cum = np.cumsum(params.stationary)
+    f_cum[-1] = 1.0
+    states[:, 0] = np.searchsorted(f_cum, rng.random(n_rods), side="right")
+    u = rng.random((n_rods, n_sites))
+    for t in range(1, n_sites):
+        states[:, t] = (u[:, t, None] >= cum[states[:, t - 1]]).sum(axis=1)
+    counts = rng.poisson(params.extra_rate, size=(n_rods, n_sites, k)).astype(float)
+    det = rng.random((n_rods, n_sites)) < params.eta
+    r, t = np.nonzero(det)
+    counts[r, t, states[r, t]] += 1.0
+    return counts, states
