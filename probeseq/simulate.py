@@ -405,6 +405,13 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     mean_run_model = {el: 1.0 / ((1 - lam) * (1 - f[i])) for i, el in enumerate(cfg.metals)}
     site_counts = np.array([(seq[inside] == i).sum() for i in range(k)], float)
     emp_runs = _empirical_mean_runs(seq, inside, k)
+    # the realised chain: 1 / (1 - P_kk) from the transition counts of the true sequences (unbiased by
+    # runs cut at the rod ends, unlike the mean of observed run lengths)
+    a, b = seq[:, :-1], seq[:, 1:]
+    both = inside[:, :-1] & inside[:, 1:]
+    stay = np.array([np.sum((a == i) & (b == i) & both) for i in range(k)], float)
+    leave = np.array([np.sum((a == i) & both) for i in range(k)], float)
+    realised_runs = [float(leave[i] / max(leave[i] - stay[i], 1.0)) for i in range(k)]
     truth = {
         "about": "Synthetic run from probeseq's forward simulator. rods[]: axis x = x0 + dxdz*z, "
                  "y = y0 + dydz*z (reconstruction frame, nm); seq: digit i means metals[i], '.' outside the specimen.",
@@ -419,6 +426,7 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
         "copy_error": cfg.copy_error if cfg.pattern == "copied" else None,
         "mean_run_length": mean_run_model,
         "mean_run_length_sites": {el: emp_runs[i] for i, el in enumerate(cfg.metals)},
+        "mean_run_length_realised": {el: realised_runs[i] for i, el in enumerate(cfg.metals)},
         "eta": cfg.eta,
         "pitch_nm": pitch,
         "d_nn_nm": lat.nearest_rod_distance_nm,
