@@ -122,9 +122,9 @@ def range_cmd(
     if len(rr.unmatched):
         say(f"  {len(rr.unmatched)} strong peaks unmatched (left unranged): " + "; ".join(rr.unmatched_nearest[:6]))
     if figure is not None:
-        from .ranging_plot import plot_spectrum
+        from .ranging_plot import plot_ranging
 
-        plot_spectrum(rr, il.mass_to_charge, figure)
+        plot_ranging(rr, figure)
         say(f"wrote {figure}")
 
 
@@ -306,7 +306,7 @@ def analyze(
         (folder / "log.txt").write_text("\n".join(rep.lines + [""] + _summary_lines(res)) + "\n", encoding="utf-8")
 
     rep("writing", f"{outdir}")
-    write_analysis(res, outdir, force=force, extra=extra)
+    write_analysis(res, outdir, force=force, extra=extra, progress=rep)
     for line in _summary_lines(res):
         say(line)
 

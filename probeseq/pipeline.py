@@ -110,6 +110,7 @@ class AnalysisResult:
     timings_s: dict
     warnings: tuple
     provenance: dict = field(default_factory=dict)
+    figure_ions: Optional[IonList] = field(default=None, repr=False, compare=False)
 
     # ------------------------------------------------------------------ tables
     def tracks_table(self) -> dict:
@@ -257,7 +258,8 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
                                  random_state=opts.seed)
         return rr, cols, n_metal
 
-    return _run(counts_stage, metals, lattice, opts, progress, provenance, ions.summary(), ions.meta)
+    res = _run(counts_stage, metals, lattice, opts, progress, provenance, ions.summary(), ions.meta)
+    return replace(res, figure_ions=ions)
 
 
 def realise_channels(weights, rng) -> np.ndarray:
@@ -406,7 +408,8 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
             geom = plan_columns(x, y, z, reg, random_state=opts.seed)
         state["summary"] = sample.summary()
         state["dropped"] = dropped
-        del sample, w, x, y, z
+        state["sample"] = sample
+        del w, x, y, z
         binner = ColumnBinner(geom, len(metals))
         n_metal = 0
         rng = np.random.default_rng(opts.seed)
@@ -428,7 +431,7 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
                     "rows_dropped": int(sum(state["dropped"].values())), "dropped": state["dropped"],
                     "sha256": sha, "source": str(path), "streamed": True})
     res.timings_s["total"] = round(time.perf_counter() - t0, 4)
-    return replace(res, ions_summary=summary)
+    return replace(res, ions_summary=summary, figure_ions=state["sample"])
 
 
 def _write_table(path: Path, table: dict, columns, fmt: dict | None = None):
@@ -522,11 +525,68 @@ def read_replicates(outdir) -> dict:
         return {k: f["replicates"][k][...] for k in f["replicates"]}
 
 
-def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: Callable | None = None) -> Path:
+def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> dict:
+    """Save the figures of an analysis in ``folder`` (vector and PNG) and return them by name.
+
+    Files: ``tracks.svg/.pdf/.png`` (rods nearest the centre), ``spectrum.png/.svg``,
+    ``density.png``, ``run_lengths.svg/.png``, ``rod_to_rod.svg/.png``, ``groups.svg/.png`` (when
+    rods are not resolvable). A figure that cannot be drawn is skipped with a warning.
+    """
+    from .plotting import plot_group_variance, plot_rod_to_rod, plot_run_lengths, plot_tracks, save_figure
+
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    figs = {}
+
+    def attempt(name, make, exts):
+        try:
+            fig = make()
+        except Exception as e:  # a figure must never cost the results
+            warnings.warn(f"figure '{name}' not drawn: {e}", DataQualityWarning, stacklevel=2)
+            figs[name] = None
+            return
+        if fig is None:
+            return
+        for ext in exts:
+            save_figure(fig, folder / f"{name}.{ext}")
+        figs[name] = fig
+
+    if progress:
+        progress("figures", "drawing the figures (tracks, run lengths, rod-to-rod, spectrum, density)")
+    attempt("tracks", lambda: plot_tracks(result.columns, result.decoded, size="two-column"), ("svg", "pdf", "png"))
+    attempt("run_lengths", lambda: plot_run_lengths(result.statistics), ("svg", "png"))
+    if result.statistics.rod_to_rod is not None:
+        attempt("rod_to_rod", lambda: plot_rod_to_rod(result.statistics,
+                                                     copy_threshold=result.options.copy_threshold), ("svg", "png"))
+    if result.groups is not None:
+        attempt("groups", lambda: plot_group_variance(result.groups), ("svg", "png"))
+
+    def spectrum():
+        from .ranging_plot import plot_ranging
+
+        return plot_ranging(result.ranging, folder / "spectrum")
+
+    attempt("spectrum", spectrum, ())
+    if result.figure_ions is not None:
+        def density():
+            from .columns_plot import plot_rod_density
+            from .ranging import assign_channels
+
+            ions = result.figure_ions
+            sel = assign_channels(ions.mass_to_charge, result.ranging.ranges, result.metals).weights().sum(1) > 0
+            return plot_rod_density(ions.x[sel], ions.y[sel], ions.z[sel], result.columns, folder / "density.png")
+
+        attempt("density", density, ())
+    return figs
+
+
+def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: Callable | None = None,
+                   report: bool = True, progress: Progress = None) -> Path:
     """Write an analysis output folder (staged: complete or not at all).
 
-    Files: ``results.json``, ``tracks.csv``, ``runs.csv``, ``ranges.toml``, ``columns.h5``; ``extra``
-    (called with the staging folder) may add more (figures, report).
+    Files: ``results.json``, ``tracks.csv``, ``runs.csv``, ``ranges.toml``, ``columns.h5``,
+    ``decoded.h5``, ``bootstrap.h5``; with ``report``, ``figures/`` and ``report.html``. ``extra``
+    (called with the staging folder) may add more.
     """
     from .data import save_columns
     from .outputs import staged_outdir, write_json
@@ -541,6 +601,14 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
         save_columns(result.columns, st / "columns.h5")
         _write_replicates(result.statistics, st / "bootstrap.h5")
         save_decoded(result.decoded, st / "decoded.h5")
+        if report:
+            from .report import write_report
+
+            figs = write_figures(result, st / "figures", progress)
+            if progress:
+                progress("report", "writing report.html")
+            write_report(result, st / "report.html", ions=result.figure_ions,
+                         figures={k: v for k, v in figs.items() if v is not None and k != "density"})
         if extra is not None:
             extra(st)
     return Path(outdir)
