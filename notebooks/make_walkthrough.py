@@ -38,14 +38,14 @@ Peaks are found on a background-aware spectrum, matched to the predicted isotope
 (M+, M2+, oxide and hydroxide ions) and of linker fragments, and the mass scale is calibrated on the
 matched peaks. Every ion then gets a channel: a metal, `other` or `unranged`."""),
     ("code", """from probeseq.ranging import auto_range, assign_channels
-from probeseq.ranging_plot import plot_spectrum
+from probeseq.ranging_plot import plot_ranging
 
 rr = auto_range(ions.mass_to_charge, run.metals)
 comp = rr.to_dict()["composition"]
 for m in run.metals:
     print(f"{m}: {100 * comp[m]['fraction']:.2f} % +- {100 * comp[m]['sigma']:.2f} % of metal atoms")
 print(len(rr.ranges), "ranges;", len(rr.unmatched), "strong peaks left unranged")
-plot_spectrum(rr, ions.mass_to_charge, "walkthrough_spectrum.png")
+plot_ranging(rr, "walkthrough_spectrum")  # writes walkthrough_spectrum.png and .svg
 display(Image("walkthrough_spectrum.png"))"""),
     ("md", """## 2. Registering the rod lattice and cutting the rods into sites
 The known rod packing is fitted to the projected density of metal ions (rotation, lateral scale,
