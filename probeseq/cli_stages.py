@@ -268,6 +268,14 @@ def analyze(
     _STATE["quiet"] = quiet
     sample = {}
     src = Path(ions)
+    if src.is_dir() and not (src / "run.toml").exists() and _run_folders(src):
+        flags = ["--seed", str(seed), "--long-block-sites", str(long_block_sites), "--alpha", str(alpha),
+                 "--copy-threshold", str(copy_threshold), "--n-boot", str(n_boot), "--n-starts", str(n_starts)]
+        if strict:
+            flags.append("--strict")
+        if force:
+            flags.append("--force")
+        return _batch(src, Path(out) if out is not None else Path(f"analysis_{src.name}"), flags, force)
     if src.is_dir():
         desc = read_run_folder(src)
         sample = dict(desc.sample)
@@ -309,6 +317,51 @@ def analyze(
     write_analysis(res, outdir, force=force, extra=extra, progress=rep)
     for line in _summary_lines(res):
         say(line)
+
+
+def _run_folders(folder: Path) -> list:
+    return sorted(p for p in folder.iterdir() if p.is_dir() and (p / "run.toml").is_file())
+
+
+def _batch_one(job):
+    """Analyse one run folder of a batch in a worker process; returns (name, exit code, summary)."""
+    import contextlib
+    import io
+
+    from .cli import main
+
+    sub, outdir, flags = job
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err):
+        code = main(["analyze", str(sub), "--out", str(outdir), "-q", *flags])
+    summary = ""
+    res = outdir / "results.json"
+    if code == 0 and res.is_file():
+        r = json.loads(res.read_text())
+        c = r["classification"]
+        summary = f"{c['label']} (confidence {c['confidence']:.2f})"
+    else:
+        summary = err.getvalue().strip().splitlines()[-1] if err.getvalue().strip() else f"exit {code}"
+    return sub.name, code, summary
+
+
+def _batch(src: Path, out: Path, flags: list, force: bool):
+    """Analyse every run folder under ``src`` into ``out/<run>``, two at a time (both cores)."""
+    import os
+    from concurrent.futures import ProcessPoolExecutor
+
+    subs = _run_folders(src)
+    out.mkdir(parents=True, exist_ok=True)
+    jobs = [(sub, out / sub.name, flags) for sub in subs]
+    workers = max(1, min(2, os.cpu_count() or 1, len(jobs)))
+    say(f"analysing {len(jobs)} run folders of {src} with {workers} processes into {out}")
+    failed = 0
+    with ProcessPoolExecutor(max_workers=workers) as ex:
+        for name, code, summary in ex.map(_batch_one, jobs):
+            failed += code != 0
+            say(f"  {name:32s} {summary}")
+    if failed:
+        raise InputError(f"{failed} of {len(jobs)} runs failed (see above); the others were written to {out}")
 
 
 def _summary_lines(res) -> list:
