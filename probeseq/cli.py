@@ -170,11 +170,16 @@ def main(argv: Optional[List[str]] = None) -> int:
     warnings.showwarning = _show_warning
     try:
         rv = cmd.main(args=argv, prog_name="probeseq", standalone_mode=False)
-        return int(rv) if isinstance(rv, int) else 0
+        code = int(rv) if isinstance(rv, int) else 0
+        if code == 130:  # the command-line layer turns Ctrl-C into exit code 130
+            sys.stderr.write("error: interrupted; earlier results were left untouched\n")
+        return code
     except typer.Exit as e:
+        if int(e.exit_code) == 130:  # Ctrl-C, as reported by the command-line layer
+            sys.stderr.write("error: interrupted; earlier results were left untouched\n")
         return int(e.exit_code)
     except typer.Abort:
-        sys.stderr.write("error: interrupted\n")
+        sys.stderr.write("error: interrupted; earlier results were left untouched\n")
         return 130
     except ClickException as e:
         if type(e).__name__ == "NoArgsIsHelpError" and getattr(e, "ctx", None) is not None:
