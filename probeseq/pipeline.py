@@ -8,7 +8,6 @@ them and reports progress through an optional callback.
 
 from __future__ import annotations
 
-import csv
 import json
 import sys
 import time
@@ -435,21 +434,46 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
 
 
 def _write_table(path: Path, table: dict, columns, fmt: dict | None = None):
+    """Write columns of equal length as CSV, floats with the given printf formats."""
     fmt = fmt or {}
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(columns)
-        cols = [table[c] for c in columns]
+    cols = [np.asarray(table[c]).tolist() for c in columns]
+    row = ",".join(fmt.get(c, "%s") for c in columns) + "\n"
+    with open(path, "w", encoding="utf-8", newline="") as fh:
+        fh.write(",".join(columns) + "\n")
         n = len(cols[0]) if cols else 0
-        formatted = []
-        for c, a in zip(columns, cols):
-            f = fmt.get(c)
-            if f is None:
-                formatted.append([str(v) for v in a])
-            else:
-                formatted.append([f % v for v in a])
-        for i in range(n):
-            w.writerow([col[i] for col in formatted])
+        step = 200_000
+        for s0 in range(0, n, step):
+            fh.write("".join(row % r for r in zip(*(c[s0:s0 + step] for c in cols))))
+
+
+class _Background:
+    """Run a function in a forked child process (no pickling: the child inherits the data), so a
+    long table write uses the second core while figures are drawn. Falls back to running it in place
+    where fork is not available."""
+
+    def __init__(self, fn, *args):
+        import multiprocessing as mp
+
+        self.proc = None
+        try:
+            ctx = mp.get_context("fork")
+        except ValueError:
+            fn(*args)
+            return
+        self.proc = ctx.Process(target=fn, args=args, daemon=True)
+        self.proc.start()
+
+    def join(self, what: str):
+        if self.proc is None:
+            return
+        self.proc.join()
+        if self.proc.exitcode != 0:
+            raise InputError(f"writing {what} failed (exit code {self.proc.exitcode})")
+
+    def kill(self):
+        if self.proc is not None and self.proc.is_alive():
+            self.proc.terminate()
+            self.proc.join()
 
 
 def save_decoded(decoded, path):
@@ -588,27 +612,38 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
     ``decoded.h5``, ``bootstrap.h5``; with ``report``, ``figures/`` and ``report.html``. ``extra``
     (called with the staging folder) may add more.
     """
-    from .data import save_columns
     from .outputs import staged_outdir, write_json
 
     with staged_outdir(outdir, force=force) as st:
         write_json(st / "results.json", result.to_dict())
-        _write_table(st / "tracks.csv", result.tracks_table(), TRACKS_COLUMNS,
-                     {"rod_x_nm": "%.4f", "rod_y_nm": "%.4f", "z_nm": "%.4f", "posterior": "%.4f"})
-        _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS,
-                     {"length_nm": "%.4f", "z_start_nm": "%.4f", "z_end_nm": "%.4f", "mean_posterior": "%.4f"})
-        result.ranging.ranges.to_toml(st / "ranges.toml")
-        save_columns(result.columns, st / "columns.h5")
-        _write_replicates(result.statistics, st / "bootstrap.h5")
-        save_decoded(result.decoded, st / "decoded.h5")
-        if report:
-            from .report import write_report
-
-            figs = write_figures(result, st / "figures", progress)
-            if progress:
-                progress("report", "writing report.html")
-            write_report(result, st / "report.html", ions=result.figure_ions,
-                         figures={k: v for k, v in figs.items() if v is not None and k != "density"})
-        if extra is not None:
-            extra(st)
+        tracks = _Background(_write_table, st / "tracks.csv", result.tracks_table(), TRACKS_COLUMNS,
+                             {"rod": "%d", "rod_x_nm": "%.4f", "rod_y_nm": "%.4f", "site": "%d", "z_nm": "%.4f",
+                              "posterior": "%.4f"})
+        try:
+            _write_rest(result, st, report, progress, extra)
+            tracks.join("tracks.csv")
+        finally:
+            tracks.kill()
     return Path(outdir)
+
+
+def _write_rest(result, st, report, progress, extra):
+    """Everything of an output folder but tracks.csv (written meanwhile in a child process)."""
+    from .data import save_columns
+
+    _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS,
+                 {"length_nm": "%.4f", "z_start_nm": "%.4f", "z_end_nm": "%.4f", "mean_posterior": "%.4f"})
+    result.ranging.ranges.to_toml(st / "ranges.toml")
+    save_columns(result.columns, st / "columns.h5")
+    _write_replicates(result.statistics, st / "bootstrap.h5")
+    save_decoded(result.decoded, st / "decoded.h5")
+    if report:
+        from .report import write_report
+
+        figs = write_figures(result, st / "figures", progress)
+        if progress:
+            progress("report", "writing report.html")
+        write_report(result, st / "report.html", ions=result.figure_ions,
+                     figures={k: v for k, v in figs.items() if v is not None and k != "density"})
+    if extra is not None:
+        extra(st)
