@@ -61,13 +61,20 @@ def make_files(tmp: Path, sizes):
     from probeseq.simulate import simulate_run
 
     t = time.perf_counter()
-    run = simulate_run(pattern="long-block", top_radius_nm=30, half_angle_deg=10, depth_nm=150, seed=424242)
+    run = simulate_run(pattern="long-block", top_radius_nm=30, half_angle_deg=10, depth_nm=150, tilt_deg=0.3,
+                       seed=424242)
     print(f"simulated {len(run.ions):.3e} ions in {time.perf_counter() - t:.0f} s")
     lat = tmp / "lattice.toml"
     lat.write_text(run.lattice.to_toml())
     base = run.ions
     n0 = len(base)
     cols = {c: getattr(base, c).astype(np.float32) for c in ("x", "y", "z", "mass_to_charge")}
+    # copies are stacked by a crystal translation along the rods (a whole number of site pitches), so
+    # rods and site planes continue from one copy to the next
+    pitch = run.truth["pitch_nm"]
+    k = int(round(150.0 / pitch))
+    dz = k * pitch * np.cos(np.radians(run.truth["distortion"]["tilt_deg"]))
+    dxy = np.asarray(run.rod_tilt) * dz
     del run
     files = {}
     for n in sizes:
@@ -78,9 +85,10 @@ def make_files(tmp: Path, sizes):
             g.attrs["length_unit"] = "nm"
             ds = {c: g.create_dataset(c, shape=(reps * n0,), dtype=np.float32, chunks=(1_000_000,))
                   for c in cols}
+            shift = {"x": dxy[0], "y": dxy[1], "z": dz, "mass_to_charge": 0.0}
             for r in range(reps):
                 for c, a in cols.items():
-                    ds[c][r * n0:(r + 1) * n0] = a + np.float32(150.0 * r) if c == "z" else a
+                    ds[c][r * n0:(r + 1) * n0] = a + np.float32(shift[c] * r)
         files[reps * n0] = p
     return files, lat
 
@@ -106,6 +114,10 @@ def main():
             ok = False
             continue
         info = json.loads(r.stdout.strip().splitlines()[-1])
+        if info["code"] != 0:
+            print(f"{n:.2e} ions: analyze exited {info['code']}: {r.stderr.strip()[-400:]}")
+            ok = False
+            continue
         res = json.loads((out / "results.json").read_text())
         tim = res["timings_s"]
         rtc = tim["read_to_counts"]
