@@ -68,19 +68,61 @@ def _read(path, length_unit, position_dataset, mass_dataset, strict):
 
 
 class _Reporter:
-    """Progress lines on standard error (unless quiet), and a copy for ``log.txt``."""
+    """Progress on standard error (unless quiet), and a copy of every line for ``log.txt``.
+
+    Each stage prints one line when it starts; on a terminal a ticker keeps the line's elapsed
+    time running while the stage works, so a long step never looks frozen.
+    """
 
     def __init__(self, quiet: bool, verbose: bool):
+        import threading
+
         self.quiet, self.verbose = quiet, verbose
         self.t0 = time.perf_counter()
         self.lines = []
+        self._tty = (not quiet) and sys.stderr.isatty()
+        self._current = None
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._thread = None
+
+    def _tick(self):
+        while not self._stop.wait(0.5):
+            with self._lock:
+                if self._current is None:
+                    continue
+                line, start = self._current
+                sys.stderr.write(f"\r{line} ({time.perf_counter() - start:.0f} s)")
+                sys.stderr.flush()
 
     def __call__(self, stage: str, message: str):
         line = f"[{time.perf_counter() - self.t0:7.1f} s] {stage}: {message}"
         self.lines.append(line)
-        if not self.quiet:
-            sys.stderr.write(line + "\n")
+        if self.quiet:
+            return
+        with self._lock:
+            if self._tty:
+                if self._current is not None:
+                    sys.stderr.write("\n")
+                sys.stderr.write(line)
+                self._current = (line, time.perf_counter())
+                if self._thread is None:
+                    import threading
+
+                    self._thread = threading.Thread(target=self._tick, daemon=True)
+                    self._thread.start()
+            else:
+                sys.stderr.write(line + "\n")
             sys.stderr.flush()
+
+    def done(self):
+        """End the ticker (call before printing the summary)."""
+        self._stop.set()
+        with self._lock:
+            if self._tty and self._current is not None:
+                sys.stderr.write("\n")
+                sys.stderr.flush()
+            self._current = None
 
     def note(self, message: str):
         self.lines.append(message)
@@ -306,16 +348,23 @@ def analyze(
     rs = RangeSet.from_toml(ranges) if ranges is not None else None
     prov = {"command_line": "probeseq " + " ".join(shlex.quote(a) for a in sys.argv[1:]),
             "sample": sample, "run_name": name}
-    res = analyze_file(ion_path, mets, lat, ranges=rs, options=opts, progress=rep, provenance=prov,
-                       length_unit=length_unit, position_dataset=position_dataset, mass_dataset=mass_dataset,
-                       strict=strict)
+    try:
+        res = analyze_file(ion_path, mets, lat, ranges=rs, options=opts, progress=rep, provenance=prov,
+                           length_unit=length_unit, position_dataset=position_dataset, mass_dataset=mass_dataset,
+                           strict=strict)
+    except BaseException:
+        rep.done()
+        raise
 
     def extra(folder):
         (folder / "log.txt").write_text("\n".join(rep.lines + [""] + _summary_lines(res)) + "\n", encoding="utf-8")
 
     rep("writing", f"{outdir}")
-    write_analysis(res, outdir, force=force, extra=extra, progress=rep)
-    for line in _summary_lines(res):
+    try:
+        write_analysis(res, outdir, force=force, extra=extra, progress=rep)
+    finally:
+        rep.done()
+    for line in _summary_lines(res, verbose=verbose):
         say(line)
 
 
@@ -364,7 +413,7 @@ def _batch(src: Path, out: Path, flags: list, force: bool):
         raise InputError(f"{failed} of {len(jobs)} runs failed (see above); the others were written to {out}")
 
 
-def _summary_lines(res) -> list:
+def _summary_lines(res, verbose: bool = False) -> list:
     c = res.classification
     st = res.statistics
     lines = [f"verdict: {c.label} (along rods: {c.along_rod}; rod to rod: {c.rod_to_rod}; "
@@ -382,6 +431,19 @@ def _summary_lines(res) -> list:
                  f"{res.decoded.eta:.3f}, persistence {st.estimates.get('persistence', float('nan')):.3f}")
     for w in res.warnings:
         lines.append(f"warning: {w}")
+    if verbose:
+        lines.append("reasons:")
+        lines.extend(f"  - {r}" for r in c.reasons)
+        reg = col.params.get("registration", {})
+        if reg:
+            lines.append(f"registration: rotation {reg.get('rotation_deg', float('nan')):.3f} +- "
+                         f"{reg.get('rotation_deg_err', float('nan')):.3f} deg, scale {reg.get('scale', float('nan')):.4f}"
+                         f" +- {reg.get('scale_err', float('nan')):.4f}, tilt {reg.get('tilt_deg', float('nan')):.3f} deg, "
+                         f"lateral spread {reg.get('sigma_xy_nm', float('nan')):.3f} nm, crosstalk {col.crosstalk:.3f}")
+        dec = res.decoded
+        lines.append(f"decoder: log-likelihood {dec.loglik:.1f}, {dec.n_iter} EM iterations "
+                     f"({'converged' if dec.converged else 'NOT converged'}), LR {dec.lr_stat:.1f} "
+                     f"(df {dec.lr_df}), BIC {dec.bic:.1f} vs {dec.bic_indep:.1f} independent")
     lines.append("timings (s): " + ", ".join(f"{k} {v:.2f}" for k, v in res.timings_s.items()))
     return lines
 
