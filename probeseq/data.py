@@ -148,7 +148,7 @@ def save_columns(columns: RodColumns, path) -> None:
                                  ("site_z_nm", columns.site_z_nm, "nm"),
                                  ("neighbours", columns.neighbours, "rod index pairs"),
                                  ("site_z_offset_nm", columns.site_z_offset_nm, "nm")):
-            d = g.create_dataset(name, data=data, compression="gzip" if data.size > 4096 else None)
+            d = g.create_dataset(name, data=data, **({"compression": "gzip", "compression_opts": 1} if data.size > 4096 else {}))
             d.attrs["unit"] = unit
 
 

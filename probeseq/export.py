@@ -195,7 +195,7 @@ def _write_hdf5(of: OutputFolder, sel, path):
         f.attrs["schema_version"] = int(of.results["schema_version"])
 
         def put(name, data, unit, desc):
-            d = f.create_dataset(name, data=data, compression="gzip" if np.size(data) > 4096 else None)
+            d = f.create_dataset(name, data=data, **({"compression": "gzip", "compression_opts": 1} if np.size(data) > 4096 else {}))
             d.attrs["unit"] = unit
             d.attrs["description"] = desc
 

@@ -490,7 +490,7 @@ def save_decoded(decoded, path):
                                  ("uncertain", decoded.uncertain.astype(np.uint8), "1 = best posterior below uncertain_below"),
                                  ("stationary", np.asarray(decoded.stationary, float), "probability"),
                                  ("transmat", np.asarray(decoded.transmat, float), "probability")):
-            d = g.create_dataset(name, data=data, compression="gzip" if data.size > 4096 else None)
+            d = g.create_dataset(name, data=data, **({"compression": "gzip", "compression_opts": 1} if data.size > 4096 else {}))
             d.attrs["unit"] = unit
 
 
