@@ -434,16 +434,20 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
 
 
 def _write_table(path: Path, table: dict, columns, fmt: dict | None = None):
-    """Write columns of equal length as CSV, floats with the given printf formats."""
+    """Write columns of equal length as CSV, floats with the given printf formats.
+
+    Rows are formatted in blocks, so memory stays bounded for tables of tens of millions of rows.
+    """
     fmt = fmt or {}
-    cols = [np.asarray(table[c]).tolist() for c in columns]
+    cols = [np.asarray(table[c]) for c in columns]
     row = ",".join(fmt.get(c, "%s") for c in columns) + "\n"
     with open(path, "w", encoding="utf-8", newline="") as fh:
         fh.write(",".join(columns) + "\n")
         n = len(cols[0]) if cols else 0
         step = 200_000
         for s0 in range(0, n, step):
-            fh.write("".join(row % r for r in zip(*(c[s0:s0 + step] for c in cols))))
+            block = [c[s0:s0 + step].tolist() for c in cols]
+            fh.write("".join(row % r for r in zip(*block)))
 
 
 class _Background:
