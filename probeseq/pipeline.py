@@ -245,7 +245,9 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
     def counts_stage(clock):
         with clock.stage("ranging", f"ranging the mass spectrum of {len(ions)} ions"):
             rr = auto_range(ions.mass_to_charge, metals, species=opts.species, ranges=ranges)
-            w_all = assign_channels(ions.mass_to_charge, rr.ranges, metals).weights()
+            ca = assign_channels(ions.mass_to_charge, rr.ranges, metals)
+            thin = detection_balance(rr, ca)
+            w_all = ca.weights() * thin[None, :]
             ch = realise_channels(w_all, np.random.default_rng(opts.seed))
             sel = ch >= 0
             n_metal = int(sel.sum())
@@ -255,6 +257,7 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
             cols = build_columns(ions.x[sel], ions.y[sel], ions.z[sel], ch[sel], metals, lattice,
                                  rotation_deg=opts.rotation_deg, scale=opts.scale, offset_nm=opts.offset_nm,
                                  random_state=opts.seed)
+        cols.params["detection_balance"] = {m: float(t) for m, t in zip(metals, thin)}
         return rr, cols, n_metal
 
     res = _run(counts_stage, metals, lattice, opts, progress, provenance, ions.summary(), ions.meta)
@@ -282,6 +285,29 @@ def realise_channels(weights, rng) -> np.ndarray:
     u = rng.random(w.shape[0])
     k = (u[:, None] >= cum).sum(1)
     return np.where(k < w.shape[1], k, -1)
+
+
+def detection_balance(ranging, assignment) -> np.ndarray:
+    """Per-metal thinning factors that equalise how well each metal's own ions are seen in the rods.
+
+    An ion in a range shared with another species carries the range's share ``s`` of a metal, so a
+    true ion there counts ``s`` of itself and the rest of the range's ions add diffuse weight. The
+    share of metal k's ions that is seen as its own is ``rho_k = sum_j N_j s_jk^2 / n_k`` (N_j ions
+    in range j; n_k the metal's fitted ions over all its peaks, tails included). When it differs
+    between metals (Fe2+ under CO+, for example), the rod model, which has one detection efficiency
+    for all metals, would read the difference as composition. Returns ``min(rho) / rho_k`` (<= 1):
+    every metal is thinned to the least well seen one.
+    """
+    w = np.asarray(assignment.metal_weights, float)  # (n_ranges + 1, K), last row unranged
+    n_range = np.bincount(assignment.range_index + 1, minlength=w.shape[0] + 1)
+    counts = np.concatenate([n_range[1:w.shape[0]], n_range[:1]])  # ranges 0.., then unranged
+    own = (counts[:, None] * w ** 2).sum(0)
+    n_k = np.asarray(ranging.amounts, float) @ np.asarray(ranging.species_metal_atoms, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rho = np.where(n_k > 0, own / n_k, np.nan)
+    if not np.isfinite(rho).all() or (rho <= 0).any():
+        return np.ones(w.shape[1])
+    return np.minimum(1.0, rho.min() / rho)
 
 
 def _check_metals(metals) -> tuple:
@@ -396,7 +422,9 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
             del parts
         with clock.stage("ranging", f"ranging the mass spectrum of {len(sample)} sampled ions"):
             rr = auto_range(sample.mass_to_charge, metals, species=opts.species, ranges=ranges)
-            w = assign_channels(sample.mass_to_charge, rr.ranges, metals).weights()
+            ca = assign_channels(sample.mass_to_charge, rr.ranges, metals)
+            thin = detection_balance(rr, ca)
+            w = ca.weights()
             sel = w.sum(1) > 0
         if not sel.any():
             raise InputError(f"no ions fall in ranges of the metals {', '.join(metals)}")
@@ -414,11 +442,13 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
         rng = np.random.default_rng(opts.seed)
         with clock.stage("binning", f"ranging and binning all {n} ions in chunks of {chunk_size}"):
             for chunk in iter_ion_chunks(path, chunk_size=chunk_size, **read_kw):
-                ch = realise_channels(assign_channels(chunk.mass_to_charge, rr.ranges, metals).weights(), rng)
+                wc = assign_channels(chunk.mass_to_charge, rr.ranges, metals).weights() * thin[None, :]
+                ch = realise_channels(wc, rng)
                 selc = ch >= 0
                 n_metal += int(selc.sum())
                 binner.add(chunk.x[selc], chunk.y[selc], chunk.z[selc], ch[selc])
             cols = binner.result(metals)
+            cols.params["detection_balance"] = {m: float(t) for m, t in zip(metals, thin)}
         clock.timings["read_to_counts"] = round(time.perf_counter() - t0, 4)
         return rr, cols, n_metal
 
