@@ -27,7 +27,7 @@ hmm = pytest.importorskip("hmmlearn.hmm")  # source: hmmlearn 0.3.3
 
 # The occasionally dishonest casino.
 # source: Durbin, Eddy, Krogh & Mitchison 1998, ch. 3 p. 54, parameters as listed in
-# /work/shared/REFERENCES.md section 3 (hmmlearn examples/plot_casino_example.py):
+# the project reference sheet (REFERENCES.md) section 3 (hmmlearn examples/plot_casino_example.py):
 # F->L 0.05, L->F 0.10; fair die 1/6 per face; loaded die 1/10 for faces 1-5 and 1/2 for 6.
 CASINO_A = np.array([[0.95, 0.05], [0.10, 0.90]])
 CASINO_B = np.array([[1 / 6] * 6, [1 / 10] * 5 + [1 / 2]])
