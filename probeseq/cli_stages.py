@@ -251,29 +251,11 @@ def decode(
 
 
 def _write_decoded_tables(folder, cols, dec):
-    import numpy as np
+    from .pipeline import RUNS_COLUMNS, RUNS_FORMATS, TRACKS_COLUMNS, TRACKS_FORMATS, _write_table, runs_table, \
+        tracks_table
 
-    from .pipeline import RUNS_COLUMNS, TRACKS_COLUMNS, _write_table
-
-    r, s = np.nonzero(cols.mask)
-    z = cols.site_z_nm[s] + cols.site_z_offset_nm[r]
-    xy = cols.rod_xy_nm[r] + cols.tilt[None, :] * (z - cols.z_ref_nm)[:, None]
-    st = dec.viterbi[r, s]
-    metals = np.asarray(cols.metals, dtype=object)
-    _write_table(folder / "tracks.csv", {"rod": r, "rod_x_nm": xy[:, 0], "rod_y_nm": xy[:, 1], "site": s,
-                                         "z_nm": z, "state": metals[st], "posterior": dec.posteriors[r, s, st]},
-                 TRACKS_COLUMNS, {"rod_x_nm": "%.4f", "rod_y_nm": "%.4f", "z_nm": "%.4f", "posterior": "%.4f"})
-    runs = dec.runs
-    first, last = np.asarray(runs["first_site"], int), np.asarray(runs["last_site"], int)
-    length = np.asarray(runs["length"], int)
-    _write_table(folder / "runs.csv", {"rod": runs["rod"], "first_site": first, "last_site": last,
-                                       "length_sites": length, "length_nm": length * cols.pitch_nm,
-                                       "z_start_nm": cols.site_z_nm[first] + cols.site_z_offset_nm[runs["rod"]],
-                                       "z_end_nm": cols.site_z_nm[last] + cols.site_z_offset_nm[runs["rod"]],
-                                       "metal": metals[np.asarray(runs["metal"], int)],
-                                       "mean_posterior": runs["mean_posterior"]},
-                 RUNS_COLUMNS, {"length_nm": "%.4f", "z_start_nm": "%.4f", "z_end_nm": "%.4f",
-                                "mean_posterior": "%.4f"})
+    _write_table(folder / "tracks.csv", tracks_table(cols, dec), TRACKS_COLUMNS, TRACKS_FORMATS)
+    _write_table(folder / "runs.csv", runs_table(cols, dec), RUNS_COLUMNS, RUNS_FORMATS)
 
 
 # ---------------------------------------------------------------------- analyze

@@ -109,14 +109,12 @@ def select_sites(columns, rods=None, depth_nm=None):
 
 
 def _tracks(of: OutputFolder, sel):
+    """The tracks.csv columns for the selected sites, plus every metal's posterior and counts."""
+    from .pipeline import tracks_table
+
     col, dec = of.columns, of.decoded
-    r, s = np.nonzero(sel)
-    z = col.site_depths_nm()[r, s]
-    xy = col.rod_xy_nm[r] + col.tilt[None, :] * (z - col.z_ref_nm)[:, None]
-    state = dec.viterbi[r, s]
-    metals = np.asarray(col.metals, dtype=object)
-    out = {"rod": r, "rod_x_nm": xy[:, 0], "rod_y_nm": xy[:, 1], "site": s, "z_nm": z,
-           "state": metals[state], "posterior": dec.posteriors[r, s, state]}
+    out = tracks_table(col, dec, select=sel)
+    r, s = out["rod"], out["site"]
     for k, m in enumerate(col.metals):
         out[f"p_{m}"] = dec.posteriors[r, s, k]
         out[f"counts_{m}"] = col.counts[r, s, k]

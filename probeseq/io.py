@@ -22,6 +22,7 @@ import difflib
 import hashlib
 import os
 import warnings
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Iterator
 
@@ -247,6 +248,18 @@ def _as_str(v):
     return str(v)
 
 
+@contextmanager
+def _h5_source(p: Path, length_unit, position_dataset, mass_dataset):
+    """Open an HDF5 ion file and yield (layout, length unit, factor to nm, number of rows)."""
+    with _open_h5(p) as f:
+        layout, unit_in_file, n = _h5_layout(f, p, position_dataset, mass_dataset)
+        unit = length_unit or unit_in_file
+        factor = _check_unit(unit, str(p))
+        if n == 0:
+            raise InputError(f"{p}: the ion datasets are empty")
+        yield layout, unit, factor, n
+
+
 def _read_block(layout, start, stop, p: Path):
     cols = {}
     try:
@@ -304,12 +317,7 @@ def iter_ion_chunks(path, chunk_size: int = DEFAULT_CHUNK, length_unit: str | No
             yield ions.subset(slice(s, s + chunk_size))
         return
     sha = file_sha256(p) if checksum else ""
-    with _open_h5(p) as f:
-        layout, unit_in_file, n = _h5_layout(f, p, position_dataset, mass_dataset)
-        unit = length_unit or unit_in_file
-        factor = _check_unit(unit, str(p))
-        if n == 0:
-            raise InputError(f"{p}: the ion datasets are empty")
+    with _h5_source(p, length_unit, position_dataset, mass_dataset) as (layout, unit, factor, n):
         for s in range(0, n, chunk_size):
             cols = _read_block(layout, s, min(n, s + chunk_size), p)
             yield _finish(cols, factor, IonMeta(str(p), sha, unit), strict, f"{p} rows {s + 1}-{min(n, s + chunk_size)}")
@@ -356,12 +364,7 @@ def read_ions(path, length_unit: str | None = None, position_dataset: str | None
         ions = _finish(cols, factor, IonMeta(str(p), sha, unit), strict, str(p))
     else:
         sha = file_sha256(p) if checksum else ""
-        with _open_h5(p) as f:
-            layout, unit_in_file, n = _h5_layout(f, p, position_dataset, mass_dataset)
-            unit = length_unit or unit_in_file
-            factor = _check_unit(unit, str(p))
-            if n == 0:
-                raise InputError(f"{p}: the ion datasets are empty")
+        with _h5_source(p, length_unit, position_dataset, mass_dataset) as (layout, unit, factor, n):
             cols = {}
             for c, (d, j) in layout.items():
                 dtype = d.dtype if d.dtype.kind == "f" else np.float64

@@ -35,6 +35,41 @@ RUNS_COLUMNS = ("rod", "first_site", "last_site", "length_sites", "length_nm", "
                 "metal", "mean_posterior")
 
 Progress = Optional[Callable[[str, str], None]]
+TRACKS_FORMATS = {"rod": "%d", "rod_x_nm": "%.4f", "rod_y_nm": "%.4f", "site": "%d", "z_nm": "%.4f",
+                  "posterior": "%.4f"}
+RUNS_FORMATS = {"length_nm": "%.4f", "z_start_nm": "%.4f", "z_end_nm": "%.4f", "mean_posterior": "%.4f"}
+
+
+def tracks_table(columns: RodColumns, decoded, select=None) -> dict:
+    """One row per decoded site (the columns of ``tracks.csv``) as 1-D arrays.
+
+    Parameters
+    ----------
+    columns : RodColumns
+    decoded : DecodeResult or DecodedTracks
+    select : (n_rods, n_sites) ndarray of bool, optional
+        Sites to include (default: every used site, ``columns.mask``).
+    """
+    r, s = np.nonzero(columns.mask if select is None else select)
+    z = columns.site_z_nm[s] + columns.site_z_offset_nm[r]
+    xy = columns.rod_xy_nm[r] + columns.tilt[None, :] * (z - columns.z_ref_nm)[:, None]
+    state = decoded.viterbi[r, s]
+    return {"rod": r, "rod_x_nm": xy[:, 0], "rod_y_nm": xy[:, 1], "site": s, "z_nm": z,
+            "state": np.asarray(columns.metals, dtype=object)[state], "posterior": decoded.posteriors[r, s, state]}
+
+
+def runs_table(columns: RodColumns, decoded) -> dict:
+    """Runs of equal metal along each rod's Viterbi path (the columns of ``runs.csv``)."""
+    runs = decoded.runs
+    first, last = np.asarray(runs["first_site"], int), np.asarray(runs["last_site"], int)
+    length = np.asarray(runs["length"], int)
+    rod = np.asarray(runs["rod"], int)
+    off = columns.site_z_offset_nm[rod]
+    return {"rod": rod, "first_site": first, "last_site": last,
+            "length_sites": length, "length_nm": length * columns.pitch_nm,
+            "z_start_nm": columns.site_z_nm[first] + off, "z_end_nm": columns.site_z_nm[last] + off,
+            "metal": np.asarray(columns.metals, dtype=object)[np.asarray(runs["metal"], int)],
+            "mean_posterior": np.asarray(runs["mean_posterior"], float)}
 
 
 @dataclass(frozen=True)
@@ -114,28 +149,11 @@ class AnalysisResult:
     # ------------------------------------------------------------------ tables
     def tracks_table(self) -> dict:
         """One row per decoded (unmasked) site: the columns of ``tracks.csv`` as 1-D arrays."""
-        col, dec = self.columns, self.decoded
-        r, s = np.nonzero(col.mask)
-        z = col.site_z_nm[s] + col.site_z_offset_nm[r]
-        xy = col.rod_xy_nm[r] + col.tilt[None, :] * (z - col.z_ref_nm)[:, None]
-        state = dec.viterbi[r, s]
-        post = dec.posteriors[r, s, state]
-        return {"rod": r, "rod_x_nm": xy[:, 0], "rod_y_nm": xy[:, 1], "site": s, "z_nm": z,
-                "state": np.asarray(self.metals, dtype=object)[state], "posterior": post}
+        return tracks_table(self.columns, self.decoded)
 
     def runs_table(self) -> dict:
         """Runs of equal metal along each rod's Viterbi path (``runs.csv``)."""
-        runs = self.decoded.runs
-        col = self.columns
-        first, last = np.asarray(runs["first_site"], int), np.asarray(runs["last_site"], int)
-        length = np.asarray(runs["length"], int)
-        rod = np.asarray(runs["rod"], int)
-        off = col.site_z_offset_nm[rod]
-        return {"rod": rod, "first_site": first, "last_site": last,
-                "length_sites": length, "length_nm": length * col.pitch_nm,
-                "z_start_nm": col.site_z_nm[first] + off, "z_end_nm": col.site_z_nm[last] + off,
-                "metal": np.asarray(self.metals, dtype=object)[np.asarray(runs["metal"], int)],
-                "mean_posterior": np.asarray(runs["mean_posterior"], float)}
+        return runs_table(self.columns, self.decoded)
 
     # ------------------------------------------------------------------ results.json
     def to_dict(self) -> dict:
@@ -247,8 +265,7 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
             rr = auto_range(ions.mass_to_charge, metals, species=opts.species, ranges=ranges)
             ca = assign_channels(ions.mass_to_charge, rr.ranges, metals)
             thin = detection_balance(rr, ca)
-            w_all = ca.weights() * thin[None, :]
-            ch = realise_channels(w_all, np.random.default_rng(opts.seed))
+            ch = draw_metal_ions(ca, thin, np.random.default_rng(opts.seed))
             sel = ch >= 0
             n_metal = int(sel.sum())
         if n_metal == 0:
@@ -275,16 +292,15 @@ def realise_channels(weights, rng) -> np.ndarray:
     w = np.asarray(weights, dtype=np.float64)
     if w.ndim != 2:
         raise InputError(f"weights must be (n_ions, n_metals), got shape {w.shape}")
-    frac = (w > 0) & (w < 1)
-    if not frac.any():
-        out = np.full(w.shape[0], -1, dtype=np.int64)
-        hit = w.max(1) >= 1
-        out[hit] = np.argmax(w[hit], 1)
-        return out
     cum = np.cumsum(np.minimum(w, 1.0), axis=1)
     u = rng.random(w.shape[0])
     k = (u[:, None] >= cum).sum(1)
     return np.where(k < w.shape[1], k, -1)
+
+
+def draw_metal_ions(assignment, thin, rng) -> np.ndarray:
+    """Metal of each ion (-1 = none) drawn from its channel weights thinned by ``thin`` (per metal)."""
+    return realise_channels(assignment.weights() * np.asarray(thin)[None, :], rng)
 
 
 def detection_balance(ranging, assignment) -> np.ndarray:
@@ -442,8 +458,7 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
         rng = np.random.default_rng(opts.seed)
         with clock.stage("binning", f"ranging and binning all {n} ions in chunks of {chunk_size}"):
             for chunk in iter_ion_chunks(path, chunk_size=chunk_size, **read_kw):
-                wc = assign_channels(chunk.mass_to_charge, rr.ranges, metals).weights() * thin[None, :]
-                ch = realise_channels(wc, rng)
+                ch = draw_metal_ions(assign_channels(chunk.mass_to_charge, rr.ranges, metals), thin, rng)
                 selc = ch >= 0
                 n_metal += int(selc.sum())
                 binner.add(chunk.x[selc], chunk.y[selc], chunk.z[selc], ch[selc])
@@ -651,8 +666,7 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
     with staged_outdir(outdir, force=force) as st:
         write_json(st / "results.json", result.to_dict())
         tracks = _Background(_write_table, st / "tracks.csv", result.tracks_table(), TRACKS_COLUMNS,
-                             {"rod": "%d", "rod_x_nm": "%.4f", "rod_y_nm": "%.4f", "site": "%d", "z_nm": "%.4f",
-                              "posterior": "%.4f"})
+                             TRACKS_FORMATS)
         try:
             _write_rest(result, st, report, progress, extra)
             tracks.join("tracks.csv")
@@ -665,8 +679,7 @@ def _write_rest(result, st, report, progress, extra):
     """Everything of an output folder but tracks.csv (written meanwhile in a child process)."""
     from .data import save_columns
 
-    _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS,
-                 {"length_nm": "%.4f", "z_start_nm": "%.4f", "z_end_nm": "%.4f", "mean_posterior": "%.4f"})
+    _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS, RUNS_FORMATS)
     result.ranging.ranges.to_toml(st / "ranges.toml")
     save_columns(result.columns, st / "columns.h5")
     _write_replicates(result.statistics, st / "bootstrap.h5")

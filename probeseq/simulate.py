@@ -45,7 +45,7 @@ from .exceptions import InputError
 from .ions import IonList, IonMeta
 from .lattice import PRESETS, Lattice
 
-__all__ = ["SimConfig", "SimRun", "simulate_run", "PATTERNS", "DEFAULT_PERSISTENCE"]
+__all__ = ["SimConfig", "SimRun", "simulate_run", "markov_sequences", "PATTERNS", "DEFAULT_PERSISTENCE"]
 
 PATTERNS = ("random", "short-repeat", "long-block", "copied")
 DEFAULT_PERSISTENCE = {"random": 0.0, "short-repeat": 0.5, "long-block": 0.9, "copied": 0.0}
@@ -213,8 +213,12 @@ def ion_lines(formula: str, charge: int, min_abundance: float = 1e-5):
 
 
 # ---------------------------------------------------------------------- sequences
-def _markov_sequences(rng, n_rods, n_sites, f, lam):
-    """(n_rods, n_sites) chains: at each step keep the state with prob lam, else redraw from f."""
+def markov_sequences(rng, n_rods, n_sites, f, lam):
+    """(n_rods, n_sites) chains: at each step keep the state with prob lam, else redraw from f.
+
+    P(stay in k) = f_k + lam (1 - f_k), P(k -> j) = (1 - lam) f_j; the first site is drawn from f
+    (the stationary distribution).
+    """
     k = len(f)
     cdf = np.cumsum(f)
     seq = np.empty((n_rods, n_sites), dtype=np.int8)
@@ -232,8 +236,8 @@ def simulate_sequences(cfg: SimConfig, n_rods: int, n_sites: int, rng) -> np.nda
     f = cfg.composition_array
     lam = cfg.persistence_value
     if cfg.pattern in ("random", "short-repeat", "long-block"):
-        return _markov_sequences(rng, n_rods, n_sites, f, lam)
-    master = _markov_sequences(rng, 1, n_sites, f, lam)[0]
+        return markov_sequences(rng, n_rods, n_sites, f, lam)
+    master = markov_sequences(rng, 1, n_sites, f, lam)[0]
     seq = np.broadcast_to(master, (n_rods, n_sites)).copy()
     err = rng.random((n_rods, n_sites)) < cfg.copy_error
     fresh = np.minimum(np.searchsorted(np.cumsum(f), rng.random((n_rods, n_sites)), side="right"), len(f) - 1)

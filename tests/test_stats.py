@@ -10,24 +10,13 @@ from scipy import stats as sps
 
 from probeseq import stats as S
 from probeseq.exceptions import DataQualityWarning, InputError
+from probeseq.simulate import markov_sequences
 
 
 # ---------------------------------------------------------------------- generators with known truth
 def markov_chains(rng, n_rods, n_sites, f, lam):
-    """Chains that keep their state with probability lam, else redraw from f.
-
-    This is the simulator's definition (probeseq.simulate docstring):
-    P(stay in k) = f_k + lam (1 - f_k), P(k -> j) = (1 - lam) f_j; the chain starts stationary.
-    """
-    f = np.asarray(f, float)
-    cdf = np.cumsum(f)
-    fresh = np.minimum(np.searchsorted(cdf, rng.random((n_rods, n_sites)), side="right"), len(f) - 1)
-    keep = rng.random((n_rods, n_sites)) < lam
-    seq = np.empty((n_rods, n_sites), dtype=np.int64)
-    seq[:, 0] = fresh[:, 0]
-    for t in range(1, n_sites):
-        seq[:, t] = np.where(keep[:, t], seq[:, t - 1], fresh[:, t])
-    return seq
+    """The simulator's chains (P(stay in k) = f_k + lam (1 - f_k)), as int64."""
+    return markov_sequences(rng, n_rods, n_sites, np.asarray(f, float), lam).astype(np.int64)
 
 
 def true_transmat(f, lam):
