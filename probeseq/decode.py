@@ -435,6 +435,115 @@ def _unique_rows(x: np.ndarray):
     return rows, cnt.astype(float)
 
 
+@dataclass(frozen=True)
+class _RodData:
+    """The counts as they are (no copy), the span of every rod with an observed site and the
+    sums the fit needs; what the compiled kernels (:mod:`probeseq.rodchain`) work on."""
+
+    counts: np.ndarray  # (n_rods, n_sites, K), float32 or float64
+    mask: np.ndarray  # (n_rods, n_sites) bool, C-contiguous
+    rods: np.ndarray  # (R',) int64
+    first: np.ndarray  # (R',) int64
+    span: np.ndarray  # (R',) int64
+    n_obs: int
+    sum_x: np.ndarray  # (K,)
+    sum_n: np.ndarray  # (K,) integer parts
+    log_factorial: float
+    totals_mean: float
+    totals_var: float
+    distinct_rows: np.ndarray  # (U, K) distinct count vectors of the observed sites
+    distinct_mult: np.ndarray  # (U,) their multiplicities
+
+
+_BLOCK_RODS = 2048  # rods per block when summarising the counts
+
+
+def _rod_data(counts: np.ndarray, mask: np.ndarray) -> _RodData:
+    """Spans and summaries of the observed sites (compiled passes; no copy of the counts)."""
+    from .rodchain import spans, summarise
+
+    if counts.dtype not in (np.float32, np.float64) or not counts.flags.c_contiguous:
+        counts = np.ascontiguousarray(counts, dtype=np.float64)
+    mask = np.ascontiguousarray(mask, dtype=bool)
+    n_rods, _, k = counts.shape
+    rods, first, span = spans(mask)
+    sm = summarise(counts, mask)
+    if sm["rows"] is not None:
+        h = sm["n_hist"]
+        log_fact = float(h @ gammaln(np.arange(h.size) + 1.0))
+        uniq, mult = sm["rows"], sm["mult"]
+    else:
+        # fractional (or very large) counts: a block of rods at a time
+        log_fact = 0.0
+        parts = []
+        for b0 in range(0, n_rods, _BLOCK_RODS):
+            xo = counts[b0:b0 + _BLOCK_RODS][mask[b0:b0 + _BLOCK_RODS]].astype(np.float64)
+            if xo.size:
+                n_int = np.floor(xo + 1e-9)
+                log_fact += _sum_log_factorial(n_int[n_int > 0])
+                parts.append(_unique_rows(xo))
+        if parts:
+            rows = np.concatenate([r for r, _ in parts])
+            cnt = np.concatenate([c for _, c in parts])
+            uniq, inv = np.unique(rows, axis=0, return_inverse=True)
+            mult = np.bincount(inv.reshape(-1), weights=cnt, minlength=len(uniq))
+        else:
+            uniq, mult = np.zeros((0, k)), np.zeros(0)
+    return _RodData(counts=counts, mask=mask, rods=rods, first=first, span=span, n_obs=sm["n_obs"],
+                    sum_x=sm["sum_x"], sum_n=sm["sum_n"], log_factorial=log_fact,
+                    totals_mean=sm["totals_mean"], totals_var=sm["totals_var"], distinct_rows=uniq,
+                    distinct_mult=mult)
+
+
+def _screen_data(data: _RodData, max_sites: int, segment: int, rng) -> _RodData:
+    """Rods drawn at random up to ``max_sites`` observed sites, cut into segments of
+    ``segment`` sites treated as separate rods (for screening the starts; see :func:`_subset`)."""
+    per_rod = data.mask[data.rods].sum(axis=1)
+    if data.n_obs > max_sites:
+        order = rng.permutation(len(data.rods))
+        keep = order[: max(2, int(np.searchsorted(np.cumsum(per_rod[order]), max_sites)))]
+        rods = np.sort(data.rods[keep])
+    else:
+        rods = data.rods
+    c, m = data.counts[rods], data.mask[rods]
+    n_sites = c.shape[1]
+    if n_sites > 2 * segment:
+        n_seg = -(-n_sites // segment)
+        pad = n_seg * segment - n_sites
+        c = np.pad(c, ((0, 0), (0, pad), (0, 0))).reshape(-1, segment, c.shape[2])
+        m = np.pad(m, ((0, 0), (0, pad))).reshape(-1, segment)
+    elif data.n_obs <= max_sites:
+        return data
+    return _rod_data(np.ascontiguousarray(c), m)
+
+
+def _compiled_step(data: _RodData):
+    """EM step (E-step by the compiled kernel, then the M-step of :func:`_hmm_step`)."""
+    from .rodchain import fit_pass
+
+    def step(params: DecoderParams):
+        ll, xi, g0, own, adj, _ = fit_pass(data.counts, data.mask, data.rods, data.first, data.span,
+                                           params.eta, params.extra_rate, params.transmat, params.stationary)
+        n = data.n_obs
+        eta = float(np.clip(own.sum() / n, *ETA_BOUNDS))
+        mu = np.maximum((data.sum_n + adj - own) / n, MIN_RATE)
+        a = update_transmat(xi, g0, params.transmat)
+        return ll + _baseline(data, params.extra_rate), DecoderParams(transmat=a, eta=eta, extra_rate=mu)
+
+    return step
+
+
+def _decode_compiled(columns: RodColumns, data: _RodData, params: DecoderParams, uncertain_below: float):
+    """As :func:`_decode_prepared`, by the compiled kernel (float32 posteriors, int8 paths)."""
+    from .rodchain import decode_pass
+
+    ll, post, path, uncertain, per_rod_xi, occupancy = decode_pass(
+        data.counts, data.mask, data.rods, data.first, data.span, params.eta, params.extra_rate,
+        params.transmat, params.stationary, uncertain_below)
+    runs = runs_table(path, data.mask, post)
+    return ll + _baseline(data, params.extra_rate), path, post, uncertain, per_rod_xi, occupancy, runs
+
+
 # --------------------------------------------------------------------------------------------
 # E and M steps
 # --------------------------------------------------------------------------------------------
@@ -521,8 +630,12 @@ def _hmm_step(prep: _Prepared):
     return step
 
 
-def _indep_step(prep: _Prepared):
-    x, mult = _unique_rows(prep.x_obs)
+def _indep_step(prep):
+    """EM step of the independent-sites model, from the distinct count vectors of the sites."""
+    if isinstance(prep, _RodData):
+        x, mult = prep.distinct_rows, prep.distinct_mult
+    else:
+        x, mult = _unique_rows(prep.x_obs)
     n_int, pi, pi_none = split_counts(x)
     n = prep.n_obs
     lf = float(mult @ gammaln(n_int + 1.0).sum(axis=1))
@@ -736,7 +849,9 @@ def runs_table(path, mask, posteriors) -> dict:
         ``rod, first_site, last_site, length, metal`` (int64) and ``mean_posterior`` (mean
         posterior of the run's metal over its sites), ordered by rod then site.
     """
-    v = np.where(mask, path, -1).astype(np.int64)
+    path = np.asarray(path)
+    k = posteriors.shape[2]
+    v = np.where(mask, path, -1).astype(np.int8 if k < 127 else np.int64, copy=False)
     n_rods, n_sites = v.shape
     valid = v >= 0
     start = valid.copy()
@@ -745,17 +860,23 @@ def runs_table(path, mask, posteriors) -> dict:
     end[:, :-1] &= v[:, :-1] != v[:, 1:]
     s_idx = np.flatnonzero(start.ravel())
     e_idx = np.flatnonzero(end.ravel())
-    p = np.take_along_axis(posteriors, np.clip(v, 0, None)[:, :, None], axis=2)[:, :, 0]
-    p = np.where(valid, p, 0.0).ravel()
-    cs = np.concatenate([[0.0], np.cumsum(p)])
+    del start, end
+    p = np.take_along_axis(posteriors, np.maximum(v, 0)[:, :, None], axis=2)[:, :, 0]
+    p[~valid] = 0
     length = e_idx - s_idx + 1
-    mean_post = (cs[e_idx + 1] - cs[s_idx]) / np.maximum(length, 1)
+    # every valid site after a run's start and before the next run's start is in the run, the
+    # others hold 0: one sum per run from its start to the next start (in float64)
+    if s_idx.size:
+        sums = np.add.reduceat(p.reshape(-1), s_idx, dtype=np.float64)
+    else:
+        sums = np.zeros(0)
+    mean_post = sums / np.maximum(length, 1)
     return {
         "rod": (s_idx // n_sites).astype(np.int64),
         "first_site": (s_idx % n_sites).astype(np.int64),
         "last_site": (e_idx % n_sites).astype(np.int64),
         "length": length.astype(np.int64),
-        "metal": v.ravel()[s_idx],
+        "metal": v.ravel()[s_idx].astype(np.int64),
         "mean_posterior": mean_post,
     }
 
@@ -808,6 +929,14 @@ def _check_options(n_starts, max_iter, tol, uncertain_below):
     if not (isinstance(tol, (int, float)) and math.isfinite(tol) and tol > 0):
         raise InputError(f"tol must be a positive number (log-likelihood per site), got {tol!r}")
     _check_uncertain(uncertain_below)
+
+
+ENGINES = ("compiled", "numpy")
+
+
+def _check_engine(engine):
+    if engine not in ENGINES:
+        raise InputError(f"engine must be one of {', '.join(ENGINES)}, got {engine!r}")
 
 
 def _check_uncertain(uncertain_below):
@@ -917,7 +1046,8 @@ def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n
     )
 
 
-def decode(columns: RodColumns, params: DecoderParams, uncertain_below: float = UNCERTAIN_BELOW) -> DecodeResult:
+def decode(columns: RodColumns, params: DecoderParams, uncertain_below: float = UNCERTAIN_BELOW,
+           engine: str = "compiled") -> DecodeResult:
     """Decode every rod with given (fixed) parameters; no fitting.
 
     Parameters
@@ -928,6 +1058,8 @@ def decode(columns: RodColumns, params: DecoderParams, uncertain_below: float = 
         Model parameters, e.g. the true ones of a simulation or a fit to another run.
     uncertain_below : float
         Sites whose largest posterior is below this level are flagged uncertain.
+    engine : {"compiled", "numpy"}
+        See :func:`fit_decoder`.
 
     Returns
     -------
@@ -936,14 +1068,19 @@ def decode(columns: RodColumns, params: DecoderParams, uncertain_below: float = 
     """
     notes = _check_columns(columns)
     _check_uncertain(uncertain_below)
+    _check_engine(engine)
     if not isinstance(params, DecoderParams):
         raise InputError(f"params must be a DecoderParams, got {type(params).__name__}")
     if params.n_metals != columns.n_metals:
         raise InputError(f"params describe {params.n_metals} metals, columns have {columns.n_metals}")
     for msg in notes:
         warnings.warn(msg, DataQualityWarning, stacklevel=2)
-    prep = _prepare(columns.counts, columns.mask)
-    loglik, *decoded = _decode_prepared(columns, prep, params, uncertain_below)
+    if engine == "compiled":
+        prep = _rod_data(columns.counts, columns.mask)
+        loglik, *decoded = _decode_compiled(columns, prep, params, uncertain_below)
+    else:
+        prep = _prepare(columns.counts, columns.mask)
+        loglik, *decoded = _decode_prepared(columns, prep, params, uncertain_below)
     return _build_result(
         columns, params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below, n_iter=0,
         converged=True, loglik_indep=float("nan"), start_logliks=[], history=[loglik], notes=notes,
@@ -957,6 +1094,7 @@ def fit_decoder(
     tol: float = 1e-6,
     random_state=None,
     uncertain_below: float = UNCERTAIN_BELOW,
+    engine: str = "compiled",
 ) -> DecodeResult:
     """Fit the rod model to all rods by EM, then decode every rod.
 
@@ -976,6 +1114,13 @@ def fit_decoder(
         Seed of the random starts and of the screening subset.
     uncertain_below : float
         Sites whose largest posterior is below this level are flagged uncertain.
+    engine : {"compiled", "numpy"}
+        ``"compiled"`` (default) runs the recursions rod by rod in compiled code on all cores
+        (:mod:`probeseq.rodchain`), with memory of a few rods' length beyond the counts and the
+        results, and gives float32 posteriors and int8 paths; ``"numpy"`` runs the batched
+        numpy recursions of :mod:`probeseq.hmm` on all rods at once (several float64 arrays of
+        the count array's size; float64 posteriors, int64 paths). Both fit the same model and
+        agree to rounding.
 
     Returns
     -------
@@ -997,16 +1142,24 @@ def fit_decoder(
     """
     notes = _check_columns(columns)
     _check_options(n_starts, max_iter, tol, uncertain_below)
+    _check_engine(engine)
     for msg in notes:
         warnings.warn(msg, DataQualityWarning, stacklevel=2)
     rng = np.random.default_rng(random_state)
     k = columns.n_metals
-    prep = _prepare(columns.counts, columns.mask)
+    compiled = engine == "compiled"
+    if compiled:
+        prep = _rod_data(columns.counts, columns.mask)
+        screen = _screen_data(prep, SCREEN_SITES, SCREEN_SEGMENT, rng)
+        make_step = _compiled_step
+    else:
+        prep = _prepare(columns.counts, columns.mask)
+        screen = _subset(prep, columns.counts, columns.mask, SCREEN_SITES, SCREEN_SEGMENT, rng)
+        make_step = _hmm_step
     tol_abs = tol * prep.n_obs
 
     # screening of the starts
-    screen = _subset(prep, columns.counts, columns.mask, SCREEN_SITES, SCREEN_SEGMENT, rng)
-    screen_step = _hmm_step(screen)
+    screen_step = make_step(screen)
     starts = []
     for i in range(n_starts):
         p0 = _initial_params(screen, rng, k, random=i > 0)
@@ -1015,7 +1168,7 @@ def fit_decoder(
     start_ll = [tr.loglik for tr in starts]
     best = starts[int(np.argmax(start_ll))]
 
-    trace = run_em(_hmm_step(prep), best.params, max_iter=max_iter, tol=tol_abs)
+    trace = run_em(make_step(prep), best.params, max_iter=max_iter, tol=tol_abs)
     params = trace.params
     if not trace.converged:
         msg = (
@@ -1046,7 +1199,8 @@ def fit_decoder(
             "columns report single rods as not resolvable: per-rod sequences mix neighbouring rods;"
             " see probeseq.groups.analyze_groups"
         )
-    loglik, *decoded = _decode_prepared(columns, prep, params, uncertain_below)
+    decode_fn = _decode_compiled if compiled else _decode_prepared
+    loglik, *decoded = decode_fn(columns, prep, params, uncertain_below)
     return _build_result(
         columns, params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below,
         n_iter=trace.n_iter, converged=trace.converged, loglik_indep=ind.loglik,

@@ -209,6 +209,23 @@ def speed(n_rods, n_sites, quick):
                                     overwrite_emission=True)
         return r.loglik.sum() + base_ll, r
 
+    from probeseq import rodchain
+
+    mask_all = np.ones(counts.shape[:2], bool)
+    rods, first, span = rodchain.spans(mask_all)
+    n_thr = rodchain.set_threads(None)
+
+    def compiled_decode():
+        r = rodchain.decode_pass(counts, mask_all, rods, first, span, eta, mu, a, p, 0.8)
+        return r[0] + base_ll, r
+
+    def compiled_estep():
+        return rodchain.fit_pass(counts, mask_all, rods, first, span, eta, mu, a, p)[0] + base_ll
+
+    compiled_decode()  # compile or load the cached kernels outside the timing
+    compiled_estep()
+    t_cdec, (ll_cdec, cdec) = best_of(compiled_decode, reps)
+    t_cfit, ll_cfit = best_of(compiled_estep, reps)
     t_ours, (ll_ours, fb_ours) = best_of(ours_from_counts, reps)
     le = np.log((1 - eta) + counts * (eta / mu))
     t_core, core = best_of(lambda: forward_backward(le, a, p, compute_xi=False), reps)
@@ -219,14 +236,22 @@ def speed(n_rods, n_sites, quick):
     models = _hmmlearn_models(truth, le.reshape(-1, k))
     idx = np.arange(n_rods * n_sites, dtype=float)[:, None]
     print("forward-backward, log-likelihood + posteriors of every site (hmmlearn 0.3.3 score_samples with lengths):")
-    print(f"  from counts   probeseq (emission factors + forward_backward_scaled): {t_ours:7.3f} s")
+    print(f"  from counts   probeseq compiled, rod by rod on {n_thr} threads (rodchain.decode_pass: loglik, float32 "
+          f"posteriors, per-rod transitions and the Viterbi path): {t_cdec:7.3f} s")
+    print(f"                probeseq compiled E-step (rodchain.fit_pass: loglik, expected transitions and own ions): "
+          f"{t_cfit:7.3f} s")
+    print(f"                probeseq batched numpy (emission factors + forward_backward_scaled): {t_ours:7.3f} s")
     ratio_counts = {}
+    ratio_numpy = {}
     for impl in ("log", "scaling"):
         t_ref, (ll_ref, post_ref) = best_of(lambda: models["tied", impl].score_samples(obs_flat, lengths), reps)
-        ratio_counts[impl] = t_ref / t_ours
-        dp = float(np.abs(post_ref - fb_ours.posteriors.reshape(-1, k)).max())
-        print(f"                hmmlearn implementation={impl!r:9}: {t_ref:7.3f} s  ratio {t_ref / t_ours:5.1f}x   "
-              f"|d loglik| {abs(ll_ref - ll_ours):.1e}, max |d posterior| {dp:.1e}")
+        ratio_counts[impl] = t_ref / t_cdec
+        ratio_numpy[impl] = t_ref / t_ours
+        dp = float(np.abs(post_ref - cdec[1].reshape(-1, k)).max())
+        dpn = float(np.abs(post_ref - fb_ours.posteriors.reshape(-1, k)).max())
+        print(f"                hmmlearn implementation={impl!r:9}: {t_ref:7.3f} s  ratio compiled {t_ref / t_cdec:5.1f}x "
+              f"(|d loglik| {abs(ll_ref - ll_cdec):.1e}, max |d posterior| {dp:.1e}); E-step {t_ref / t_cfit:5.1f}x "
+              f"(|d loglik| {abs(ll_ref - ll_cfit):.1e}); batched numpy {t_ref / t_ours:5.1f}x (max |d posterior| {dpn:.1e})")
     print(f"  precomputed emissions: probeseq forward_backward (log input, incl. exp and transpose) {t_core:7.3f} s; "
           f"forward_backward_scaled (linear, time-major input) {t_lin:7.3f} s")
     ratio_core = {}
@@ -242,12 +267,14 @@ def speed(n_rods, n_sites, quick):
     print(f"  viterbi (precomputed log-emissions): hmmlearn {t_ref_v:.3f} s, probeseq {t_vit:.3f} s, "
           f"ratio {t_ref_v / t_vit:.1f}x, identical paths {bool(np.array_equal(path_ref, path.ravel()))}")
     r_default = ratio_counts["log"]
-    print(f"  speed-up over hmmlearn on the same model from counts: {r_default:.1f}x (default implementation 'log'), "
-          f"{ratio_counts['scaling']:.1f}x ('scaling')  target >= 5x  {verdict(r_default >= 5)}")
+    r_scaling = ratio_counts["scaling"]
+    print(f"  speed-up of the compiled decode over hmmlearn on the same model from counts: {r_default:.1f}x (default "
+          f"implementation 'log'), {r_scaling:.1f}x ('scaling')  target >= 5x against both  "
+          f"{verdict(min(r_default, r_scaling) >= 5)}")
     print(f"  core alone (precomputed log-emissions): {ratio_core['log']:.1f}x ('log'), {ratio_core['scaling']:.1f}x "
           f"('scaling', hmmlearn's compiled scaled recursion); linear-input core vs 'scaling': "
           f"{ratio_core['scaling'] * t_core / t_lin:.1f}x")
-    ok &= r_default >= 5
+    ok &= min(r_default, r_scaling) >= 5
     return ok
 
 
