@@ -901,7 +901,10 @@ def _check_columns(columns) -> list:
         if np.any(cm < 0):
             raise InputError("columns.counts: found negative counts at unmasked sites")
         c = np.where(m[:, :, None], c, 0.0)
-    per_metal = m.reshape(-1).astype(float) @ c.reshape(-1, c.shape[2])
+    per_metal = np.zeros(c.shape[2])
+    for b0 in range(0, c.shape[0], _BLOCK_RODS):  # blocks of rods: no count-sized temporaries
+        mb = m[b0:b0 + _BLOCK_RODS].reshape(-1)
+        per_metal += mb.astype(float) @ c[b0:b0 + _BLOCK_RODS].reshape(-1, c.shape[2])
     have = [columns.metals[i] for i in np.flatnonzero(per_metal > 0)]
     if len(have) < 2:
         raise InputError(

@@ -47,7 +47,7 @@ def set_threads(n: int | None) -> int:
     return n
 
 
-@numba.njit(cache=True, nogil=True, inline="always", error_model="numpy")
+@numba.njit(cache=True, nogil=True, error_model="numpy")
 def _site(counts, r, t, eta, mu, k, n_out, fac_out, s, c_out):
     """Emission terms of one observed site; returns ``B`` (1 without a split ion) and whether
     the site has a split ion. Fills n (integer parts), fac and c."""

@@ -119,3 +119,26 @@ def test_bad_engine_is_rejected():
     counts, _ = sample_model(_params(2), 3, 20, random_state=1)
     with pytest.raises(InputError, match="engine"):
         fit_decoder(make_columns(counts), engine="gpu")
+
+
+def _child_estep(args, q):
+    q.put(rodchain.fit_pass(*args)[0])
+
+
+def test_forked_child_can_run_the_parallel_kernels():
+    # a batch of runs and the experiment planner use worker processes; with numba's GNU OpenMP
+    # layer a forked child that starts a parallel loop is killed by libgomp
+    import multiprocessing as mp
+
+    p = _params(2)
+    counts, _ = sample_model(p, 8, 50, random_state=2)
+    mask = np.ones(counts.shape[:2], bool)
+    args = (counts, mask, *rodchain.spans(mask), p.eta, p.extra_rate, p.transmat, p.stationary)
+    here = rodchain.fit_pass(*args)[0]  # the parent has started its thread pool
+    ctx = mp.get_context("fork")
+    q = ctx.Queue()
+    child = ctx.Process(target=_child_estep, args=(args, q))
+    child.start()
+    child.join(120)
+    assert child.exitcode == 0
+    assert q.get(timeout=5) == here
