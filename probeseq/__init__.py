@@ -13,7 +13,7 @@ if "NUMBA_THREADING_LAYER" not in _os.environ:
         _sys.modules["numba"].config.THREADING_LAYER = "workqueue"
 
 from ._version import __version__  # noqa: E402
-from .exceptions import ConvergenceWarning  # noqa: E402, DataQualityWarning, InputError, ProbeseqError
+from .exceptions import ConvergenceWarning, DataQualityWarning, InputError, ProbeseqError  # noqa: E402
 from .ions import IonList, IonMeta  # noqa: E402
 from .lattice import Lattice  # noqa: E402
 
