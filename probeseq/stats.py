@@ -23,6 +23,14 @@ Definitions (K metals, fitted transition matrix P, stationary distribution mu, c
 * rod-to-rod agreement: the pooled within-pair Pearson correlation of the posterior probability of
   the least abundant metal between neighbouring rods at depth lags ``-max_lag..max_lag``, against
   a null of circular shifts of one rod of each pair (and, for reference, non-neighbouring pairs).
+
+Large runs (tens of thousands of rods of thousands of sites) are handled without copies of the
+per-site arrays: paths stay in their small integer dtype, the posteriors are read through the one
+slice that is needed, and the per-rod and per-pair sums run in compiled loops (numba) or, for the
+circular-shift null, in blocks of neighbour pairs whose temporaries are bounded by
+``_BLOCK_BYTES``. Sums keep the order of floating-point operations of plain numpy code
+(``ndarray.sum``'s pairwise summation, bincount's running sums), so results do not depend on the
+block size.
 """
 
 from __future__ import annotations
@@ -31,6 +39,7 @@ import math
 import warnings
 from dataclasses import dataclass, field
 
+import numba
 import numpy as np
 from scipy import stats as _sps
 
@@ -61,6 +70,8 @@ __all__ = [
 ]
 
 _EPS = 1e-300
+# working memory of one blocked temporary (rods or neighbour pairs processed per block)
+_BLOCK_BYTES = 32 * 2**20
 
 
 # ---------------------------------------------------------------------- chain quantities
@@ -255,7 +266,7 @@ def transition_counts_from_paths(paths, n_states: int, mask=None):
     Parameters
     ----------
     paths : (n_rods, n_sites) ndarray of int
-        State index per site, negative where masked.
+        State index per site, negative where masked; any integer dtype.
     n_states : int
     mask : (n_rods, n_sites) ndarray of bool, optional
 
@@ -267,29 +278,68 @@ def transition_counts_from_paths(paths, n_states: int, mask=None):
     p = _masked_paths(paths, mask)
     n_rods, n_sites = p.shape
     k = int(n_states)
-    if p.max(initial=-1) >= k:
-        raise InputError(f"paths hold state {int(p.max())}, expected states below n_states={k}")
-    rod = np.broadcast_to(np.arange(n_rods)[:, None], p.shape)
-    v = p >= 0
-    occ = np.bincount((rod[v] * k + p[v]), minlength=n_rods * k).reshape(n_rods, k).astype(float)
-    both = v[:, :-1] & v[:, 1:]
-    a, b, rr = p[:, :-1][both], p[:, 1:][both], rod[:, :-1][both]
-    tr = np.bincount((rr * k + a) * k + b, minlength=n_rods * k * k).reshape(n_rods, k, k).astype(float)
-    return tr, occ
+    top = int(p.max(initial=-1))
+    if top >= k:
+        raise InputError(f"paths hold state {top}, expected states below n_states={k}")
+    tr = np.zeros((n_rods, k, k), dtype=np.int64)
+    occ = np.zeros((n_rods, k), dtype=np.int64)
+    _count_transitions(p, tr, occ)
+    return tr.astype(float), occ.astype(float)
+
+
+@numba.njit(cache=True, nogil=True)
+def _count_transitions(p, tr, occ):
+    """Add each rod's state counts to occ and its transitions between unmasked sites to tr."""
+    n_rods, n_sites = p.shape
+    for r in range(n_rods):
+        prev = -1
+        for s in range(n_sites):
+            v = np.int64(p[r, s])
+            if v >= 0:
+                occ[r, v] += 1
+                if prev >= 0:
+                    tr[r, prev, v] += 1
+            prev = v
 
 
 # ---------------------------------------------------------------------- decoded paths
 def _masked_paths(paths, mask=None) -> np.ndarray:
+    """Paths as a signed integer array, negative where masked.
+
+    A signed integer input keeps its dtype (so int8 paths stay int8); unsigned and boolean inputs
+    are widened to the smallest signed type that holds them; anything else is cast to int64. Masked
+    sites are set to -1 (in a copy; the input is never changed).
+    """
     p = np.asarray(paths)
     if p.ndim != 2:
         raise InputError(f"decoded paths must be (n_rods, n_sites), got shape {p.shape}")
-    p = p.astype(np.int64)
+    p = _signed_states(p)
     if mask is not None:
         m = np.asarray(mask, dtype=bool)
         if m.shape != p.shape:
             raise InputError(f"mask shape {m.shape} does not match decoded paths {p.shape}")
-        p = np.where(m, p, -1)
+        p = np.where(m, p, p.dtype.type(-1))
     return p
+
+
+def _signed_states(p: np.ndarray) -> np.ndarray:
+    """A signed integer view or copy of a state array (no copy for signed integer dtypes)."""
+    kind = p.dtype.kind
+    if kind == "i":
+        return p
+    if kind == "b":
+        return p.astype(np.int8)
+    if kind == "u":
+        return p.astype(np.int16 if p.itemsize == 1 else np.int32 if p.itemsize == 2 else np.int64)
+    return p.astype(np.int64)
+
+
+def _state_dtype(n_states: int):
+    """Smallest signed integer dtype holding -1 and states 0..n_states-1."""
+    for dt in (np.int8, np.int16, np.int32):
+        if n_states <= np.iinfo(dt).max:
+            return np.dtype(dt)
+    return np.dtype(np.int64)
 
 
 @dataclass(frozen=True)
@@ -324,7 +374,7 @@ def decoded_runs(paths, mask=None) -> RunLengths:
     Parameters
     ----------
     paths : (n_rods, n_sites) ndarray of int
-        State per site, negative where masked.
+        State per site, negative where masked; any integer dtype.
     mask : (n_rods, n_sites) ndarray of bool, optional
 
     Returns
@@ -332,25 +382,99 @@ def decoded_runs(paths, mask=None) -> RunLengths:
     RunLengths
     """
     p = _masked_paths(paths, mask)
+    n = _count_runs(p)
+    rod = np.empty(n, np.int64)
+    start = np.empty(n, np.int64)
+    length = np.empty(n, np.int64)
+    state = np.empty(n, np.int64)
+    left = np.empty(n, np.bool_)
+    right = np.empty(n, np.bool_)
+    _fill_runs(p, rod, start, length, state, left, right)
+    return RunLengths(rod=rod, start=start, length=length, state=state, left_truncated=left,
+                      right_truncated=right)
+
+
+@numba.njit(cache=True, nogil=True)
+def _count_runs(p):
+    """Number of runs of non-negative states in the paths (a masked site ends a run)."""
     n_rods, n_sites = p.shape
-    w = n_sites + 2
-    pad = np.full((n_rods, w), -1, dtype=np.int64)
-    pad[:, 1:-1] = p
-    flat = pad.ravel()
-    change = np.flatnonzero(flat[1:] != flat[:-1]) + 1
-    starts = np.concatenate([[0], change])
-    ends = np.concatenate([change, [flat.size]])
-    vals = flat[starts]
-    keep = vals >= 0
-    s, e, v = starts[keep], ends[keep], vals[keep]
-    return RunLengths(
-        rod=s // w,
-        start=s % w - 1,
-        length=e - s,
-        state=v,
-        left_truncated=flat[s - 1] < 0,
-        right_truncated=flat[e] < 0,
-    )
+    n = 0
+    for r in range(n_rods):
+        s = 0
+        while s < n_sites:
+            v = p[r, s]
+            e = s + 1
+            while e < n_sites and p[r, e] == v:
+                e += 1
+            if v >= 0:
+                n += 1
+            s = e
+    return n
+
+
+@numba.njit(cache=True, nogil=True)
+def _fill_runs(p, rod, start, length, state, left, right):
+    """Write rod, start, length, state and the truncation flags of every run, in path order."""
+    n_rods, n_sites = p.shape
+    q = 0
+    for r in range(n_rods):
+        s = 0
+        while s < n_sites:
+            v = p[r, s]
+            e = s + 1
+            while e < n_sites and p[r, e] == v:
+                e += 1
+            if v >= 0:
+                rod[q] = r
+                start[q] = s
+                length[q] = e - s
+                state[q] = v
+                left[q] = s == 0 or p[r, s - 1] < 0
+                right[q] = e == n_sites or p[r, e] < 0
+                q += 1
+            s = e
+
+
+@numba.njit(cache=True, nogil=True)
+def _run_histograms(p, n_states):
+    """Run-length tables per state straight from the paths, without listing the runs.
+
+    Returns ``complete`` (K, n_sites + 1) counts of complete runs by length, ``seen`` (K,
+    n_sites + 1) counts of runs whose start was seen by their length (complete runs) or length - 1
+    (runs cut at their end), ``n_runs``, ``n_truncated``, ``sum_complete`` (K,) and the longest
+    run. States at or above ``n_states`` are skipped.
+    """
+    n_rods, n_sites = p.shape
+    complete = np.zeros((n_states, n_sites + 1), np.int64)
+    seen = np.zeros((n_states, n_sites + 1), np.int64)
+    n_runs = np.zeros(n_states, np.int64)
+    n_trunc = np.zeros(n_states, np.int64)
+    sum_complete = np.zeros(n_states, np.int64)
+    top = 0
+    for r in range(n_rods):
+        s = 0
+        while s < n_sites:
+            v = np.int64(p[r, s])
+            e = s + 1
+            while e < n_sites and p[r, e] == v:
+                e += 1
+            if v >= 0:
+                ln = e - s
+                if ln > top:
+                    top = ln
+                if v < n_states:
+                    left = s == 0 or p[r, s - 1] < 0
+                    right = e == n_sites or p[r, e] < 0
+                    n_runs[v] += 1
+                    if left or right:
+                        n_trunc[v] += 1
+                    else:
+                        complete[v, ln] += 1
+                        sum_complete[v] += ln
+                    if not left:
+                        seen[v, ln - 1 if right else ln] += 1
+            s = e
+    return complete, seen, n_runs, n_trunc, sum_complete, top
 
 
 def run_length_distribution(runs: RunLengths, n_states: int, transmat=None, composition=None,
@@ -384,25 +508,57 @@ def run_length_distribution(runs: RunLengths, n_states: int, transmat=None, comp
         (biased short by truncation), ``pmf_independent``, ``sf_independent``, ``pmf_chain``,
         ``sf_chain`` (arrays over ``length``; NaN when the law is not given).
     """
-    out = {}
-    top = int(runs.length.max(initial=1)) if max_length is None else int(max_length)
-    top = max(top, 1)
-    ell = np.arange(1, top + 1)
-    for k in range(int(n_states)):
-        sel = runs.state == k
+    k = int(n_states)
+    top = int(runs.length.max(initial=1))
+    width = top + 1
+    complete = np.zeros((k, width), np.int64)
+    seen = np.zeros((k, width), np.int64)
+    n_runs = np.zeros(k, np.int64)
+    n_trunc = np.zeros(k, np.int64)
+    sum_complete = np.zeros(k, np.int64)
+    comp_all = runs.complete
+    for s in range(k):
+        sel = runs.state == s
         ln = runs.length[sel]
-        comp = runs.complete[sel]
+        comp = comp_all[sel]
         start_seen = ~runs.left_truncated[sel]
-        n_complete = np.bincount(np.minimum(ln[comp], top + 1), minlength=top + 2)[1:top + 1].astype(float)
-        nc_tot = float(comp.sum())
-        # Kaplan-Meier over runs with a seen start: events = complete runs, censored = right cut
-        lk = ln[start_seen]
-        ev = comp[start_seen]
+        complete[s] = np.bincount(ln[comp], minlength=width)[:width]
         # a run cut after c sites is known to have lasted at least c sites, i.e. not to have
         # ended at 1..c-1: it is at risk for lengths below c only
-        d = np.bincount(np.minimum(lk[ev], top + 1), minlength=top + 2)[1:top + 1].astype(float)
-        eff = np.where(ev, lk, lk - 1)
-        allc = np.bincount(np.minimum(eff, top + 1), minlength=top + 2)[1:].astype(float)
+        eff = np.where(comp, ln, ln - 1)[start_seen]
+        seen[s] = np.bincount(eff, minlength=width)[:width]
+        n_runs[s] = int(sel.sum())
+        n_trunc[s] = int((~comp).sum())
+        sum_complete[s] = int(ln[comp].sum())
+    return _run_length_tables(complete, seen, n_runs, n_trunc, sum_complete, top, k, transmat,
+                              composition, max_length)
+
+
+def _run_length_tables(complete, seen, n_runs, n_trunc, sum_complete, longest, n_states, transmat,
+                       composition, max_length) -> dict:
+    """The dict of :func:`run_length_distribution` from per-state run-length counts.
+
+    ``complete[k, l]`` counts complete runs of length l, ``seen[k, l]`` runs with a seen start that
+    lasted at least l sites and ended at l (complete, or cut after l + 1 sites); both cover every
+    length that occurs (index 0..longest).
+    """
+    top = max(int(longest), 1) if max_length is None else max(int(max_length), 1)
+    ell = np.arange(1, top + 1)
+    out = {}
+
+    def part(h, lo, hi):  # h[lo:hi] padded with zeros beyond its end
+        v = np.zeros(hi - lo, np.int64)
+        seg = h[lo:hi]
+        v[:seg.size] = seg
+        return v
+
+    for k in range(int(n_states)):
+        n_complete = part(complete[k], 1, top + 1).astype(float)
+        nc_tot = float(complete[k].sum())
+        # Kaplan-Meier over runs with a seen start: events = complete runs, censored = right cut;
+        # every complete run has a seen start, so the events are the complete runs
+        d = n_complete
+        allc = np.append(part(seen[k], 1, top + 1), seen[k][top + 1:].sum()).astype(float)
         at_risk = np.cumsum(allc[::-1])[::-1][:top]
         with np.errstate(divide="ignore", invalid="ignore"):
             hazard = np.where(at_risk > 0, d / np.maximum(at_risk, 1.0), 0.0)
@@ -414,9 +570,9 @@ def run_length_distribution(runs: RunLengths, n_states: int, transmat=None, comp
             "n_complete": n_complete,
             "pmf_complete": n_complete / nc_tot if nc_tot > 0 else np.full(top, np.nan),
             "km_survival": km,
-            "n_runs": int(sel.sum()),
-            "n_truncated": int((~comp).sum()),
-            "mean_complete_sites": float(ln[comp].mean()) if nc_tot > 0 else float("nan"),
+            "n_runs": int(n_runs[k]),
+            "n_truncated": int(n_trunc[k]),
+            "mean_complete_sites": float(sum_complete[k]) / nc_tot if nc_tot > 0 else float("nan"),
             "pmf_independent": pmf_i,
             "sf_independent": sf_i,
             "pmf_chain": pmf_c,
@@ -466,33 +622,59 @@ def _runs_per_rod(paths, n_states: int, mask=None):
     Returns three (n_rods, K) arrays.
     """
     p = _masked_paths(paths, mask)
-    n_rods, n_sites = p.shape
-    v = p >= 0
-    seg_start = v.copy()
-    seg_start[:, 1:] &= ~v[:, :-1]
-    seg_id = np.cumsum(seg_start.ravel()).reshape(p.shape) - 1
-    n_seg = int(seg_start.sum())
     k = int(n_states)
-    r_out = np.zeros((n_rods, k))
-    e_out = np.zeros((n_rods, k))
-    v_out = np.zeros((n_rods, k))
-    if n_seg == 0:
-        return r_out, e_out, v_out
-    seg_rod = np.broadcast_to(np.arange(n_rods)[:, None], p.shape)[seg_start]
-    sid = seg_id[v]
-    n_tot = np.bincount(sid, minlength=n_seg).astype(float)
-    both = v[:, :-1] & v[:, 1:]
-    pair_seg = seg_id[:, :-1][both]
-    for s in range(k):
-        b = p == s
-        n1 = np.bincount(sid, weights=b[v].astype(float), minlength=n_seg)
-        ch = (b[:, :-1] != b[:, 1:])[both]
-        r = 1.0 + np.bincount(pair_seg, weights=ch.astype(float), minlength=n_seg)
-        mean, var = runs_expectation(n1, n_tot - n1)
-        r_out[:, s] = np.bincount(seg_rod, weights=r, minlength=n_rods)
-        e_out[:, s] = np.bincount(seg_rod, weights=mean, minlength=n_rods)
-        v_out[:, s] = np.bincount(seg_rod, weights=var, minlength=n_rods)
+    r_out = np.zeros((p.shape[0], k))
+    e_out = np.zeros((p.shape[0], k))
+    v_out = np.zeros((p.shape[0], k))
+    _runs_kernel(p, k, r_out, e_out, v_out)
     return r_out, e_out, v_out
+
+
+@numba.njit(cache=True, nogil=True)
+def _runs_kernel(p, k, r_out, e_out, v_out):
+    """Add R, E and V (as :func:`runs_expectation`) of every stretch of unmasked sites to its rod.
+
+    Stretches are added in site order, the same order of floating-point sums as a bincount over
+    stretches.
+    """
+    n_rods, n_sites = p.shape
+    n1 = np.zeros(k, np.int64)
+    ch = np.zeros(k, np.int64)
+    for r in range(n_rods):
+        s = 0
+        while s < n_sites:
+            if p[r, s] < 0:
+                s += 1
+                continue
+            n1[:] = 0
+            ch[:] = 0
+            prev = np.int64(-1)
+            e = s
+            while e < n_sites and p[r, e] >= 0:
+                v = np.int64(p[r, e])
+                if v < k:
+                    n1[v] += 1
+                if e > s and v != prev:
+                    if v < k:
+                        ch[v] += 1
+                    if prev < k:
+                        ch[prev] += 1
+                prev = v
+                e += 1
+            n_tot = float(e - s)
+            for q in range(k):
+                a = float(n1[q])
+                b = n_tot - a
+                n = a + b
+                t = 2.0 * a * b
+                mean = t / max(n, 1.0) + 1.0 if n > 0 else 0.0
+                var = t * (t - n) / (n * n * max(n - 1.0, 1.0)) if n > 1 else 0.0
+                if var < 0.0:
+                    var = 0.0
+                r_out[r, q] += 1.0 + float(ch[q])
+                e_out[r, q] += mean
+                v_out[r, q] += var
+            s = e
 
 
 def _z_from_sums(r, e, v):
@@ -626,33 +808,158 @@ class RodAgreement:
 
 def _lag_sums(x, m, i, j, lags, probabilities: bool = False):
     """Per pair and linear lag: centred sums (cxy, cxx, cyy), and, for posterior probabilities,
-    the summed posterior variances (sum x(1-x) of each rod); (P, n_lags, 5), and counts (P, n_lags)."""
+    the summed posterior variances (sum x(1-x) of each rod); (P, n_lags, 5), and counts (P, n_lags).
+
+    Only sites unmasked in both rods count; ``x`` may be float32 or float64 (sums in float64). The
+    sums over sites follow numpy's pairwise summation (:func:`_pairwise_plan`), so they equal
+    ``(a * b).sum(axis=1)`` on the masked (n_pairs, n_sites) arrays without building them.
+    """
+    i = np.asarray(i, dtype=np.int64)
+    j = np.asarray(j, dtype=np.int64)
+    lags = np.asarray(lags, dtype=np.int64)
     n_sites = x.shape[1]
     out = np.zeros((len(i), len(lags), 5))
     cnt = np.zeros((len(i), len(lags)))
-    for li, d in enumerate(lags):
-        if abs(d) >= n_sites:
-            continue
-        if d >= 0:
-            sl_a, sl_b = slice(0, n_sites - d), slice(d, n_sites)
+    if len(i) and n_sites:
+        plans = [_pairwise_plan(n_sites - abs(int(d))) if abs(int(d)) < n_sites else np.zeros((0, 2), np.int64)
+                 for d in lags]
+        start = np.concatenate([[0], np.cumsum([len(q) for q in plans])]).astype(np.int64)
+        _lag_sums_kernel(x, m, i, j, lags, bool(probabilities), np.concatenate(plans), start, out, cnt)
+    return out, cnt
+
+
+def _pairwise_plan(n: int) -> np.ndarray:
+    """The order of numpy's pairwise summation of n values, as a post-order program.
+
+    numpy sums a contiguous run of n values by halving it (the first half rounded down to a
+    multiple of 8) until a piece has at most 128 values, sums each such piece with 8 interleaved
+    partial sums (fewer than 8 values: one running sum), and adds the two halves. Rows ``(lo, len)``
+    are pieces in order; ``(-1, 0)`` adds the last two results.
+    """
+    ops = []
+    todo = [(0, int(n), False)]
+    while todo:
+        lo, k, expanded = todo.pop()
+        if k <= 128:
+            ops.append((lo, k))
+        elif expanded:
+            ops.append((-1, 0))
         else:
-            sl_a, sl_b = slice(-d, n_sites), slice(0, n_sites + d)
-        xa, ma = x[i, sl_a], m[i, sl_a]
-        xb, mb = x[j, sl_b], m[j, sl_b]
-        mm = ma & mb
-        xa = np.where(mm, xa, 0.0)
-        xb = np.where(mm, xb, 0.0)
-        n = mm.sum(axis=1).astype(float)
-        sx, sy = xa.sum(1), xb.sum(1)
-        nn = np.maximum(n, 1.0)
-        out[:, li, 0] = (xa * xb).sum(1) - sx * sy / nn
-        out[:, li, 1] = (xa * xa).sum(1) - sx * sx / nn
-        out[:, li, 2] = (xb * xb).sum(1) - sy * sy / nn
-        if probabilities:
-            out[:, li, 3] = (xa * (1.0 - xa)).sum(1)
-            out[:, li, 4] = (xb * (1.0 - xb)).sum(1)
-        cnt[:, li] = n
-    return np.maximum(out, [-np.inf, 0.0, 0.0, 0.0, 0.0]), cnt
+            k2 = k // 2
+            k2 -= k2 % 8
+            todo.append((lo, k, True))
+            todo.append((lo + k2, k - k2, False))
+            todo.append((lo, k2, False))
+    return np.array(ops, dtype=np.int64).reshape(-1, 2)
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _piece_sum(a, n):
+    """numpy's sum of a[0:n] for n <= 128 (8 interleaved partial sums; unsigned indices let the
+    compiler vectorise the loop without changing the order of operations)."""
+    if n < 8:
+        res = 0.0
+        for s in range(n):
+            res += a[s]
+        return res
+    r0, r1, r2, r3 = a[0], a[1], a[2], a[3]
+    r4, r5, r6, r7 = a[4], a[5], a[6], a[7]
+    top = n - n % 8
+    for q in range(1, top // 8):
+        b = np.uint64(8 * q)
+        r0 += a[b]
+        r1 += a[b + np.uint64(1)]
+        r2 += a[b + np.uint64(2)]
+        r3 += a[b + np.uint64(3)]
+        r4 += a[b + np.uint64(4)]
+        r5 += a[b + np.uint64(5)]
+        r6 += a[b + np.uint64(6)]
+        r7 += a[b + np.uint64(7)]
+    res = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
+    for s in range(top, n):
+        res += a[s]
+    return res
+
+
+@numba.njit(cache=True, nogil=True)
+def _lag_sums_kernel(x, m, i, j, lags, probs, plans, start, out, cnt):
+    """Fill out (P, L, 5) and cnt (P, L) of :func:`_lag_sums`, one pair at a time."""
+    n_sites = x.shape[1]
+    xa = np.empty(n_sites)
+    xb = np.empty(n_sites)
+    fa = np.empty(n_sites)
+    fb = np.empty(n_sites)
+    ia = np.empty(n_sites, np.int64)
+    ib = np.empty(n_sites, np.int64)
+    t = np.empty((7, 128))
+    vals = np.empty((64, 7))
+    n_terms = 7 if probs else 5
+    for p in range(len(i)):
+        a = i[p]
+        b = j[p]
+        # the two rods with masked sites zeroed, and their masks as 0/1
+        for s in range(n_sites):
+            ua = m[a, s]
+            ub = m[b, s]
+            xa[s] = np.float64(x[a, s]) if ua else 0.0
+            xb[s] = np.float64(x[b, s]) if ub else 0.0
+            fa[s] = 1.0 if ua else 0.0
+            fb[s] = 1.0 if ub else 0.0
+            ia[s] = 1 if ua else 0
+            ib[s] = 1 if ub else 0
+        for li in range(len(lags)):
+            if start[li] == start[li + 1]:
+                continue
+            d = lags[li]
+            sa = 0 if d >= 0 else -d
+            sb = d if d >= 0 else 0
+            ln = n_sites - abs(d)
+            n = 0
+            for s in range(ln):
+                n += ia[sa + s] * ib[sb + s]
+            # value terms at sites used by both rods (0 elsewhere), summed piece by piece
+            top = 0
+            for k in range(start[li], start[li + 1]):
+                lo = plans[k, 0]
+                if lo < 0:
+                    top -= 1
+                    for c in range(n_terms):
+                        vals[top - 1, c] = vals[top - 1, c] + vals[top, c]
+                    continue
+                ln_k = plans[k, 1]
+                ua = np.uint64(sa + lo)
+                ub = np.uint64(sb + lo)
+                for s in range(np.uint64(ln_k)):
+                    u = xa[ua + s] * fb[ub + s]
+                    v = xb[ub + s] * fa[ua + s]
+                    t[0, s] = u
+                    t[1, s] = v
+                    t[2, s] = u * v
+                    t[3, s] = u * u
+                    t[4, s] = v * v
+                    t[5, s] = u * (1.0 - u)
+                    t[6, s] = v * (1.0 - v)
+                for c in range(n_terms):
+                    vals[top, c] = _piece_sum(t[c], ln_k)
+                top += 1
+            # numpy adds the row sum to the identity 0.0
+            sx = 0.0 + vals[0, 0]
+            sy = 0.0 + vals[0, 1]
+            sxy = 0.0 + vals[0, 2]
+            sxx = 0.0 + vals[0, 3]
+            syy = 0.0 + vals[0, 4]
+            nn = max(float(n), 1.0)
+            out[p, li, 0] = sxy - sx * sy / nn
+            c0 = sxx - sx * sx / nn
+            out[p, li, 1] = c0 if not c0 < 0.0 else 0.0
+            c0 = syy - sy * sy / nn
+            out[p, li, 2] = c0 if not c0 < 0.0 else 0.0
+            if probs:
+                c0 = 0.0 + vals[0, 5]
+                out[p, li, 3] = c0 if not c0 < 0.0 else 0.0
+                c0 = 0.0 + vals[0, 6]
+                out[p, li, 4] = c0 if not c0 < 0.0 else 0.0
+            cnt[p, li] = n
 
 
 def _corr_from_sums(s):
@@ -663,8 +970,8 @@ def _corr_from_sums(s):
 
 
 def _rod_ffts(x, m):
-    """Real FFTs along sites of the masked values, their squares and the mask, per rod."""
-    a = np.where(m, x, 0.0)
+    """Real FFTs along sites of the masked values, their squares and the mask, per rod (float64)."""
+    a = np.where(m, np.asarray(x, dtype=np.float64), 0.0)
     return np.fft.rfft(a, axis=1), np.fft.rfft(a * a, axis=1), np.fft.rfft(m.astype(float), axis=1)
 
 
@@ -722,30 +1029,168 @@ def _centred(raw):
     return np.stack([cxy, cxx, cyy], axis=-1)
 
 
-def _circular_centred(x, m, i, j, chunk: int = 256):
-    """Centred circular cross sums (P, n_sites, 3) for every shift, computed in chunks of pairs."""
-    out = np.empty((len(i), x.shape[1], 3))
-    ffts = _rod_ffts(x, m)
-    for c0 in range(0, len(i), chunk):
-        sl = slice(c0, c0 + chunk)
-        out[sl] = _centred(_circular_raw(x, m, i[sl], j[sl], ffts))
-    return out
+def _pair_block_size(n_sites: int) -> int:
+    """Neighbour pairs per block of the circular null: about ``_BLOCK_BYTES`` of temporaries."""
+    # per pair, in float64 words of n_sites: 6 circular sums, 6 gathered half spectra and one
+    # cross spectrum (complex, n_sites // 2 + 1 each), and for up to 2 rods 3 spectra and 3 inputs
+    per_pair = 8 * n_sites * (6 + 6 + 1 + 2 * 3 + 2 * 3)
+    return int(max(8, min(4096, _BLOCK_BYTES // max(per_pair, 1))))
 
 
-def _shift_null(cen, lags, n_null, tmin, rng):
-    """Null statistics: each pair's second rod shifted by its own random offset in [tmin, n - tmin]."""
-    p, n, _ = cen.shape
-    flat = cen.reshape(p * n, 3)
-    base = (np.arange(p) * n)[None, :, None]
-    null = np.empty(int(n_null))
+def _shift_null(x, m, i, j, lags, n_null, tmin, rng):
+    """Null statistics: each pair's second rod shifted by its own random offset in [tmin, n - tmin].
+
+    The circular cross sums of every shift (:func:`_circular_raw`) are computed for a block of
+    pairs at a time and only the shifted lags drawn for each replicate are kept, summed over the
+    pairs in pair order; the random offsets are drawn first, in the same calls and order as
+    replicate chunks of ``4e6 / (3 n_pairs n_lags)`` replicates.
+    """
+    p = len(i)
+    n = x.shape[1]
+    n_null = int(n_null)
+    lags = np.asarray(lags, dtype=np.int64)
+    shifts = np.empty((p, n_null), dtype=np.int32 if n < 2**31 - 64 else np.int64)
     chunk = max(1, int(4e6 // max(1, p * len(lags) * 3)))
-    for c0 in range(0, int(n_null), chunk):
-        c1 = min(int(n_null), c0 + chunk)
-        shift = rng.integers(tmin, n - tmin + 1, size=(c1 - c0, p, 1))
-        idx = base + (shift + lags[None, None, :]) % n  # (c, P, L)
-        cs = flat[idx].sum(axis=1)  # (c, L, 3)
-        null[c0:c1] = np.nanmax(_corr_from_sums(cs), axis=1)
-    return null
+    for c0 in range(0, n_null, chunk):
+        c1 = min(n_null, c0 + chunk)
+        shifts[:, c0:c1] = rng.integers(tmin, n - tmin + 1, size=(c1 - c0, p, 1))[:, :, 0].T
+    acc = np.zeros((n_null, len(lags), 3))
+    block = _pair_block_size(n)
+    nf = n // 2 + 1
+    bmax = min(block, p)
+    raw = np.empty((6, bmax, n))
+    spec_i = np.empty((3, bmax, nf), dtype=np.complex128)  # conj spectra of the first rods
+    spec_j = np.empty((3, bmax, nf), dtype=np.complex128)  # spectra of the second rods
+    cross = np.empty((bmax, nf), dtype=np.complex128)
+    for b0 in range(0, p, block):
+        b1 = min(p, b0 + block)
+        nb = b1 - b0
+        rods, inv = np.unique(np.concatenate([i[b0:b1], j[b0:b1]]), return_inverse=True)
+        ii, jj = inv[:nb], inv[nb:]
+        for c, f in enumerate(_rod_ffts(x[rods], m[rods])):  # values, squares, mask
+            np.take(f, ii, axis=0, out=spec_i[c, :nb])
+            np.conjugate(spec_i[c, :nb], out=spec_i[c, :nb])
+            np.take(f, jj, axis=0, out=spec_j[c, :nb])
+        # the six sums of _circular_raw (N, Sx, Sy, Sxx, Syy, Sxy) for every shift of each pair
+        for c, (u, v) in enumerate(((2, 2), (0, 2), (2, 0), (1, 2), (2, 1), (0, 0))):
+            np.multiply(spec_i[u, :nb], spec_j[v, :nb], out=cross[:nb])
+            np.fft.irfft(cross[:nb], n=n, axis=1, out=raw[c, :nb])
+        np.rint(raw[0, :nb], out=raw[0, :nb])
+        _null_accumulate(raw, nb, shifts[b0:b1], lags, acc)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmax(_corr_from_sums(acc), axis=1)
+
+
+@numba.njit(cache=True, nogil=True)
+def _null_accumulate(raw, n_pairs, shifts, lags, acc):
+    """Add the centred circular sums (:func:`_centred`) of each pair at its drawn shift + lag.
+
+    raw[:, :n_pairs] (6, n_pairs, n) holds N, Sx, Sy, Sxx, Syy, Sxy of every circular shift of each
+    pair of the block, shifts (n_pairs, n_null) the drawn offsets; acc (n_null, n_lags, 3) is summed
+    over pairs in order.
+    """
+    n = raw.shape[2]
+    n_null = shifts.shape[1]
+    for q in range(n_pairs):
+        r_n, r_sx, r_sy = raw[0, q], raw[1, q], raw[2, q]
+        r_sxx, r_syy, r_sxy = raw[3, q], raw[4, q], raw[5, q]
+        for r in range(n_null):
+            s = shifts[q, r]
+            a = acc[r]
+            for li in range(len(lags)):
+                t = s + lags[li]
+                if t >= n:
+                    t -= n
+                elif t < 0:
+                    t += n
+                nn = r_n[t]
+                if nn < 1.0:
+                    nn = 1.0
+                sx = r_sx[t]
+                sy = r_sy[t]
+                cxy = r_sxy[t] - sx * sy / nn
+                cxx = r_sxx[t] - sx * sx / nn
+                cyy = r_syy[t] - sy * sy / nn
+                a[li, 0] += cxy
+                a[li, 1] += cxx if not cxx < 0.0 else 0.0
+                a[li, 2] += cyy if not cyy < 0.0 else 0.0
+
+
+@numba.njit(cache=True, nogil=True)
+def _check_values(x, mask):
+    """(all values at unmasked sites in [0, 1], all of them finite)."""
+    probs = True
+    finite = True
+    n_rods, n_sites = x.shape
+    for r in range(n_rods):
+        for s in range(n_sites):
+            if mask[r, s]:
+                v = np.float64(x[r, s])
+                if not math.isfinite(v):
+                    finite = False
+                elif not (v >= 0.0 and v <= 1.0):
+                    probs = False
+    return probs, finite
+
+
+@numba.njit(cache=True, nogil=True)
+def _finite_mask(x, mask, out):
+    """out = mask & isfinite(x)."""
+    n_rods, n_sites = x.shape
+    for r in range(n_rods):
+        for s in range(n_sites):
+            out[r, s] = mask[r, s] and math.isfinite(np.float64(x[r, s]))
+
+
+@numba.njit(cache=True, nogil=True)
+def _pair_confusion(st, mask, i, j, conf):
+    """conf[p, a, b] += 1 for each site where rod i[p] is in state a and rod j[p] in b (both used)."""
+    n_sites = st.shape[1]
+    for p in range(len(i)):
+        a = i[p]
+        b = j[p]
+        for s in range(n_sites):
+            if mask[a, s] and mask[b, s]:
+                u = np.int64(st[a, s])
+                w = np.int64(st[b, s])
+                if u >= 0 and w >= 0:
+                    conf[p, u, w] += 1.0
+
+
+@numba.njit(cache=True, nogil=True)
+def _masked_max(st, mask):
+    """Largest state at the sites where mask is set (-1 when there are none)."""
+    top = -1
+    n_rods, n_sites = st.shape
+    for r in range(n_rods):
+        for s in range(n_sites):
+            if mask[r, s] and st[r, s] > top:
+                top = np.int64(st[r, s])
+    return top
+
+
+@numba.njit(cache=True, nogil=True)
+def _pick_sums(ps, pick, out):
+    """out = ps[pick, :, :3].sum(axis=0), summed in the order of pick."""
+    out[:] = 0.0
+    for q in range(len(pick)):
+        row = pick[q]
+        for li in range(ps.shape[1]):
+            for c in range(3):
+                out[li, c] += ps[row, li, c]
+
+
+def _as_values(values) -> np.ndarray:
+    """Per-site values as a 2-D array the kernels read: float32/float64 kept (views stay views)."""
+    x = np.asarray(values)
+    if x.dtype == np.float32 or x.dtype == np.float64:
+        return x
+    if x.dtype.kind == "b":
+        return x.view(np.uint8) if x.dtype.itemsize == 1 else x.astype(np.uint8)
+    if x.dtype.kind in "iu" and x.dtype.itemsize <= 2 or x.dtype == np.float16:
+        return x.astype(np.float32)
+    return np.asarray(x, dtype=np.float64)
 
 
 def rod_agreement(values, mask, neighbours, metal: int = 0, states=None, n_states: int | None = None,
@@ -768,13 +1213,15 @@ def rod_agreement(values, mask, neighbours, metal: int = 0, states=None, n_state
     Parameters
     ----------
     values : (n_rods, n_sites) ndarray of float
-        Per-site value to correlate, e.g. the posterior probability of the least abundant metal.
+        Per-site value to correlate, e.g. the posterior probability of the least abundant metal;
+        float32 or float64 (a strided view such as ``posteriors[:, :, k]`` is read without a
+        copy; sums are taken in float64), or bool/integer indicators.
     mask : (n_rods, n_sites) ndarray of bool
     neighbours : (n_pairs, 2) ndarray of int
     metal : int
         Recorded as the metal the values refer to.
     states : (n_rods, n_sites) ndarray of int, optional
-        Decoded states, for Cohen's kappa.
+        Decoded states (any integer dtype, negative where masked), for Cohen's kappa.
     n_states : int, optional
         Number of states for kappa; from ``states`` when omitted.
     max_lag : int, sites
@@ -786,17 +1233,34 @@ def rod_agreement(values, mask, neighbours, metal: int = 0, states=None, n_state
     RodAgreement
     """
     rng = np.random.default_rng(rng)
-    x = np.asarray(values, dtype=float)
-    m = np.asarray(mask, dtype=bool) & np.isfinite(x)
-    x = np.where(m, x, 0.0)
+    x = _as_values(values)
+    if x.ndim != 2:
+        raise InputError(f"values must be (n_rods, n_sites), got shape {x.shape}")
+    mask = np.asarray(mask, dtype=bool)
+    if mask.shape != x.shape:
+        raise InputError(f"mask shape {mask.shape} does not match values {x.shape}")
+    if states is not None:
+        st = _signed_states(np.asarray(states))
+        if st.shape != mask.shape:
+            raise InputError(f"states shape {st.shape} does not match mask {mask.shape}")
+        top = int(_masked_max(st, mask))
+        k = max(top, 0) + 1 if n_states is None else int(n_states)
+        if top >= k:
+            raise InputError(f"states hold state {top}, expected states below n_states={k}")
+    # sites used: unmasked with a finite value; x itself is never copied (masked sites are skipped)
+    probs, finite = _check_values(x, mask)
+    probs = bool(probs)
+    m = mask
+    if not finite:
+        m = np.empty(x.shape, dtype=bool)
+        _finite_mask(x, mask, m)
     nb = np.asarray(neighbours, dtype=np.int64).reshape(-1, 2)
     n_rods, n_sites = x.shape
     if nb.size and (nb.min() < 0 or nb.max() >= n_rods):
         raise InputError(f"neighbours refer to rods outside 0..{n_rods - 1}")
     nb = nb[nb[:, 0] != nb[:, 1]]
     lags = np.arange(-int(max_lag), int(max_lag) + 1)
-    i, j = nb[:, 0], nb[:, 1]
-    probs = bool(np.all((x >= 0.0) & (x <= 1.0)))
+    i, j = np.ascontiguousarray(nb[:, 0]), np.ascontiguousarray(nb[:, 1])
     sums, cnt = _lag_sums(x, m, i, j, lags, probabilities=probs)
     tot = sums.sum(axis=0)
     corr_lags = _corr_from_sums(tot)
@@ -812,7 +1276,7 @@ def rod_agreement(values, mask, neighbours, metal: int = 0, states=None, n_state
     if len(nb) and n_null > 0 and n_sites - 2 * tmin >= 0 and np.isfinite(stat):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)
-            null = _shift_null(_circular_centred(x, m, i, j), lags, n_null, tmin, rng)
+            null = _shift_null(x, m, i, j, lags, n_null, tmin, rng)
     ok = np.isfinite(null)
     p_value = float((1 + np.sum(null[ok] >= stat)) / (1 + ok.sum())) if ok.any() else float("nan")
     null_mean = float(null[ok].mean()) if ok.any() else float("nan")
@@ -826,11 +1290,13 @@ def rod_agreement(values, mask, neighbours, metal: int = 0, states=None, n_state
             ps, _ = _lag_sums(x, m, pool[:, 0], pool[:, 1], lags)
             corr_nn = float(_corr_from_sums(ps[:, zero].sum(axis=0)))
             nn_null = np.empty(min(int(n_null), 999) if n_null > 0 else 0)
+            picked = np.empty((len(lags), 3))
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", RuntimeWarning)
                 for r in range(len(nn_null)):
                     pick = rng.integers(0, len(pool), size=len(nb))
-                    nn_null[r] = np.nanmax(_corr_from_sums(ps[pick].sum(axis=0)))
+                    _pick_sums(ps, pick, picked)
+                    nn_null[r] = np.nanmax(_corr_from_sums(picked))
             okn = np.isfinite(nn_null)
             if okn.any():
                 p_nn = float((1 + np.sum(nn_null[okn] >= stat)) / (1 + okn.sum()))
@@ -841,13 +1307,8 @@ def rod_agreement(values, mask, neighbours, metal: int = 0, states=None, n_state
         conf = np.zeros((len(nb), k, k))
         kappa = float("nan")
     else:
-        st = _masked_paths(states, mask)
-        k = int(st.max(initial=0)) + 1 if n_states is None else int(n_states)
-        a, b = st[i], st[j]
-        both = (a >= 0) & (b >= 0)
-        pid = np.broadcast_to(np.arange(len(nb))[:, None], a.shape)[both]
-        code = (pid * k + a[both]) * k + b[both]
-        conf = np.bincount(code, minlength=len(nb) * k * k).reshape(len(nb), k, k).astype(float)
+        conf = np.zeros((len(nb), k, k))
+        _pair_confusion(st, mask, i, j, conf)
         kappa = float(_kappa(conf.sum(axis=0)))
     return RodAgreement(
         metal=int(metal), lags=lags, corr_lags=corr_lags, corr=float(corr_lags[zero]),
@@ -1081,9 +1542,12 @@ def statistics_from_arrays(*, per_rod_transitions, per_rod_occupancy, metals, pi
     pitch_nm : float, nm
         Site pitch along the rods.
     viterbi : (n_rods, n_sites) ndarray of int, optional
-        Decoded states, -1 at masked sites; from ``posteriors`` when omitted.
+        Decoded states, -1 at masked sites, of any integer dtype (int8 and int16 are used as
+        they are); from ``posteriors`` when omitted.
     posteriors : (n_rods, n_sites, K) ndarray of float, optional
-        Posterior state probabilities; the rod-to-rod correlation uses them when given.
+        Posterior state probabilities, float32 or float64; the rod-to-rod correlation uses them
+        when given. Only the slice of the least abundant metal is read, in its own dtype (sums are
+        taken in float64, so float32 posteriors give the results of their float64 copy).
     mask : (n_rods, n_sites) ndarray of bool, optional
         Sites used; ``viterbi >= 0`` when omitted.
     neighbours : (n_pairs, 2) ndarray of int, optional
@@ -1133,28 +1597,30 @@ def statistics_from_arrays(*, per_rod_transitions, per_rod_occupancy, metals, pi
     rng = np.random.default_rng(random_state)
     notes = []
 
-    post = None if posteriors is None else np.asarray(posteriors, dtype=float)
+    post = None if posteriors is None else np.asarray(posteriors)
+    if post is not None and post.dtype.kind not in "fiub":
+        post = np.asarray(post, dtype=float)
     if post is not None and (post.ndim != 3 or post.shape[0] != n_rods or post.shape[2] != k):
         raise InputError(f"posteriors must be ({n_rods}, n_sites, {k}), got shape {post.shape}")
+    if mask is not None:
+        mask = np.asarray(mask, dtype=bool)
     if viterbi is None:
         if post is None:
             raise InputError("give viterbi or posteriors: the decoded states are needed")
-        vit = np.argmax(post, axis=2)
-        if mask is not None:
-            vit = np.where(np.asarray(mask, bool), vit, -1)
+        vit = _argmax_states(post)
     else:
         vit = np.asarray(viterbi)
     if vit.ndim != 2 or vit.shape[0] != n_rods:
         raise InputError(f"viterbi must be ({n_rods}, n_sites), got shape {vit.shape}")
     if post is not None and post.shape[1] != vit.shape[1]:
         raise InputError(f"posteriors have {post.shape[1]} sites, viterbi {vit.shape[1]}")
-    m = (vit >= 0) if mask is None else np.asarray(mask, dtype=bool)
-    if m.shape != vit.shape:
-        raise InputError(f"mask shape {m.shape} does not match viterbi {vit.shape}")
-    vit = np.where(m, vit.astype(np.int64), -1)
-    if vit.max(initial=-1) >= k:
-        raise InputError(f"viterbi holds state {int(vit.max())}, expected states 0..{k - 1}")
-    m = m & (vit >= 0)
+    if mask is not None and mask.shape != vit.shape:
+        raise InputError(f"mask shape {mask.shape} does not match viterbi {vit.shape}")
+    # decoded states in a small signed dtype, -1 at masked sites; m = the sites used
+    vit, top = _used_states(vit, mask, k, own=viterbi is None)
+    if top >= k:
+        raise InputError(f"viterbi holds state {top}, expected states 0..{k - 1}")
+    m = vit >= 0
 
     # point estimates
     tr_sum = tr.sum(axis=0)
@@ -1199,9 +1665,8 @@ def statistics_from_arrays(*, per_rod_transitions, per_rod_occupancy, metals, pi
     zb, pb = _z_from_sums(w @ r_rod[:, least], w @ e_rod[:, least], w @ v_rod[:, least])
     reps["runs_test.z"], reps["runs_test.p"] = zb, pb
 
-    # run-length distribution of decoded runs
-    runs = decoded_runs(vit)
-    rld = run_length_distribution(runs, k, transmat=p_fit, composition=comp)
+    # run-length distribution of decoded runs (tabulated without listing the runs)
+    rld = _run_length_tables(*_run_histograms(vit, k), k, p_fit, comp, None)
     run_lengths = {metals[s]: d for s, d in rld.items()}
 
     # rod-to-rod agreement
@@ -1210,7 +1675,8 @@ def statistics_from_arrays(*, per_rod_transitions, per_rod_occupancy, metals, pi
         nb = neighbour_pairs(rod_xy_nm)
     rr = None
     if nb is not None and len(nb):
-        vals = post[:, :, least] if post is not None else (vit == least).astype(float)
+        # only the one slice of the posteriors is read (a view, in its own dtype; sums in float64)
+        vals = post[:, :, least] if post is not None else (vit == least)
         rr = rod_agreement(vals, m, nb, metal=least, states=vit, n_states=k, max_lag=max_lag,
                            n_null=n_null, rng=rng)
         est["rod_to_rod.corr"] = rr.corr
@@ -1247,12 +1713,50 @@ def statistics_from_arrays(*, per_rod_transitions, per_rod_occupancy, metals, pi
         notes.append("rod-to-rod agreement on decoded states (no posteriors given)")
 
     return RunStatistics(
-        metals=metals, pitch_nm=pitch, n_rods=int(n_rods), n_sites_used=int(m.sum()),
+        metals=metals, pitch_nm=pitch, n_rods=int(n_rods), n_sites_used=int(np.count_nonzero(m)),
         estimates=est, replicates={key: np.asarray(v, dtype=float) for key, v in reps.items()},
         transmat=p_fit, composition=comp, occupancy=occ_sum, least_abundant=least,
         markov_test=mk, run_lengths=run_lengths, runs_test_per_metal=runs_pm, rod_to_rod=rr,
         n_boot=n_boot, random_state=int(seed) if seed is not None else None, notes=tuple(notes),
     )
+
+
+def _argmax_states(post) -> np.ndarray:
+    """Most probable state per site of (n_rods, n_sites, K) posteriors, in blocks of rods, as a
+    small signed integer array (no full int64 temporary)."""
+    n_rods, n_sites, k = post.shape
+    out = np.empty((n_rods, n_sites), dtype=_state_dtype(k))
+    step = max(1, _BLOCK_BYTES // max(1, 8 * n_sites))
+    for r0 in range(0, n_rods, step):
+        out[r0:r0 + step] = np.argmax(post[r0:r0 + step], axis=2)
+    return out
+
+
+def _used_states(vit, mask, k: int, own: bool = False):
+    """Decoded states with -1 wherever the mask is off or the state is negative, and the largest
+    state at a used site.
+
+    The result has the smallest signed dtype holding ``k`` states; it is ``vit`` itself, changed in
+    place, when ``own`` (the caller made it) and it already has that dtype, else a new array filled
+    in blocks of rods (no full int64 temporary).
+    """
+    dt = _state_dtype(max(int(k), 1))
+    n_rods, n_sites = vit.shape
+    out = vit if (own and vit.dtype == dt) else np.empty(vit.shape, dtype=dt)
+    step = max(1, _BLOCK_BYTES // max(1, 8 * n_sites))
+    top = -1
+    for r0 in range(0, n_rods, step):
+        v = vit[r0:r0 + step]
+        if v.dtype.kind != "i":
+            v = v.astype(np.int64)
+        use = v >= 0
+        if mask is not None:
+            use &= mask[r0:r0 + step]
+        if use.any():
+            top = max(top, int(v[use].max()))
+        if top < k:
+            out[r0:r0 + step] = np.where(use, v, v.dtype.type(-1))
+    return out, top
 
 
 _DECODED_FIELDS = ("transmat", "metals", "pitch_nm", "viterbi", "posteriors", "mask",
@@ -1296,7 +1800,10 @@ def compute_statistics(decoded_like, columns_like=None, n_boot: int = 200, rando
     if vals["per_rod_transitions"] is None or vals["per_rod_occupancy"] is None:
         path = vals["viterbi"]
         if path is None and vals["posteriors"] is not None:
-            path = np.argmax(np.asarray(vals["posteriors"]), axis=2)
+            post = np.asarray(vals["posteriors"])
+            if post.ndim != 3:
+                raise InputError(f"decoding result: posteriors must be (n_rods, n_sites, K), got shape {post.shape}")
+            path = _argmax_states(post)
         if path is None:
             raise InputError("decoding result: no per_rod_transitions/per_rod_occupancy and no decoded states")
         warnings.warn("decoding result has no expected transition counts; counting on the decoded path, "
