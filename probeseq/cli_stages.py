@@ -251,10 +251,9 @@ def decode(
 
 
 def _write_decoded_tables(folder, cols, dec):
-    from .pipeline import RUNS_COLUMNS, RUNS_FORMATS, TRACKS_COLUMNS, TRACKS_FORMATS, _write_table, runs_table, \
-        tracks_table
+    from .pipeline import RUNS_COLUMNS, RUNS_FORMATS, _write_table, runs_table, write_tracks
 
-    _write_table(folder / "tracks.csv", tracks_table(cols, dec), TRACKS_COLUMNS, TRACKS_FORMATS)
+    write_tracks(folder / "tracks.csv", cols, dec)
     _write_table(folder / "runs.csv", runs_table(cols, dec), RUNS_COLUMNS, RUNS_FORMATS)
 
 

@@ -25,7 +25,14 @@ frame), this module
    depth spacing along one rod is ``pitch / sqrt(1 + g . t)``;
 4. sums the per-ion metal weights into ``counts[rod, site, metal]`` with one ``np.bincount`` per
    metal on a flat key, chunk by chunk (:class:`ColumnBinner`), so 1e8 ions stream through bounded
-   memory.
+   memory. The analysis itself counts with the compiled pass of :mod:`probeseq.counting`, which
+   does the same assignment in the same arithmetic (and is checked against this module); the
+   numpy path here is its reference and serves weighted (fractional) channels.
+
+The mask and the specimen outline are computed by compiled loops (:func:`_inside_kernel`,
+:func:`_outline_kernel`) with numpy's definitions (``np.interp``, linear quantiles), so they equal
+the vectorised formulas; slabs without enough ions (a sample read as depth blocks) are skipped and
+the outline is interpolated across them.
 """
 
 from __future__ import annotations
@@ -33,6 +40,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+import numba
 import numpy as np
 
 from .data import RodColumns
@@ -49,6 +57,7 @@ __all__ = [
     "rod_site_depths",
     "rod_neighbours",
     "build_columns",
+    "columns_from_counts",
     "register_lattice",
     "Registration",
     "RESOLVABLE_CROSSTALK",
@@ -173,24 +182,25 @@ class ColumnGeometry:
 
 
 # ---------------------------------------------------------------------- outline
-def _outline(x, y, z, slab_nm, min_per_slab=300):
+def _outline(x, y, z, slab_nm, min_per_slab=300, min_ions=50):
+    """Outline (centre, radius) per depth slab; slabs with fewer than ``min_ions`` ions are left
+    out (a sample read as depth blocks leaves gaps), the outline is interpolated across them."""
     zmin, zmax = float(z.min()), float(z.max())
     n = int(max(1, min(math.ceil((zmax - zmin) / slab_nm), z.size // min_per_slab)))
     edges = np.linspace(zmin, zmax + 1e-9, n + 1)
     slab = np.clip(np.searchsorted(edges, z, side="right") - 1, 0, n - 1)
     order = np.argsort(slab, kind="stable")
     bounds = np.searchsorted(slab[order], np.arange(n + 1))
+    filled = np.flatnonzero(np.diff(bounds) >= min(min_ions, z.size))
+    if filled.size == 0:
+        filled = np.flatnonzero(np.diff(bounds) > 0)
+    n = filled.size
     zc = np.empty(n)
     cen = np.empty((n, 2))
     rad = np.empty(n)
-    for j in range(n):
-        s = order[bounds[j]:bounds[j + 1]]
-        xs, ys = x[s], y[s]
-        cen[j] = (0.5 * (np.percentile(xs, 1) + np.percentile(xs, 99)),
-                  0.5 * (np.percentile(ys, 1) + np.percentile(ys, 99)))
-        r = np.hypot(xs - cen[j, 0], ys - cen[j, 1])
-        rad[j] = np.quantile(r, OUTLINE_QUANTILE) / math.sqrt(OUTLINE_QUANTILE)
-        zc[j] = float(np.median(z[s]))
+    _outline_kernel(np.ascontiguousarray(x, np.float64), np.ascontiguousarray(y, np.float64),
+                    np.ascontiguousarray(z, np.float64), order.astype(np.int64), bounds.astype(np.int64),
+                    filled.astype(np.int64), float(OUTLINE_QUANTILE), zc, cen, rad)
     if n >= 5:
         pad = np.pad(rad, 2, mode="edge")
         rad = np.median(np.lib.stride_tricks.sliding_window_view(pad, 5), axis=1)
@@ -198,6 +208,48 @@ def _outline(x, y, z, slab_nm, min_per_slab=300):
             pc = np.pad(cen[:, a], 2, mode="edge")
             cen[:, a] = np.median(np.lib.stride_tricks.sliding_window_view(pc, 5), axis=1)
     return zc, cen, rad
+
+
+@numba.njit(cache=True, nogil=True)
+def _quantile(a, q):
+    """numpy's default (linear) quantile of a 1-D array, q in [0, 1]; ``a`` is reordered."""
+    n = a.size
+    pos = q * (n - 1)
+    lo = int(math.floor(pos))
+    t = pos - lo
+    p = np.partition(a, lo)
+    lo_v = p[lo]
+    hi_v = lo_v
+    if lo + 1 < n:
+        hi_v = p[lo + 1]
+        for k in range(lo + 2, n):
+            if p[k] < hi_v:
+                hi_v = p[k]
+    d = hi_v - lo_v
+    # numpy's _lerp: a + (b - a) t, computed from the nearer end
+    return hi_v - d * (1.0 - t) if t >= 0.5 else lo_v + d * t
+
+
+@numba.njit(cache=True, nogil=True)
+def _outline_kernel(x, y, z, order, bounds, filled, oq, zc, cen, rad):
+    """Per filled slab: centre from the 1st/99th percentiles of x and y, radius from the ``oq``
+    quantile of the distance to it over sqrt(oq), depth the median z (numpy's definitions)."""
+    for j in range(filled.size):
+        jj = filled[j]
+        a = bounds[jj]
+        b = bounds[jj + 1]
+        idx = order[a:b]
+        xs = x[idx]
+        ys = y[idx]
+        cx = 0.5 * (_quantile(xs, 0.01) + _quantile(xs, 0.99))
+        cy = 0.5 * (_quantile(ys, 0.01) + _quantile(ys, 0.99))
+        r = np.empty(idx.size)
+        for k in range(idx.size):
+            r[k] = math.hypot(x[idx[k]] - cx, y[idx[k]] - cy)
+        cen[j, 0] = cx
+        cen[j, 1] = cy
+        rad[j] = _quantile(r, oq) / math.sqrt(oq)
+        zc[j] = _quantile(z[idx], 0.5)
 
 
 def _site_phase(u, spacing):
@@ -323,8 +375,9 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
     C = lat.cell_matrix
     A = reg.transform
     zmid = 0.5 * (zlo + zhi)
-    reach = float(orad.max()) + np.abs(reg.tilt).max() * (zhi - zlo) + cell
     c_mid = np.array([np.interp(zmid, oz, ocen[:, 0]), np.interp(zmid, oz, ocen[:, 1])])
+    drift = float(np.hypot(*(ocen - c_mid).T).max()) if ocen.size else 0.0
+    reach = float(orad.max()) + np.abs(reg.tilt).max() * (zhi - zlo) + cell + drift
     q0 = np.linalg.solve(A @ C, c_mid - reg.offset_nm - reg.tilt * (zmid - reg.z_ref_nm))
     nr = int(math.ceil(reach / (reg.scale * min(lat.a_nm, lat.b_nm) * math.sin(math.radians(lat.gamma_deg))))) + 2
     ii, jj = np.meshgrid(np.arange(-nr, nr + 1) + int(round(q0[0])), np.arange(-nr, nr + 1) + int(round(q0[1])),
@@ -333,24 +386,29 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
     cells = np.column_stack([np.repeat(ii.ravel(), nb), np.repeat(jj.ravel(), nb), np.tile(np.arange(nb), ii.size)])
     frac = cells[:, :2] + lat.rods_frac[cells[:, 2]]
     xy_ref = reg.lattice_to_recon(frac @ C.T)
+    near = np.hypot(*(xy_ref + reg.tilt * (zmid - reg.z_ref_nm) - c_mid).T) <= reach
+    cells, xy_ref = cells[near], xy_ref[near]
     # axis at each site depth vs outline; site k of a rod through xy0 (z = 0) is at
     # z = site_z[k] - t . xy0 / (1 + |t|^2)
     dz_rod = -((xy_ref - t * reg.z_ref_nm) @ gp) / tt
-    inside = np.zeros((cells.shape[0], site_z.size), bool)
-    for s0 in range(0, site_z.size, 128):
-        zz = site_z[None, s0:s0 + 128] + dz_rod[:, None]  # (n_cand, b)
-        cx = np.interp(zz, oz, ocen[:, 0])
-        cy = np.interp(zz, oz, ocen[:, 1])
-        rz = np.interp(zz, oz, orad)
-        ax = xy_ref[:, None, 0] + t[0] * (zz - reg.z_ref_nm)
-        ay = xy_ref[:, None, 1] + t[1] * (zz - reg.z_ref_nm)
-        d = np.hypot(ax - cx, ay - cy)
-        inside[:, s0:s0 + 128] = (d <= rz - edge_margin_nm) & (zz >= zlo) & (zz <= zhi)
-    keep = inside.any(1)
+    args = (np.ascontiguousarray(site_z, np.float64), np.ascontiguousarray(dz_rod, np.float64),
+            np.ascontiguousarray(xy_ref, np.float64), float(t[0]), float(t[1]), float(reg.z_ref_nm),
+            np.ascontiguousarray(oz, np.float64), np.ascontiguousarray(ocen[:, 0], np.float64),
+            np.ascontiguousarray(ocen[:, 1], np.float64), np.ascontiguousarray(orad, np.float64),
+            float(edge_margin_nm), float(zlo), float(zhi))
+    maybe = np.zeros(cells.shape[0], np.bool_)
+    _maybe_inside_kernel(*args, maybe)  # rods that may be inside at some depth (a safe bound)
+    if not maybe.all():
+        cells, xy_ref, dz_rod = cells[maybe], xy_ref[maybe], dz_rod[maybe]
+        args = args[:1] + (np.ascontiguousarray(dz_rod, np.float64), np.ascontiguousarray(xy_ref, np.float64)) + args[3:]
+    inside = np.empty((cells.shape[0], site_z.size), np.bool_)
+    keep = np.zeros(cells.shape[0], np.bool_)
+    _inside_kernel(*args, inside, keep)
     if not keep.any():
         raise InputError(f"no rod lies wholly inside the specimen: outline radius at most {orad.max():.3g} nm "
                          f"with an edge margin of {edge_margin_nm:.3g} nm")
-    cells, xy_ref, inside = cells[keep], xy_ref[keep], inside[keep]
+    if not keep.all():
+        cells, xy_ref, inside = cells[keep], xy_ref[keep], inside[keep]
     # dense rod table
     i0 = int(cells[:, 0].min()) - _PAD
     j0 = int(cells[:, 1].min()) - _PAD
@@ -381,6 +439,166 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
         site_phase_contrast=float(contrast), locator=locator, table_origin=(i0, j0, ni, nj),
         rod_table=table, code_offset=code_offset, lut_offset=lut_offset, rod_key=rod_key,
         frac_affine=reg.frac_map())
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _inside_at(zz, x0, y0, t0, t1, z_ref, ozj, cxj, cyj, rj, sx, sy, sr, margin):
+    """(inside, lim - distance) at depth zz on one outline segment (values as ``np.interp``)."""
+    dz = zz - ozj
+    dx = x0 + t0 * (zz - z_ref) - (sx * dz + cxj)
+    dy = y0 + t1 * (zz - z_ref) - (sy * dz + cyj)
+    lim = (sr * dz + rj) - margin
+    d2 = dx * dx + dy * dy
+    return (lim >= 0) & (d2 <= lim * lim), lim - math.sqrt(d2)
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _segment_bound(za, zb, x0, y0, t0, t1, z_ref, ozj, cxj, cyj, rj, sx, sy, sr, margin):
+    """(largest lim, smallest axis-centre distance) over depths [za, zb] on one outline segment."""
+    px = x0 - t0 * z_ref - cxj + sx * ozj
+    py = y0 - t1 * z_ref - cyj + sy * ozj
+    qx = t0 - sx
+    qy = t1 - sy
+    qq = qx * qx + qy * qy
+    zs = za
+    if qq > 0:
+        zs = min(max(-(px * qx + py * qy) / qq, za), zb)
+    dmin = math.sqrt((px + qx * zs) ** 2 + (py + qy * zs) ** 2)
+    lmax = max((sr * (za - ozj) + rj), (sr * (zb - ozj) + rj)) - margin
+    return lmax, dmin
+
+
+@numba.njit(cache=True, nogil=True, parallel=True)
+def _maybe_inside_kernel(site_z, dz_rod, xy_ref, t0, t1, z_ref, oz, ocx, ocy, orad, margin, zlo, zhi, maybe):
+    """``maybe[r]``: rod r might have a used site (the outline bound of :func:`_inside_kernel` over
+    each segment's depth range within [zlo, zhi] and the sites' span); False means it has none."""
+    n = oz.size
+    eps = 1e-7
+    for r in numba.prange(dz_rod.size):
+        dzr = dz_rod[r]
+        lo_z = max(site_z[0] + dzr, zlo)
+        hi_z = min(site_z[site_z.size - 1] + dzr, zhi)
+        if hi_z < lo_z:
+            continue
+        x0 = xy_ref[r, 0]
+        y0 = xy_ref[r, 1]
+        for j in range(-1, n):
+            if j == -1:
+                za, zb = lo_z, min(hi_z, oz[0])
+                ozj, cxj, cyj, rj, sx, sy, sr = oz[0], ocx[0], ocy[0], orad[0], 0.0, 0.0, 0.0
+            elif j < n - 1:
+                za, zb = max(lo_z, oz[j]), min(hi_z, oz[j + 1])
+                w = oz[j + 1] - oz[j]
+                ozj, cxj, cyj, rj = oz[j], ocx[j], ocy[j], orad[j]
+                sx = (ocx[j + 1] - ocx[j]) / w
+                sy = (ocy[j + 1] - ocy[j]) / w
+                sr = (orad[j + 1] - orad[j]) / w
+            else:
+                za, zb = max(lo_z, oz[n - 1]), hi_z
+                ozj, cxj, cyj, rj, sx, sy, sr = oz[n - 1], ocx[n - 1], ocy[n - 1], orad[n - 1], 0.0, 0.0, 0.0
+            if zb < za:
+                continue
+            lmax, dmin = _segment_bound(za, zb, x0, y0, t0, t1, z_ref, ozj, cxj, cyj, rj, sx, sy, sr, margin)
+            if lmax >= -eps and dmin <= lmax + eps:
+                maybe[r] = True
+                break
+
+
+@numba.njit(cache=True, nogil=True, parallel=True)
+def _inside_kernel(site_z, dz_rod, xy_ref, t0, t1, z_ref, oz, ocx, ocy, orad, margin, zlo, zhi, inside, keep):
+    """``inside[r, k]``: site k of rod r has its axis point ``margin`` inside the outline at its
+    depth and lies within [zlo, zhi] (the outline interpolated linearly between slabs and held at
+    the ends, as ``np.interp``); ``keep[r]``: some site of rod r is.
+
+    Rod by rod (in parallel), site range by site range of each outline segment. On a segment the
+    outline centre, the radius and the rod axis are linear in depth, so ``lim - distance`` is
+    concave: when it is clearly positive at the segment's first and last site, every site between
+    is inside; when the largest ``lim`` is below the smallest axis-centre distance on the segment,
+    none is. Only the remaining segments are evaluated site by site, with the same formula, so the
+    result equals a site-by-site evaluation.
+    """
+    n = oz.size
+    ns = site_z.size
+    eps = 1e-7
+    for r in numba.prange(dz_rod.size):
+        dzr = dz_rod[r]
+        x0 = xy_ref[r, 0]
+        y0 = xy_ref[r, 1]
+        k = 0
+        # segment -1: zz <= oz[0]; segments 0 .. n-2 between nodes; segment n-1: zz >= oz[n-1]
+        for j in range(-1, n):
+            if k >= ns:
+                break
+            k1 = k
+            if j == -1:
+                while k1 < ns and site_z[k1] + dzr <= oz[0]:
+                    k1 += 1
+            elif j < n - 1:
+                hi = oz[j + 1]
+                while k1 < ns and site_z[k1] + dzr < hi:
+                    k1 += 1
+            else:
+                k1 = ns
+            if k1 == k:
+                continue
+            if j == -1 or j == n - 1:
+                jj = 0 if j == -1 else n - 1
+                ozj = oz[jj]
+                cxj = ocx[jj]
+                cyj = ocy[jj]
+                rj = orad[jj]
+                sx = 0.0
+                sy = 0.0
+                sr = 0.0
+            else:
+                ozj = oz[j]
+                cxj = ocx[j]
+                cyj = ocy[j]
+                rj = orad[j]
+                w = oz[j + 1] - oz[j]
+                sx = (ocx[j + 1] - ocx[j]) / w
+                sy = (ocy[j + 1] - ocy[j]) / w
+                sr = (orad[j + 1] - orad[j]) / w
+            # sites k..k1-1; the depth window [zlo, zhi] cuts them further
+            a = k
+            while a < k1 and site_z[a] + dzr < zlo:
+                inside[r, a] = False
+                a += 1
+            b = k1
+            while b > a and site_z[b - 1] + dzr > zhi:
+                inside[r, b - 1] = False
+                b -= 1
+            if b > a:
+                za = site_z[a] + dzr
+                zb = site_z[b - 1] + dzr
+                ia, ha = _inside_at(za, x0, y0, t0, t1, z_ref, ozj, cxj, cyj, rj, sx, sy, sr, margin)
+                ib, hb = _inside_at(zb, x0, y0, t0, t1, z_ref, ozj, cxj, cyj, rj, sx, sy, sr, margin)
+                fill = -1
+                if ia and ib and ha > eps and hb > eps:
+                    fill = 1
+                else:
+                    # axis - centre = P + Q zz on the segment: its smallest length on [za, zb]
+                    lmax, dmin = _segment_bound(za, zb, x0, y0, t0, t1, z_ref, ozj, cxj, cyj, rj, sx, sy, sr,
+                                                margin)
+                    if lmax < -eps or dmin > lmax + eps:
+                        fill = 0
+                if fill == 1:
+                    for kk in range(a, b):
+                        inside[r, kk] = True
+                    keep[r] = True
+                elif fill == 0:
+                    for kk in range(a, b):
+                        inside[r, kk] = False
+                else:
+                    any_in = False
+                    for kk in range(a, b):
+                        v = _inside_at(site_z[kk] + dzr, x0, y0, t0, t1, z_ref, ozj, cxj, cyj, rj, sx, sy, sr,
+                                       margin)[0]
+                        inside[r, kk] = v
+                        any_in |= v
+                    if any_in:
+                        keep[r] = True
+            k = k1
 
 
 # ---------------------------------------------------------------------- assignment
@@ -606,16 +824,54 @@ class ColumnBinner:
         metals = tuple(str(m) for m in metals)
         if len(metals) != self.n_metals:
             raise InputError(f"{len(metals)} metal names given for {self.n_metals} channels")
-        g = self.geometry
-        reg = g.registration
-        params = {"registration": reg.to_dict(), "columns": g.to_dict(), "ions": self.stats()}
-        depth = _rod_site_z(g.site_z_nm, g.rod_xy_nm, reg.tilt, reg.z_ref_nm, float(reg.scale))
-        offset = (depth[:, 0] - g.site_z_nm[0]) if g.n_sites else np.zeros(g.n_rods)
-        return RodColumns(counts=self.counts, mask=g.mask.copy(), metals=metals, rod_xy_nm=g.rod_xy_nm.copy(),
-                          tilt=reg.tilt.copy(), z_ref_nm=reg.z_ref_nm, site_z_nm=g.site_z_nm.copy(),
-                          pitch_nm=g.pitch_nm, neighbours=rod_neighbours(g), resolvable=bool(reg.resolvable),
-                          crosstalk=float(reg.crosstalk) if math.isfinite(reg.crosstalk) else 1.0,
-                          params=params, site_z_offset_nm=offset)
+        return columns_from_counts(self.geometry, self.counts, metals, self.stats())
+
+
+def compact_counts(counts: np.ndarray, block: int = 1 << 22) -> np.ndarray:
+    """The counts as float32 when every value is a whole number below 2**24 (exact in float32;
+    the case when every ion is given one metal), else unchanged. Halves the largest array of a
+    big run; converted a block at a time, so the transient extra memory is the float32 copy."""
+    c = np.asarray(counts)
+    if c.dtype != np.float64 or not c.size:
+        return c
+    flat = c.reshape(-1)
+    for b in range(0, flat.size, block):
+        x = flat[b:b + block]
+        if not (np.all(x == np.floor(x)) and x.max() < 2 ** 24 and x.min() >= 0):
+            return c
+    out = np.empty(c.shape, np.float32)
+    of = out.reshape(-1)
+    for b in range(0, flat.size, block):
+        of[b:b + block] = flat[b:b + block]
+    return out
+
+
+def columns_from_counts(geometry: ColumnGeometry, counts, metals, ion_stats: dict) -> RodColumns:
+    """Wrap a finished (n_rods, n_sites, n_metals) count array and its geometry as RodColumns.
+
+    Parameters
+    ----------
+    geometry : ColumnGeometry
+    counts : (n_rods, n_sites, n_metals) ndarray of float64
+        Used as is (not copied).
+    metals : sequence of str
+    ion_stats : dict
+        Ion tallies recorded in ``params["ions"]`` (see :meth:`ColumnBinner.stats`).
+    """
+    g = geometry
+    metals = tuple(str(m) for m in metals)
+    if counts.shape != (g.n_rods, g.n_sites, len(metals)):
+        raise InputError(f"counts have shape {counts.shape}, expected {(g.n_rods, g.n_sites, len(metals))}")
+    counts = compact_counts(counts)
+    reg = g.registration
+    params = {"registration": reg.to_dict(), "columns": g.to_dict(), "ions": dict(ion_stats)}
+    depth = _rod_site_z(g.site_z_nm[:1], g.rod_xy_nm, reg.tilt, reg.z_ref_nm, float(reg.scale))
+    offset = (depth[:, 0] - g.site_z_nm[0]) if g.n_sites else np.zeros(g.n_rods)
+    return RodColumns(counts=counts, mask=g.mask, metals=metals, rod_xy_nm=g.rod_xy_nm.copy(),
+                      tilt=reg.tilt.copy(), z_ref_nm=reg.z_ref_nm, site_z_nm=g.site_z_nm.copy(),
+                      pitch_nm=g.pitch_nm, neighbours=rod_neighbours(g), resolvable=bool(reg.resolvable),
+                      crosstalk=float(reg.crosstalk) if math.isfinite(reg.crosstalk) else 1.0,
+                      params=params, site_z_offset_nm=offset)
 
 
 def rod_neighbours(geometry: ColumnGeometry) -> np.ndarray:

@@ -35,6 +35,13 @@ Method (coarse to fine)
    distance. The expected crosstalk is the Monte Carlo share (fixed seed) of a Gaussian cloud of
    that spread around a rod that lands nearer another rod, i.e. outside the rod's Voronoi cell.
 
+Cost: the fit is bounded whatever the number of ions: at most ``max_fit_ions`` enter, the phase
+stages use ``_N_PHASE`` of them, the refinement ``_N_REFINE`` and the spread fit ``_N_SIGMA``
+distances; the power spectrum sums at most ``_SPECTRUM_SLABS`` slabs (one FFT each), while the
+slabs stay thin enough for the tilt (up to 1024 of them, so a deep run is not aliased). The per-ion
+loops (Fourier coefficients by integer powers of two phasors, coherent slab power, Gauss-Newton
+normal equations, nearest-rod table build, crosstalk Monte Carlo) are compiled with numba.
+
 Symmetry: the rotation is only defined modulo the rotational symmetry of the rod pattern (60 deg
 for the honeycomb and triangular presets, 90 deg for square) and the offset modulo lattice
 translations; :func:`register_lattice` reports both in their fundamental domain (rotation in
@@ -46,6 +53,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 
+import numba
 import numpy as np
 
 from .exceptions import InputError
@@ -82,9 +90,11 @@ FIT_RADIUS_FRAC = 0.5
 QUALITY_RADIUS_FRAC = 0.25
 
 _SHIFTS = 2  # image cells searched around the unit cell: -2..2 in each direction
-_N_PHASE = 400_000  # ions for the per-slab Fourier coefficients (tilt, offset)
-_N_REFINE = 300_000  # ions for the least-squares refinement and the spread fit
+_N_PHASE = 120_000  # ions for the per-slab Fourier coefficients (tilt, offset)
+_N_REFINE = 100_000  # ions for the least-squares refinement and the spread fit
+_N_SIGMA = 30_000  # distances for the spread fit (the spread to ~0.4 %)
 _FFT_MAX = 512  # largest FFT grid; the power spectrum uses the central window of that size
+_SPECTRUM_SLABS = 12  # most depth slabs summed in the power spectrum (one 2-D FFT each)
 
 
 def _rot(theta_rad: float) -> np.ndarray:
@@ -290,17 +300,30 @@ def _cached_locator(lattice: Lattice, cutoff_nm: float, n_grid: int) -> RodLocat
     return loc
 
 
-def _brute_nearest(u, v, frac, g, block=1 << 16):
-    u = np.asarray(u, float)
-    v = np.asarray(v, float)
+def _brute_nearest(u, v, frac, g):
+    """Nearest of the rods ``frac`` (first on ties) and its squared distance, for every point."""
+    u = np.ascontiguousarray(u, np.float64).ravel()
+    v = np.ascontiguousarray(v, np.float64).ravel()
     code = np.empty(u.size, dtype=np.int64)
     dmin = np.empty(u.size)
-    for s in range(0, u.size, block):
-        d = _all_d2(u[s:s + block], v[s:s + block], frac, g)
-        k = d.argmin(1)
-        code[s:s + block] = k
-        dmin[s:s + block] = d[np.arange(k.size), k]
+    _brute_kernel(u, v, np.ascontiguousarray(frac, np.float64), np.ascontiguousarray(g, np.float64), code, dmin)
     return code, dmin
+
+
+@numba.njit(cache=True, nogil=True)
+def _brute_kernel(u, v, frac, g, code, dmin):
+    for i in range(u.size):
+        best = np.inf
+        k = 0
+        for c in range(frac.shape[0]):
+            du = u[i] - frac[c, 0]
+            dv = v[i] - frac[c, 1]
+            d2 = g[0, 0] * du * du + 2 * g[0, 1] * du * dv + g[1, 1] * dv * dv
+            if d2 < best:
+                best = d2
+                k = c
+        code[i] = k
+        dmin[i] = best
 
 
 def _all_d2(u, v, frac, g):
@@ -509,26 +532,33 @@ class _Spectrum:
                                cval=0.0).reshape(kx.shape)
 
 
-def _slab_edges(z, thickness, min_per_slab=200, max_slabs=64):
+def _slab_edges(z, thickness, min_per_slab=200, max_slabs=1024):
     zmin, zmax = float(z.min()), float(z.max())
     depth = max(zmax - zmin, 1e-9)
     n = int(max(1, min(max_slabs, math.ceil(depth / thickness), z.size // min_per_slab)))
     return np.linspace(zmin, zmax + 1e-9, n + 1)
 
 
-def _power_spectrum(xr, yr, slab, n_slabs, h, N):
-    """Summed slab power spectra, normalised by ring medians."""
+def _power_spectrum(xr, yr, slab, n_slabs, h, N, max_slabs=_SPECTRUM_SLABS):
+    """Summed slab power spectra, normalised by ring medians.
+
+    At most ``max_slabs`` slabs enter (evenly spread over the populated ones): each slab's peaks
+    stand above its own speckle by its number of ions, so more slabs only smooth the speckle,
+    which ``max_slabs`` of them already do well, while each costs one 2-D FFT.
+    """
     ix = np.floor(xr / h).astype(np.int64) + N // 2
     iy = np.floor(yr / h).astype(np.int64) + N // 2
     ok = (ix >= 0) & (ix < N) & (iy >= 0) & (iy < N)
     pix = ix * N + iy
-    order = np.argsort(np.where(ok, slab, n_slabs).astype(np.int16), kind="stable")
-    bounds = np.searchsorted(np.where(ok, slab, n_slabs)[order], np.arange(n_slabs + 1))
+    key = np.where(ok, slab, n_slabs)
+    order = np.argsort(key, kind="stable")
+    bounds = np.searchsorted(key[order], np.arange(n_slabs + 1))
+    filled = np.flatnonzero(np.diff(bounds) >= 2)
+    if filled.size > max_slabs:
+        filled = filled[np.unique(np.rint(np.linspace(0, filled.size - 1, max_slabs)).astype(np.int64))]
     P = np.zeros((N, N // 2 + 1))
-    for j in range(n_slabs):
+    for j in filled:
         sel = order[bounds[j]:bounds[j + 1]]
-        if sel.size < 2:
-            continue
         H = np.bincount(pix[sel], minlength=N * N).reshape(N, N).astype(float)
         F = np.fft.rfft2(H)  # the DC term is zeroed after normalisation
         P += F.real ** 2 + F.imag ** 2
@@ -599,14 +629,60 @@ def _search_rotation_scale(spec, g, w, period_deg, scale_range, rotation_deg, sc
     return th0 % period_deg if rotation_deg is None else th0, s0, best
 
 
-def _slab_coefficients(xr, yr, slab, n_slabs, K):
-    """(n_slabs, m) complex sums of exp(-2 pi i k.r) per slab; K is (m, 2) cycles/nm."""
-    ph = -2 * np.pi * (np.outer(xr, K[:, 0]) + np.outer(yr, K[:, 1]))
-    out = np.empty((n_slabs, K.shape[0]), complex)
-    for m in range(K.shape[0]):
-        out[:, m] = (np.bincount(slab, np.cos(ph[:, m]), minlength=n_slabs)
-                     + 1j * np.bincount(slab, np.sin(ph[:, m]), minlength=n_slabs))
-    return out
+def _slab_coefficients(xr, yr, slab, n_slabs, hk, Bp):
+    """(n_slabs, m) complex sums of exp(-2 pi i k.r) per slab for the peaks ``k = hk @ Bp.T``.
+
+    ``hk`` (m, 2) are integer reciprocal-lattice indices and ``Bp`` (2, 2) the reconstruction-frame
+    reciprocal basis (columns, cycles/nm): each ion's factor is a product of integer powers of two
+    unit phasors, so only two sines and cosines are evaluated per ion (compiled loop).
+    """
+    hk = np.ascontiguousarray(hk, np.int64).reshape(-1, 2)
+    out_re = np.zeros((n_slabs, hk.shape[0]))
+    out_im = np.zeros((n_slabs, hk.shape[0]))
+    if hk.shape[0]:
+        _coef_kernel(np.ascontiguousarray(xr, np.float64), np.ascontiguousarray(yr, np.float64),
+                     np.ascontiguousarray(slab, np.int64), hk, np.ascontiguousarray(Bp, np.float64), out_re, out_im)
+    return out_re + 1j * out_im
+
+
+@numba.njit(cache=True, nogil=True)
+def _coef_kernel(xr, yr, slab, hk, Bp, out_re, out_im):
+    m = hk.shape[0]
+    h0 = hk[:, 0].min()
+    h1 = hk[:, 0].max()
+    k0 = hk[:, 1].min()
+    k1 = hk[:, 1].max()
+    p1r = np.empty(h1 - h0 + 1)
+    p1i = np.empty(h1 - h0 + 1)
+    p2r = np.empty(k1 - k0 + 1)
+    p2i = np.empty(k1 - k0 + 1)
+    tau = -2.0 * np.pi
+    for i in range(xr.size):
+        a1 = tau * (Bp[0, 0] * xr[i] + Bp[1, 0] * yr[i])
+        a2 = tau * (Bp[0, 1] * xr[i] + Bp[1, 1] * yr[i])
+        c1 = math.cos(a1)
+        s1 = math.sin(a1)
+        c2 = math.cos(a2)
+        s2 = math.sin(a2)
+        # exp(i h a1) for h = h0..h1 and exp(i k a2) for k = k0..k1
+        p1r[0] = math.cos(h0 * a1)
+        p1i[0] = math.sin(h0 * a1)
+        for q in range(1, h1 - h0 + 1):
+            p1r[q] = p1r[q - 1] * c1 - p1i[q - 1] * s1
+            p1i[q] = p1r[q - 1] * s1 + p1i[q - 1] * c1
+        p2r[0] = math.cos(k0 * a2)
+        p2i[0] = math.sin(k0 * a2)
+        for q in range(1, k1 - k0 + 1):
+            p2r[q] = p2r[q - 1] * c2 - p2i[q - 1] * s2
+            p2i[q] = p2r[q - 1] * s2 + p2i[q - 1] * c2
+        j = slab[i]
+        for q in range(m):
+            ar = p1r[hk[q, 0] - h0]
+            ai = p1i[hk[q, 0] - h0]
+            br = p2r[hk[q, 1] - k0]
+            bi = p2i[hk[q, 1] - k0]
+            out_re[j, q] += ar * br - ai * bi
+            out_im[j, q] += ar * bi + ai * br
 
 
 def _search_tilt(F, zc, K, max_tilt):
@@ -622,9 +698,18 @@ def _search_tilt(F, zc, K, max_tilt):
     zmid = 0.5 * (float(zc.min()) + float(zc.max()))
     depth = max(float(zc.max() - zc.min()), 1e-6)
 
+    F_re = np.ascontiguousarray(F.real, np.float64)
+    F_im = np.ascontiguousarray(F.imag, np.float64)
+    Kc = np.ascontiguousarray(K, np.float64)
+    zcc = np.ascontiguousarray(zc, np.float64)
+    filled = (np.abs(F) > 0).any(1)
+
     def powers(T, sel):
-        ph = 2 * np.pi * zc[sel][None, :, None] * (T @ K.T)[:, None, :]  # (b, n_slabs, m)
-        return (np.abs((F[sel][None] * np.exp(1j * ph)).sum(1)) ** 2).sum(-1)
+        idx = np.flatnonzero(np.asarray(sel) if np.asarray(sel).dtype == bool else np.isin(np.arange(zc.size), sel))
+        idx = idx[filled[idx]].astype(np.int64)
+        out = np.zeros(T.shape[0])
+        _coherent_power(np.ascontiguousarray(T, np.float64), zcc, F_re, F_im, Kc, idx, out)
+        return out
 
     d0 = min(depth, 5.0 / (max_tilt * kmax))
     centre = np.zeros(2)
@@ -656,6 +741,27 @@ def _search_tilt(F, zc, K, max_tilt):
     return res.x if -res.fun >= best else centre
 
 
+@numba.njit(cache=True, nogil=True)
+def _coherent_power(T, zc, F_re, F_im, K, idx, out):
+    """out[b] = sum_m |sum_{j in idx} F_jm exp(2 pi i z_j K_m . T_b)|^2."""
+    tau = 2.0 * np.pi
+    for b in range(T.shape[0]):
+        tot = 0.0
+        for q in range(K.shape[0]):
+            w = tau * (K[q, 0] * T[b, 0] + K[q, 1] * T[b, 1])
+            sr = 0.0
+            si = 0.0
+            for jj in range(idx.size):
+                j = idx[jj]
+                a = w * zc[j]
+                c = math.cos(a)
+                s_ = math.sin(a)
+                sr += F_re[j, q] * c - F_im[j, q] * s_
+                si += F_re[j, q] * s_ + F_im[j, q] * c
+            tot += sr * sr + si * si
+        out[b] = tot
+
+
 def _search_offset(Fsum, S, w, hk, n=64):
     """Fractional offset maximising the model correlation Re sum w conj(S) F exp(2 pi i hk.f)."""
     t = np.arange(n) / n
@@ -683,66 +789,152 @@ def _refine(x, y, z, lattice, locator, p, free, z_ref, center, radius_all, fit_r
 
     p = [ox, oy, tx, ty, theta_rad, scale]; returns p, covariance (6x6, zeros for fixed), the
     residual distances (lattice frame, nm) of all points to their assigned rod, and n used.
+    Each iteration is one compiled pass (:func:`_gn_kernel`) that assigns every point to its
+    nearest rod and accumulates the normal equations, without per-point temporaries.
     """
-    C = lattice.cell_matrix
-    Cinv = np.linalg.inv(C)
-    zr = z - z_ref
+    C = np.ascontiguousarray(lattice.cell_matrix, np.float64)
+    x = np.ascontiguousarray(x, np.float64)
+    y = np.ascontiguousarray(y, np.float64)
+    zr = np.ascontiguousarray(z - z_ref, np.float64)
     rr = np.hypot(x - center[0], y - center[1])
     cov = np.zeros((6, 6))
     free = np.asarray(free, bool)
     stages = [0.5 * radius_all, np.inf]
     stage = 0
     p = np.array(p, float)
+    dist = np.empty(x.size)
+    ok = np.empty(x.size, np.bool_)
+    loc = _locator_arrays(locator)
+    n_use = 0
     for it in range(n_iter):
-        A = p[5] * _rot(p[4])
-        px = x - p[0] - p[2] * zr
-        py = y - p[1] - p[3] * zr
-        Ainv = np.linalg.inv(A @ C)
-        f1 = Ainv[0, 0] * px + Ainv[0, 1] * py
-        f2 = Ainv[1, 0] * px + Ainv[1, 1] * py
-        ci, cj, code = locator.locate(f1, f2)
-        ok = code >= 0
-        q = np.zeros((x.size, 2))
-        q[ok] = locator.rod_frac(ci[ok], cj[ok], code[ok]) @ C.T
-        dfrac = np.column_stack([f1, f2]) - np.where(ok[:, None], q @ Cinv.T, 0.0)
-        dist = np.sqrt(((dfrac @ C.T) ** 2).sum(1))
-        use = ok & (dist < fit_r) & (rr <= stages[stage])
-        if use.sum() < 20:
-            use = ok & (dist < fit_r)
-        if use.sum() < 20:
+        JTJ, JTe, sse, n_use = _gn_pass(x, y, zr, rr, p, C, loc, fit_r, stages[stage], dist, ok)
+        if n_use < 20:
+            JTJ, JTe, sse, n_use = _gn_pass(x, y, zr, rr, p, C, loc, fit_r, np.inf, dist, ok)
+        if n_use < 20:
             raise InputError("lattice registration: fewer than 20 metal ions lie near a model rod axis; "
                              "no lattice signal (set --rotation-deg, --scale and --offset-nm to override)")
-        qu = q[use]
-        zu = zr[use]
-        Rt = _rot(p[4])
-        dR = np.array([[-math.sin(p[4]), -math.cos(p[4])], [math.cos(p[4]), -math.sin(p[4])]])
-        Rq = qu @ Rt.T
-        dRq = p[5] * (qu @ dR.T)
-        ex = x[use] - p[0] - p[2] * zu - p[5] * Rq[:, 0]
-        ey = y[use] - p[1] - p[3] * zu - p[5] * Rq[:, 1]
-        one = np.ones(zu.size)
-        zero = np.zeros(zu.size)
-        Jx = np.column_stack([one, zero, zu, zero, dRq[:, 0], Rq[:, 0]])[:, free]
-        Jy = np.column_stack([zero, one, zero, zu, dRq[:, 1], Rq[:, 1]])[:, free]
-        JTJ = Jx.T @ Jx + Jy.T @ Jy
-        JTe = Jx.T @ ex + Jy.T @ ey
+        JTJ = JTJ[np.ix_(free, free)]
+        JTe = JTe[free]
         try:
             delta = np.linalg.solve(JTJ, JTe)
+            inv = np.linalg.inv(JTJ)
         except np.linalg.LinAlgError:
             raise InputError("lattice registration: the refinement is singular (ions too few or all at "
                              "one depth); give --rotation-deg, --scale and --offset-nm") from None
         p[free] += delta
-        dof = max(2 * zu.size - int(free.sum()), 1)
-        s2 = float((ex ** 2).sum() + (ey ** 2).sum()) / dof
+        dof = max(2 * n_use - int(free.sum()), 1)
+        s2 = float(sse) / dof
         cov = np.zeros((6, 6))
-        cov[np.ix_(free, free)] = s2 * np.linalg.inv(JTJ)
+        cov[np.ix_(free, free)] = s2 * inv
         small = np.abs(delta) <= 0.02 * np.sqrt(np.diag(cov)[free]) + 1e-12
         if small.all():
             if stage + 1 < len(stages):
                 stage += 1
             else:
                 break
-    return p, cov, dist, ok, int(use.sum())
+    return p, cov, dist, ok, int(n_use)
+
+
+def _locator_arrays(locator):
+    return (np.ascontiguousarray(locator.table, np.int32), np.int64(locator.n_grid),
+            np.ascontiguousarray(locator.candidates, np.int32), np.ascontiguousarray(locator.code_frac, np.float64),
+            np.ascontiguousarray(locator.metric, np.float64),
+            np.float64(locator.cutoff_nm ** 2 if math.isfinite(locator.cutoff_nm) else np.inf))
+
+
+def _gn_pass(x, y, zr, rr, p, C, loc, fit_r, r_lim, dist, ok):
+    JTJ = np.zeros((6, 6))
+    JTe = np.zeros(6)
+    out = np.zeros(2)
+    A = p[5] * _rot(p[4])
+    Ainv = np.linalg.inv(A @ C)
+    Rt = _rot(p[4])
+    dR = np.array([[-math.sin(p[4]), -math.cos(p[4])], [math.cos(p[4]), -math.sin(p[4])]])
+    _gn_kernel(x, y, zr, rr, np.ascontiguousarray(p, np.float64), C, Ainv, Rt, dR, *loc, float(fit_r),
+               float(r_lim), dist, ok, JTJ, JTe, out)
+    return JTJ, JTe, out[0], int(out[1])
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _locate_one(f1, f2, table, G, cand, code_frac, metric, cut2):
+    """Nearest rod of one point in fractional coordinates: (ci, cj, code), code -1 beyond the cutoff."""
+    sh = 0
+    while (1 << sh) < G:
+        sh += 1
+    I1 = np.int64(math.floor(f1 * G))
+    I2 = np.int64(math.floor(f2 * G))
+    ci = I1 >> sh
+    cj = I2 >> sh
+    code = np.int64(table[((I1 & (G - 1)) << sh) | (I2 & (G - 1))])
+    if code <= -2:
+        row = -2 - code
+        u = f1 - ci
+        v = f2 - cj
+        best = np.inf
+        code = -1
+        for q in range(cand.shape[1]):
+            c = cand[row, q]
+            du = u - code_frac[c, 0]
+            dv = v - code_frac[c, 1]
+            d2 = metric[0, 0] * du * du + 2 * metric[0, 1] * du * dv + metric[1, 1] * dv * dv
+            if d2 < best:
+                best = d2
+                code = c
+        if best > cut2:
+            code = -1
+    return ci, cj, code
+
+
+@numba.njit(cache=True, nogil=True)
+def _gn_kernel(x, y, zr, rr, p, C, Ainv, Rt, dR, table, G, cand, code_frac, metric, cut2, fit_r, r_lim,
+               dist, ok, JTJ, JTe, out):
+    sse = 0.0
+    n_use = 0
+    J = np.empty(6)
+    Jy = np.empty(6)
+    for i in range(x.size):
+        px = x[i] - p[0] - p[2] * zr[i]
+        py = y[i] - p[1] - p[3] * zr[i]
+        f1 = Ainv[0, 0] * px + Ainv[0, 1] * py
+        f2 = Ainv[1, 0] * px + Ainv[1, 1] * py
+        ci, cj, code = _locate_one(f1, f2, table, G, cand, code_frac, metric, cut2)
+        if code < 0:
+            ok[i] = False
+            dist[i] = np.inf
+            continue
+        ok[i] = True
+        qf1 = ci + code_frac[code, 0]
+        qf2 = cj + code_frac[code, 1]
+        d1 = f1 - qf1
+        d2 = f2 - qf2
+        ex_ = C[0, 0] * d1 + C[0, 1] * d2
+        ey_ = C[1, 0] * d1 + C[1, 1] * d2
+        d = math.sqrt(ex_ * ex_ + ey_ * ey_)
+        dist[i] = d
+        if not (d < fit_r and rr[i] <= r_lim):
+            continue
+        q0 = C[0, 0] * qf1 + C[0, 1] * qf2
+        q1 = C[1, 0] * qf1 + C[1, 1] * qf2
+        Rq0 = Rt[0, 0] * q0 + Rt[0, 1] * q1
+        Rq1 = Rt[1, 0] * q0 + Rt[1, 1] * q1
+        dRq0 = p[5] * (dR[0, 0] * q0 + dR[0, 1] * q1)
+        dRq1 = p[5] * (dR[1, 0] * q0 + dR[1, 1] * q1)
+        z_ = zr[i]
+        ex = x[i] - p[0] - p[2] * z_ - p[5] * Rq0
+        ey = y[i] - p[1] - p[3] * z_ - p[5] * Rq1
+        J[0] = 1.0; J[1] = 0.0; J[2] = z_; J[3] = 0.0; J[4] = dRq0; J[5] = Rq0
+        Jy[0] = 0.0; Jy[1] = 1.0; Jy[2] = 0.0; Jy[3] = z_; Jy[4] = dRq1; Jy[5] = Rq1
+        for a in range(6):
+            JTe[a] += J[a] * ex + Jy[a] * ey
+            for b in range(a, 6):
+                JTJ[a, b] += J[a] * J[b] + Jy[a] * Jy[b]
+        sse += ex * ex + ey * ey
+        n_use += 1
+    for a in range(6):
+        for b in range(a):
+            JTJ[a, b] = JTJ[b, a]
+    out[0] = sse
+    out[1] = n_use
 
 
 def _fit_sigma(d, rmax):
@@ -750,8 +942,8 @@ def _fit_sigma(d, rmax):
     from scipy.optimize import minimize
 
     d = d[d < rmax]
-    if d.size > 100_000:  # the spread is known to < 0.5 % from 1e5 distances; keep the fit fast
-        d = d[:: int(math.ceil(d.size / 100_000))]
+    if d.size > _N_SIGMA:  # keep the fit fast
+        d = d[:: int(math.ceil(d.size / _N_SIGMA))]
     if d.size < 10:
         return float("nan"), float("nan"), float("nan")
     d2 = d * d
@@ -802,16 +994,28 @@ def expected_crosstalk(lattice: Lattice, sigma_nm: float, n_samples: int = 100_0
     loc = locator if locator is not None else _cached_locator(lattice, math.inf, 64)
     rng = np.random.default_rng(seed)
     C = lattice.cell_matrix
-    Cinv = np.linalg.inv(C)
+    Cinv = np.ascontiguousarray(np.linalg.inv(C), np.float64)
+    arrays = _locator_arrays(loc)
     wrong = 0
     for b in range(lattice.rods_per_cell):
         pts = lattice.rods_frac[b] @ C.T + rng.normal(0, sigma_nm, (n_samples, 2))
-        f = pts @ Cinv.T
-        ci, cj, code = loc.locate(f[:, 0], f[:, 1])
-        rf = loc.rod_frac(ci, cj, code)
-        own = np.all(np.abs(rf - lattice.rods_frac[b]) < 1e-9, axis=1)
-        wrong += int((~own).sum())
+        wrong += int(_count_foreign(np.ascontiguousarray(pts, np.float64), Cinv,
+                                    np.ascontiguousarray(lattice.rods_frac[b], np.float64), *arrays))
     return wrong / (n_samples * lattice.rods_per_cell)
+
+
+@numba.njit(cache=True, nogil=True)
+def _count_foreign(pts, Cinv, own_frac, table, G, cand, code_frac, metric, cut2):
+    """Points (lattice frame, nm) whose nearest rod is not the one at ``own_frac`` (or beyond the cutoff)."""
+    wrong = 0
+    for i in range(pts.shape[0]):
+        f1 = Cinv[0, 0] * pts[i, 0] + Cinv[0, 1] * pts[i, 1]
+        f2 = Cinv[1, 0] * pts[i, 0] + Cinv[1, 1] * pts[i, 1]
+        ci, cj, code = _locate_one(f1, f2, table, G, cand, code_frac, metric, cut2)
+        if code < 0 or abs(ci + code_frac[code, 0] - own_frac[0]) >= 1e-9 \
+                or abs(cj + code_frac[code, 1] - own_frac[1]) >= 1e-9:
+            wrong += 1
+    return wrong
 
 
 # ====================================================================== public
@@ -968,11 +1172,12 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
         th0, s0 = float(rotation_deg), float(scale)
     Rm = _rot(math.radians(th0))
     K = (g @ Rm.T) / s0  # recon-frame reciprocal vectors
+    Bp = (Rm @ np.linalg.inv(lattice.cell_matrix).T) / s0  # their basis: K = hk @ Bp.T
     # strongest peaks carry the phase information
     m = min(8, K.shape[0])
     sp = sub_phase
     if tilt is None:
-        F = _slab_coefficients(xr[sp], yr[sp], slab[sp], n_slabs, K[:m])
+        F = _slab_coefficients(xr[sp], yr[sp], slab[sp], n_slabs, hk[:m], Bp)
         t0 = _search_tilt(F, zc - z_ref_nm, K[:m], tan_max)
         xr_c = xr[sp] - t0[0] * (z[sp] - z_ref_nm)
         yr_c = yr[sp] - t0[1] * (z[sp] - z_ref_nm)
@@ -980,7 +1185,7 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
         t0 = np.asarray(tilt, float)
         xr_c, yr_c = xr[sp], yr[sp]
     if offset_nm is None:
-        Fsum = _slab_coefficients(xr_c, yr_c, np.zeros(sp.size, np.int64), 1, K)[0]
+        Fsum = _slab_coefficients(xr_c, yr_c, np.zeros(sp.size, np.int64), 1, hk, Bp)[0]
         fo = _search_offset(Fsum, S, np.sqrt(w), hk)
         o0 = center + (s0 * Rm @ lattice.cell_matrix) @ fo
     else:

@@ -1,0 +1,769 @@
+"""One fused pass from ion positions and mass-to-charge values to the count array.
+
+Once the ranges and the rod lattice are fixed (both fitted on a bounded sample), every block of
+ions goes through compiled loops (:class:`CountPass`) that, without per-ion temporaries:
+
+1. **Validity.** Count the rows with a NaN or infinite value or a non-positive mass-to-charge
+   (they would have been dropped on reading) and take the extents of the valid rows, in one
+   vectorised pass over the bit patterns.
+2. **Range.** Look every mass-to-charge value up in the range table on 1/1024-Da cells (the table
+   of :func:`probeseq.ranging.assign_channels`; cells holding a range edge are resolved by binary
+   search) and list the rows in ranges holding metal.
+3. **Metal draw.** Give each listed ion one metal identity drawn with its range's thinned metal
+   weights (see :func:`probeseq.pipeline.draw_metal_ions`). The uniform number of the draw is a
+   counter-based hash (splitmix64) of the seed and the ion's index in the run (its row), so the
+   draws do not depend on how the ions are cut into blocks, on the order of the blocks, or on the
+   number of threads (:func:`ion_uniforms` gives the same numbers to the numpy reference).
+4. **Rod and site.** Place metal ions on their nearest rod through the lookup table of
+   :class:`probeseq.registration.RodLocator` (exactly: cells of the table holding a Voronoi edge
+   are resolved against their candidate rods) and on their site plane from the plane coordinate
+   ``u = z + g . (x, y)`` (see :mod:`probeseq.columns`). The arithmetic is that of
+   :func:`probeseq.columns.assign_rods`, in the input's float type, so both give the same bins.
+5. **Count.** Sort the bins of the block by block of rods and add ``counts[rod, site, metal] += 1``
+   block of rods by block of rods (a block of ions is a thin depth slice, so each block of rods
+   touches a few kB), the rod blocks shared out between the threads so none write the same bins.
+
+The count array is float64 in its final layout (rods, sites, metals), so nothing is copied or
+transposed afterwards; it is made resident in one call (:func:`zeroed_array`) while the first
+blocks are being placed.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numba
+import numpy as np
+
+from .exceptions import InputError
+
+__all__ = ["CountPlan", "CountPass", "make_count_plan", "count_ions", "ion_uniforms", "draw_key", "new_tally",
+           "tally_dict", "default_threads", "TALLY_FIELDS"]
+
+_GOLDEN = np.uint64(0x9E3779B97F4A7C15)
+_M1 = np.uint64(0xBF58476D1CE4E5B9)
+_M2 = np.uint64(0x94D049BB133111EB)
+_STREAM = np.uint64(0x6D65_7461_6C5F_6472)  # a fixed stream constant for the metal draws
+_TO_UNIT = np.float64(1.0 / 9007199254740992.0)  # 2**-53
+
+#: indices of the integer tally array filled by :func:`count_ions`
+TALLY_FIELDS = ("n_rows", "n_valid", "n_nonfinite", "n_nonpositive", "n_metal", "n_binned", "n_beyond_cutoff",
+                "n_unused_rod", "n_outside_depth", "first_bad_row", "n_fallback")
+_T = {k: i for i, k in enumerate(TALLY_FIELDS)}
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _mix64(z):
+    z = (z ^ (z >> np.uint64(30))) * _M1
+    z = (z ^ (z >> np.uint64(27))) * _M2
+    return z ^ (z >> np.uint64(31))
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _uniform(key, row):
+    # the row-th output of a splitmix64 sequence started at key: a pure function of (key, row)
+    h = _mix64(key + (np.uint64(row) + np.uint64(1)) * _GOLDEN)
+    return np.float64(np.int64(h >> np.uint64(11))) * _TO_UNIT
+
+
+@numba.njit(cache=True, nogil=True)
+def _uniforms_kernel(key, start, out):
+    for i in range(out.size):
+        out[i] = _uniform(key, start + i)
+
+
+def draw_key(seed) -> np.uint64:
+    """The 64-bit key of the metal draws for an integer ``seed`` (any Python int)."""
+    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)):
+        raise InputError(f"seed must be an integer, got {seed!r}")
+    s = np.uint64(int(seed) % (1 << 64))
+    with np.errstate(over="ignore"):
+        return np.uint64(_mix64(s ^ _STREAM))
+
+
+def ion_uniforms(seed, start: int, n: int) -> np.ndarray:
+    """The uniform numbers in [0, 1) of the metal draws of ions ``start .. start + n - 1``.
+
+    Ion ``i`` of a run (its row in the file, or its index in an in-memory ion list) always gets
+    the same number for the same ``seed``, whatever the chunking.
+    """
+    if int(start) < 0 or int(n) < 0:
+        raise InputError(f"ion_uniforms: start and n must be >= 0, got {start}, {n}")
+    out = np.empty(int(n), np.float64)
+    _uniforms_kernel(draw_key(seed), np.int64(start), out)
+    return out
+
+
+def new_tally() -> tuple:
+    """Fresh (tally, extents) arrays for :func:`count_ions`: int64 counters and float64 min/max."""
+    tally = np.zeros(len(TALLY_FIELDS), np.int64)
+    tally[_T["first_bad_row"]] = -1
+    ext = np.empty(8, np.float64)
+    ext[0::2] = np.inf
+    ext[1::2] = -np.inf
+    return tally, ext
+
+
+@dataclass(frozen=True, eq=False)
+class CountPlan:
+    """Everything the fused pass needs, as flat arrays (built by :func:`make_count_plan`).
+
+    Attributes
+    ----------
+    n_rods, n_sites, n_metals : int
+        Shape of the count array.
+    key : numpy.uint64
+        Key of the metal draws (:func:`draw_key` of the seed).
+    mass_lut : (n_cells,) ndarray of int32
+        Per 1/1024-Da cell ``(range + 2) << 1 | candidate``: range -1 none, -2 a cell holding a range
+        edge; candidate 1 for a range holding metal or an edge cell.
+    lows, highs : (n_ranges,) ndarray of float64, Da
+    cum : (n_ranges, n_metals) ndarray of float64
+        Cumulative thinned metal weights of each range (the draw picks the first metal whose
+        cumulative weight exceeds the uniform number).
+    has_metal : (n_ranges,) ndarray of bool
+    geometry : tuple
+        The rod and site lookup arrays in the order the kernel takes them.
+    """
+
+    n_rods: int
+    n_sites: int
+    n_metals: int
+    key: np.uint64
+    mass_lut: np.ndarray
+    lows: np.ndarray
+    highs: np.ndarray
+    cum: np.ndarray
+    has_metal: np.ndarray
+    geometry: tuple
+
+    @property
+    def metal_range(self) -> np.ndarray:
+        """(n_ranges + 1,) uint8: 1 where range r - 1 holds metal (slot 0 for unranged)."""
+        return self._metal_range
+
+    def __post_init__(self):
+        object.__setattr__(self, "_metal_range",
+                           np.concatenate([[0], np.asarray(self.has_metal, bool)]).astype(np.int64))
+
+    def new_counts(self) -> np.ndarray:
+        """A zeroed (n_rods, n_sites, n_metals) float64 count array, resident up front (see
+        :func:`zeroed_array`)."""
+        return zeroed_array((self.n_rods, self.n_sites, self.n_metals))
+
+
+def make_count_plan(ranges, metals, thin, geometry, seed) -> CountPlan:
+    """Flatten ranges, thinning factors and the column geometry into a :class:`CountPlan`.
+
+    Parameters
+    ----------
+    ranges : RangeSet
+    metals : sequence of str
+    thin : (n_metals,) array of float
+        Per-metal thinning factors (:func:`probeseq.pipeline.detection_balance`).
+    geometry : ColumnGeometry
+    seed : int
+        Seed of the metal draws.
+    """
+    from .columns import ColumnGeometry, _plane_model
+    from .ranging import _lookup_for, _weights_for
+
+    if not isinstance(geometry, ColumnGeometry):
+        raise InputError(f"geometry must be a ColumnGeometry, got {type(geometry).__name__}")
+    metals = tuple(metals)
+    w, _other, _ch = _weights_for(ranges, metals)
+    thin = np.asarray(thin, np.float64).reshape(-1)
+    if thin.shape != (len(metals),) or not np.isfinite(thin).all() or (thin < 0).any():
+        raise InputError(f"thin must be {len(metals)} finite factors >= 0, got {thin!r}")
+    lk = _lookup_for(ranges, None)
+    wr = np.asarray(w[:-1], np.float64) * thin[None, :]  # (n_ranges, K), the unranged row dropped
+    cum = np.ascontiguousarray(np.cumsum(np.minimum(wr, 1.0), axis=1)) if wr.size else np.zeros((0, len(metals)))
+    has_metal = (wr > 0).any(1) if wr.size else np.zeros(0, bool)
+    g = geometry
+    loc = g.locator
+    G = loc.n_grid
+    i0, j0, ni, nj = g.table_origin
+    M, e, c = g.frac_affine
+    gp, denom = _plane_model(g.registration.tilt, g.registration.scale)
+    du = g.plane_spacing_nm
+    ns = g.n_sites
+    u0 = (g.site_z_nm[0] * denom - 0.5 * du) if ns else 0.0
+    geom = dict(
+        a=(M * G), ez=(e * G), cc=((c - np.array([i0, j0])) * G),
+        site=np.array([1.0 / du, gp[0] / du, gp[1] / du, u0 / du]),
+        M=np.ascontiguousarray(M, np.float64), e=np.ascontiguousarray(e, np.float64),
+        cfb=np.array([c[0] - i0, c[1] - j0], np.float64),
+        G=np.int64(G), sh=np.int64(G.bit_length() - 1),
+        lut_offset=np.ascontiguousarray(g.lut_offset, np.int32),
+        code_offset=np.ascontiguousarray(g.code_offset, np.int32),
+        cand=np.ascontiguousarray(loc.candidates, np.int32),
+        code_frac=np.ascontiguousarray(loc.code_frac, np.float64),
+        metric=np.ascontiguousarray(loc.metric, np.float64),
+        cut2=np.float64(loc.cutoff_nm ** 2 if math.isfinite(loc.cutoff_nm) else np.inf),
+        ni=np.int64(ni), nj=np.int64(nj), nb=np.int64(g.lattice.rods_per_cell),
+        rod_key=np.ascontiguousarray(g.rod_key, np.int32), ns=np.int64(ns),
+    )
+    # packed range table: (range + 2) << 1 | candidate, candidate = a metal range or an edge cell
+    r2 = np.asarray(lk.lut, np.int64) + 2
+    cand_flag = np.concatenate([[1, 0], has_metal.astype(np.int64)]) if has_metal.size else np.array([1, 0])
+    packed = ((r2 << 1) | cand_flag[r2]).astype(np.int32)
+    return CountPlan(n_rods=g.n_rods, n_sites=ns, n_metals=len(metals), key=draw_key(seed),
+                     mass_lut=packed, lows=np.asarray(lk.lows, np.float64),
+                     highs=np.asarray(lk.highs, np.float64), cum=cum, has_metal=np.ascontiguousarray(has_metal),
+                     geometry=tuple(geom.values()))
+
+
+#: rod blocks of the grouped increments (a block's bins of one depth slice stay in cache)
+_ROD_BLOCKS = 256
+#: sorted bins kept while the count array is still being made (see :class:`CountPass`)
+PENDING_BYTES = 256 << 20
+def zeroed_array(shape) -> np.ndarray:
+    """A zeroed float64 array whose pages are made resident up front.
+
+    A large array is mapped with ``MAP_POPULATE``: the kernel zeroes and maps every page in one
+    call, which on a virtual machine costs a fraction of taking one page fault per page later (and
+    page faults from two threads contend). ``np.zeros`` where that is not available.
+    """
+    import mmap
+
+    shape = tuple(int(v) for v in shape)
+    nbytes = int(np.prod(shape, dtype=np.int64)) * 8
+    if nbytes < (16 << 20) or not hasattr(mmap, "MAP_POPULATE"):
+        return np.zeros(shape, np.float64)
+    try:
+        mm = mmap.mmap(-1, nbytes, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS | mmap.MAP_POPULATE)
+    except (OSError, ValueError):
+        return np.zeros(shape, np.float64)
+    return np.frombuffer(mm, np.float64).reshape(shape)
+
+
+_FB = -2_100_000_000
+_FB_LIMIT = -1_000_000_000
+_EXCL = 0
+
+
+@numba.njit(cache=True, nogil=True, fastmath={"nnan", "ninf", "nsz"})
+def _check_kernel(x, y, z, m, xb, yb, zb, mb, expo, ext):
+    """Invalid rows (a NaN or infinite value, or mass-to-charge <= 0) and the running min/max of
+    x, y, z (file unit) and m, in one vectorisable pass. Validity is read from the bit patterns
+    (``xb`` .. ``mb`` are the same arrays viewed as unsigned integers: a value is finite when its
+    exponent bits ``expo`` are not all set; m > 0 when its pattern, as a signed integer, is
+    positive and finite), so the fast-math flags of the min/max cannot touch it. The extents are
+    only valid when no row is invalid (the caller then recomputes them row by row)."""
+    bad = 0
+    xmin = x[0]; xmax = x[0]; ymin = y[0]; ymax = y[0]; zmin = z[0]; zmax = z[0]; mmin = m[0]; mmax = m[0]
+    for i in range(x.size):
+        nonfin = ((xb[i] & expo) == expo) | ((yb[i] & expo) == expo) | ((zb[i] & expo) == expo) \
+            | ((mb[i] & expo) == expo)
+        sign = mb[i] >> (mb.itemsize * 8 - 1)  # 1 for a negative m (or -0)
+        zero = (mb[i] << 1) == 0  # +0 or -0
+        bad += nonfin | (sign == 1) | zero
+        xmin = min(xmin, x[i]); xmax = max(xmax, x[i])
+        ymin = min(ymin, y[i]); ymax = max(ymax, y[i])
+        zmin = min(zmin, z[i]); zmax = max(zmax, z[i])
+        mmin = min(mmin, m[i]); mmax = max(mmax, m[i])
+    if bad == 0:
+        ext[0] = min(ext[0], xmin); ext[1] = max(ext[1], xmax)
+        ext[2] = min(ext[2], ymin); ext[3] = max(ext[3], ymax)
+        ext[4] = min(ext[4], zmin); ext[5] = max(ext[5], zmax)
+        ext[6] = min(ext[6], mmin); ext[7] = max(ext[7], mmax)
+    return bad
+
+
+_EXPO = {4: np.uint32(0x7F800000), 8: np.uint64(0x7FF0000000000000)}
+_UINT = {4: np.uint32, 8: np.uint64}
+
+
+@numba.njit(cache=True, nogil=True)
+def _slow_check_kernel(x, y, z, m, row0, factor, tally, ext):
+    """Row by row validity (non-finite, non-positive), first bad row and extents of the valid rows."""
+    fac = x.dtype.type(factor)
+    for i in range(x.size):
+        xi = x[i] * fac if factor != 1.0 else x[i]
+        yi = y[i] * fac if factor != 1.0 else y[i]
+        zi = z[i] * fac if factor != 1.0 else z[i]
+        mi = m[i]
+        if not (np.isfinite(xi) and np.isfinite(yi) and np.isfinite(zi) and np.isfinite(mi)):
+            tally[2] += 1
+            if tally[9] < 0:
+                tally[9] = row0 + i
+            continue
+        if not mi > 0:
+            tally[3] += 1
+            if tally[9] < 0:
+                tally[9] = row0 + i
+            continue
+        tally[1] += 1
+        ext[0] = min(ext[0], xi); ext[1] = max(ext[1], xi)
+        ext[2] = min(ext[2], yi); ext[3] = max(ext[3], yi)
+        ext[4] = min(ext[4], zi); ext[5] = max(ext[5], zi)
+        ext[6] = min(ext[6], mi); ext[7] = max(ext[7], mi)
+
+
+@numba.njit(cache=True, nogil=True)
+def _place_kernel(x, y, z, m, n, row0, key, factor,
+                  mass_lut, lows, highs, cum, metal_range,
+                  a, ez, cc, site_c, M, e, cfb, G, sh, lut_offset, code_offset, cand, code_frac, metric, cut2,
+                  ni, nj, nb, rod_key, ns,
+                  tally, sel, keys, order, bucket, bstart, rshift):
+    K = cum.shape[1]
+    n_ranges = lows.size
+    rbits = 1
+    while (np.int64(1) << rbits) < n_ranges + 2:
+        rbits += 1
+    top = mass_lut.size - 1
+    fdt = x.dtype.type
+    mdt = m.dtype.type
+    one_k = mdt(1024.0)
+    fac = fdt(factor)
+    scale = factor != 1.0
+    # ---- loop 1 (every row, mass-to-charge only): one table load gives the range (+ 2) and whether
+    # the row is a candidate (a range holding metal, or a cell holding a range edge, resolved in
+    # loop 2); candidates are listed as (row << rbits) | (range + 2), written always and kept by
+    # advancing the count: no branch. A NaN or non-positive m lands in the last cell, no range;
+    # invalid positions are caught in loop 2.
+    nsel = 0
+    for i in range(n):
+        f = m[i] * one_k
+        cell = np.int64(f) if (f < top and f >= 0) else top
+        v = np.int64(mass_lut[cell])
+        sel[nsel] = np.int32((i << rbits) | (v >> 1))
+        nsel += v & 1
+    # ---- loop 2 (metal-range rows): metal draw, then nearest rod and site (arithmetic as
+    # columns._assign_chunk), then the bin's flat index
+    a00 = fdt(a[0, 0]); a01 = fdt(a[0, 1]); a10 = fdt(a[1, 0]); a11 = fdt(a[1, 1])
+    ez0 = fdt(ez[0]); ez1 = fdt(ez[1]); cc0 = fdt(cc[0]); cc1 = fdt(cc[1])
+    s0 = fdt(site_c[0]); s1 = fdt(site_c[1]); s2 = fdt(site_c[2]); s3 = fdt(site_c[3])
+    gm1 = G - 1
+    nmetal = 0
+    nbeyond = 0
+    nunused = 0
+    noutside = 0
+    nfb = 0
+    nk = 0
+    rmask = (np.int64(1) << rbits) - 1
+    for q in range(nsel):
+        iv = np.int64(sel[q])
+        i = iv >> rbits
+        r = (iv & rmask) - 2
+        if r == -2:  # a cell holding a range edge: binary search (first low above m)
+            mv = np.float64(m[i])
+            lo = 0
+            hi = n_ranges
+            while lo < hi:
+                mid = (lo + hi) >> 1
+                if lows[mid] <= mv:
+                    lo = mid + 1
+                else:
+                    hi = mid
+            k = lo - 1
+            r = k if (k >= 0 and mv < highs[k]) else -1
+            if r < 0 or metal_range[r + 1] == 0:
+                continue
+        metal = 0
+        if cum[r, 0] < 1.0:
+            hh = _mix64(key + (np.uint64(row0 + i) + np.uint64(1)) * _GOLDEN)
+            u = np.float64(np.int64(hh >> np.uint64(11))) * _TO_UNIT
+            while metal < K and u >= cum[r, metal]:
+                metal += 1
+            if metal == K:
+                continue
+        xi = x[i]
+        yi = y[i]
+        zi = z[i]
+        if scale:
+            xi = xi * fac
+            yi = yi * fac
+            zi = zi * fac
+        if not (np.isfinite(xi) and np.isfinite(yi) and np.isfinite(zi)):
+            continue  # an invalid row (tallied by the validity check)
+        nmetal += 1
+        F1 = xi * a00
+        F1 += yi * a01
+        F1 += zi * ez0
+        F1 += cc0
+        F2 = xi * a10
+        F2 += yi * a11
+        F2 += zi * ez1
+        F2 += cc1
+        I1 = np.int32(np.floor(F1))
+        I2 = np.int32(np.floor(F2))
+        ci = I1 >> sh
+        cj = I2 >> sh
+        off = lut_offset[((I1 & gm1) << sh) | (I2 & gm1)]
+        if off < _FB_LIMIT:
+            nfb += 1
+            xf = np.float64(xi)
+            yf = np.float64(yi)
+            zf = np.float64(zi)
+            f1 = M[0, 0] * xf + M[0, 1] * yf + e[0] * zf + cfb[0]
+            f2 = M[1, 0] * xf + M[1, 1] * yf + e[1] * zf + cfb[1]
+            uu = f1 - ci
+            vv = f2 - cj
+            row = off - _FB
+            best = np.inf
+            code = -1
+            for c in range(cand.shape[1]):
+                cq = cand[row, c]
+                du_ = uu - code_frac[cq, 0]
+                dv_ = vv - code_frac[cq, 1]
+                d2 = metric[0, 0] * du_ * du_ + 2 * metric[0, 1] * du_ * dv_ + metric[1, 1] * dv_ * dv_
+                if d2 < best:
+                    best = d2
+                    code = cq
+            if best > cut2:
+                code = -1
+            off = code_offset[code] if code >= 0 else code_offset[code_offset.size - 1]
+        if off == _EXCL:
+            nbeyond += 1
+            continue
+        ci = min(max(ci, 2), ni - 3)
+        cj = min(max(cj, 2), nj - 3)
+        rod = rod_key[ci * (nj * nb) + cj * nb + off]
+        if rod < 0:
+            nunused += 1
+            continue
+        sz = zi * s0
+        sz += xi * s1
+        sz += yi * s2
+        sz -= s3
+        site = np.int64(np.floor(sz))
+        if site < 0 or site >= ns:
+            noutside += 1
+            continue
+        keys[nk] = np.int32((np.int64(rod) * ns + site) * K + metal)
+        b = np.int64(rod) >> rshift
+        bucket[nk] = b
+        bstart[b + 1] += 1
+        nk += 1
+    # ---- counting sort of the bins by block of rods (bstart[b] .. bstart[b + 1] in order): a
+    # chunk's ions come from a thin depth slice, so within one block of rods the increments of
+    # _add_kernel touch a few kB rather than the whole count array
+    for b in range(1, bstart.size):
+        bstart[b] += bstart[b - 1]
+    for q in range(nk):
+        b = bucket[q]
+        order[bstart[b]] = keys[q]
+        bstart[b] += 1
+    for b in range(bstart.size - 1, 0, -1):
+        bstart[b] = bstart[b - 1]
+    bstart[0] = 0
+    tally[4] += nmetal
+    tally[5] += nk
+    tally[6] += nbeyond
+    tally[7] += nunused
+    tally[8] += noutside
+    tally[10] += nfb
+
+
+@numba.njit(cache=True, nogil=True)
+def _add_kernel(flat, order, lo, hi):
+    for q in range(lo, hi):
+        flat[order[q]] += 1.0
+
+
+class _Slot:
+    """One worker's buffers and its own tallies (merged at the end: no shared writes)."""
+
+    def __init__(self, plan, rows):
+        rshift = max(0, int(math.ceil(math.log2(max(plan.n_rods, 1) / _ROD_BLOCKS))))
+        self.rshift = np.int64(rshift)
+        self.nbk = (max(plan.n_rods, 1) >> rshift) + 1
+        size = max(int(rows), 1)
+        self.sel = np.empty(size, np.int32)
+        self.keys = np.empty(size, np.int32)
+        self.order = np.empty(size, np.int32)
+        self.bucket = np.empty(size, np.int32)
+        self.bstart = np.zeros(self.nbk + 1, np.int64)
+        self.tally, self.ext = new_tally()
+        self.ext_raw = self.ext.copy()  # extents of whole valid blocks, in the file's unit
+
+    def grow(self, rows):
+        if rows > self.sel.size:
+            for name, dt in (("sel", np.int32), ("keys", np.int32), ("order", np.int32), ("bucket", np.int32)):
+                setattr(self, name, np.empty(int(rows), dt))
+
+
+class CountPass:
+    """The fused pass over a run, block by block, on one or two threads.
+
+    Each block of rows is cut into one part per thread; each part is ranged, drawn, placed on its
+    rod and site and sorted by block of rods (:func:`_place_kernel`, which releases the GIL), then
+    the increments are shared out by rod block, so no two threads ever write the same bins. Counts
+    are whole numbers added as float64, so the result does not depend on the order of the additions,
+    the number of threads or the block size; the draws depend only on the seed and the row.
+
+    Parameters
+    ----------
+    plan : CountPlan
+    counts : (n_rods, n_sites, n_metals) ndarray of float64, optional
+        Zeroed count array, C-contiguous; counts are added into it. By default a new one is made
+        (:func:`zeroed_array`) in a background thread while the first blocks are placed (their
+        sorted bins wait in memory, at most :data:`PENDING_BYTES`); see :attr:`counts`.
+    threads : int, optional
+        Worker threads (default: two when the process may use two CPUs).
+    factor : float
+        Length unit factor of the positions to nm.
+    strict : bool
+        Stop at the first invalid row (see :attr:`first_bad_row`).
+    """
+
+    def __init__(self, plan: CountPlan, counts=None, threads: int | None = None, factor: float = 1.0,
+                 strict: bool = False):
+        shape = (plan.n_rods, plan.n_sites, plan.n_metals)
+        self._counts = None
+        self._alloc = None
+        if counts is None:
+            import threading
+
+            out = {}
+
+            def make():
+                try:
+                    out["a"] = zeroed_array(shape)
+                except BaseException as e:  # re-raised when the array is needed
+                    out["err"] = e
+
+            self._alloc = (threading.Thread(target=make, daemon=True, name="probeseq-counts"), out)
+            self._alloc[0].start()
+        else:
+            if counts.shape != shape or counts.dtype != np.float64 or not counts.flags.c_contiguous:
+                raise InputError(f"counts must be a C-contiguous float64 array of shape {shape}")
+            self._counts = counts
+        if threads is None:
+            threads = default_threads()
+        self.threads = max(1, int(threads))
+        self.plan = plan
+        self.factor = float(factor)
+        self.strict = bool(strict)
+        self._slots = [_Slot(plan, 1) for _ in range(self.threads)]
+        self._pending = []
+        self._pending_bytes = 0
+        self.plan_dtype = np.dtype(np.float32)
+        self._ex = None
+        if self.threads > 1:
+            from concurrent.futures import ThreadPoolExecutor
+
+            self._ex = ThreadPoolExecutor(max_workers=self.threads - 1, thread_name_prefix="probeseq-count")
+
+    @property
+    def counts(self) -> np.ndarray:
+        """The count array (waits for it and adds every pending block)."""
+        self._flush(wait=True)
+        return self._counts
+
+    def _ready(self, wait: bool) -> bool:
+        if self._counts is None:
+            th, out = self._alloc
+            if th.is_alive() and not wait:
+                return False
+            th.join()
+            if "err" in out:
+                raise out["err"]
+            self._counts = out.pop("a")
+        return True
+
+    def _flush(self, wait: bool, entries=()):
+        """Add the pending blocks and ``entries`` (lists of (sorted bins, bin-block starts)) when
+        the count array is there; otherwise keep copies of ``entries`` for later."""
+        entries = list(entries)
+        if not self._ready(wait and True):
+            if self._pending_bytes + sum(o.nbytes for o, _ in entries) > PENDING_BYTES:
+                self._ready(True)
+            else:
+                for o, b in entries:
+                    self._pending.append((o.copy(), b.copy()))
+                    self._pending_bytes += o.nbytes
+                return
+        todo = self._pending + entries
+        self._pending, self._pending_bytes = [], 0
+        if todo:
+            self._add(todo)
+
+    def _add(self, entries):
+        flat = self._counts.reshape(-1)
+        parts = len(self._slots) if sum(o.size for o, _ in entries) >= 65536 else 1
+        if parts == 1:
+            for o, b in entries:
+                _add_kernel(flat, o, 0, int(b[-1]))
+            return
+        # share the increments out by block of rods, balancing the number of bins
+        per_block = np.sum([np.diff(b) for _, b in entries], axis=0)
+        cum = np.cumsum(per_block)
+        bounds = [0] + [int(np.searchsorted(cum, cum[-1] * t / parts)) + 1 for t in range(1, parts)] + [per_block.size]
+        bounds = np.maximum.accumulate(np.minimum(bounds, per_block.size))
+
+        def add(t):
+            def run():
+                b0, b1 = int(bounds[t]), int(bounds[t + 1])
+                if b1 > b0:
+                    for o, b in entries:
+                        _add_kernel(flat, o, int(b[b0]), int(b[b1]))
+            return run
+
+        self._run([add(t) for t in range(parts)])
+
+    def close(self):
+        if self._ex is not None:
+            self._ex.shutdown(wait=True)
+            self._ex = None
+        if self._alloc is not None and self._alloc[0].is_alive():
+            self._alloc[0].join()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+        return False
+
+    def _run(self, fns):
+        """Run fns[0] here and the others on the pool; re-raise the first error."""
+        futs = [self._ex.submit(f) for f in fns[1:]] if len(fns) > 1 else []
+        err = None
+        try:
+            fns[0]()
+        except BaseException as e:  # wait for the others before raising
+            err = e
+        for f in futs:
+            try:
+                f.result()
+            except BaseException as e:
+                err = err or e
+        if err is not None:
+            raise err
+
+    def add(self, row0: int, x, y, z, m) -> None:
+        """Count one block of ions (rows ``row0 .. row0 + len(x) - 1`` of the run)."""
+        n = int(x.shape[0])
+        if not (y.shape[0] == z.shape[0] == m.shape[0] == n):
+            raise InputError(f"x, y, z, m must have equal lengths, got {x.shape}, {y.shape}, {z.shape}, {m.shape}")
+        if x.dtype != y.dtype or x.dtype != z.dtype or x.dtype.kind != "f" or m.dtype.kind != "f":
+            raise InputError("x, y, z must share one float type and m must be float")
+        if n == 0:
+            return
+        self.plan_dtype = x.dtype
+        rbits = max(1, int(plan_rbits(self.plan)))
+        if n >= (1 << (31 - rbits)):  # a part's (row, range) pairs are packed into 31 bits
+            step = (1 << (31 - rbits)) - 1
+            for s in range(0, n, step):
+                self.add(row0 + s, x[s:s + step], y[s:s + step], z[s:s + step], m[s:s + step])
+            return
+        parts = self.threads if n >= 65536 * self.threads else 1
+        cuts = [n * k // parts for k in range(parts + 1)]
+        plan = self.plan
+        nk = [0] * parts
+
+        def place(k):
+            def run():
+                a, b = cuts[k], cuts[k + 1]
+                sl = self._slots[k]
+                sl.grow(b - a)
+                sl.bstart[:] = 0
+                before = int(sl.tally[5])
+                xs, ys, zs, ms = x[a:b], y[a:b], z[a:b], m[a:b]
+                sl.tally[0] += b - a
+                ui, um = _UINT[xs.dtype.itemsize], _UINT[ms.dtype.itemsize]
+                if xs.dtype.itemsize == ms.dtype.itemsize:
+                    bad = _check_kernel(xs, ys, zs, ms, xs.view(ui), ys.view(ui), zs.view(ui), ms.view(um),
+                                        _EXPO[xs.dtype.itemsize], sl.ext_raw)
+                else:
+                    bad = 1  # mixed float types: row by row
+                if bad == 0:
+                    sl.tally[1] += b - a
+                else:
+                    _slow_check_kernel(xs, ys, zs, ms, np.int64(row0 + a), np.float64(self.factor), sl.tally, sl.ext)
+                    if self.strict:
+                        return
+                _place_kernel(xs, ys, zs, ms, b - a, np.int64(row0 + a), plan.key, np.float64(self.factor),
+                              plan.mass_lut, plan.lows, plan.highs, plan.cum, plan.metal_range, *plan.geometry,
+                              sl.tally, sl.sel, sl.keys, sl.order, sl.bucket, sl.bstart, sl.rshift)
+                nk[k] = int(sl.tally[5]) - before
+            return run
+
+        self._run([place(k) for k in range(parts)])
+        self._flush(False, [(sl.order[:nk[k]], sl.bstart) for k, sl in enumerate(self._slots[:parts])])
+
+    @property
+    def first_bad_row(self) -> int:
+        """Row of the first invalid ion met (-1: none)."""
+        rows = [int(sl.tally[9]) for sl in self._slots if sl.tally[9] >= 0]
+        return min(rows) if rows else -1
+
+    def result(self):
+        """Merged (tally, extents) of everything added so far (the counts are complete after it)."""
+        self._flush(wait=True)
+        tally, ext = new_tally()
+        for sl in self._slots:
+            tally[:9] += sl.tally[:9]
+            tally[10:] += sl.tally[10:]
+            raw = sl.ext_raw.copy()
+            if self.factor != 1.0:  # scaled as the kernels scale (in the input's float type)
+                dt = np.float32 if self.plan_dtype == np.float32 else np.float64
+                raw[:6] = np.where(np.isfinite(raw[:6]), raw[:6].astype(dt) * dt(self.factor), raw[:6])
+            for e in (sl.ext, raw):
+                ext[0::2] = np.minimum(ext[0::2], e[0::2])
+                ext[1::2] = np.maximum(ext[1::2], e[1::2])
+        tally[9] = self.first_bad_row
+        return tally, ext
+
+
+def plan_rbits(plan: CountPlan) -> int:
+    """Bits of the range code (range + 2) in the kernel's packed (row, range) list."""
+    rbits = 1
+    while (1 << rbits) < plan.lows.size + 2:
+        rbits += 1
+    return rbits
+
+
+def default_threads() -> int:
+    """Worker threads of the pass: two when the process may run on two or more CPUs, else one."""
+    import os
+
+    try:
+        n = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        n = os.cpu_count() or 1
+    return 2 if n >= 2 else 1
+
+
+def count_ions(plan: CountPlan, x, y, z, m, row0: int, counts, tally, ext, *, factor: float = 1.0,
+               strict: bool = False, threads: int = 1) -> None:
+    """Run the fused pass over one block of ions, adding into ``counts``, ``tally`` and ``ext``.
+
+    A one-call convenience over :class:`CountPass` (which streams many blocks).
+
+    Parameters
+    ----------
+    plan : CountPlan
+    x, y, z : (n,) ndarray of float32 or float64
+        Positions in the file's unit (multiplied by ``factor`` to nm on the fly).
+    m : (n,) ndarray of float32 or float64, Da
+    row0 : int
+        Index of the block's first ion in the run (for the draws).
+    counts : (n_rods, n_sites, n_metals) ndarray of float64
+    tally, ext : ndarray
+        From :func:`new_tally`.
+    factor : float
+        Length unit factor to nm.
+    strict : bool
+        Stop at the first invalid row (its row is in ``tally[first_bad_row]``).
+    threads : int
+        Worker threads.
+    """
+    with CountPass(plan, counts, threads=threads, factor=factor, strict=strict) as cp:
+        cp.add(row0, x, y, z, m)
+        t, e = cp.result()
+    first = int(tally[9])
+    tally[:9] += t[:9]
+    tally[10:] += t[10:]
+    if t[9] >= 0 and (first < 0 or t[9] < first):
+        tally[9] = t[9]
+    ext[0::2] = np.minimum(ext[0::2], e[0::2])
+    ext[1::2] = np.maximum(ext[1::2], e[1::2])
+
+
+def tally_dict(tally) -> dict:
+    """The integer tallies as a dict keyed by :data:`TALLY_FIELDS`."""
+    return {k: int(tally[i]) for i, k in enumerate(TALLY_FIELDS)}
