@@ -398,17 +398,15 @@ def _prepare(counts: np.ndarray, mask: np.ndarray, rods=None) -> _Prepared:
     )
 
 
-def _subset(prep: _Prepared, counts, mask, max_sites: int, segment: int, rng) -> _Prepared:
-    """Rods drawn at random up to ``max_sites`` observed sites, cut into segments of
-    ``segment`` sites that are treated as separate rods (for screening the starts only: the
-    loops over depth get shorter, at the cost of the few transitions across the cuts)."""
-    if prep.n_obs > max_sites:
-        per_rod = prep.obs.sum(axis=0)
-        order = rng.permutation(len(prep.rods))
+def _screen_arrays(rods, per_rod, n_obs: int, counts, mask, max_sites: int, segment: int, rng):
+    """Counts and mask of rods drawn at random up to ``max_sites`` observed sites, cut into
+    segments of ``segment`` sites that are treated as separate rods (for screening the starts
+    only: the loops over depth get shorter, at the cost of the few transitions across the cuts).
+    None when that is all the rods, uncut."""
+    if n_obs > max_sites:
+        order = rng.permutation(len(rods))
         keep = order[: max(2, int(np.searchsorted(np.cumsum(per_rod[order]), max_sites)))]
-        rods = np.sort(prep.rods[keep])
-    else:
-        rods = prep.rods
+        rods = np.sort(rods[keep])
     c, m = counts[rods], mask[rods]
     n_sites = c.shape[1]
     if n_sites > 2 * segment:
@@ -416,9 +414,15 @@ def _subset(prep: _Prepared, counts, mask, max_sites: int, segment: int, rng) ->
         pad = n_seg * segment - n_sites
         c = np.pad(c, ((0, 0), (0, pad), (0, 0))).reshape(-1, segment, c.shape[2])
         m = np.pad(m, ((0, 0), (0, pad))).reshape(-1, segment)
-    elif prep.n_obs <= max_sites:
-        return prep
-    return _prepare(c, m)
+    elif n_obs <= max_sites:
+        return None
+    return np.ascontiguousarray(c), m
+
+
+def _subset(prep: _Prepared, counts, mask, max_sites: int, segment: int, rng) -> _Prepared:
+    """The screening subset (:func:`_screen_arrays`) of the numpy engine."""
+    cm = _screen_arrays(prep.rods, prep.obs.sum(axis=0), prep.n_obs, counts, mask, max_sites, segment, rng)
+    return prep if cm is None else _prepare(*cm)
 
 
 def _unique_rows(x: np.ndarray):
@@ -496,25 +500,10 @@ def _rod_data(counts: np.ndarray, mask: np.ndarray) -> _RodData:
 
 
 def _screen_data(data: _RodData, max_sites: int, segment: int, rng) -> _RodData:
-    """Rods drawn at random up to ``max_sites`` observed sites, cut into segments of
-    ``segment`` sites treated as separate rods (for screening the starts; see :func:`_subset`)."""
-    per_rod = data.mask[data.rods].sum(axis=1)
-    if data.n_obs > max_sites:
-        order = rng.permutation(len(data.rods))
-        keep = order[: max(2, int(np.searchsorted(np.cumsum(per_rod[order]), max_sites)))]
-        rods = np.sort(data.rods[keep])
-    else:
-        rods = data.rods
-    c, m = data.counts[rods], data.mask[rods]
-    n_sites = c.shape[1]
-    if n_sites > 2 * segment:
-        n_seg = -(-n_sites // segment)
-        pad = n_seg * segment - n_sites
-        c = np.pad(c, ((0, 0), (0, pad), (0, 0))).reshape(-1, segment, c.shape[2])
-        m = np.pad(m, ((0, 0), (0, pad))).reshape(-1, segment)
-    elif data.n_obs <= max_sites:
-        return data
-    return _rod_data(np.ascontiguousarray(c), m)
+    """The screening subset (:func:`_screen_arrays`) of the compiled engine."""
+    cm = _screen_arrays(data.rods, data.mask[data.rods].sum(axis=1), data.n_obs, data.counts, data.mask,
+                        max_sites, segment, rng)
+    return data if cm is None else _rod_data(*cm)
 
 
 def _compiled_step(data: _RodData):
