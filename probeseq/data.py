@@ -68,7 +68,9 @@ class RodColumns:
     site_z_offset_nm: np.ndarray | None = None
 
     def __post_init__(self):
-        c = np.asarray(self.counts, dtype=float)
+        c = np.asarray(self.counts)
+        if c.dtype not in (np.float32, np.float64):  # whole counts may be float32 (exact below 2**24)
+            c = c.astype(np.float64)
         if c.ndim != 3:
             raise InputError(f"counts must be (n_rods, n_sites, n_metals), got shape {c.shape}")
         m = np.asarray(self.mask, dtype=bool)
