@@ -827,23 +827,31 @@ class ColumnBinner:
         return columns_from_counts(self.geometry, self.counts, metals, self.stats())
 
 
-def compact_counts(counts: np.ndarray, block: int = 1 << 22) -> np.ndarray:
-    """The counts as float32 when every value is a whole number below 2**24 (exact in float32;
+def compact_counts(counts: np.ndarray) -> np.ndarray:
+    """The counts as float32 when every value is a whole number in [0, 2**24) (exact in float32;
     the case when every ion is given one metal), else unchanged. Halves the largest array of a
-    big run; converted a block at a time, so the transient extra memory is the float32 copy."""
+    big run; one compiled pass, and the transient extra memory is the float32 copy."""
     c = np.asarray(counts)
-    if c.dtype != np.float64 or not c.size:
+    if c.dtype != np.float64 or not c.size or not c.flags.c_contiguous:
         return c
-    flat = c.reshape(-1)
-    for b in range(0, flat.size, block):
-        x = flat[b:b + block]
-        if not (np.all(x == np.floor(x)) and x.max() < 2 ** 24 and x.min() >= 0):
-            return c
     out = np.empty(c.shape, np.float32)
-    of = out.reshape(-1)
-    for b in range(0, flat.size, block):
-        of[b:b + block] = flat[b:b + block]
-    return out
+    return out if _to_float32_if_whole(c.reshape(-1), out.reshape(-1)) else c
+
+
+@numba.njit(cache=True, nogil=True, parallel=True)
+def _to_float32_if_whole(src, dst):
+    n = src.size
+    n_blocks = 64
+    bad = np.zeros(n_blocks, dtype=np.bool_)
+    step = (n + n_blocks - 1) // n_blocks
+    for b in numba.prange(n_blocks):
+        for i in range(b * step, min(n, (b + 1) * step)):
+            v = src[i]
+            if not (v >= 0.0 and v < 16777216.0 and v == math.floor(v)):
+                bad[b] = True
+                break
+            dst[i] = v
+    return not bad.any()
 
 
 def columns_from_counts(geometry: ColumnGeometry, counts, metals, ion_stats: dict) -> RodColumns:

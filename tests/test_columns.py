@@ -362,3 +362,16 @@ def test_figure(case, tmp_path):
         assert p.stat().st_size > 5000
     with pytest.raises(InputError, match="suffix"):
         plot_rod_density(x, y, z, col, tmp_path / "d.pdf")
+
+
+def test_compact_counts_only_when_exact():
+    from probeseq.columns import compact_counts
+
+    rng = np.random.default_rng(0)
+    whole = rng.poisson(0.7, size=(30, 40, 2)).astype(float)
+    c = compact_counts(whole)
+    assert c.dtype == np.float32 and np.array_equal(c, whole)
+    for bad in (0.5, -1.0, np.nan, 2.0 ** 24):  # split ions, negative, non-finite, not exact in float32
+        x = whole.copy()
+        x[7, 3, 1] = bad
+        assert compact_counts(x) is x
