@@ -37,6 +37,7 @@ import numba
 import numpy as np
 
 from .exceptions import InputError
+from .registration import nearest_candidate
 
 __all__ = ["CountPlan", "CountPass", "make_count_plan", "count_ions", "ion_uniforms", "draw_key", "new_tally",
            "tally_dict", "default_threads", "TALLY_FIELDS"]
@@ -399,21 +400,7 @@ def _place_kernel(x, y, z, m, n, row0, key, factor,
             zf = np.float64(zi)
             f1 = M[0, 0] * xf + M[0, 1] * yf + e[0] * zf + cfb[0]
             f2 = M[1, 0] * xf + M[1, 1] * yf + e[1] * zf + cfb[1]
-            uu = f1 - ci
-            vv = f2 - cj
-            row = off - _FB
-            best = np.inf
-            code = -1
-            for c in range(cand.shape[1]):
-                cq = cand[row, c]
-                du_ = uu - code_frac[cq, 0]
-                dv_ = vv - code_frac[cq, 1]
-                d2 = metric[0, 0] * du_ * du_ + 2 * metric[0, 1] * du_ * dv_ + metric[1, 1] * dv_ * dv_
-                if d2 < best:
-                    best = d2
-                    code = cq
-            if best > cut2:
-                code = -1
+            code = nearest_candidate(cand, off - _FB, f1 - ci, f2 - cj, code_frac, metric, cut2)
             off = code_offset[code] if code >= 0 else code_offset[code_offset.size - 1]
         if off == _EXCL:
             nbeyond += 1

@@ -867,22 +867,25 @@ def _locate_one(f1, f2, table, G, cand, code_frac, metric, cut2):
     cj = I2 >> sh
     code = np.int64(table[((I1 & (G - 1)) << sh) | (I2 & (G - 1))])
     if code <= -2:
-        row = -2 - code
-        u = f1 - ci
-        v = f2 - cj
-        best = np.inf
-        code = -1
-        for q in range(cand.shape[1]):
-            c = cand[row, q]
-            du = u - code_frac[c, 0]
-            dv = v - code_frac[c, 1]
-            d2 = metric[0, 0] * du * du + 2 * metric[0, 1] * du * dv + metric[1, 1] * dv * dv
-            if d2 < best:
-                best = d2
-                code = c
-        if best > cut2:
-            code = -1
+        code = nearest_candidate(cand, -2 - code, f1 - ci, f2 - cj, code_frac, metric, cut2)
     return ci, cj, code
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def nearest_candidate(cand, row, u, v, code_frac, metric, cut2):
+    """Nearest of the candidate rods ``cand[row]`` of a table cell to the point (u, v) within its
+    unit cell (fractional coordinates, distances by ``metric``); -1 beyond the cutoff ``cut2``."""
+    best = np.inf
+    code = -1
+    for q in range(cand.shape[1]):
+        c = cand[row, q]
+        du = u - code_frac[c, 0]
+        dv = v - code_frac[c, 1]
+        d2 = metric[0, 0] * du * du + 2 * metric[0, 1] * du * dv + metric[1, 1] * dv * dv
+        if d2 < best:
+            best = d2
+            code = c
+    return code if best <= cut2 else -1
 
 
 @numba.njit(cache=True, nogil=True)
