@@ -408,7 +408,9 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
         raise InputError(f"no rod lies wholly inside the specimen: outline radius at most {orad.max():.3g} nm "
                          f"with an edge margin of {edge_margin_nm:.3g} nm")
     if not keep.all():
-        cells, xy_ref, inside = cells[keep], xy_ref[keep], inside[keep]
+        # kept rows moved up in place (no second mask-sized array); the view's base keeps the
+        # few dropped rows' bytes
+        cells, xy_ref, inside = cells[keep], xy_ref[keep], inside[:_compact_rows(inside, keep)]
     # dense rod table
     i0 = int(cells[:, 0].min()) - _PAD
     j0 = int(cells[:, 1].min()) - _PAD
@@ -439,6 +441,18 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
         site_phase_contrast=float(contrast), locator=locator, table_origin=(i0, j0, ni, nj),
         rod_table=table, code_offset=code_offset, lut_offset=lut_offset, rod_key=rod_key,
         frac_affine=reg.frac_map())
+
+
+@numba.njit(cache=True, nogil=True)
+def _compact_rows(a, keep):
+    """Move the rows ``a[keep]`` to the front of ``a`` in order; returns their number."""
+    n = 0
+    for r in range(a.shape[0]):
+        if keep[r]:
+            if n != r:
+                a[n, :] = a[r, :]
+            n += 1
+    return n
 
 
 @numba.njit(cache=True, nogil=True, inline="always")

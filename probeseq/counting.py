@@ -23,9 +23,12 @@ ions goes through compiled loops (:class:`CountPass`) that, without per-ion temp
    block of rods by block of rods (a block of ions is a thin depth slice, so each block of rods
    touches a few kB), the rod blocks shared out between the threads so none write the same bins.
 
-The count array is float64 in its final layout (rods, sites, metals), so nothing is copied or
-transposed afterwards; it is made resident in one call (:func:`zeroed_array`) while the first
-blocks are being placed.
+The count array is float32 in its final layout (rods, sites, metals), so nothing is copied,
+converted or transposed afterwards; it is made resident in one call (:func:`zeroed_array`) while
+the first blocks are being placed. Whole counts are exact in float32 below 2**24; should one bin
+reach that (millions of ions in one rod site: only a lattice far off the data's scale), the pass
+reports it (:attr:`CountPass.saturated`) and :func:`probeseq.pipeline._run_pass` counts again in
+float64.
 """
 
 from __future__ import annotations
@@ -39,7 +42,7 @@ import numpy as np
 from .exceptions import InputError
 from .registration import nearest_candidate
 
-__all__ = ["CountPlan", "CountPass", "make_count_plan", "count_ions", "ion_uniforms", "draw_key", "new_tally",
+__all__ = ["CountPlan", "CountPass", "with_geometry", "make_count_plan", "count_ions", "ion_uniforms", "draw_key", "new_tally",
            "tally_dict", "default_threads", "TALLY_FIELDS"]
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
@@ -148,10 +151,10 @@ class CountPlan:
         object.__setattr__(self, "_metal_range",
                            np.concatenate([[0], np.asarray(self.has_metal, bool)]).astype(np.int64))
 
-    def new_counts(self) -> np.ndarray:
-        """A zeroed (n_rods, n_sites, n_metals) float64 count array, resident up front (see
-        :func:`zeroed_array`)."""
-        return zeroed_array((self.n_rods, self.n_sites, self.n_metals))
+    def new_counts(self, dtype=np.float32) -> np.ndarray:
+        """A zeroed (n_rods, n_sites, n_metals) count array (float32 by default), resident up
+        front (see :func:`zeroed_array`)."""
+        return zeroed_array((self.n_rods, self.n_sites, self.n_metals), dtype)
 
 
 def make_count_plan(ranges, metals, thin, geometry, seed) -> CountPlan:
@@ -163,14 +166,16 @@ def make_count_plan(ranges, metals, thin, geometry, seed) -> CountPlan:
     metals : sequence of str
     thin : (n_metals,) array of float
         Per-metal thinning factors (:func:`probeseq.pipeline.detection_balance`).
-    geometry : ColumnGeometry
+    geometry : ColumnGeometry or None
+        None gives a plan with the ranges only (it cannot count until :func:`with_geometry`
+        completes it).
     seed : int
         Seed of the metal draws.
     """
-    from .columns import ColumnGeometry, _plane_model
+    from .columns import ColumnGeometry
     from .ranging import _lookup_for, _weights_for
 
-    if not isinstance(geometry, ColumnGeometry):
+    if geometry is not None and not isinstance(geometry, ColumnGeometry):
         raise InputError(f"geometry must be a ColumnGeometry, got {type(geometry).__name__}")
     metals = tuple(metals)
     w, _other, _ch = _weights_for(ranges, metals)
@@ -181,6 +186,25 @@ def make_count_plan(ranges, metals, thin, geometry, seed) -> CountPlan:
     wr = np.asarray(w[:-1], np.float64) * thin[None, :]  # (n_ranges, K), the unranged row dropped
     cum = np.ascontiguousarray(np.cumsum(np.minimum(wr, 1.0), axis=1)) if wr.size else np.zeros((0, len(metals)))
     has_metal = (wr > 0).any(1) if wr.size else np.zeros(0, bool)
+    # packed range table: (range + 2) << 1 | candidate, candidate = a metal range or an edge cell
+    r2 = np.asarray(lk.lut, np.int64) + 2
+    cand_flag = np.concatenate([[1, 0], has_metal.astype(np.int64)]) if has_metal.size else np.array([1, 0])
+    packed = ((r2 << 1) | cand_flag[r2]).astype(np.int32)
+    plan = CountPlan(n_rods=0, n_sites=0, n_metals=len(metals), key=draw_key(seed),
+                     mass_lut=packed, lows=np.asarray(lk.lows, np.float64),
+                     highs=np.asarray(lk.highs, np.float64), cum=cum, has_metal=np.ascontiguousarray(has_metal),
+                     geometry=None)
+    return plan if geometry is None else with_geometry(plan, geometry)
+
+
+def with_geometry(plan: CountPlan, geometry) -> CountPlan:
+    """The selection plan ``plan`` completed with the rod and site lookup of ``geometry``."""
+    from dataclasses import replace
+
+    from .columns import ColumnGeometry, _plane_model
+
+    if not isinstance(geometry, ColumnGeometry):
+        raise InputError(f"geometry must be a ColumnGeometry, got {type(geometry).__name__}")
     g = geometry
     loc = g.locator
     G = loc.n_grid
@@ -205,38 +229,51 @@ def make_count_plan(ranges, metals, thin, geometry, seed) -> CountPlan:
         ni=np.int64(ni), nj=np.int64(nj), nb=np.int64(g.lattice.rods_per_cell),
         rod_key=np.ascontiguousarray(g.rod_key, np.int32), ns=np.int64(ns),
     )
-    # packed range table: (range + 2) << 1 | candidate, candidate = a metal range or an edge cell
-    r2 = np.asarray(lk.lut, np.int64) + 2
-    cand_flag = np.concatenate([[1, 0], has_metal.astype(np.int64)]) if has_metal.size else np.array([1, 0])
-    packed = ((r2 << 1) | cand_flag[r2]).astype(np.int32)
-    return CountPlan(n_rods=g.n_rods, n_sites=ns, n_metals=len(metals), key=draw_key(seed),
-                     mass_lut=packed, lows=np.asarray(lk.lows, np.float64),
-                     highs=np.asarray(lk.highs, np.float64), cum=cum, has_metal=np.ascontiguousarray(has_metal),
-                     geometry=tuple(geom.values()))
+    return replace(plan, n_rods=g.n_rods, n_sites=ns, geometry=tuple(geom.values()))
 
 
 #: rod blocks of the grouped increments (a block's bins of one depth slice stay in cache)
 _ROD_BLOCKS = 256
 #: sorted bins kept while the count array is still being made (see :class:`CountPass`)
 PENDING_BYTES = 256 << 20
-def zeroed_array(shape) -> np.ndarray:
-    """A zeroed float64 array whose pages are made resident up front.
+def zeroed_array(shape, dtype=np.float64) -> np.ndarray:
+    """A zeroed array whose pages are made resident up front.
 
-    A large array is mapped with ``MAP_POPULATE``: the kernel zeroes and maps every page in one
-    call, which on a virtual machine costs a fraction of taking one page fault per page later (and
-    page faults from two threads contend). ``np.zeros`` where that is not available.
+    A large array is an anonymous memory map advised for transparent huge pages (2 MiB pages: one
+    fault per 2 MiB instead of per 4 kiB) and made resident by a compiled loop writing one zero
+    per 4 kiB page, which releases the GIL (``mmap.madvise`` and ``MAP_POPULATE`` hold it for the
+    whole call, stalling every other thread of the process). On a virtual machine that costs a
+    fraction of taking a page fault per 4 kiB page later, and page faults from two threads contend
+    (measured here: 0.08 s for 512 MiB against 0.3 s with ``MAP_POPULATE`` on 4 kiB pages, when
+    the memory was used before; first use of fresh memory is slower either way).
+    ``np.zeros`` where memory maps are not available.
     """
     import mmap
 
     shape = tuple(int(v) for v in shape)
-    nbytes = int(np.prod(shape, dtype=np.int64)) * 8
-    if nbytes < (16 << 20) or not hasattr(mmap, "MAP_POPULATE"):
-        return np.zeros(shape, np.float64)
+    dtype = np.dtype(dtype)
+    nbytes = int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
+    if nbytes < (16 << 20):
+        return np.zeros(shape, dtype)
     try:
-        mm = mmap.mmap(-1, nbytes, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS | mmap.MAP_POPULATE)
-    except (OSError, ValueError):
-        return np.zeros(shape, np.float64)
-    return np.frombuffer(mm, np.float64).reshape(shape)
+        mm = mmap.mmap(-1, nbytes, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS)
+    except (OSError, ValueError, AttributeError):
+        return np.zeros(shape, dtype)
+    if hasattr(mm, "madvise") and hasattr(mmap, "MADV_HUGEPAGE"):
+        try:
+            mm.madvise(mmap.MADV_HUGEPAGE)
+        except (OSError, ValueError):
+            pass
+    a = np.frombuffer(mm, dtype)
+    _touch_pages(a.view(np.uint8))
+    return a.reshape(shape)
+
+
+@numba.njit(cache=True, nogil=True)
+def _touch_pages(b):
+    # one write per 4 kiB page makes it resident (the pages are zero already)
+    for i in range(0, b.size, 4096):
+        b[i] = 0
 
 
 _FB = -2_100_000_000
@@ -303,27 +340,23 @@ def _slow_check_kernel(x, y, z, m, row0, factor, tally, ext):
 
 
 @numba.njit(cache=True, nogil=True)
-def _place_kernel(x, y, z, m, n, row0, key, factor,
-                  mass_lut, lows, highs, cum, metal_range,
-                  a, ez, cc, site_c, M, e, cfb, G, sh, lut_offset, code_offset, cand, code_frac, metric, cut2,
-                  ni, nj, nb, rod_key, ns,
-                  tally, sel, keys, order, bucket, bstart, rshift):
+def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel, rows, metals):
+    """Rows of ``m[:n]`` in ranges holding metal, each with its drawn metal; returns their number.
+
+    Loop 1 (every row, mass-to-charge only): one table load gives the range (+ 2) and whether the
+    row is a candidate (a range holding metal, or a cell holding a range edge, resolved in loop 2);
+    candidates are listed as (row << rbits) | (range + 2), written always and kept by advancing the
+    count: no branch. A NaN or non-positive m lands in the last cell, no range. Loop 2: edge cells
+    by binary search, then the metal draw; the selected rows (local, increasing) go to ``rows`` and
+    their metals to ``metals``. Positions are not read (invalid positions are dropped when placed).
+    """
     K = cum.shape[1]
     n_ranges = lows.size
     rbits = 1
     while (np.int64(1) << rbits) < n_ranges + 2:
         rbits += 1
     top = mass_lut.size - 1
-    fdt = x.dtype.type
-    mdt = m.dtype.type
-    one_k = mdt(1024.0)
-    fac = fdt(factor)
-    scale = factor != 1.0
-    # ---- loop 1 (every row, mass-to-charge only): one table load gives the range (+ 2) and whether
-    # the row is a candidate (a range holding metal, or a cell holding a range edge, resolved in
-    # loop 2); candidates are listed as (row << rbits) | (range + 2), written always and kept by
-    # advancing the count: no branch. A NaN or non-positive m lands in the last cell, no range;
-    # invalid positions are caught in loop 2.
+    one_k = m.dtype.type(1024.0)
     nsel = 0
     for i in range(n):
         f = m[i] * one_k
@@ -331,19 +364,8 @@ def _place_kernel(x, y, z, m, n, row0, key, factor,
         v = np.int64(mass_lut[cell])
         sel[nsel] = np.int32((i << rbits) | (v >> 1))
         nsel += v & 1
-    # ---- loop 2 (metal-range rows): metal draw, then nearest rod and site (arithmetic as
-    # columns._assign_chunk), then the bin's flat index
-    a00 = fdt(a[0, 0]); a01 = fdt(a[0, 1]); a10 = fdt(a[1, 0]); a11 = fdt(a[1, 1])
-    ez0 = fdt(ez[0]); ez1 = fdt(ez[1]); cc0 = fdt(cc[0]); cc1 = fdt(cc[1])
-    s0 = fdt(site_c[0]); s1 = fdt(site_c[1]); s2 = fdt(site_c[2]); s3 = fdt(site_c[3])
-    gm1 = G - 1
-    nmetal = 0
-    nbeyond = 0
-    nunused = 0
-    noutside = 0
-    nfb = 0
-    nk = 0
     rmask = (np.int64(1) << rbits) - 1
+    nk = 0
     for q in range(nsel):
         iv = np.int64(sel[q])
         i = iv >> rbits
@@ -370,6 +392,35 @@ def _place_kernel(x, y, z, m, n, row0, key, factor,
                 metal += 1
             if metal == K:
                 continue
+        rows[nk] = np.int32(i)
+        metals[nk] = np.int8(metal)
+        nk += 1
+    return nk
+
+
+@numba.njit(cache=True, nogil=True)
+def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K,
+                   a, ez, cc, site_c, M, e, cfb, G, sh, lut_offset, code_offset, cand, code_frac, metric, cut2,
+                   ni, nj, nb, rod_key, ns,
+                   tally, keys, order, bucket, bstart, rshift):
+    """Place the selected ions ``rows[lo:hi]`` (rows of x, y, z) with their drawn ``metals`` on
+    their rod and site (arithmetic as columns._assign_chunk), then sort their bins by block of rods."""
+    fdt = x.dtype.type
+    fac = fdt(factor)
+    scale = factor != 1.0
+    a00 = fdt(a[0, 0]); a01 = fdt(a[0, 1]); a10 = fdt(a[1, 0]); a11 = fdt(a[1, 1])
+    ez0 = fdt(ez[0]); ez1 = fdt(ez[1]); cc0 = fdt(cc[0]); cc1 = fdt(cc[1])
+    s0 = fdt(site_c[0]); s1 = fdt(site_c[1]); s2 = fdt(site_c[2]); s3 = fdt(site_c[3])
+    gm1 = G - 1
+    nmetal = 0
+    nbeyond = 0
+    nunused = 0
+    noutside = 0
+    nfb = 0
+    nk = 0
+    for q in range(lo, hi):
+        i = np.int64(rows[q])
+        metal = np.int64(metals[q])
         xi = x[i]
         yi = y[i]
         zi = z[i]
@@ -444,21 +495,71 @@ def _place_kernel(x, y, z, m, n, row0, key, factor,
     tally[10] += nfb
 
 
+#: a float32 bin counts whole numbers exactly up to this; a bin reaching it flags the pass
+FLOAT32_LIMIT = float(1 << 24)
+
+
 @numba.njit(cache=True, nogil=True)
-def _add_kernel(flat, order, lo, hi):
+def _add_kernel(flat, order, lo, hi, limit):
+    # returns True when a bin reached ``limit`` (the sum is formed in float64, so it is exact)
+    sat = False
     for q in range(lo, hi):
-        flat[order[q]] += 1.0
+        k = order[q]
+        v = np.float64(flat[k]) + 1.0
+        flat[k] = v
+        sat |= v >= limit
+    return sat
+
+
+def _check_rows(sl, xs, ys, zs, ms, row0, factor) -> int:
+    """Validity and extents of one block into slot ``sl``'s tallies; returns the invalid rows."""
+    n = xs.shape[0]
+    sl.tally[0] += n
+    ui, um = _UINT[xs.dtype.itemsize], _UINT[ms.dtype.itemsize]
+    if xs.dtype.itemsize == ms.dtype.itemsize:
+        bad = _check_kernel(xs, ys, zs, ms, xs.view(ui), ys.view(ui), zs.view(ui), ms.view(um),
+                            _EXPO[xs.dtype.itemsize], sl.ext_raw)
+    else:
+        bad = 1  # mixed float types: row by row
+    if bad == 0:
+        sl.tally[1] += n
+    else:
+        before = int(sl.tally[1])
+        _slow_check_kernel(xs, ys, zs, ms, np.int64(row0), np.float64(factor), sl.tally, sl.ext)
+        bad = n - (int(sl.tally[1]) - before)
+    return bad
+
+
+def _merge_checks(slots, factor, dtype):
+    """Tally and extents of the validity checks of ``slots`` (fields n_rows .. n_nonpositive and
+    first_bad_row; the rest stay 0)."""
+    tally, ext = new_tally()
+    for sl in slots:
+        tally[:4] += sl.tally[:4]
+        raw = sl.ext_raw.copy()
+        if factor != 1.0:  # scaled as the kernels scale (in the input's float type)
+            dt = np.float32 if dtype == np.float32 else np.float64
+            raw[:6] = np.where(np.isfinite(raw[:6]), raw[:6].astype(dt) * dt(factor), raw[:6])
+        for e in (sl.ext, raw):
+            ext[0::2] = np.minimum(ext[0::2], e[0::2])
+            ext[1::2] = np.maximum(ext[1::2], e[1::2])
+    rows = [int(sl.tally[9]) for sl in slots if sl.tally[9] >= 0]
+    tally[9] = min(rows) if rows else -1
+    return tally, ext
 
 
 class _Slot:
     """One worker's buffers and its own tallies (merged at the end: no shared writes)."""
 
     def __init__(self, plan, rows):
-        rshift = max(0, int(math.ceil(math.log2(max(plan.n_rods, 1) / _ROD_BLOCKS))))
+        n_rods = plan.n_rods if plan is not None else 1
+        rshift = max(0, int(math.ceil(math.log2(max(n_rods, 1) / _ROD_BLOCKS))))
         self.rshift = np.int64(rshift)
-        self.nbk = (max(plan.n_rods, 1) >> rshift) + 1
+        self.nbk = (max(n_rods, 1) >> rshift) + 1
         size = max(int(rows), 1)
         self.sel = np.empty(size, np.int32)
+        self.rows = np.empty(size, np.int32)
+        self.metals = np.empty(size, np.int8)
         self.keys = np.empty(size, np.int32)
         self.order = np.empty(size, np.int32)
         self.bucket = np.empty(size, np.int32)
@@ -468,7 +569,8 @@ class _Slot:
 
     def grow(self, rows):
         if rows > self.sel.size:
-            for name, dt in (("sel", np.int32), ("keys", np.int32), ("order", np.int32), ("bucket", np.int32)):
+            for name, dt in (("sel", np.int32), ("rows", np.int32), ("metals", np.int8), ("keys", np.int32),
+                             ("order", np.int32), ("bucket", np.int32)):
                 setattr(self, name, np.empty(int(rows), dt))
 
 
@@ -476,18 +578,21 @@ class CountPass:
     """The fused pass over a run, block by block, on one or two threads.
 
     Each block of rows is cut into one part per thread; each part is ranged, drawn, placed on its
-    rod and site and sorted by block of rods (:func:`_place_kernel`, which releases the GIL), then
+    rod and site and sorted by block of rods (:func:`_select_kernel` and :func:`_locate_kernel`,
+    which release the GIL), then
     the increments are shared out by rod block, so no two threads ever write the same bins. Counts
-    are whole numbers added as float64, so the result does not depend on the order of the additions,
-    the number of threads or the block size; the draws depend only on the seed and the row.
+    are whole numbers (exact in float32 below :data:`FLOAT32_LIMIT`), so the result does not
+    depend on the order of the additions, the number of threads or the block size; the draws
+    depend only on the seed and the row.
 
     Parameters
     ----------
     plan : CountPlan
-    counts : (n_rods, n_sites, n_metals) ndarray of float64, optional
-        Zeroed count array, C-contiguous; counts are added into it. By default a new one is made
-        (:func:`zeroed_array`) in a background thread while the first blocks are placed (their
-        sorted bins wait in memory, at most :data:`PENDING_BYTES`); see :attr:`counts`.
+    counts : (n_rods, n_sites, n_metals) ndarray of float32 or float64, optional
+        Zeroed count array, C-contiguous; counts are added into it. By default a new float32 one
+        is made (:func:`zeroed_array`) in a background thread while the first blocks are placed
+        (their sorted bins wait in memory, at most :data:`PENDING_BYTES`); see :attr:`counts`.
+        A float32 array whose bin reaches :data:`FLOAT32_LIMIT` sets :attr:`saturated`.
     threads : int, optional
         Worker threads (default: two when the process may use two CPUs).
     factor : float
@@ -508,16 +613,18 @@ class CountPass:
 
             def make():
                 try:
-                    out["a"] = zeroed_array(shape)
+                    out["a"] = zeroed_array(shape, np.float32)
                 except BaseException as e:  # re-raised when the array is needed
                     out["err"] = e
 
             self._alloc = (threading.Thread(target=make, daemon=True, name="probeseq-counts"), out)
             self._alloc[0].start()
         else:
-            if counts.shape != shape or counts.dtype != np.float64 or not counts.flags.c_contiguous:
-                raise InputError(f"counts must be a C-contiguous float64 array of shape {shape}")
+            if (counts.shape != shape or counts.dtype not in (np.float32, np.float64)
+                    or not counts.flags.c_contiguous):
+                raise InputError(f"counts must be a C-contiguous float32 or float64 array of shape {shape}")
             self._counts = counts
+        self._saturated = False
         if threads is None:
             threads = default_threads()
         self.threads = max(1, int(threads))
@@ -533,6 +640,13 @@ class CountPass:
             from concurrent.futures import ThreadPoolExecutor
 
             self._ex = ThreadPoolExecutor(max_workers=self.threads - 1, thread_name_prefix="probeseq-count")
+
+    @property
+    def saturated(self) -> bool:
+        """True when a float32 bin reached :data:`FLOAT32_LIMIT` (its later increments may be
+        lost): count again into a float64 array."""
+        self._flush(wait=True)
+        return self._saturated
 
     @property
     def counts(self) -> np.ndarray:
@@ -570,10 +684,11 @@ class CountPass:
 
     def _add(self, entries):
         flat = self._counts.reshape(-1)
+        limit = np.float64(FLOAT32_LIMIT if flat.dtype == np.float32 else np.inf)
         parts = len(self._slots) if sum(o.size for o, _ in entries) >= 65536 else 1
         if parts == 1:
             for o, b in entries:
-                _add_kernel(flat, o, 0, int(b[-1]))
+                self._saturated |= bool(_add_kernel(flat, o, 0, int(b[-1]), limit))
             return
         # share the increments out by block of rods, balancing the number of bins
         per_block = np.sum([np.diff(b) for _, b in entries], axis=0)
@@ -581,15 +696,18 @@ class CountPass:
         bounds = [0] + [int(np.searchsorted(cum, cum[-1] * t / parts)) + 1 for t in range(1, parts)] + [per_block.size]
         bounds = np.maximum.accumulate(np.minimum(bounds, per_block.size))
 
+        sat = [False] * parts
+
         def add(t):
             def run():
                 b0, b1 = int(bounds[t]), int(bounds[t + 1])
                 if b1 > b0:
                     for o, b in entries:
-                        _add_kernel(flat, o, int(b[b0]), int(b[b1]))
+                        sat[t] |= bool(_add_kernel(flat, o, int(b[b0]), int(b[b1]), limit))
             return run
 
         self._run([add(t) for t in range(parts)])
+        self._saturated |= any(sat)
 
     def close(self):
         if self._ex is not None:
@@ -640,6 +758,8 @@ class CountPass:
         parts = self.threads if n >= 65536 * self.threads else 1
         cuts = [n * k // parts for k in range(parts + 1)]
         plan = self.plan
+        if plan.geometry is None:
+            raise InputError("the count plan has no geometry (see with_geometry)")
         nk = [0] * parts
 
         def place(k):
@@ -650,22 +770,13 @@ class CountPass:
                 sl.bstart[:] = 0
                 before = int(sl.tally[5])
                 xs, ys, zs, ms = x[a:b], y[a:b], z[a:b], m[a:b]
-                sl.tally[0] += b - a
-                ui, um = _UINT[xs.dtype.itemsize], _UINT[ms.dtype.itemsize]
-                if xs.dtype.itemsize == ms.dtype.itemsize:
-                    bad = _check_kernel(xs, ys, zs, ms, xs.view(ui), ys.view(ui), zs.view(ui), ms.view(um),
-                                        _EXPO[xs.dtype.itemsize], sl.ext_raw)
-                else:
-                    bad = 1  # mixed float types: row by row
-                if bad == 0:
-                    sl.tally[1] += b - a
-                else:
-                    _slow_check_kernel(xs, ys, zs, ms, np.int64(row0 + a), np.float64(self.factor), sl.tally, sl.ext)
-                    if self.strict:
-                        return
-                _place_kernel(xs, ys, zs, ms, b - a, np.int64(row0 + a), plan.key, np.float64(self.factor),
-                              plan.mass_lut, plan.lows, plan.highs, plan.cum, plan.metal_range, *plan.geometry,
-                              sl.tally, sl.sel, sl.keys, sl.order, sl.bucket, sl.bstart, sl.rshift)
+                if _check_rows(sl, xs, ys, zs, ms, row0 + a, self.factor) and self.strict:
+                    return
+                hi = _select_kernel(ms, b - a, np.int64(row0 + a), plan.key, plan.mass_lut, plan.lows, plan.highs,
+                                    plan.cum, plan.metal_range, sl.sel, sl.rows, sl.metals)
+                _locate_kernel(xs, ys, zs, sl.rows, sl.metals, np.int64(0), np.int64(hi), np.float64(self.factor),
+                               np.int64(plan.n_metals), *plan.geometry,
+                               sl.tally, sl.keys, sl.order, sl.bucket, sl.bstart, sl.rshift)
                 nk[k] = int(sl.tally[5]) - before
             return run
 
@@ -681,18 +792,10 @@ class CountPass:
     def result(self):
         """Merged (tally, extents) of everything added so far (the counts are complete after it)."""
         self._flush(wait=True)
-        tally, ext = new_tally()
+        tally, ext = _merge_checks(self._slots, self.factor, self.plan_dtype)
         for sl in self._slots:
-            tally[:9] += sl.tally[:9]
+            tally[4:9] += sl.tally[4:9]
             tally[10:] += sl.tally[10:]
-            raw = sl.ext_raw.copy()
-            if self.factor != 1.0:  # scaled as the kernels scale (in the input's float type)
-                dt = np.float32 if self.plan_dtype == np.float32 else np.float64
-                raw[:6] = np.where(np.isfinite(raw[:6]), raw[:6].astype(dt) * dt(self.factor), raw[:6])
-            for e in (sl.ext, raw):
-                ext[0::2] = np.minimum(ext[0::2], e[0::2])
-                ext[1::2] = np.maximum(ext[1::2], e[1::2])
-        tally[9] = self.first_bad_row
         return tally, ext
 
 
@@ -729,7 +832,8 @@ def count_ions(plan: CountPlan, x, y, z, m, row0: int, counts, tally, ext, *, fa
     m : (n,) ndarray of float32 or float64, Da
     row0 : int
         Index of the block's first ion in the run (for the draws).
-    counts : (n_rods, n_sites, n_metals) ndarray of float64
+    counts : (n_rods, n_sites, n_metals) ndarray of float32 or float64
+        A float32 array must stay below :data:`FLOAT32_LIMIT` in every bin (else InputError).
     tally, ext : ndarray
         From :func:`new_tally`.
     factor : float
@@ -742,6 +846,9 @@ def count_ions(plan: CountPlan, x, y, z, m, row0: int, counts, tally, ext, *, fa
     with CountPass(plan, counts, threads=threads, factor=factor, strict=strict) as cp:
         cp.add(row0, x, y, z, m)
         t, e = cp.result()
+        if cp.saturated:
+            raise InputError(f"a float32 count reached {FLOAT32_LIMIT:.0f} and is no longer exact: "
+                             "pass a float64 count array")
     first = int(tally[9])
     tally[:9] += t[:9]
     tally[10:] += t[10:]

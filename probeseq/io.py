@@ -70,8 +70,9 @@ def file_sha256_mapped(path, window: int = 64 << 20) -> str:
     fd = os.open(p, os.O_RDONLY)
     try:
         for off in range(0, size, window):
-            mm = mmap.mmap(fd, min(window, size - off), flags=mmap.MAP_SHARED | getattr(mmap, "MAP_POPULATE", 0),
-                           prot=mmap.PROT_READ, offset=off)
+            # no MAP_POPULATE: Python holds the GIL through the whole mmap call, which would stall
+            # the other threads; the pages fault in during update(), which releases the GIL
+            mm = mmap.mmap(fd, min(window, size - off), flags=mmap.MAP_SHARED, prot=mmap.PROT_READ, offset=off)
             try:
                 h.update(mm)
             finally:
@@ -530,8 +531,9 @@ class IonSource:
                 off = int(offs[i]) + (start - cs) * dt.itemsize
                 base = off - off % mmap.ALLOCATIONGRANULARITY
                 length = off - base + (stop - start) * dt.itemsize
-                flags = mmap.MAP_SHARED | getattr(mmap, "MAP_POPULATE", 0)
-                mm = mmap.mmap(self._fd, length, flags=flags, prot=mmap.PROT_READ, offset=base)
+                # no MAP_POPULATE: Python holds the GIL through the whole mmap call (stalling the other
+                # threads); the pages fault in inside the compiled kernels, which release it
+                mm = mmap.mmap(self._fd, length, flags=mmap.MAP_SHARED, prot=mmap.PROT_READ, offset=base)
                 maps.append(mm)
                 views[c] = np.frombuffer(mm, dtype=dt, count=stop - start, offset=off - base)
             yield views

@@ -284,15 +284,15 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
                                      f"{SAMPLE_BLOCKS} depth blocks"):
             sample = ions.subset(_block_index(n, SAMPLE_BLOCKS, _block_rows(SAMPLE_IONS)))
             n_sample["n"] = len(sample)
-        rr, thin, geom = _fit_on_sample(sample, metals, lattice, opts, ranges, clock)
-        with clock.stage("binning", f"ranging, drawing and binning all {n} ions in one pass"):
-            plan = _start_pass(rr, metals, thin, geom, opts.seed)
-            x, y, z = _same_float(ions.x, ions.y, ions.z)
-            m = ions.mass_to_charge
-            blocks = [(s, min(n, s + PASS_CHUNK)) for s in range(0, n, PASS_CHUNK)]
-            counts, tally, _ = _run_pass(plan, None, 1.0, False,
-                                         ((s, x[s:e], y[s:e], z[s:e], m[s:e]) for s, e in blocks))
-            cols, n_metal = _finish_pass(geom, counts, metals, tally, thin)
+        x, y, z = _same_float(ions.x, ions.y, ions.z)
+        m = ions.mass_to_charge
+        bounds = [(s, min(n, s + PASS_CHUNK)) for s in range(0, n, PASS_CHUNK)]
+
+        def blocks():
+            return ((s, x[s:e], y[s:e], z[s:e], m[s:e]) for s, e in bounds)
+
+        rr, cols, n_metal, _, _ = _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, 1.0,
+                                                 message=f"ranging, drawing and binning all {n} ions in one pass")
         return rr, cols, n_metal
 
     summary = ions.summary()
@@ -310,7 +310,7 @@ SAMPLE_BLOCKS = 256
 #: counting error of about 0.001 from 1.5e6 ions (0.002 from 4e5), for about 0.1 s more
 RANGING_IONS = 1_500_000
 #: ions per block of the fused pass (four float32 columns of 4 MiB each)
-PASS_CHUNK = 1 << 20
+PASS_CHUNK = 1 << 22
 
 
 def _block_rows(sample_ions: int) -> int:
@@ -353,6 +353,17 @@ def _single_threaded_blas():
             ctl.restore_original_limits()
 
 
+def _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, factor, *, strict: bool = False,
+                   where: str = "", message: str = ""):
+    """Fits on the sample, then the pass over ``blocks()``; returns (rr, cols, n_metal, tally, ext)."""
+    rr, thin, geom = _fit_on_sample(sample, metals, lattice, opts, ranges, clock)
+    with clock.stage("binning", message):
+        plan = _start_pass(rr, metals, thin, geom, opts.seed)
+        counts, tally, ext = _run_pass(plan, None, factor, strict, blocks, where=where)
+        cols, n_metal = _finish_pass(geom, counts, metals, tally, thin)
+    return rr, cols, n_metal, tally, ext
+
+
 def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
     """Ranging, detection balance, registration and column plan, all on the bounded sample."""
     from .columns import plan_columns
@@ -384,21 +395,31 @@ def _start_pass(rr, metals, thin, geom, seed):
 
 
 def _run_pass(plan, counts, factor, strict, blocks, where="", threads=None):
-    """Feed ``(row0, x, y, z, m)`` blocks through the fused kernel; returns (counts, tally, extents).
+    """Feed the ``(row0, x, y, z, m)`` blocks of ``blocks()`` through the fused kernel; returns
+    (counts, tally, extents).
 
-    ``counts`` None: the count array is made meanwhile (see :class:`probeseq.counting.CountPass`).
+    ``counts`` None: a float32 count array is made meanwhile (see
+    :class:`probeseq.counting.CountPass`); should a bin reach 2**24 ions, where float32 stops
+    counting exactly, the pass is run again (``blocks()`` called again) into a float64 array.
     With ``strict`` it stops with an :class:`InputError` at the first block holding an invalid row.
     """
-    from .counting import CountPass
+    from .counting import FLOAT32_LIMIT, CountPass
 
     with CountPass(plan, counts, threads=threads, factor=factor, strict=strict) as cp:
-        for row0, x, y, z, m in blocks:
+        for row0, x, y, z, m in blocks():
             cp.add(row0, x, y, z, m)
             if strict and cp.first_bad_row >= 0:
                 raise InputError(f"{where or 'ion list'}: data row {cp.first_bad_row + 1} holds NaN or infinite "
                                  f"values or a non-positive mass_to_charge (--strict)")
         tally, ext = cp.result()
-        return cp.counts, tally, ext
+        if not cp.saturated:
+            return cp.counts, tally, ext
+        if counts is not None:
+            raise InputError(f"a float32 count reached {FLOAT32_LIMIT:.0f} and is no longer exact: "
+                             "pass a float64 count array")
+    warnings.warn(f"{where or 'ion list'}: a rod site holds {FLOAT32_LIMIT:.0f} or more ions (is the lattice on "
+                  f"the data's scale?); counting again in float64", DataQualityWarning, stacklevel=3)
+    return _run_pass(plan, plan.new_counts(np.float64), factor, strict, blocks, where, threads)
 
 
 def _finish_pass(geom, counts, metals, tally, thin):
@@ -611,12 +632,13 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
                     sample, _ = read_ion_sample(src, SAMPLE_BLOCKS, block_rows, strict=strict)
                 if len(sample) == 0:
                     raise InputError(f"{path}: no valid ions in the sample (all rows dropped)")
-                rr, thin, geom = _fit_on_sample(sample, metals, lattice, opts, ranges, clock)
-                with clock.stage("binning", f"ranging, drawing and binning all {n} ions in chunks of {chunk_size}"):
-                    plan = _start_pass(rr, metals, thin, geom, opts.seed)
-                    counts, tally, ext = _run_pass(plan, None, src.factor, strict,
-                                                   _file_blocks(src, int(chunk_size)), where=str(path))
-                    cols, n_metal = _finish_pass(geom, counts, metals, tally, thin)
+
+                def blocks():
+                    return _file_blocks(src, int(chunk_size))
+
+                rr, cols, n_metal, tally, ext = _fit_and_count(
+                    sample, metals, lattice, opts, ranges, clock, blocks, src.factor, strict=strict, where=str(path),
+                    message=f"ranging, drawing and binning all {n} ions in chunks of {chunk_size}")
                 unit = src.unit
             # the count array is finished here; the checksum (provenance, not needed for the counts)
             # runs on at low priority alongside the next stages and is waited for at the end

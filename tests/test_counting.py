@@ -159,6 +159,72 @@ def test_zeroed_array():
     assert a.shape == (300, 200, 2) and b.shape == (3000, 2000, 2)
     assert a.dtype == b.dtype == np.float64 and b.flags.c_contiguous and b.flags.writeable
     assert not a.any() and not b[::97].any()
+    c = zeroed_array((3000, 2000, 2), np.float32)
+    assert c.dtype == np.float32 and c.shape == (3000, 2000, 2) and not c.any()
+
+
+def test_zeroed_array_leaves_other_threads_running():
+    """Making a large array resident must not hold the GIL (a stall of every other thread)."""
+    import threading
+    import time
+
+    zeroed_array(((32 << 20) // 4,), np.float32)  # load the compiled page-touching loop first
+    done = threading.Event()
+
+    def alloc():
+        try:
+            zeroed_array(((256 << 20) // 4,), np.float32)
+        finally:
+            done.set()
+
+    th = threading.Thread(target=alloc)
+    gap = 0.0
+    last = t0 = time.perf_counter()
+    th.start()
+    while not done.is_set() and last - t0 < 60:
+        now = time.perf_counter()
+        gap = max(gap, now - last)
+        last = now
+    th.join()
+    assert done.is_set()
+    # the Python loop above runs between the GIL switches (5 ms); a held GIL stops it for the whole
+    # population of 256 MiB (tens to hundreds of ms)
+    assert gap < 0.05
+
+
+def test_float32_counts_are_whole_and_a_saturated_bin_counts_again_in_float64(run, fitted, monkeypatch):
+    """The default count array is float32; should a bin reach FLOAT32_LIMIT (2**24 in use, where
+    float32 stops counting exactly), the pass flags it and the pipeline counts again in float64
+    with the same result (the limit is lowered here so a small run reaches it)."""
+    import probeseq.counting as counting
+    from probeseq.exceptions import DataQualityWarning
+    from probeseq.pipeline import _run_pass
+
+    rr, thin, geom = fitted
+    ions = as_dict(run.ions)
+    plan = make_count_plan(rr.ranges, METALS, thin, geom, 3)
+    x, y, z, m = (np.asarray(ions[c], np.float32) for c in "xyzm")
+
+    def blocks():
+        return ((s, x[s:s + 50_000], y[s:s + 50_000], z[s:s + 50_000], m[s:s + 50_000])
+                for s in range(0, x.size, 50_000))
+
+    c32, t32, _ = _run_pass(plan, None, 1.0, False, blocks)
+    assert c32.dtype == np.float32
+    top = float(c32.max())
+    assert top >= 2
+    monkeypatch.setattr(counting, "FLOAT32_LIMIT", top)
+    with pytest.warns(DataQualityWarning, match="counting again in float64"):
+        c64, t64, _ = _run_pass(plan, None, 1.0, False, blocks)
+    assert c64.dtype == np.float64
+    np.testing.assert_array_equal(c64, c32)
+    np.testing.assert_array_equal(t64, t32)
+    # a float32 array handed in cannot be swapped: a clear error instead
+    with pytest.raises(InputError, match="float64 count array"):
+        _run_pass(plan, plan.new_counts(np.float32), 1.0, False, blocks)
+    monkeypatch.setattr(counting, "FLOAT32_LIMIT", top + 1)
+    c, _, _ = _run_pass(plan, plan.new_counts(np.float32), 1.0, False, blocks)
+    np.testing.assert_array_equal(c, c32)
 
 
 # ---------------------------------------------------------------------- column mask kernel
