@@ -310,7 +310,7 @@ SAMPLE_BLOCKS = 256
 #: counting error of about 0.001 from 1.5e6 ions (0.002 from 4e5), for about 0.1 s more
 RANGING_IONS = 1_500_000
 #: ions per block of the fused pass (four float32 columns of 4 MiB each)
-PASS_CHUNK = 1 << 22
+PASS_CHUNK = 1 << 20
 
 
 def _block_rows(sample_ions: int) -> int:
