@@ -42,7 +42,7 @@ import numpy as np
 from .exceptions import InputError
 from .registration import nearest_candidate
 
-__all__ = ["CountPlan", "CountPass", "with_geometry", "make_count_plan", "count_ions", "ion_uniforms", "draw_key", "new_tally",
+__all__ = ["CountPlan", "CountPass", "make_count_plan", "count_ions", "ion_uniforms", "draw_key", "new_tally",
            "tally_dict", "default_threads", "TALLY_FIELDS"]
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
@@ -166,16 +166,14 @@ def make_count_plan(ranges, metals, thin, geometry, seed) -> CountPlan:
     metals : sequence of str
     thin : (n_metals,) array of float
         Per-metal thinning factors (:func:`probeseq.pipeline.detection_balance`).
-    geometry : ColumnGeometry or None
-        None gives a plan with the ranges only (it cannot count until :func:`with_geometry`
-        completes it).
+    geometry : ColumnGeometry
     seed : int
         Seed of the metal draws.
     """
     from .columns import ColumnGeometry
     from .ranging import _lookup_for, _weights_for
 
-    if geometry is not None and not isinstance(geometry, ColumnGeometry):
+    if not isinstance(geometry, ColumnGeometry):
         raise InputError(f"geometry must be a ColumnGeometry, got {type(geometry).__name__}")
     metals = tuple(metals)
     w, _other, _ch = _weights_for(ranges, metals)
@@ -190,22 +188,16 @@ def make_count_plan(ranges, metals, thin, geometry, seed) -> CountPlan:
     r2 = np.asarray(lk.lut, np.int64) + 2
     cand_flag = np.concatenate([[1, 0], has_metal.astype(np.int64)]) if has_metal.size else np.array([1, 0])
     packed = ((r2 << 1) | cand_flag[r2]).astype(np.int32)
-    plan = CountPlan(n_rods=0, n_sites=0, n_metals=len(metals), key=draw_key(seed),
+    return CountPlan(n_rods=geometry.n_rods, n_sites=geometry.n_sites, n_metals=len(metals), key=draw_key(seed),
                      mass_lut=packed, lows=np.asarray(lk.lows, np.float64),
                      highs=np.asarray(lk.highs, np.float64), cum=cum, has_metal=np.ascontiguousarray(has_metal),
-                     geometry=None)
-    return plan if geometry is None else with_geometry(plan, geometry)
+                     geometry=_geometry_arrays(geometry))
 
 
-def with_geometry(plan: CountPlan, geometry) -> CountPlan:
-    """The selection plan ``plan`` completed with the rod and site lookup of ``geometry``."""
-    from dataclasses import replace
+def _geometry_arrays(g) -> tuple:
+    """The rod and site lookup arrays of ColumnGeometry ``g`` in the order the kernel takes them."""
+    from .columns import _plane_model
 
-    from .columns import ColumnGeometry, _plane_model
-
-    if not isinstance(geometry, ColumnGeometry):
-        raise InputError(f"geometry must be a ColumnGeometry, got {type(geometry).__name__}")
-    g = geometry
     loc = g.locator
     G = loc.n_grid
     i0, j0, ni, nj = g.table_origin
@@ -229,7 +221,7 @@ def with_geometry(plan: CountPlan, geometry) -> CountPlan:
         ni=np.int64(ni), nj=np.int64(nj), nb=np.int64(g.lattice.rods_per_cell),
         rod_key=np.ascontiguousarray(g.rod_key, np.int32), ns=np.int64(ns),
     )
-    return replace(plan, n_rods=g.n_rods, n_sites=ns, geometry=tuple(geom.values()))
+    return tuple(geom.values())
 
 
 #: rod blocks of the grouped increments (a block's bins of one depth slice stay in cache)
@@ -758,8 +750,6 @@ class CountPass:
         parts = self.threads if n >= 65536 * self.threads else 1
         cuts = [n * k // parts for k in range(parts + 1)]
         plan = self.plan
-        if plan.geometry is None:
-            raise InputError("the count plan has no geometry (see with_geometry)")
         nk = [0] * parts
 
         def place(k):
