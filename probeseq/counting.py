@@ -544,7 +544,7 @@ class _Slot:
     """One worker's buffers and its own tallies (merged at the end: no shared writes)."""
 
     def __init__(self, plan, rows):
-        n_rods = plan.n_rods if plan is not None else 1
+        n_rods = plan.n_rods
         rshift = max(0, int(math.ceil(math.log2(max(n_rods, 1) / _ROD_BLOCKS))))
         self.rshift = np.int64(rshift)
         self.nbk = (max(n_rods, 1) >> rshift) + 1
