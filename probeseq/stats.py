@@ -382,39 +382,24 @@ def decoded_runs(paths, mask=None) -> RunLengths:
     RunLengths
     """
     p = _masked_paths(paths, mask)
-    n = _count_runs(p)
+    none, flags = np.empty(0, np.int64), np.empty(0, np.bool_)
+    n = _fill_runs(p, none, none, none, none, flags, flags, False)  # count them first
     rod = np.empty(n, np.int64)
     start = np.empty(n, np.int64)
     length = np.empty(n, np.int64)
     state = np.empty(n, np.int64)
     left = np.empty(n, np.bool_)
     right = np.empty(n, np.bool_)
-    _fill_runs(p, rod, start, length, state, left, right)
+    _fill_runs(p, rod, start, length, state, left, right, True)
     return RunLengths(rod=rod, start=start, length=length, state=state, left_truncated=left,
                       right_truncated=right)
 
 
 @numba.njit(cache=True, nogil=True)
-def _count_runs(p):
-    """Number of runs of non-negative states in the paths (a masked site ends a run)."""
-    n_rods, n_sites = p.shape
-    n = 0
-    for r in range(n_rods):
-        s = 0
-        while s < n_sites:
-            v = p[r, s]
-            e = s + 1
-            while e < n_sites and p[r, e] == v:
-                e += 1
-            if v >= 0:
-                n += 1
-            s = e
-    return n
-
-
-@numba.njit(cache=True, nogil=True)
-def _fill_runs(p, rod, start, length, state, left, right):
-    """Write rod, start, length, state and the truncation flags of every run, in path order."""
+def _fill_runs(p, rod, start, length, state, left, right, write):
+    """Runs of non-negative states in the paths (a masked site ends a run), in path order; returns
+    their number. With ``write``, their rod, start, length, state and truncation flags are written
+    to the arrays (sized by a first call without)."""
     n_rods, n_sites = p.shape
     q = 0
     for r in range(n_rods):
@@ -425,14 +410,16 @@ def _fill_runs(p, rod, start, length, state, left, right):
             while e < n_sites and p[r, e] == v:
                 e += 1
             if v >= 0:
-                rod[q] = r
-                start[q] = s
-                length[q] = e - s
-                state[q] = v
-                left[q] = s == 0 or p[r, s - 1] < 0
-                right[q] = e == n_sites or p[r, e] < 0
+                if write:
+                    rod[q] = r
+                    start[q] = s
+                    length[q] = e - s
+                    state[q] = v
+                    left[q] = s == 0 or p[r, s - 1] < 0
+                    right[q] = e == n_sites or p[r, e] < 0
                 q += 1
             s = e
+    return q
 
 
 @numba.njit(cache=True, nogil=True)
