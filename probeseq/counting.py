@@ -42,7 +42,7 @@ import numpy as np
 from .exceptions import InputError
 from .registration import nearest_candidate
 
-__all__ = ["CountPlan", "CountPass", "make_count_plan", "count_ions", "ion_uniforms", "draw_key", "new_tally",
+__all__ = ["CountPlan", "CountPass", "make_count_plan", "ion_uniforms", "draw_key", "new_tally",
            "tally_dict", "default_threads", "TALLY_FIELDS"]
 
 _GOLDEN = np.uint64(0x9E3779B97F4A7C15)
@@ -51,7 +51,7 @@ _M2 = np.uint64(0x94D049BB133111EB)
 _STREAM = np.uint64(0x6D65_7461_6C5F_6472)  # a fixed stream constant for the metal draws
 _TO_UNIT = np.float64(1.0 / 9007199254740992.0)  # 2**-53
 
-#: indices of the integer tally array filled by :func:`count_ions`
+#: indices of the integer tally array filled by :class:`CountPass`
 TALLY_FIELDS = ("n_rows", "n_valid", "n_nonfinite", "n_nonpositive", "n_metal", "n_binned", "n_beyond_cutoff",
                 "n_unused_rod", "n_outside_depth", "first_bad_row", "n_fallback")
 _T = {k: i for i, k in enumerate(TALLY_FIELDS)}
@@ -100,7 +100,7 @@ def ion_uniforms(seed, start: int, n: int) -> np.ndarray:
 
 
 def new_tally() -> tuple:
-    """Fresh (tally, extents) arrays for :func:`count_ions`: int64 counters and float64 min/max."""
+    """Fresh (tally, extents) arrays of the pass: int64 counters and float64 min/max."""
     tally = np.zeros(len(TALLY_FIELDS), np.int64)
     tally[_T["first_bad_row"]] = -1
     ext = np.empty(8, np.float64)
@@ -806,46 +806,6 @@ def default_threads() -> int:
     except (AttributeError, OSError):
         n = os.cpu_count() or 1
     return 2 if n >= 2 else 1
-
-
-def count_ions(plan: CountPlan, x, y, z, m, row0: int, counts, tally, ext, *, factor: float = 1.0,
-               strict: bool = False, threads: int = 1) -> None:
-    """Run the fused pass over one block of ions, adding into ``counts``, ``tally`` and ``ext``.
-
-    A one-call convenience over :class:`CountPass` (which streams many blocks).
-
-    Parameters
-    ----------
-    plan : CountPlan
-    x, y, z : (n,) ndarray of float32 or float64
-        Positions in the file's unit (multiplied by ``factor`` to nm on the fly).
-    m : (n,) ndarray of float32 or float64, Da
-    row0 : int
-        Index of the block's first ion in the run (for the draws).
-    counts : (n_rods, n_sites, n_metals) ndarray of float32 or float64
-        A float32 array must stay below :data:`FLOAT32_LIMIT` in every bin (else InputError).
-    tally, ext : ndarray
-        From :func:`new_tally`.
-    factor : float
-        Length unit factor to nm.
-    strict : bool
-        Stop at the first invalid row (its row is in ``tally[first_bad_row]``).
-    threads : int
-        Worker threads.
-    """
-    with CountPass(plan, counts, threads=threads, factor=factor, strict=strict) as cp:
-        cp.add(row0, x, y, z, m)
-        t, e = cp.result()
-        if cp.saturated:
-            raise InputError(f"a float32 count reached {FLOAT32_LIMIT:.0f} and is no longer exact: "
-                             "pass a float64 count array")
-    first = int(tally[9])
-    tally[:9] += t[:9]
-    tally[10:] += t[10:]
-    if t[9] >= 0 and (first < 0 or t[9] < first):
-        tally[9] = t[9]
-    ext[0::2] = np.minimum(ext[0::2], e[0::2])
-    ext[1::2] = np.maximum(ext[1::2], e[1::2])
 
 
 def tally_dict(tally) -> dict:
