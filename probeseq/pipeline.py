@@ -339,11 +339,13 @@ def _same_float(x, y, z):
 def _single_threaded_blas():
     """Limit BLAS/LAPACK to one thread inside the fits: their matrices are small, and a second
     BLAS thread on a busy two-core machine costs far more than it gives (measured: a 3000 x 16 SVD
-    took 0.25 s with two threads against 2 ms with one)."""
-    try:
-        from threadpoolctl import threadpool_limits
+    took 0.25 s with two threads against 2 ms with one).
 
-        ctl = threadpool_limits(limits=1, user_api="blas")
+    The loaded libraries are inspected once per process (:func:`_blas_controller`; inspecting
+    them took 40 ms with numba's libraries loaded), then each limit costs microseconds.
+    """
+    try:
+        ctl = _blas_controller().limit(limits=1, user_api="blas")
     except Exception:  # threadpoolctl missing or unable to inspect the libraries: run as is
         ctl = None
     try:
@@ -351,6 +353,19 @@ def _single_threaded_blas():
     finally:
         if ctl is not None:
             ctl.restore_original_limits()
+
+
+_BLAS_CONTROLLER = []
+
+
+def _blas_controller():
+    """threadpoolctl's view of the loaded BLAS libraries, made on first use (raises ImportError
+    without threadpoolctl)."""
+    if not _BLAS_CONTROLLER:
+        from threadpoolctl import ThreadpoolController
+
+        _BLAS_CONTROLLER.append(ThreadpoolController())
+    return _BLAS_CONTROLLER[0]
 
 
 def _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, factor, *, strict: bool = False,
@@ -377,7 +392,7 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
             rr = auto_range(m_fit, metals, species=opts.species, ranges=ranges)
             thin = detection_balance(rr, assign_channels(m_fit, rr.ranges, metals))
             ca = assign_channels(m, rr.ranges, metals)
-            sel = ca.metal_weights[ca.range_index].sum(1) > 0
+            sel = (ca.metal_weights.sum(1) > 0)[ca.range_index]  # in a range holding a metal
         if not sel.any():
             raise InputError(f"no ions fall in ranges of the metals {', '.join(metals)}")
         with clock.stage("columns", f"registering the rod lattice on {int(sel.sum())} sampled metal ions"):
@@ -719,8 +734,8 @@ def _preload_libraries() -> float:
     from .counting import ion_uniforms
 
     try:
-        import threadpoolctl  # noqa: F401
-    except ImportError:
+        _blas_controller()
+    except Exception:  # threadpoolctl missing or unable to inspect the libraries
         pass
     ion_uniforms(0, 0, 1)  # the first compiled call sets up numba's typing and target contexts
     _PRELOADED.append(True)

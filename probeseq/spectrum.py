@@ -769,13 +769,20 @@ def fit_peak_shape(spectrum: Spectrum, background_per_bin, tops_da, r0: float, b
     def unpack(p):
         return PeakShape(r0, beta, p[0], math.exp(p[1]), 1 / (1 + math.exp(-p[2])), math.exp(p[3]))
 
+    # all windows in one array: the shape's cdf is evaluated once per call over every edge, and the
+    # differences across a window boundary (``inner`` false) are dropped
+    xe_all = np.concatenate([xe for xe, _, _ in segs])
+    inner = np.ones(xe_all.size - 1, dtype=bool)
+    inner[np.cumsum([xe.size for xe, _, _ in segs])[:-1] - 1] = False
+    c_all = np.concatenate([c for _, c, _ in segs])
+    b_all = np.concatenate([b for _, _, b in segs])
+    seg_of = np.repeat(np.arange(k), [c.size for _, c, _ in segs])
+
     def resid(p):
         sh = unpack(p)
-        out = []
-        for i, (xe, c, b) in enumerate(segs):
-            model = math.exp(p[4 + i]) * np.diff(sh.cdf(xe)) + b
-            out.append((c - model) / np.sqrt(np.maximum(model, 1.0)))
-        return np.concatenate(out)
+        amp = np.array([math.exp(v) for v in p[4:]])  # math.exp, as for the other parameters
+        model = amp[seg_of] * np.diff(sh.cdf(xe_all))[inner] + b_all
+        return (c_all - model) / np.sqrt(np.maximum(model, 1.0))
 
     n0 = [math.log(max(c.sum() - b.sum(), 1.0)) for _, c, b in segs]
     p0 = np.array([0.0, math.log(0.4), 0.0, math.log(1.0)] + n0)

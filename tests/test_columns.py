@@ -139,9 +139,40 @@ def test_crosstalk_square_matches_analytic():
     # half-width a/2 is erf(a / (2 sqrt(2) sigma))^2 (textbook Gaussian integral, recalled from memory)
     for sigma in (0.2, 0.35, 0.5):
         exact = 1 - erf(1.2 / (2 * math.sqrt(2) * sigma)) ** 2
-        mc = expected_crosstalk(SQUARE, sigma, n_samples=200_000)
-        assert mc == pytest.approx(exact, abs=4 * math.sqrt(exact * (1 - exact) / 200_000) + 1e-4)
+        assert expected_crosstalk(SQUARE, sigma) == pytest.approx(exact, rel=1e-5, abs=1e-9)
     assert expected_crosstalk(SQUARE, 0.0) == 0.0
+    assert math.isnan(expected_crosstalk(SQUARE, float("nan")))
+
+
+def _crosstalk_monte_carlo(lat, sigma, n, seed):
+    """Independent check: Gaussian points around each basis rod, nearest rod by brute force."""
+    rng = np.random.default_rng(seed)
+    C = lat.cell_matrix
+    ij = np.arange(-3, 4)
+    shifts = np.stack(np.meshgrid(ij, ij, indexing="ij"), -1).reshape(-1, 1, 2)
+    rods = ((lat.rods_frac[None] + shifts).reshape(-1, 2)) @ C.T
+    wrong = 0
+    for b in range(lat.rods_per_cell):
+        own = lat.rods_frac[b] @ C.T
+        pts = own + rng.normal(0, sigma, (n, 2))
+        d2 = ((pts[:, None, :] - rods[None, :, :]) ** 2).sum(-1)
+        wrong += int((np.linalg.norm(rods[d2.argmin(1)] - own, axis=1) > 1e-9).sum())
+    return wrong / (n * lat.rods_per_cell)
+
+
+OBLIQUE = Lattice(a_nm=2.1, b_nm=1.7, gamma_deg=75.0, rods_frac=np.array([[0.0, 0.0], [0.45, 0.3], [0.2, 0.7]]),
+                  repeat_nm=0.68, sites_per_repeat=3, name="oblique test cell")
+
+
+@pytest.mark.parametrize("lat", [HONEY, Lattice.from_preset("triangular", a=1.5, repeat=0.68, sites_per_repeat=3),
+                                 OBLIQUE], ids=["honeycomb", "triangular", "oblique"])
+def test_crosstalk_matches_monte_carlo(lat):
+    # the quadrature against points drawn and assigned to their nearest rod (binomial error)
+    for sigma in (0.25, 0.45):
+        n = 40_000
+        mc = _crosstalk_monte_carlo(lat, sigma, n, seed=5)
+        se = math.sqrt(mc * (1 - mc) / (n * lat.rods_per_cell))
+        assert expected_crosstalk(lat, sigma) == pytest.approx(mc, abs=4 * se + 1e-4)
 
 
 def test_crosstalk_honeycomb_small_sigma_limit():
@@ -149,8 +180,8 @@ def test_crosstalk_honeycomb_small_sigma_limit():
     # (half-plane tails of the three Voronoi edges; the corners add a little less than their overlap)
     sigma, d = 0.2, HONEY.nearest_rod_distance_nm
     tail = 0.5 * (1 - erf(d / (2 * sigma) / math.sqrt(2)))
-    mc = expected_crosstalk(HONEY, sigma, n_samples=200_000)
-    assert 2.6 * tail < mc < 3.0 * tail + 1e-3
+    xt = expected_crosstalk(HONEY, sigma)
+    assert 2.6 * tail < xt < 3.0 * tail + 1e-6
 
 
 def test_blurred_data_not_resolvable():
