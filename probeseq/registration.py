@@ -50,6 +50,7 @@ translations; :func:`register_lattice` reports both in their fundamental domain 
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass, field
 
@@ -539,28 +540,21 @@ def _slab_edges(z, thickness, min_per_slab=200, max_slabs=1024):
     return np.linspace(zmin, zmax + 1e-9, n + 1)
 
 
-_RINGS = {}
-
-
+@functools.lru_cache(maxsize=8)
 def _rings(N: int, h: float):
     """Rings of the ``N x (N//2 + 1)`` half-plane spectrum grid of pixel ``h`` (cached): the
     spatial frequency of each cell, its ring number ``floor(|k| N h)``, the cells in ring order and
     each ring's start in that order."""
-    key = (int(N), float(h))
-    if key not in _RINGS:
-        L = N * h
-        kx = (np.arange(N) - N // 2) / L
-        ky = np.arange(N // 2 + 1) / L
-        kr = np.hypot(kx[:, None], ky[None, :])
-        ring = np.floor(kr * L).astype(np.int64)
-        by_ring = np.argsort(ring.ravel(), kind="stable")
-        starts = np.searchsorted(ring.ravel()[by_ring], np.arange(ring.max() + 2))
-        for a in (kr, ring, by_ring, starts):
-            a.flags.writeable = False
-        if len(_RINGS) > 8:
-            _RINGS.clear()
-        _RINGS[key] = (kr, ring, by_ring, starts)
-    return _RINGS[key]
+    L = N * h
+    kx = (np.arange(N) - N // 2) / L
+    ky = np.arange(N // 2 + 1) / L
+    kr = np.hypot(kx[:, None], ky[None, :])
+    ring = np.floor(kr * L).astype(np.int64)
+    by_ring = np.argsort(ring.ravel(), kind="stable")
+    starts = np.searchsorted(ring.ravel()[by_ring], np.arange(ring.max() + 2))
+    for a in (kr, ring, by_ring, starts):
+        a.flags.writeable = False
+    return kr, ring, by_ring, starts
 
 
 def _power_spectrum(xr, yr, slab, n_slabs, h, N, max_slabs=_SPECTRUM_SLABS):
@@ -588,7 +582,7 @@ def _power_spectrum(xr, yr, slab, n_slabs, h, N, max_slabs=_SPECTRUM_SLABS):
         P += F.real ** 2 + F.imag ** 2
     P = np.fft.fftshift(P, axes=0)
     L = N * h
-    kr, ring, by_ring, starts = _rings(N, h)
+    kr, ring, by_ring, starts = _rings(int(N), float(h))
     flat_p = P.ravel()
     med = np.empty(starts.size - 1)
     for r in range(starts.size - 1):  # the lower median of each ring
