@@ -386,12 +386,16 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
     from .registration import register_lattice
 
     m = sample.mass_to_charge
-    m_fit = m[::max(1, -(-m.size // RANGING_IONS))]
+    stride = max(1, -(-m.size // RANGING_IONS))
+    m_fit = m[::stride]
     with _single_threaded_blas():
         with clock.stage("ranging", f"ranging the mass spectrum of {m_fit.size} sampled ions"):
             rr = auto_range(m_fit, metals, species=opts.species, ranges=ranges)
-            thin = detection_balance(rr, assign_channels(m_fit, rr.ranges, metals))
             ca = assign_channels(m, rr.ranges, metals)
+            # the ranged ions' channels: a stride of the sample's (assignment is per ion)
+            ca_fit = ca if stride == 1 else replace(ca, range_index=ca.range_index[::stride],
+                                                    channel=ca.channel[::stride])
+            thin = detection_balance(rr, ca_fit)
             sel = (ca.metal_weights.sum(1) > 0)[ca.range_index]  # in a range holding a metal
         if not sel.any():
             raise InputError(f"no ions fall in ranges of the metals {', '.join(metals)}")

@@ -345,6 +345,22 @@ def test_file_and_memory_paths_agree_and_chunks_do_not_matter(tmp_path, run, cou
     assert c1.counts.sum() > 0.9 * n1
 
 
+def test_ranging_on_a_stride_of_the_sample_balances_on_the_same_ions(run, counts_only, monkeypatch):
+    # with fewer ranging ions than sampled ions, the spectrum is ranged on every k-th sampled ion
+    # and the detection balance must come from the channels of exactly those ions
+    import probeseq.pipeline as pl
+
+    ions = run.ions
+    monkeypatch.setattr(pl, "RANGING_IONS", len(ions) // 3)
+    _, rr, cols, _ = counts_only(analyze, ions, METALS, run.lattice, options=AnalysisOptions(seed=2))
+    m = ions.mass_to_charge
+    m_fit = m[::-(-m.size // (len(ions) // 3))]
+    assert rr.spectrum.counts.sum() <= m_fit.size < m.size
+    want = detection_balance(rr, assign_channels(m_fit, rr.ranges, METALS))
+    got = [cols.params["detection_balance"][k] for k in METALS]
+    np.testing.assert_allclose(got, want, rtol=0, atol=0)
+
+
 def test_block_sample_registers_a_deep_run(tmp_path, run, counts_only):
     """A sample of a few thousand ions per block still finds the lattice and the tilt."""
     p = write_ions(run.ions, tmp_path / "r.h5", dtype=np.float32)
