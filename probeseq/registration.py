@@ -207,17 +207,18 @@ class RodLocator:
         mu, mv = np.meshgrid(mid, mid, indexing="ij")
         mu, mv = mu.ravel(), mv.ravel()
         need = np.flatnonzero(table < 0)
-        dall = _all_d2(mu[need], mv[need], frac, g)  # (n_need, n_codes)
-        dmin = np.sqrt(dall.min(1))
+        # per grid cell: the rods within 2 h of the nearest distance from its centre, nearest first
+        # (compiled: the full cells x rods distance matrix would be hundreds of MB of temporaries)
+        u, v = np.ascontiguousarray(mu[need]), np.ascontiguousarray(mv[need])
+        frac_c, g_c = np.ascontiguousarray(frac, np.float64), np.ascontiguousarray(g, np.float64)
+        dmin = np.empty(need.size)
+        n_cand = np.empty(need.size, np.int64)
+        _candidate_counts(u, v, frac_c, g_c, h, dmin, n_cand)
         excluded = dmin - h > cutoff_nm
         fb = need[~excluded]
-        dfb = np.sqrt(dall[~excluded])
-        cand_mask = dfb <= (dmin[~excluded] + 2 * h)[:, None] + 1e-12
-        kmax = int(cand_mask.sum(1).max()) if fb.size else 1
-        order = np.argsort(np.where(cand_mask, dfb, np.inf), axis=1)[:, :kmax]
-        cands = np.take_along_axis(np.broadcast_to(np.arange(frac.shape[0]), dfb.shape), order, 1)
-        ok = np.take_along_axis(cand_mask, order, 1)
-        cands = np.where(ok, cands, cands[:, :1]).astype(np.int32)
+        kmax = int(n_cand[~excluded].max()) if fb.size else 1
+        cands = np.empty((fb.size, kmax), np.int32)
+        _candidate_lists(u[~excluded], v[~excluded], frac_c, g_c, h, dmin[~excluded], cands)
         table[need[excluded]] = -1
         table[fb] = -2 - np.arange(fb.size, dtype=np.int32)
         for a in (table, cands, frac, cell, basis, g):
@@ -327,10 +328,51 @@ def _brute_kernel(u, v, frac, g, code, dmin):
         dmin[i] = best
 
 
-def _all_d2(u, v, frac, g):
-    du = u[:, None] - frac[None, :, 0]
-    dv = v[:, None] - frac[None, :, 1]
+@numba.njit(cache=True, nogil=True, inline="always")
+def _cell_d2(u, v, f0, f1, g):
+    du = u - f0
+    dv = v - f1
     return g[0, 0] * du * du + 2 * g[0, 1] * du * dv + g[1, 1] * dv * dv
+
+
+@numba.njit(cache=True, nogil=True)
+def _candidate_counts(u, v, frac, g, h, dmin, n_cand):
+    """Distance from each point (u, v) to its nearest rod of ``frac`` (nm) and the number of rods
+    within ``2 h`` of that distance."""
+    for i in range(u.size):
+        best = np.inf
+        for c in range(frac.shape[0]):
+            best = min(best, _cell_d2(u[i], v[i], frac[c, 0], frac[c, 1], g))
+        dmin[i] = math.sqrt(best)
+        lim = dmin[i] + 2 * h + 1e-12
+        n = 0
+        for c in range(frac.shape[0]):
+            n += math.sqrt(_cell_d2(u[i], v[i], frac[c, 0], frac[c, 1], g)) <= lim
+        n_cand[i] = n
+
+
+@numba.njit(cache=True, nogil=True)
+def _candidate_lists(u, v, frac, g, h, dmin, out):
+    """Row i of ``out``: the rods within ``2 h`` of ``dmin[i]`` from point i, nearest first (ties
+    by index), the row padded with the nearest."""
+    kmax = out.shape[1]
+    dist = np.empty(kmax)
+    for i in range(u.size):
+        lim = dmin[i] + 2 * h + 1e-12
+        n = 0
+        for c in range(frac.shape[0]):
+            d = math.sqrt(_cell_d2(u[i], v[i], frac[c, 0], frac[c, 1], g))
+            if d <= lim:
+                q = n  # insertion into the sorted prefix
+                while q > 0 and dist[q - 1] > d:
+                    dist[q] = dist[q - 1]
+                    out[i, q] = out[i, q - 1]
+                    q -= 1
+                dist[q] = d
+                out[i, q] = c
+                n += 1
+        for q in range(n, kmax):
+            out[i, q] = out[i, 0]
 
 
 # ====================================================================== result
