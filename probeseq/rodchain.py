@@ -137,6 +137,80 @@ def _forward(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fac, invc,
     return logc, log_b
 
 
+@numba.njit(cache=True, nogil=True, error_model="numpy")
+def _forward_viterbi(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fac, invc, nb, cb, spl,
+                     ltab, loga, logp, vit, back):
+    """:func:`_forward` with the Viterbi recursion run in the same loop over the sites.
+
+    The Viterbi scores (max-sum in log space, ``vit``; back-pointers ``back``, ties to the lower
+    state index) use the log emission factors of the site just computed: from the table ``ltab``
+    for whole counts below its size, else ``log(f)``; 0 at an unobserved site. Running both
+    recursions in one loop reads each site's counts once and interleaves two independent chains
+    of dependent arithmetic. Returns ``(sum log c, sum log B)`` as :func:`_forward`.
+    """
+    k = mu.size
+    n_tab = ltab.shape[1]
+    ome = 1.0 - eta
+    logc = 0.0
+    log_b = 0.0
+    le = np.empty(k)
+    for s in range(length):
+        t = t0 + s
+        spl[s] = False
+        if mask[r, t]:
+            whole = True
+            for j in range(k):
+                v = float(counts[r, t, j])
+                n = math.floor(v + _EPS)
+                if v - n >= _EPS:
+                    whole = False
+                fac[s, j] = ome + n * coef[j]
+                le[j] = ltab[j, int(n)] if n < n_tab else math.log(fac[s, j])
+            if not whole:
+                b, _ = _site(counts, r, t, eta, mu, k, nb, fac, s, cb)
+                spl[s] = True
+                log_b += math.log(b)
+                for j in range(k):
+                    le[j] = math.log(fac[s, j])
+        else:
+            for j in range(k):
+                fac[s, j] = 1.0
+                le[j] = 0.0
+        tot = 0.0
+        if s == 0:
+            for j in range(k):
+                v = p[j] * fac[s, j]
+                alpha[s, j] = v
+                tot += v
+                vit[0, j] = logp[j] + le[j]
+        else:
+            for j in range(k):
+                v = 0.0
+                for i in range(k):
+                    v += alpha[s - 1, i] * a[i, j]
+                v *= fac[s, j]
+                alpha[s, j] = v
+                tot += v
+                bestv = vit[s - 1, 0] + loga[0, j]
+                arg = 0
+                for i in range(1, k):
+                    w = vit[s - 1, i] + loga[i, j]
+                    if w > bestv:
+                        bestv = w
+                        arg = i
+                vit[s, j] = bestv + le[j]
+                back[s, j] = arg
+        if (s & (RESCALE_EVERY - 1)) == RESCALE_EVERY - 1 or s == length - 1 or tot > 1e150 or tot < 1e-150:
+            inv = 1.0 / tot
+            for j in range(k):
+                alpha[s, j] *= inv
+            invc[s] = inv
+            logc += math.log(tot)
+        else:
+            invc[s] = 1.0
+    return logc, log_b
+
+
 @numba.njit(cache=True, nogil=True, parallel=True, error_model="numpy")
 def _fit_kernel(counts, mask, rods, first, span, eta, mu, a, p, ll, xi, g0, own, adj):
     n_rods = rods.size
@@ -207,7 +281,6 @@ def _decode_kernel(counts, mask, rods, first, span, eta, mu, a, p, below, ll, xi
     k = mu.size
     coef = eta / mu
     ome = 1.0 - eta
-    log_ome = math.log(ome)
     n_tab = 64
     ltab = np.empty((k, n_tab))
     for j in range(k):
@@ -236,7 +309,9 @@ def _decode_kernel(counts, mask, rods, first, span, eta, mu, a, p, below, ll, xi
         w = np.empty(k)
         xil = np.zeros((k, k))
         occl = np.zeros(k)
-        logc, log_b = _forward(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fac, invc, nb, cb, spl)
+        vit = np.empty((length, k))
+        logc, log_b = _forward_viterbi(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fac, invc, nb, cb,
+                                       spl, ltab, loga, logp, vit, back)
         ll[q] = logc + log_b
         for s in range(length - 1, -1, -1):
             t = t0 + s
@@ -270,36 +345,13 @@ def _decode_kernel(counts, mask, rods, first, span, eta, mu, a, p, below, ll, xi
             occ[q, i] = occl[i]
             for j in range(k):
                 xi[q, i, j] = xil[i, j]
-        # Viterbi: max-sum in log space (alpha reused as the scores); the log emission factors
-        # of whole counts come from a table, ties go to the lower index
-        for s in range(length):
-            t = t0 + s
-            for j in range(k):
-                if not mask[r, t]:
-                    le = 0.0
-                elif not spl[s] and fac[s, j] == ome:
-                    le = log_ome
-                else:
-                    n = int(math.floor((fac[s, j] - ome) / coef[j] + 0.5)) if not spl[s] else -1
-                    le = ltab[j, n] if 0 <= n < n_tab else math.log(fac[s, j])
-                if s == 0:
-                    alpha[0, j] = logp[j] + le
-                else:
-                    bestv = alpha[s - 1, 0] + loga[0, j]
-                    arg = 0
-                    for i in range(1, k):
-                        v = alpha[s - 1, i] + loga[i, j]
-                        if v > bestv:
-                            bestv = v
-                            arg = i
-                    alpha[s, j] = bestv + le
-                    back[s, j] = arg
+        # Viterbi traceback (scores and back-pointers from _forward_viterbi)
         s = length - 1
         cur = 0
-        bestv = alpha[s, 0]
+        bestv = vit[s, 0]
         for j in range(1, k):
-            if alpha[s, j] > bestv:
-                bestv = alpha[s, j]
+            if vit[s, j] > bestv:
+                bestv = vit[s, j]
                 cur = j
         while True:
             t = t0 + s
