@@ -84,72 +84,24 @@ def _site(counts, r, t, eta, mu, kt, n_out, fac_out, s, c_out):
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
-def _forward(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fac, invc, nb, cb, spl, kt):
-    """Forward pass of rod r over sites t0..t0+length-1.
+def _forward(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fac, invc, nb, cb, spl, kt,
+             vt, ltab, loga, logp, vit, back):
+    """Forward pass of rod r over sites t0..t0+length-1, with the Viterbi recursion in the same
+    loop when ``vt`` is a non-empty tuple.
 
     The forward variables are rescaled to sum 1 every ``RESCALE_EVERY`` steps, at the last step
     and whenever their sum leaves [1e-150, 1e150]; ``invc[s]`` is the inverse of the sum
     divided out at step s (1 where none was). Returns ``(sum log c, sum log B)``.
-    """
-    k = len(kt)
-    ome = 1.0 - eta
-    logc = 0.0
-    log_b = 0.0
-    for s in range(length):
-        t = t0 + s
-        spl[s] = False
-        if mask[r, t]:
-            whole = True
-            for j in range(k):
-                v = float(counts[r, t, j])
-                n = math.floor(v + _EPS)
-                if v - n >= _EPS:
-                    whole = False
-                fac[s, j] = ome + n * coef[j]
-            if not whole:
-                b, _ = _site(counts, r, t, eta, mu, kt, nb, fac, s, cb)
-                spl[s] = True
-                log_b += math.log(b)
-        else:
-            for j in range(k):
-                fac[s, j] = 1.0
-        tot = 0.0
-        if s == 0:
-            for j in range(k):
-                v = p[j] * fac[s, j]
-                alpha[s, j] = v
-                tot += v
-        else:
-            for j in range(k):
-                v = 0.0
-                for i in range(k):
-                    v += alpha[s - 1, i] * a[i, j]
-                v *= fac[s, j]
-                alpha[s, j] = v
-                tot += v
-        if (s & (RESCALE_EVERY - 1)) == RESCALE_EVERY - 1 or s == length - 1 or tot > 1e150 or tot < 1e-150:
-            inv = 1.0 / tot
-            for j in range(k):
-                alpha[s, j] *= inv
-            invc[s] = inv
-            logc += math.log(tot)
-        else:
-            invc[s] = 1.0
-    return logc, log_b
-
-
-@numba.njit(cache=True, nogil=True, error_model="numpy")
-def _forward_viterbi(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fac, invc, nb, cb, spl,
-                     ltab, loga, logp, vit, back, kt):
-    """:func:`_forward` with the Viterbi recursion run in the same loop over the sites.
 
     The Viterbi scores (max-sum in log space, ``vit``; back-pointers ``back``, ties to the lower
     state index) use the log emission factors of the site just computed: from the table ``ltab``
     for whole counts below its size, else ``log(f)``; 0 at an unobserved site. Running both
     recursions in one loop reads each site's counts once and interleaves two independent chains
-    of dependent arithmetic. Returns ``(sum log c, sum log B)`` as :func:`_forward`.
+    of dependent arithmetic. ``len(vt)`` is a compile-time constant, so the E-step's version
+    (``vt = ()``, empty arrays for the rest) is compiled without the Viterbi code.
     """
     k = len(kt)
+    viterbi = len(vt) > 0
     n_tab = ltab.shape[1]
     ome = 1.0 - eta
     logc = 0.0
@@ -166,13 +118,15 @@ def _forward_viterbi(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fa
                 if v - n >= _EPS:
                     whole = False
                 fac[s, j] = ome + n * coef[j]
-                le[j] = ltab[j, int(n)] if n < n_tab else math.log(fac[s, j])
+                if viterbi:
+                    le[j] = ltab[j, int(n)] if n < n_tab else math.log(fac[s, j])
             if not whole:
                 b, _ = _site(counts, r, t, eta, mu, kt, nb, fac, s, cb)
                 spl[s] = True
                 log_b += math.log(b)
-                for j in range(k):
-                    le[j] = math.log(fac[s, j])
+                if viterbi:
+                    for j in range(k):
+                        le[j] = math.log(fac[s, j])
         else:
             for j in range(k):
                 fac[s, j] = 1.0
@@ -183,7 +137,8 @@ def _forward_viterbi(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fa
                 v = p[j] * fac[s, j]
                 alpha[s, j] = v
                 tot += v
-                vit[0, j] = logp[j] + le[j]
+                if viterbi:
+                    vit[0, j] = logp[j] + le[j]
         else:
             for j in range(k):
                 v = 0.0
@@ -192,15 +147,16 @@ def _forward_viterbi(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fa
                 v *= fac[s, j]
                 alpha[s, j] = v
                 tot += v
-                bestv = vit[s - 1, 0] + loga[0, j]
-                arg = 0
-                for i in range(1, k):
-                    w = vit[s - 1, i] + loga[i, j]
-                    if w > bestv:
-                        bestv = w
-                        arg = i
-                vit[s, j] = bestv + le[j]
-                back[s, j] = arg
+                if viterbi:
+                    bestv = vit[s - 1, 0] + loga[0, j]
+                    arg = 0
+                    for i in range(1, k):
+                        w = vit[s - 1, i] + loga[i, j]
+                        if w > bestv:
+                            bestv = w
+                            arg = i
+                    vit[s, j] = bestv + le[j]
+                    back[s, j] = arg
         if (s & (RESCALE_EVERY - 1)) == RESCALE_EVERY - 1 or s == length - 1 or tot > 1e150 or tot < 1e-150:
             inv = 1.0 / tot
             for j in range(k):
@@ -218,6 +174,10 @@ def _fit_kernel(counts, mask, rods, first, span, eta, mu, a, p, ll, xi, g0, own,
     k = len(kt)
     coef = eta / mu
     ome = 1.0 - eta
+    no_tab = np.empty((k, 0))  # no Viterbi in the E-step (see _forward)
+    no_vec = np.empty(0)
+    no_vit = np.empty((0, k))
+    no_back = np.empty((0, k), dtype=np.int8)
     for q in numba.prange(n_rods):
         r = rods[q]
         t0 = first[q]
@@ -233,7 +193,8 @@ def _fit_kernel(counts, mask, rods, first, span, eta, mu, a, p, ll, xi, g0, own,
         w = np.empty(k)
         xil = np.zeros((k, k))
         ownl = np.zeros(k)
-        logc, log_b = _forward(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fac, invc, nb, cb, spl, kt)
+        logc, log_b = _forward(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fac, invc, nb, cb, spl,
+                               kt, (), no_tab, no_tab, no_vec, no_vit, no_back)
         ll[q] = logc + log_b
         for s in range(length - 1, -1, -1):
             t = t0 + s
@@ -311,8 +272,8 @@ def _decode_kernel(counts, mask, rods, first, span, eta, mu, a, p, below, ll, xi
         xil = np.zeros((k, k))
         occl = np.zeros(k)
         vit = np.empty((length, k))
-        logc, log_b = _forward_viterbi(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fac, invc, nb, cb,
-                                       spl, ltab, loga, logp, vit, back, kt)
+        logc, log_b = _forward(counts, mask, r, t0, length, eta, mu, coef, a, p, alpha, fac, invc, nb, cb, spl,
+                               kt, (0,), ltab, loga, logp, vit, back)
         ll[q] = logc + log_b
         for s in range(length - 1, -1, -1):
             t = t0 + s
@@ -346,7 +307,7 @@ def _decode_kernel(counts, mask, rods, first, span, eta, mu, a, p, below, ll, xi
             occ[q, i] = occl[i]
             for j in range(k):
                 xi[q, i, j] = xil[i, j]
-        # Viterbi traceback (scores and back-pointers from _forward_viterbi)
+        # Viterbi traceback (scores and back-pointers from _forward)
         s = length - 1
         cur = 0
         bestv = vit[s, 0]
