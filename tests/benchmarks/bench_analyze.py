@@ -178,6 +178,11 @@ def main():
                 files[int(f["ions/x"].shape[0])] = p
         if not files or not (d / "lattice.toml").exists():
             raise SystemExit(f"--reuse {d}: no run_*x.h5 and lattice.toml there")
+        # keep the files within a factor 2 of a size asked for (all of them with the default --sizes)
+        wanted = [float(s) for s in args.sizes.split(",")]
+        files = {n: p for n, p in files.items() if any(0.5 <= n / w <= 2.0 for w in wanted)}
+        if not files:
+            raise SystemExit(f"--reuse {d}: no run_*x.h5 within a factor 2 of --sizes {args.sizes}")
         if args.counts_only:
             counts_only(files, d / "lattice.toml", args.repeat)
             return
