@@ -6,7 +6,8 @@ Run:  python tests/benchmarks/bench_analyze.py [--sizes 1e7,1e8] [--dir DIR]
 ``--counts-only`` runs ``analyze_file`` only up to the finished count array (the later stages are
 skipped) and prints ``read_to_counts``, the baseline and their ratio, and the peak memory, for each
 size; ``--reuse DIR`` takes the ``run_*.h5`` files and ``lattice.toml`` already in DIR (made by
-``make_files``) instead of simulating new ones, and keeps them.
+``make_files``) instead of simulating new ones, and keeps them; with it, ``--sizes`` picks the files
+within a factor 2 of the sizes given.
 
 The runs are made by the simulator at benchmark time (one ~1e7-ion run; the 1e8-ion file stacks
 ten copies of it in depth) and deleted afterwards. For each size, in a fresh process each:
@@ -168,6 +169,7 @@ def main():
     ap.add_argument("--reuse", default=None, help="folder holding run_*.h5 and lattice.toml from make_files")
     ap.add_argument("--repeat", type=int, default=3, help="runs per size with --counts-only (medians compared)")
     args = ap.parse_args()
+    sizes = [float(s) for s in args.sizes.split(",")]
     if args.reuse:
         d = Path(args.reuse)
         files = {}
@@ -179,8 +181,7 @@ def main():
         if not files or not (d / "lattice.toml").exists():
             raise SystemExit(f"--reuse {d}: no run_*x.h5 and lattice.toml there")
         # keep the files within a factor 2 of a size asked for (all of them with the default --sizes)
-        wanted = [float(s) for s in args.sizes.split(",")]
-        files = {n: p for n, p in files.items() if any(0.5 <= n / w <= 2.0 for w in wanted)}
+        files = {n: p for n, p in files.items() if any(0.5 <= n / w <= 2.0 for w in sizes)}
         if not files:
             raise SystemExit(f"--reuse {d}: no run_*x.h5 within a factor 2 of --sizes {args.sizes}")
         if args.counts_only:
@@ -188,7 +189,6 @@ def main():
             return
     tmp = Path(args.dir or tempfile.mkdtemp(prefix="probeseq-bench-"))
     tmp.mkdir(parents=True, exist_ok=True)
-    sizes = [float(s) for s in args.sizes.split(",")]
     if args.reuse:
         lat = Path(args.reuse) / "lattice.toml"
     else:
