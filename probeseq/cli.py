@@ -86,10 +86,12 @@ def simulate(
     sigma_z: Annotated[float, typer.Option(help="Depth blur, nm.")] = 0.04,
     mrp: Annotated[float, typer.Option(help="Mass resolving power m/dm (FWHM).")] = 600.0,
     seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
+    force: Annotated[bool, typer.Option(help="Replace existing files that probeseq wrote.")] = False,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")] = False,
 ):
     """Simulate a run of a rod framework with known truth (synthetic data for tests and demos)."""
-    from .simulate import SimConfig, simulate_run
+    from .outputs import check_outfile
+    from .simulate import SimConfig, SimRun, simulate_run
 
     _STATE["quiet"] = quiet
     mets = tuple(split_list(metals, "--metals"))
@@ -100,6 +102,8 @@ def simulate(
         except ValueError:
             raise InputError(f"--composition: '{composition}' is not a list of numbers") from None
     ion_file_kind_check(out)
+    for what, p in SimRun.output_paths(out).items():
+        check_outfile(p, force, what="OUT" if what == "ions" else f"OUT ({what} file)")
     cfg = SimConfig(pattern=pattern, metals=mets, composition=comp, persistence=persistence,
                     copy_error=copy_error, packing=packing, a_nm=a, repeat_nm=repeat,
                     sites_per_repeat=sites_per_repeat, top_radius_nm=top_radius,
@@ -158,8 +162,61 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
     sys.stderr.write(f"warning: {text}\n")
 
 
+class Terminated(KeyboardInterrupt):
+    """SIGTERM or SIGHUP, raised where the program is, so that staging folders are cleaned up."""
+
+    def __init__(self, signum: int):
+        super().__init__(signum)
+        self.signum = signum
+
+
+_SIGNALLED = []  # the signal that stopped this command, whatever layer turned it into an exit code
+
+
+def _raise_terminated(signum, frame):
+    _SIGNALLED.append(signum)
+    raise Terminated(signum)
+
+
+def _catch_signals() -> dict:
+    """Turn SIGTERM and SIGHUP into :class:`Terminated` (main thread only); return the old handlers."""
+    import signal
+    import threading
+
+    old = {}
+    if threading.current_thread() is not threading.main_thread():
+        return old
+    for name in ("SIGTERM", "SIGHUP"):
+        sig = getattr(signal, name, None)
+        if sig is not None:
+            old[sig] = signal.signal(sig, _raise_terminated)
+    return old
+
+
+def _restore_signals(old: dict):
+    import signal
+
+    for sig, handler in old.items():
+        signal.signal(sig, handler)
+
+
+def _interrupted() -> int:
+    import signal
+
+    if _SIGNALLED:
+        signum = _SIGNALLED[-1]
+        sys.stderr.write(f"error: stopped by {signal.Signals(signum).name}; earlier results were left untouched\n")
+        return 128 + int(signum)
+    sys.stderr.write("error: interrupted; earlier results were left untouched\n")
+    return 130
+
+
 def main(argv: Optional[List[str]] = None) -> int:
-    """Run the CLI; return the exit code. Never lets a traceback reach the user."""
+    """Run the CLI; return the exit code. Never lets a traceback reach the user.
+
+    SIGTERM and SIGHUP stop the command like Ctrl-C: its staging folder is removed, earlier
+    results stay as they were, and the exit code is 128 + the signal number.
+    """
     try:  # typer >= 0.20 carries its own copy of click
         from typer._click.exceptions import ClickException
     except ImportError:  # pragma: no cover - older typer uses click itself
@@ -168,19 +225,20 @@ def main(argv: Optional[List[str]] = None) -> int:
     cmd = typer.main.get_command(app)
     old = warnings.showwarning
     warnings.showwarning = _show_warning
+    old_signals = _catch_signals()
+    _SIGNALLED.clear()
     try:
         rv = cmd.main(args=argv, prog_name="probeseq", standalone_mode=False)
         code = int(rv) if isinstance(rv, int) else 0
         if code == 130:  # the command-line layer turns Ctrl-C into exit code 130
-            sys.stderr.write("error: interrupted; earlier results were left untouched\n")
+            return _interrupted()
         return code
     except typer.Exit as e:
         if int(e.exit_code) == 130:  # Ctrl-C, as reported by the command-line layer
-            sys.stderr.write("error: interrupted; earlier results were left untouched\n")
+            return _interrupted()
         return int(e.exit_code)
     except typer.Abort:
-        sys.stderr.write("error: interrupted; earlier results were left untouched\n")
-        return 130
+        return _interrupted()
     except ClickException as e:
         if type(e).__name__ == "NoArgsIsHelpError" and getattr(e, "ctx", None) is not None:
             typer.echo(e.ctx.get_help())
@@ -192,10 +250,10 @@ def main(argv: Optional[List[str]] = None) -> int:
         sys.stderr.write(f"error: {' '.join(str(e).split())}\n")
         return 1
     except KeyboardInterrupt:
-        sys.stderr.write("error: interrupted; earlier results were left untouched\n")
-        return 130
+        return _interrupted()
     except MemoryError:
-        sys.stderr.write("error: out of memory; try a smaller --chunk-size or an HDF5 input\n")
+        sys.stderr.write("error: out of memory; give a smaller input (an HDF5 ion file is read in blocks, a text "
+                         "file is read whole), or for simulate/plan a smaller --top-radius or --depth\n")
         return 1
     except Exception as e:  # last line of defence: one line, never a traceback
         if os.environ.get("PROBESEQ_DEBUG"):
@@ -204,6 +262,7 @@ def main(argv: Optional[List[str]] = None) -> int:
                          "set PROBESEQ_DEBUG=1 for details\n")
         return 3
     finally:
+        _restore_signals(old_signals)
         warnings.showwarning = old
 
 

@@ -16,6 +16,7 @@ import typer
 
 from .cli import _STATE, app, say, split_list
 from .exceptions import InputError
+from .outputs import figure_metadata
 
 # ---------------------------------------------------------------------- shared options
 LengthUnit = Annotated[Optional[str], typer.Option(help="nm | angstrom: unit of the positions in the ion file.")]
@@ -30,7 +31,18 @@ SitesOpt = Annotated[int, typer.Option(help="Metal sites per repeat (with a pres
 RangesOpt = Annotated[Optional[Path], typer.Option(help="Range file (TOML) to use instead of automatic ranging.")]
 Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")]
 Verbose = Annotated[bool, typer.Option("--verbose", "-v", help="Print more detail.")]
-Force = Annotated[bool, typer.Option(help="Replace an existing output folder (only once the new one is complete).")]
+Force = Annotated[bool, typer.Option(help="Replace an existing output that probeseq wrote (only once the new one is "
+                                            "complete; files probeseq did not write are never replaced).")]
+ForceFile = Annotated[bool, typer.Option(help="Replace an existing output file that probeseq wrote.")]
+
+
+def _command_line() -> str:
+    return "probeseq " + " ".join(shlex.quote(a) for a in sys.argv[1:])
+
+
+def _lattice_inputs(spec) -> list:
+    """The lattice file named by ``--lattice``, if it is a file (not a preset)."""
+    return [Path(spec)] if spec is not None and str(spec).lower().endswith(".toml") else []
 
 
 def _parse_offset(text: Optional[str]):
@@ -141,19 +153,24 @@ def range_cmd(
     figure: Annotated[Optional[Path], typer.Option(help="Spectrum figure to write (.png or .svg).")] = None,
     ranges: RangesOpt = None,
     length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
-    strict: Strict = False, quiet: Quiet = False,
+    strict: Strict = False, force: ForceFile = False, quiet: Quiet = False,
 ):
     """Range the mass spectrum: find peaks, match ions, calibrate, and write an editable range file."""
+    from .outputs import check_outfile, staged_file
     from .ranging import RangeSet, auto_range
 
     _STATE["quiet"] = quiet
+    inputs = [ions, ranges]
+    check_outfile(out, force, inputs)
+    figures = _figure_pair(figure)
+    for f in figures:
+        check_outfile(f, force, inputs + [out], what="--figure")
     mets = _metals(metals)
     il = _read(ions, length_unit, position_dataset, mass_dataset, strict)
     given = RangeSet.from_toml(ranges) if ranges is not None else None
     rr = auto_range(il.mass_to_charge, mets, species=split_list(species, "--species") or None, ranges=given)
-    if Path(out).exists() and ranges is not None and Path(out).resolve() == Path(ranges).resolve():
-        raise InputError(f"--out {out} is the --ranges file given: choose another name (inputs are never changed)")
-    rr.to_toml(out)
+    with staged_file(out, force, inputs) as part:
+        rr.to_toml(part)
     say(f"wrote {out}: {len(rr.ranges)} ranges")
     d = rr.to_dict()
     comp = d.get("composition", {})
@@ -163,11 +180,30 @@ def range_cmd(
             say(f"  {m:3s} {100 * c['fraction']:6.2f} % +- {100 * c['sigma']:.2f} % (atomic, of metal atoms)")
     if len(rr.unmatched):
         say(f"  {len(rr.unmatched)} strong peaks unmatched (left unranged): " + "; ".join(rr.unmatched_nearest[:6]))
-    if figure is not None:
+    if figures:
+        import matplotlib.pyplot as plt
+
         from .ranging_plot import plot_ranging
 
-        plot_ranging(rr, figure)
-        say(f"wrote {figure}")
+        fig = plot_ranging(rr)
+        try:
+            for f in figures:
+                with staged_file(f, force, inputs + [out], what="--figure") as part:
+                    fig.savefig(part, dpi=150, format=f.suffix[1:], metadata=figure_metadata(f))
+        finally:
+            plt.close(fig)
+        say(f"wrote {' and '.join(map(str, figures))}")
+
+
+def _figure_pair(figure) -> list:
+    """``--figure X.png`` (or ``.svg``, or no suffix) writes ``X.png`` and ``X.svg``."""
+    if figure is None:
+        return []
+    p = Path(figure)
+    if p.suffix.lower() not in ("", ".png", ".svg"):
+        raise InputError(f"--figure {p}: expected a .png or .svg name (both are written)")
+    stem = p.with_suffix("") if p.suffix else p
+    return [stem.with_name(stem.name + ".png"), stem.with_name(stem.name + ".svg")]
 
 
 # ---------------------------------------------------------------------- columns
@@ -191,19 +227,24 @@ def columns(
     from .data import save_columns
     from .outputs import check_outdir, staged_outdir, write_json
     from .ranging import RangeSet, assign_channels, auto_range
+    from .validate import check_scale, check_seed
 
     _STATE["quiet"] = quiet
-    check_outdir(out, force)
+    inputs = [ions, ranges, *_lattice_inputs(lattice)]
+    check_outdir(out, force, inputs)
     mets = _metals(metals)
     lat = _lattice(lattice, a, repeat, sites_per_repeat)
+    check_seed(seed)
+    scale = check_scale(scale)
+    offset = _parse_offset(offset_nm)
     il = _read(ions, length_unit, position_dataset, mass_dataset, strict)
     given = RangeSet.from_toml(ranges) if ranges is not None else None
     rr = auto_range(il.mass_to_charge, mets, ranges=given)
     w = assign_channels(il.mass_to_charge, rr.ranges, mets).weights()
     sel = w.sum(1) > 0
     cols = build_columns(il.x[sel], il.y[sel], il.z[sel], w[sel], mets, lat, rotation_deg=rotation_deg,
-                         scale=scale, offset_nm=_parse_offset(offset_nm), random_state=seed)
-    with staged_outdir(out, force=force) as st:
+                         scale=scale, offset_nm=offset, random_state=seed)
+    with staged_outdir(out, force=force, inputs=inputs, command=_command_line()) as st:
         save_columns(cols, st / "columns.h5")
         write_json(st / "registration.json", {"resolvable": cols.resolvable, "crosstalk": cols.crosstalk,
                                               "n_rods": cols.n_rods, "n_sites": cols.n_sites, **cols.params})
@@ -232,7 +273,7 @@ def decode(
     from .outputs import check_outdir, staged_outdir, write_json
 
     _STATE["quiet"] = quiet
-    check_outdir(out, force)
+    check_outdir(out, force, [columns_dir])
     cols = load_columns(Path(columns_dir) / "columns.h5")
     dec = fit_decoder(cols, n_starts=n_starts, random_state=seed)
     groups = None
@@ -240,7 +281,7 @@ def decode(
         from .groups import analyze_groups
 
         groups = analyze_groups(cols, random_state=seed)
-    with staged_outdir(out, force=force) as st:
+    with staged_outdir(out, force=force, inputs=[columns_dir], command=_command_line()) as st:
         write_json(st / "decoding.json", {"decoding": dec.to_dict(),
                                           "groups": None if groups is None else groups.to_dict()})
         _write_decoded_tables(st, cols, dec)
@@ -278,29 +319,44 @@ def analyze(
     scale: Annotated[Optional[float], typer.Option(help="Fix the lateral scale (reconstruction / crystal).")] = None,
     offset_nm: Annotated[Optional[str], typer.Option(help="Fix the lattice offset 'x,y', nm.")] = None,
     length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
+    allow_outside: Annotated[bool, typer.Option(help="Let a run folder's run.toml name files outside the run "
+                                                     "folder (refused by default).")] = False,
     strict: Strict = False, force: Force = False, quiet: Quiet = False, verbose: Verbose = False,
 ):
-    """Run the whole analysis: ranging, columns, decoding, statistics and classification."""
+    """Run the whole analysis: ranging, columns, decoding, statistics and classification.
+
+    IONS may be an ion file, a run folder (ion file + run.toml), or a folder of run folders
+    (a batch: each run is written to OUT/<run folder name>).
+    """
     from .lattice import Lattice
     from .pipeline import AnalysisOptions
     from .pipeline import analyze_file, write_analysis
     from .outputs import check_outdir
     from .ranging import RangeSet
-    from .runinfo import read_run_folder
+    from .runinfo import read_run_folder, safe_file_name
 
     _STATE["quiet"] = quiet
+    # options first: a bad value is one error before any work, not one failure per run of a batch
+    opts = AnalysisOptions(seed=seed, n_starts=n_starts, n_boot=n_boot, long_block_sites=long_block_sites,
+                           alpha=alpha, copy_threshold=copy_threshold, rotation_deg=rotation_deg, scale=scale,
+                           offset_nm=_parse_offset(offset_nm))
     sample = {}
     src = Path(ions)
+    inputs = [src, ranges, *_lattice_inputs(lattice)]
     if src.is_dir() and not (src / "run.toml").exists() and _run_folders(src):
         flags = ["--seed", str(seed), "--long-block-sites", str(long_block_sites), "--alpha", str(alpha),
                  "--copy-threshold", str(copy_threshold), "--n-boot", str(n_boot), "--n-starts", str(n_starts)]
         if strict:
             flags.append("--strict")
+        if allow_outside:
+            flags.append("--allow-outside")
         if force:
             flags.append("--force")
-        return _batch(src, Path(out) if out is not None else Path(f"analysis_{src.name}"), flags, force)
+        default_out = Path(f"analysis_{safe_file_name(src.resolve().name)}")
+        return _batch(src, Path(out) if out is not None else default_out, flags, force)
     if src.is_dir():
-        desc = read_run_folder(src)
+        desc = read_run_folder(src, allow_outside=allow_outside)
+        inputs += [desc.folder / "run.toml", desc.ions, desc.ranges, *_lattice_inputs(desc.lattice)]
         sample = dict(desc.sample)
         ion_path = desc.ions
         mets = _metals(metals) if metals else desc.metals
@@ -313,6 +369,7 @@ def analyze(
         ranges = ranges or desc.ranges
         sample["detection_efficiency_given"] = desc.detection_efficiency
         name = desc.name
+        default_out = f"analysis_{desc.safe_name}"
     else:
         ion_path = src
         if metals is None:
@@ -320,15 +377,12 @@ def analyze(
         mets = _metals(metals)
         lat = _lattice(lattice, a, repeat, sites_per_repeat)
         name = src.stem
-    outdir = Path(out) if out is not None else Path(f"analysis_{name}")
-    check_outdir(outdir, force)
-    opts = AnalysisOptions(seed=seed, n_starts=n_starts, n_boot=n_boot, long_block_sites=long_block_sites,
-                           alpha=alpha, copy_threshold=copy_threshold, rotation_deg=rotation_deg, scale=scale,
-                           offset_nm=_parse_offset(offset_nm))
+        default_out = f"analysis_{safe_file_name(name)}"
+    outdir = Path(out) if out is not None else Path(default_out)
+    check_outdir(outdir, force, inputs)
     rep = _Reporter(quiet, verbose)
     rs = RangeSet.from_toml(ranges) if ranges is not None else None
-    prov = {"command_line": "probeseq " + " ".join(shlex.quote(a) for a in sys.argv[1:]),
-            "sample": sample, "run_name": name}
+    prov = {"command_line": _command_line(), "sample": sample, "run_name": name}
     try:
         res = analyze_file(ion_path, mets, lat, ranges=rs, options=opts, progress=rep, provenance=prov,
                            length_unit=length_unit, position_dataset=position_dataset, mass_dataset=mass_dataset,
@@ -342,7 +396,7 @@ def analyze(
 
     rep("writing", f"{outdir}")
     try:
-        write_analysis(res, outdir, force=force, extra=extra, progress=rep)
+        write_analysis(res, outdir, force=force, extra=extra, progress=rep, inputs=inputs)
     finally:
         rep.done()
     for line in _summary_lines(res, verbose=verbose):
@@ -380,8 +434,14 @@ def _batch(src: Path, out: Path, flags: list, force: bool):
     import os
     from concurrent.futures import ProcessPoolExecutor
 
+    from .outputs import check_outdir
+
     subs = _run_folders(src)
-    out.mkdir(parents=True, exist_ok=True)
+    check_outdir(out, force, [src, *subs])
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise InputError(f"--out {out}: cannot create the folder ({e.strerror})") from None
     jobs = [(sub, out / sub.name, flags) for sub in subs]
     workers = max(1, min(2, os.cpu_count() or 1, len(jobs)))
     say(f"analysing {len(jobs)} run folders of {src} with {workers} processes into {out}")
@@ -446,12 +506,15 @@ def compare(
     from .pipeline import _write_table
 
     _STATE["quiet"] = quiet
-    check_outdir(out, force)
-    comp = compare_runs(load_runs(outdirs), order_by=by, random_state=seed)
+    check_outdir(out, force, outdirs)
+    records = load_runs(outdirs)
+    inputs = [*outdirs, *(r.folder for r in records)]
+    check_outdir(out, force, inputs)
+    comp = compare_runs(records, order_by=by, random_state=seed)
     rows = comp.table_rows()
     cols = ("run", "order_value", "label", "statistic", "estimate", "low", "high")
     table = {c: [r[c] if r[c] is not None else "" for r in rows] for c in cols}
-    with staged_outdir(out, force=force) as st:
+    with staged_outdir(out, force=force, inputs=inputs, command=_command_line()) as st:
         _write_table(st / "comparison.csv", table, cols)
         dcols = ("run_a", "run_b", "statistic", "difference", "low", "high", "p_value")
         _write_table(st / "differences.csv", {c: [d[c] if d[c] is not None else "" for d in comp.differences]
@@ -493,13 +556,16 @@ def plan(
     depth: Annotated[float, typer.Option(help="Depth of the simulated runs, nm.")] = 25.0,
     out: Annotated[Optional[Path], typer.Option(help="Write the plan as JSON here.")] = None,
     seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
-    quiet: Quiet = False,
+    force: ForceFile = False, quiet: Quiet = False,
 ):
     """Before acquiring: simulate runs under your conditions and report what the analysis can tell apart."""
-    from .outputs import write_json
+    from .outputs import check_outfile, staged_file, write_json
     from .plan import plan_experiment
 
     _STATE["quiet"] = quiet
+    inputs = _lattice_inputs(lattice)
+    if out is not None:
+        check_outfile(out, force, inputs)
     mets = _metals(metals)
     lat = _lattice(lattice, a, repeat, sites_per_repeat)
 
@@ -526,7 +592,8 @@ def plan(
         say(f"smallest persistence told from random in >= {100 * res.power:.0f} % of runs: "
             f"{res.smallest_detectable_persistence:.2f}")
     if out is not None:
-        write_json(out, res.to_dict())
+        with staged_file(out, force, inputs) as part:
+            write_json(part, res.to_dict(), mark=True)
         say(f"wrote {out}")
 
 
@@ -540,7 +607,7 @@ def export(
     out: Annotated[Optional[Path], typer.Option(help="File to write (default OUTDIR/exports/tracks.<ext>).")] = None,
     size: Annotated[str, typer.Option(help="Figure width preset: one-column | two-column.")] = "two-column",
     dpi: Annotated[int, typer.Option(help="Resolution of PNG figures.")] = 300,
-    quiet: Quiet = False,
+    force: ForceFile = False, quiet: Quiet = False,
 ):
     """Export decoded tracks (tables, JSON, self-describing HDF5) or the tracks figure (SVG, PDF, PNG)."""
     from .export import export_outdir, load_outdir, parse_depth, parse_rods
@@ -548,5 +615,5 @@ def export(
     _STATE["quiet"] = quiet
     of = load_outdir(outdir)
     path = export_outdir(outdir, format, out=out, rods=parse_rods(rods, of.columns.n_rods),
-                         depth_nm=parse_depth(depth), size=size, dpi=dpi)
+                         depth_nm=parse_depth(depth), size=size, dpi=dpi, force=force)
     say(f"wrote {path}")

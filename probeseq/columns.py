@@ -46,6 +46,7 @@ import numpy as np
 from .data import RodColumns
 from .exceptions import InputError
 from .lattice import Lattice
+from .validate import check_scale, check_seed
 from .registration import (RESOLVABLE_CROSSTALK, Registration, RodLocator, _cached_locator, _check_xyz,
                            register_lattice)
 
@@ -938,6 +939,8 @@ def build_columns(x, y, z, weights, metals, lattice: Lattice, registration: Regi
     -------
     RodColumns
     """
+    check_seed(random_state)
+    check_scale(scale)
     metals = tuple(str(m) for m in metals)
     if not metals:
         raise InputError("metals: at least one metal name is needed")

@@ -14,7 +14,7 @@ recalled from memory).
 
 from __future__ import annotations
 
-import json
+import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -22,7 +22,8 @@ import numpy as np
 
 from .exceptions import DataQualityWarning, InputError
 
-__all__ = ["RunRecord", "Comparison", "load_runs", "compare_runs", "difference_test", "KEY_STATISTICS"]
+__all__ = ["RunRecord", "Comparison", "load_runs", "compare_runs", "difference_test", "order_value",
+           "KEY_STATISTICS"]
 
 #: statistics shown in the comparison figure, per metal where the name ends in '.'
 KEY_STATISTICS = ("composition.", "mean_run_length_sites.", "persistence", "entropy_rate_bits", "rod_to_rod.corr")
@@ -48,7 +49,8 @@ def _find_outdirs(paths) -> list:
         if (p / "results.json").is_file():
             out.append(p)
         elif p.is_dir():
-            subs = sorted(q for q in p.iterdir() if (q / "results.json").is_file())
+            # hidden folders (probeseq's staging folders among them) are never runs
+            subs = sorted(q for q in p.iterdir() if not q.name.startswith(".") and (q / "results.json").is_file())
             if not subs:
                 raise InputError(f"{p}: holds no results.json, nor folders that do (run 'probeseq analyze' first)")
             out.extend(subs)
@@ -58,23 +60,20 @@ def _find_outdirs(paths) -> list:
 
 
 def load_runs(paths) -> list:
-    """Read the output folders (or folders of them) into :class:`RunRecord` objects."""
-    from .pipeline import RESULTS_SCHEMA_VERSION, read_replicates
+    """Read the output folders (or folders of them) into :class:`RunRecord` objects.
+
+    ``results.json`` is checked by :func:`probeseq.pipeline.load_results` and ``bootstrap.h5`` by
+    :func:`probeseq.pipeline.read_replicates`; a damaged file is an :class:`InputError` naming it.
+    """
+    from .pipeline import load_results, read_replicates
 
     records = []
     for d in _find_outdirs(paths):
-        try:
-            r = json.loads((d / "results.json").read_text(encoding="utf-8"))
-        except (OSError, ValueError) as e:
-            raise InputError(f"{d / 'results.json'}: unreadable ({e})") from None
-        v = r.get("schema_version")
-        if v != RESULTS_SCHEMA_VERSION:
-            raise InputError(f"{d}: results schema version {v}, this probeseq reads {RESULTS_SCHEMA_VERSION}; "
-                             "re-run 'probeseq analyze'")
-        prov = r.get("provenance", {})
+        r = load_results(d)
+        prov = r["provenance"]
         sample = dict(prov.get("sample") or {})
         name = str(sample.get("name") or prov.get("run_name") or d.name)
-        records.append(RunRecord(folder=d, name=name, metals=tuple(prov.get("metals", [])), metadata=sample,
+        records.append(RunRecord(folder=d, name=name, metals=tuple(prov.get("metals") or []), metadata=sample,
                                  label=r["classification"]["label"],
                                  confidence=float(r["classification"]["confidence"]),
                                  intervals=r["statistics"]["intervals"], replicates=read_replicates(d)))
@@ -82,6 +81,27 @@ def load_runs(paths) -> list:
     if len(set(names)) != len(names):
         records = [RunRecord(**{**rec.__dict__, "name": f"{rec.name} ({rec.folder.name})"}) for rec in records]
     return records
+
+
+def order_value(value):
+    """A metadata value as a number to order runs by, or None when it is not one.
+
+    Numbers are taken as they are and text that reads as a number (``"150"``) is converted; NaN,
+    infinities, true/false, other text, lists and tables give None (such runs are ordered after
+    the numeric ones, by their text).
+    """
+    if isinstance(value, bool):
+        return None
+    if isinstance(value, (int, float)):
+        v = float(value)
+    elif isinstance(value, str):
+        try:
+            v = float(value.strip())
+        except ValueError:
+            return None
+    else:
+        return None
+    return v if math.isfinite(v) else None
 
 
 def difference_test(rep_a, rep_b, random_state=None):
@@ -139,6 +159,9 @@ def compare_runs(records, order_by: str | None = "synthesis_temperature_c", rand
     """Order runs, pick the statistics they share, and test consecutive pairs for differences."""
     import warnings
 
+    from .validate import check_seed
+
+    check_seed(random_state)
     recs = list(records)
     if len(recs) < 1:
         raise InputError("compare needs at least one analysed run")
@@ -151,13 +174,22 @@ def compare_runs(records, order_by: str | None = "synthesis_temperature_c", rand
         warnings.warn(msg, DataQualityWarning, stacklevel=2)
         notes.append(msg)
     if order_by:
-        missing = [r.name for r in recs if order_by not in r.metadata]
+        missing = [r.name for r in recs if r.metadata.get(order_by) is None]
         if missing:
             notes.append(f"runs without '{order_by}' are placed last: {', '.join(missing)}")
+        odd = [f"{r.name} ({str(r.metadata[order_by])[:40]!r})" for r in recs
+               if r.metadata.get(order_by) is not None and order_value(r.metadata[order_by]) is None]
+        if odd:
+            msg = (f"'{order_by}' is not a number in {len(odd)} run(s), placed after the numeric ones in text "
+                   f"order: {', '.join(odd)}")
+            warnings.warn(msg, DataQualityWarning, stacklevel=2)
+            notes.append(msg)
 
         def key(r):
             v = r.metadata.get(order_by)
-            return (v is None, v if isinstance(v, (int, float)) else str(v) if v is not None else 0, r.name)
+            x = order_value(v)
+            group = 0 if x is not None else 2 if v is None else 1
+            return (group, 0.0 if x is None else x, "" if v is None else str(v), r.name)
 
         recs.sort(key=key)
     names = set.intersection(*[set(r.intervals) for r in recs])
@@ -196,9 +228,9 @@ def plot_comparison(comp: Comparison, path, statistics=None):
     fig, axes = plt.subplots(1, n, figsize=(3.2 * n, 2.8), squeeze=False)
     xs = []
     for i, r in enumerate(comp.runs):
-        v = r.metadata.get(comp.order_by) if comp.order_by else None
-        xs.append(float(v) if isinstance(v, (int, float)) else float(i))
-    numeric = comp.order_by and all(isinstance(r.metadata.get(comp.order_by), (int, float)) for r in comp.runs)
+        v = order_value(r.metadata.get(comp.order_by)) if comp.order_by else None
+        xs.append(float(i) if v is None else v)
+    numeric = comp.order_by and all(order_value(r.metadata.get(comp.order_by)) is not None for r in comp.runs)
     for ax, (base, members) in zip(axes[0], groups.items()):
         for j, s in enumerate(members):
             est = np.array([(r.intervals.get(s) or {}).get("estimate", np.nan) or np.nan for r in comp.runs], float)
@@ -217,6 +249,8 @@ def plot_comparison(comp: Comparison, path, statistics=None):
             ax.set_xticks(xs, [r.name for r in comp.runs], rotation=30, fontsize=7)
         ax.tick_params(labelsize=7)
     fig.tight_layout()
-    fig.savefig(path, dpi=150)
+    from .outputs import figure_metadata
+
+    fig.savefig(path, dpi=150, metadata=figure_metadata(path))
     plt.close(fig)
     return path

@@ -85,6 +85,15 @@ class RodColumns:
         sz = np.asarray(self.site_z_nm, dtype=float)
         if sz.shape != (c.shape[1],):
             raise InputError(f"site_z_nm has shape {sz.shape}, expected ({c.shape[1]},)")
+        try:
+            pitch, z_ref = float(self.pitch_nm), float(self.z_ref_nm)
+        except (TypeError, ValueError):
+            raise InputError(f"pitch_nm and z_ref_nm must be numbers (nm), got {self.pitch_nm!r:.40}, "
+                             f"{self.z_ref_nm!r:.40}") from None
+        if not (np.isfinite(pitch) and pitch > 0):
+            raise InputError(f"pitch_nm must be a finite positive length in nm, got {pitch}")
+        if not np.isfinite(z_ref):
+            raise InputError(f"z_ref_nm must be a finite depth in nm, got {z_ref}")
         nb = np.asarray(self.neighbours, dtype=np.int64).reshape(-1, 2)
         off = np.zeros(c.shape[0]) if self.site_z_offset_nm is None else np.asarray(self.site_z_offset_nm, float)
         if off.shape != (c.shape[0],):
@@ -155,34 +164,70 @@ def save_columns(columns: RodColumns, path) -> None:
 
 
 def load_columns(path) -> RodColumns:
-    """Read a :class:`RodColumns` written by :func:`save_columns`."""
-    import json
+    """Read a :class:`RodColumns` written by :func:`save_columns`, checking what it reads.
+
+    Every dataset is checked for type and shape before it is read (so a damaged or hand-edited
+    file cannot ask for more memory than its consistent shape needs), the arrays against each
+    other (counts, mask, metals, rods, sites), and the values: a finite positive pitch, finite
+    positions, rod pairs that name existing rods, finite non-negative counts at used sites.
+
+    Raises
+    ------
+    InputError
+        Missing, truncated or damaged file, or any of the checks failed; the message names the
+        file and the dataset or attribute.
+    """
     from pathlib import Path
 
-    import h5py
+    from .validate import h5_array, h5_attr_json, h5_attr_number, h5_group, open_h5
 
     p = Path(path)
-    if not p.is_file():
-        raise InputError(f"columns file not found: {p}")
-    try:
-        f = h5py.File(p, "r")
-    except OSError:
-        raise InputError(f"{p}: not a readable HDF5 file") from None
-    with f:
-        if "columns" not in f:
-            raise InputError(f"{p}: no group '/columns' (not written by 'probeseq columns')")
-        g = f["columns"]
-        version = int(g.attrs.get("format_version", -1))
-        if version != COLUMNS_FILE_VERSION:
+    with open_h5(p, "columns file") as f:
+        g = h5_group(f, "columns", p, "not written by 'probeseq columns'")
+        version = g.attrs.get("format_version", -1)
+        if not (isinstance(version, (int, np.integer)) and int(version) == COLUMNS_FILE_VERSION):
             raise InputError(f"{p}: columns file format version {version}, this probeseq reads {COLUMNS_FILE_VERSION}")
-        try:
-            return RodColumns(
-                counts=g["counts"][...], mask=g["mask"][...].astype(bool),
-                metals=tuple(json.loads(g.attrs["metals"])), rod_xy_nm=g["rod_xy_nm"][...],
-                tilt=g["tilt"][...], z_ref_nm=float(g.attrs["z_ref_nm"]), site_z_nm=g["site_z_nm"][...],
-                pitch_nm=float(g.attrs["pitch_nm"]), neighbours=g["neighbours"][...],
-                resolvable=bool(g.attrs["resolvable"]), crosstalk=float(g.attrs["crosstalk"]),
-                params=json.loads(g.attrs["params_json"]),
-                site_z_offset_nm=g["site_z_offset_nm"][...] if "site_z_offset_nm" in g else None)
-        except KeyError as e:
-            raise InputError(f"{p}: columns file lacks {e}") from None
+        metals = h5_attr_json(g, "metals", p)
+        if (not isinstance(metals, list) or len(metals) < 1 or not all(isinstance(m, str) and m for m in metals)
+                or len(set(metals)) != len(metals)):
+            raise InputError(f"{p}: attribute 'metals' must be a list of distinct metal symbols, got {metals!r:.60}")
+        k = len(metals)
+        counts_ds = g.get("counts")
+        shape = getattr(counts_ds, "shape", None)
+        if shape is None or len(shape) != 3:
+            h5_array(g, "counts", p, shape=(None, None, k))  # names what is wrong (missing, type, shape)
+        n_rods, n_sites = int(shape[0]), int(shape[1])
+        counts = h5_array(g, "counts", p, shape=(n_rods, n_sites, k))
+        mask = h5_array(g, "mask", p, "biu", shape=(n_rods, n_sites))
+        rod_xy = h5_array(g, "rod_xy_nm", p, "fiu", shape=(n_rods, 2))
+        tilt = h5_array(g, "tilt", p, "fiu", shape=(2,))
+        site_z = h5_array(g, "site_z_nm", p, "fiu", shape=(n_sites,))
+        neighbours = h5_array(g, "neighbours", p, "iu", shape=(None, 2))
+        offsets = h5_array(g, "site_z_offset_nm", p, "fiu", shape=(n_rods,), optional=True)
+        for name, arr in (("rod_xy_nm", rod_xy), ("tilt", tilt), ("site_z_nm", site_z), ("site_z_offset_nm", offsets)):
+            if arr is not None and not np.isfinite(arr).all():
+                raise InputError(f"{p}: dataset '{name}' holds NaN or infinite values")
+        if neighbours.size and (neighbours.min() < 0 or neighbours.max() >= n_rods):
+            raise InputError(f"{p}: dataset 'neighbours' names rods outside 0-{n_rods - 1}")
+        mask = mask.astype(bool)
+        used = counts[mask]
+        if not np.isfinite(used).all():
+            raise InputError(f"{p}: dataset 'counts' holds NaN or infinite values at used sites")
+        if used.size and used.min() < 0:
+            raise InputError(f"{p}: dataset 'counts' holds negative counts at used sites")
+        pitch = h5_attr_number(g, "pitch_nm", p, 0, lo_open=True)
+        z_ref = h5_attr_number(g, "z_ref_nm", p)
+        crosstalk = h5_attr_number(g, "crosstalk", p, 0, 1)
+        resolvable = g.attrs.get("resolvable")
+        if not isinstance(resolvable, (bool, np.bool_)) and not (
+                isinstance(resolvable, (int, np.integer)) and int(resolvable) in (0, 1)):
+            raise InputError(f"{p}: attribute 'resolvable' must be true or false, got {resolvable!r:.40}")
+        params = h5_attr_json(g, "params_json", p)
+        if not isinstance(params, dict):
+            raise InputError(f"{p}: attribute 'params_json' must be a JSON object, got {type(params).__name__}")
+    try:
+        return RodColumns(counts=counts, mask=mask, metals=tuple(metals), rod_xy_nm=rod_xy, tilt=tilt, z_ref_nm=z_ref,
+                          site_z_nm=site_z, pitch_nm=pitch, neighbours=neighbours, resolvable=bool(resolvable),
+                          crosstalk=crosstalk, params=params, site_z_offset_nm=offsets)
+    except InputError as e:
+        raise InputError(f"{p}: {e}") from None

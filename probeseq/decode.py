@@ -81,6 +81,7 @@ from scipy.special import gammaln
 
 from .data import RodColumns
 from .exceptions import ConvergenceWarning, DataQualityWarning, InputError
+from .validate import check_seed
 from .hmm import forward_backward_scaled, run_em, stationary_distribution, update_transmat, viterbi
 
 __all__ = [
@@ -1135,6 +1136,7 @@ def fit_decoder(
     notes = _check_columns(columns)
     _check_options(n_starts, max_iter, tol, uncertain_below)
     _check_engine(engine)
+    check_seed(random_state)
     for msg in notes:
         warnings.warn(msg, DataQualityWarning, stacklevel=2)
     rng = np.random.default_rng(random_state)

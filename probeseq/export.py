@@ -32,22 +32,42 @@ class OutputFolder:
 
 
 def load_outdir(outdir) -> OutputFolder:
-    """Read an ``analyze`` output folder, checking its schema version."""
+    """Read an ``analyze`` output folder, checking what it reads.
+
+    ``results.json`` is checked by :func:`probeseq.pipeline.load_results`, ``columns.h5`` by
+    :func:`probeseq.data.load_columns`, ``decoded.h5`` by :func:`probeseq.pipeline.load_decoded`;
+    then the decoding is checked against the columns (same metals, same rods and sites, a metal
+    decoded at every used site).
+
+    Raises
+    ------
+    InputError
+        Names the file and what in it is wrong.
+    """
     from .data import load_columns
-    from .pipeline import RESULTS_SCHEMA_VERSION, load_decoded
+    from .pipeline import load_decoded, load_results
 
     d = Path(outdir)
-    if not (d / "results.json").is_file():
-        raise InputError(f"{d}: no results.json (not an 'analyze' output folder)")
-    try:
-        res = json.loads((d / "results.json").read_text(encoding="utf-8"))
-    except ValueError as e:
-        raise InputError(f"{d / 'results.json'}: not valid JSON ({e})") from None
-    v = res.get("schema_version")
-    if v != RESULTS_SCHEMA_VERSION:
-        raise InputError(f"{d}: written with results schema version {v}; this probeseq reads version "
-                         f"{RESULTS_SCHEMA_VERSION} (re-run 'probeseq analyze')")
-    return OutputFolder(d, res, load_columns(d / "columns.h5"), load_decoded(d / "decoded.h5"))
+    if not d.is_dir():
+        raise InputError(f"analysis folder not found: {d}")
+    res = load_results(d)
+    cols = load_columns(d / "columns.h5")
+    dec = load_decoded(d / "decoded.h5")
+    _check_decoded_matches(cols, dec, d)
+    return OutputFolder(d, res, cols, dec)
+
+
+def _check_decoded_matches(cols, dec, d: Path) -> None:
+    """decoded.h5 must describe the sites of columns.h5: same metals, shape and used sites."""
+    if tuple(dec.metals) != tuple(cols.metals):
+        raise InputError(f"{d}: decoded.h5 names metals {list(dec.metals)} but columns.h5 {list(cols.metals)}; "
+                         "the folder mixes files of different analyses")
+    if dec.viterbi.shape != cols.mask.shape:
+        raise InputError(f"{d}: decoded.h5 holds {dec.viterbi.shape[0]} rods x {dec.viterbi.shape[1]} sites but "
+                         f"columns.h5 {cols.n_rods} x {cols.n_sites}; the folder mixes files of different analyses")
+    if (dec.viterbi[cols.mask] < 0).any():
+        raise InputError(f"{d}: decoded.h5 has no metal at sites that columns.h5 uses; the folder mixes files of "
+                         "different analyses")
 
 
 def parse_rods(text, n_rods: int):
@@ -122,7 +142,7 @@ def _tracks(of: OutputFolder, sel):
 
 
 def export_outdir(outdir, fmt: str, out=None, rods=None, depth_nm=None, size: str = "two-column",
-                  dpi: int = 300) -> Path:
+                  dpi: int = 300, force: bool = False) -> Path:
     """Write one export of an analysis folder and return its path.
 
     Parameters
@@ -130,56 +150,53 @@ def export_outdir(outdir, fmt: str, out=None, rods=None, depth_nm=None, size: st
     fmt : {"csv", "json", "hdf5", "svg", "pdf", "png"}
     out : path, optional
         Default ``OUTDIR/exports/tracks.<ext>``.
-    rods : array of int, optional
-    depth_nm : (float, float), optional
+    force : bool
+        Replace an existing file that probeseq wrote; the analysis folder's own files are never
+        replaced (see :mod:`probeseq.outputs`).
     """
+    from .outputs import MARK, check_outfile, staged_file, write_json
+
     fmt = str(fmt).lower()
     if fmt not in FORMATS:
         raise InputError(f"--format '{fmt}' is not supported; choose one of {', '.join(FORMATS)}")
+    ext = {"hdf5": "h5"}.get(fmt, fmt)
+    path = Path(out) if out is not None else Path(outdir) / "exports" / f"tracks.{ext}"
+    if path.suffix.lower() != f".{ext}":
+        raise InputError(f"--out {path}: a {fmt} export needs a name ending in .{ext}")
+    check_outfile(path, force, [outdir])
     of = load_outdir(outdir)
     sel = select_sites(of.columns, rods, depth_nm)
-    ext = {"hdf5": "h5"}.get(fmt, fmt)
-    path = Path(out) if out is not None else of.path / "exports" / f"tracks.{ext}"
-    path.parent.mkdir(parents=True, exist_ok=True)
-    tmp = path.with_name(f".{path.name}.part")
-    try:
+    with staged_file(path, force, [outdir]) as part:
         if fmt == "csv":
             from .pipeline import _write_table
 
             t = _tracks(of, sel)
             fm = {k: "%.4f" for k in t if k not in ("rod", "site", "state")}
-            _write_table(tmp, t, tuple(t), fm)
+            _write_table(part, t, tuple(t), fm, comment=f"{MARK}: decoded tracks of {of.path.name}")
         elif fmt == "json":
-            from .outputs import write_json
-
             t = _tracks(of, sel)
-            write_json(tmp, {"schema_version": of.results["schema_version"],
-                             "classification": of.results["classification"],
-                             "composition": of.results["composition"],
-                             "units": {"rod_x_nm": "nm", "rod_y_nm": "nm", "z_nm": "nm", "posterior": "probability"},
-                             "sites": {k: np.asarray(v).tolist() for k, v in t.items()}})
+            write_json(part, {"schema_version": of.results["schema_version"],
+                              "classification": of.results["classification"],
+                              "composition": of.results["composition"],
+                              "units": {"rod_x_nm": "nm", "rod_y_nm": "nm", "z_nm": "nm",
+                                        "posterior": "probability"},
+                              "sites": {k: np.asarray(v).tolist() for k, v in t.items()}}, mark=True)
         elif fmt == "hdf5":
-            _write_hdf5(of, sel, tmp)
+            _write_hdf5(of, sel, part)
         else:
             from .plotting import plot_tracks
 
             r = np.flatnonzero(sel.any(1))
             z = of.columns.site_depths_nm()[sel]
-            plot_tracks(of.columns, of.decoded, tmp.with_suffix(path.suffix), rods=r,
+            plot_tracks(of.columns, of.decoded, part, rods=r,
                         depth_nm=(float(z.min()), float(z.max())), size=size, dpi=dpi)
-            tmp.with_suffix(path.suffix).replace(tmp)
-        tmp.replace(path)
-    finally:
-        for p in (tmp, tmp.with_suffix(path.suffix)):
-            if p.exists() and p != path:
-                p.unlink()
     return path
 
 
 def _write_hdf5(of: OutputFolder, sel, path):
     import h5py
 
-    from .outputs import to_jsonable
+    from .outputs import MARK, to_jsonable
 
     col, dec = of.columns, of.decoded
     rods = np.flatnonzero(sel.any(1))
@@ -191,6 +208,7 @@ def _write_hdf5(of: OutputFolder, sel, path):
                             "'description' attributes; index order is (rod, site[, metal]).")
         f.attrs["metals"] = json.dumps(list(col.metals))
         f.attrs["schema_version"] = int(of.results["schema_version"])
+        f.attrs["written_by"] = MARK
 
         def put(name, data, unit, desc):
             d = f.create_dataset(name, data=data, **({"compression": "gzip", "compression_opts": 1} if np.size(data) > 4096 else {}))

@@ -14,8 +14,17 @@ reads into caller buffers (or zero-copy views of the page cache) of plain layout
 layer, as the streamed analysis uses them (:func:`read_ion_sample` for its sample of depth blocks).
 
 Positions are converted to nm once, here. Rows with NaN/inf values or non-positive mass-to-charge
-are dropped and counted in :class:`~probeseq.ions.IonMeta` (``strict=True`` makes them an error).
-Input files are only ever opened for reading.
+are dropped and counted in :class:`~probeseq.ions.IonMeta` (``strict=True`` makes them an error);
+positions beyond +-:data:`~probeseq.ions.MAX_ABS_POSITION_NM` (1e5 nm) are refused as a unit or
+column mistake. Input files are only ever opened for reading.
+
+Hostile files end in one :class:`~probeseq.exceptions.InputError` line. HDF5: soft links inside
+the file are followed (a dangling or looping one is named); external links, datasets kept in
+separate raw files (HDF5 external storage) and virtual datasets mapping other files are refused,
+so only bytes of the named file are ever read; boolean, text, compound and complex datasets are
+refused; float16 is widened exactly to float32 and integers are read as float64; ``length_unit``
+must be one UTF-8 text value. Text: the header line may have at most :data:`MAX_HEADER_BYTES`
+bytes and :data:`MAX_TEXT_COLUMNS` columns, and the file must be UTF-8 text without NUL bytes.
 """
 
 from __future__ import annotations
@@ -23,6 +32,7 @@ from __future__ import annotations
 import difflib
 import hashlib
 import os
+import re
 import warnings
 from contextlib import contextmanager
 from pathlib import Path
@@ -32,6 +42,7 @@ import numpy as np
 
 from .exceptions import DataQualityWarning, InputError
 from .ions import LENGTH_UNITS, OPTIONAL_COLUMNS, REQUIRED_COLUMNS, IonList, IonMeta
+from .tomlfile import clean_text
 
 __all__ = ["read_ions", "write_ions", "iter_ion_chunks", "file_sha256", "file_sha256_mapped", "ion_file_kind",
            "count_ions", "IonSource",
@@ -93,9 +104,16 @@ def ion_file_kind(path) -> str:
 
 
 def _check_unit(length_unit, where):
-    if length_unit not in LENGTH_UNITS:
-        raise InputError(f"{where}: unknown length unit '{length_unit}' (expected one of: {', '.join(LENGTH_UNITS)})")
+    if not isinstance(length_unit, str) or length_unit not in LENGTH_UNITS:
+        raise InputError(f"{where}: unknown length unit '{clean_text(length_unit, 40)}' "
+                         f"(expected one of: {', '.join(LENGTH_UNITS)})")
     return LENGTH_UNITS[length_unit]
+
+
+def _read_dtype(dtype) -> np.dtype:
+    """Native float dtype a column is read into: float32 for floats of up to 4 bytes (float16 is
+    widened exactly), float64 for everything else (float64, integers, wider floats)."""
+    return np.dtype(np.float32) if dtype.kind == "f" and dtype.itemsize <= 4 else np.dtype(np.float64)
 
 
 def _check_file(path) -> Path:
@@ -116,27 +134,115 @@ def _warn_dropped(ions: IonList, where: str):
 
 
 # ---------------------------------------------------------------------- text
+#: longest header line of a text ion file, bytes
+MAX_HEADER_BYTES = 64 * 1024
+#: most columns in a text ion file
+MAX_TEXT_COLUMNS = 1024
+#: longest data line examined when locating a bad value, bytes
+MAX_LINE_BYTES = 1 << 20
+
+
+def _decode_line(raw: bytes, p: Path, lineno: int) -> str:
+    """A line of a text ion file as str; binary or non-UTF-8 bytes are an InputError naming the line."""
+    if b"\0" in raw:
+        raise InputError(f"{p} line {lineno}: holds binary data (a NUL byte); text ion files are UTF-8 text")
+    try:
+        return raw.decode("utf-8")
+    except UnicodeDecodeError as e:
+        raise InputError(f"{p} line {lineno}: not UTF-8 text (byte 0x{raw[e.start]:02x} at byte {e.start + 1} of "
+                         "the line); text ion files are UTF-8 text (is this a binary file?)") from None
+
+
+_EOL = re.compile(rb"\r\n|\r|\n")
+
+
+def _iter_lines(fh, limit: int, block: int = 1 << 16):
+    """Yield ``(line number, bytes, whole)`` for the lines of a binary file ending in ``\\n``,
+    ``\\r\\n`` or ``\\r``, without the line ending. A line longer than ``limit`` bytes is yielded
+    once with its first ``limit`` bytes and ``whole=False``, and its rest skipped, so memory stays
+    bounded by ``limit + block`` whatever the file holds."""
+    lineno = 0
+    carry = b""
+    skipping = False
+    while True:
+        chunk = fh.read(block)
+        buf = carry + chunk
+        if chunk and buf.endswith(b"\r"):  # a CR at the end may be the first half of CR LF
+            carry, buf = b"\r", buf[:-1]
+        else:
+            carry = b""
+        pos = 0
+        for m in _EOL.finditer(buf):
+            line = buf[pos:m.start()]
+            pos = m.end()
+            if skipping:
+                skipping = False
+                continue
+            lineno += 1
+            yield lineno, line[:limit], len(line) <= limit
+        rest = buf[pos:]
+        if not chunk:
+            if rest and not skipping:
+                lineno += 1
+                yield lineno, rest[:limit], len(rest) <= limit
+            return
+        if skipping:
+            continue
+        if len(rest) > limit:
+            lineno += 1
+            yield lineno, rest[:limit], False
+            skipping = True
+        else:
+            carry = rest + carry
+
+
 def _text_layout(p: Path, sep: str):
-    """(line number of the header (1-based), header names) after skipping # comments and blanks."""
-    with open(p, "r", encoding="utf-8", errors="replace") as fh:
-        for lineno, line in enumerate(fh, 1):
-            s = line.strip()
-            if not s or s.startswith("#"):
+    """(line number of the header (1-based), header names) after skipping # comments and blanks.
+
+    The header line may have at most :data:`MAX_HEADER_BYTES` bytes and :data:`MAX_TEXT_COLUMNS`
+    columns; comment lines before it may be of any length (they are skipped in pieces).
+    """
+    with open(p, "rb") as fh:
+        for lineno, raw, whole in _iter_lines(fh, MAX_HEADER_BYTES):
+            if lineno == 1 and raw.startswith(b"\xef\xbb\xbf"):  # a UTF-8 byte-order mark
+                raw = raw[3:]
+            if raw.lstrip().startswith(b"#"):  # comments may be of any length
+                continue
+            if not whole:
+                raise InputError(f"{p} line {lineno}: the header line is longer than {MAX_HEADER_BYTES} bytes; "
+                                 "expected a short row of column names such as x,y,z,mass_to_charge")
+            s = _decode_line(raw, p, lineno).strip()
+            if not s:
                 continue
             names = [c.strip().lower() for c in s.split(sep)]
+            if len(names) > MAX_TEXT_COLUMNS:
+                raise InputError(f"{p} line {lineno}: the header has {len(names)} columns, more than "
+                                 f"{MAX_TEXT_COLUMNS}; expected column names such as x,y,z,mass_to_charge")
             return lineno, names
     raise InputError(f"{p}: no header row (the file holds only comments or blank lines)")
 
 
 def _resolve_columns(p: Path, names: list, sep: str):
-    missing = [c for c in REQUIRED_COLUMNS if c not in names]
+    """The known columns named in the header, in :data:`ALL_COLUMNS` order (linear in the columns)."""
+    present = set(names)
+    missing = [c for c in REQUIRED_COLUMNS if c not in present]
     if missing:
+        # close-match hints from a bounded set of short candidate names
+        candidates = []
+        seen = set()
+        for n in names:
+            if n and n not in seen and len(n) <= 40:
+                seen.add(n)
+                candidates.append(n)
+                if len(candidates) >= 64:
+                    break
         hints = []
         for c in missing:
-            close = difflib.get_close_matches(c, names, n=1, cutoff=0.6)
+            close = difflib.get_close_matches(c, candidates, n=1, cutoff=0.6)
             if close:
-                hints.append(f"'{close[0]}' for '{c}'?")
-        found = ", ".join(n for n in names if n) or "none"
+                hints.append(f"'{clean_text(close[0], 40)}' for '{c}'?")
+        shown = [clean_text(n, 30) for n in names[:20] if n]
+        found = ", ".join(shown) + (f", ... ({len(names)} columns)" if len(names) > 20 else "") if shown else "none"
         extra = ""
         if len(names) == 1 and sep == "," and "\t" in names[0]:
             extra = " (the file looks tab-separated: name it .tsv)"
@@ -144,20 +250,26 @@ def _resolve_columns(p: Path, names: list, sep: str):
             extra = " (the file looks comma-separated: name it .csv)"
         hint = (" did you mean " + " ".join(hints)) if hints else ""
         raise InputError(f"{p}: missing required column(s) {', '.join(missing)}; found: {found}{extra}{hint}")
-    dup = sorted({n for n in names if names.count(n) > 1 and n in ALL_COLUMNS})
+    counts = {}
+    for n in names:
+        if n in ALL_COLUMNS:
+            counts[n] = counts.get(n, 0) + 1
+    dup = sorted(n for n, k in counts.items() if k > 1)
     if dup:
         raise InputError(f"{p}: column(s) named twice in the header: {', '.join(dup)}")
-    return [c for c in ALL_COLUMNS if c in names]
+    return [c for c in ALL_COLUMNS if c in counts]
 
 
 def _find_bad_value(p: Path, sep: str, header_line: int, names: list, wanted: list):
     """Line number and text of the first value that is not a number (slow path, for the message)."""
     idx = {c: names.index(c) for c in wanted}
-    with open(p, "r", encoding="utf-8", errors="replace") as fh:
-        for lineno, line in enumerate(fh, 1):
-            if lineno <= header_line:
+    with open(p, "rb") as fh:
+        for lineno, raw, whole in _iter_lines(fh, MAX_LINE_BYTES):
+            if lineno <= header_line or raw.lstrip().startswith(b"#"):
                 continue
-            s = line.strip()
+            if not whole:
+                return f"line {lineno}: longer than {MAX_LINE_BYTES} bytes; expected one ion per line"
+            s = _decode_line(raw, p, lineno).strip()
             if not s or s.startswith("#"):
                 continue
             parts = s.split(sep)
@@ -168,7 +280,7 @@ def _find_bad_value(p: Path, sep: str, header_line: int, names: list, wanted: li
                 try:
                     float(v)
                 except ValueError:
-                    return f"line {lineno}: column '{c}' holds '{v[:30]}', not a number"
+                    return f"line {lineno}: column '{c}' holds '{clean_text(v, 30)}', not a number"
     return None
 
 
@@ -215,67 +327,217 @@ def _open_h5(p: Path):
         raise InputError(f"{p}: not a readable HDF5 file ({msg}); the file may be truncated or of another format") from None
 
 
-def _h5_layout(f, p: Path, position_dataset, mass_dataset):
-    """Mapping column -> (dataset, column index or None) and the file's length unit."""
+_MAX_SOFT_LINKS = 16
+
+
+def _h5_get(f, path: str, p: Path):
+    """The object at ``path``, following hard and soft links inside the file.
+
+    External links (and user-defined links) are refused: probeseq reads only data stored in the
+    ion file itself. A soft link that leads nowhere or in a loop is named in the message.
+    Returns None when nothing is at ``path`` (and no soft link on the way).
+    """
     import h5py
 
-    def get(path):
+    shown = clean_text(path)
+    pending = [q for q in str(path).split("/") if q]
+    pending.reverse()
+    obj = f["/"]
+    at = []  # names from the root to obj
+    hops = 0
+    via = None  # (link path, target) of the last soft link followed
+    while pending:
+        name = pending.pop()
+        here = "/" + "/".join(at)
+        if not isinstance(obj, h5py.Group):
+            raise InputError(f"{p}: '{clean_text(here)}' is a dataset, not a group, so '{shown}' does not exist")
         try:
-            obj = f[path]
-        except (KeyError, ValueError):
-            raise InputError(f"{p}: no dataset '{path}' in the file") from None
-        if not isinstance(obj, h5py.Dataset):
-            raise InputError(f"{p}: '{path}' is a group, not a dataset")
-        return obj
+            link = obj.get(name, getlink=True)
+        except (KeyError, ValueError, OSError, RuntimeError, TypeError) as e:
+            raise InputError(f"{p}: cannot read the link '{clean_text(here.rstrip('/') + '/' + name)}' "
+                             f"({clean_text(str(e).split('(')[0].strip())})") from None
+        full = clean_text(here.rstrip("/") + "/" + name)
+        if link is None:
+            if via is not None:
+                raise InputError(f"{p}: '{shown}' is reached through the soft link '{via[0]}' -> '{via[1]}', "
+                                 "which points to nothing in the file (a dangling link)")
+            return None
+        if isinstance(link, h5py.ExternalLink):
+            raise InputError(f"{p}: '{full}' is an external link to '{clean_text(link.filename)}:"
+                             f"{clean_text(link.path)}'; probeseq reads only data stored in the ion file itself "
+                             "(copy the data into the file)")
+        if isinstance(link, h5py.SoftLink):
+            hops += 1
+            if hops > _MAX_SOFT_LINKS:
+                raise InputError(f"{p}: '{shown}' leads through more than {_MAX_SOFT_LINKS} soft links "
+                                 f"(a loop at '{full}' -> '{clean_text(link.path)}')")
+            via = (full, clean_text(link.path))
+            target = [q for q in str(link.path).split("/") if q]
+            if str(link.path).startswith("/"):
+                obj, at = f["/"], []
+            target.reverse()
+            pending.extend(target)
+            continue
+        if not isinstance(link, h5py.HardLink):
+            raise InputError(f"{p}: '{full}' is a link of a kind probeseq does not follow ({type(link).__name__})")
+        try:
+            obj = obj[name]
+        except (KeyError, ValueError, OSError, RuntimeError) as e:
+            raise InputError(f"{p}: cannot open '{full}' ({clean_text(str(e).split('(')[0].strip())}); "
+                             "the file may be corrupted") from None
+        at.append(name)
+    return obj
+
+
+def _h5_dataset(f, path: str, p: Path, label: str | None = None):
+    """The dataset at ``path`` (see :func:`_h5_get`), checked by :func:`_check_h5_dataset`."""
+    import h5py
+
+    obj = _h5_get(f, path, p)
+    label = label or clean_text(path)
+    if obj is None:
+        raise InputError(f"{p}: no dataset '{label}' in the file")
+    if not isinstance(obj, h5py.Dataset):
+        raise InputError(f"{p}: '{label}' is a group, not a dataset")
+    _check_h5_dataset(obj, label, p)
+    return obj
+
+
+def _check_h5_dataset(d, label: str, p: Path) -> None:
+    """Refuse datasets whose values are not numbers stored in this file (O(1): metadata only)."""
+    kind = d.dtype.kind
+    if kind == "b":
+        raise InputError(f"{p}: '{label}' holds booleans, not numbers")
+    if kind in "OSUT":
+        raise InputError(f"{p}: '{label}' holds text, not numbers")
+    if kind == "V":
+        raise InputError(f"{p}: '{label}' holds compound records ({clean_text(str(d.dtype), 80)}), not plain numbers; "
+                         "store each column as its own dataset")
+    if kind not in "fiu":
+        raise InputError(f"{p}: '{label}' holds {clean_text(str(d.dtype), 40)} values, not real numbers")
+    if d.shape is None:
+        raise InputError(f"{p}: '{label}' has no data (an empty dataspace)")
+    try:
+        dcpl = d.id.get_create_plist()
+        n_external = dcpl.get_external_count()
+        external = dcpl.get_external(0)[0] if n_external else b""
+        virtual = d.is_virtual
+        sources = d.virtual_sources() if virtual else []
+        stored = d.id.get_storage_size() if not virtual else 1
+    except (OSError, RuntimeError, ValueError) as e:
+        raise InputError(f"{p}: cannot read the layout of '{label}' ({clean_text(str(e).split('(')[0].strip())}); "
+                         "the file may be corrupted") from None
+    if n_external:
+        name = external.decode("utf-8", "replace") if isinstance(external, bytes) else str(external)
+        raise InputError(f"{p}: '{label}' keeps its values in the separate raw file '{clean_text(name)}' (HDF5 "
+                         "external storage); probeseq reads only data stored in the ion file itself")
+    for src in sources:
+        if src.file_name != ".":
+            raise InputError(f"{p}: '{label}' is a virtual dataset mapping data from another file "
+                             f"('{clean_text(src.file_name)}'); probeseq reads only data stored in the ion file itself")
+    if len(d.shape) and d.shape[0] > 0 and stored == 0:
+        raise InputError(f"{p}: '{label}' declares {d.shape[0]} rows but stores no values")
+
+
+def _h5_layout(f, p: Path, position_dataset, mass_dataset):
+    """Mapping column -> (dataset, column index or None), the file's length unit and the row count."""
+    import h5py
 
     if position_dataset or mass_dataset:
         if not (position_dataset and mass_dataset):
             raise InputError(f"{p}: --position-dataset and --mass-dataset must be given together")
-        pos = get(position_dataset)
-        mass = get(mass_dataset)
+        pos = _h5_dataset(f, position_dataset, p)
+        mass = _h5_dataset(f, mass_dataset, p)
         if pos.ndim != 2 or pos.shape[1] != 3:
-            raise InputError(f"{p}: position dataset '{position_dataset}' must be N x 3, has shape {pos.shape}")
+            raise InputError(f"{p}: position dataset '{clean_text(position_dataset)}' must be N x 3, "
+                             f"has shape {pos.shape}")
         if mass.ndim != 1 and not (mass.ndim == 2 and mass.shape[1] == 1):
-            raise InputError(f"{p}: mass dataset '{mass_dataset}' must be 1-D, has shape {mass.shape}")
+            raise InputError(f"{p}: mass dataset '{clean_text(mass_dataset)}' must be 1-D, has shape {mass.shape}")
         if mass.shape[0] != pos.shape[0]:
-            raise InputError(f"{p}: datasets of unequal length ('{position_dataset}' {pos.shape[0]} rows, "
-                             f"'{mass_dataset}' {mass.shape[0]})")
-        unit = pos.attrs.get("length_unit", f.attrs.get("length_unit", "nm"))
+            raise InputError(f"{p}: datasets of unequal length ('{clean_text(position_dataset)}' {pos.shape[0]} "
+                             f"rows, '{clean_text(mass_dataset)}' {mass.shape[0]})")
+        unit = _unit_attr(p, (pos, clean_text(position_dataset)), (f, "/"))
         layout = {"x": (pos, 0), "y": (pos, 1), "z": (pos, 2), "mass_to_charge": (mass, None)}
-        return layout, _as_str(unit), int(pos.shape[0])
-    if "ions" not in f or not isinstance(f["ions"], h5py.Group):
-        top = ", ".join(sorted(f.keys())) or "nothing"
-        raise InputError(f"{p}: no group '/ions' (found: {top}); for another layout give "
+        return layout, unit, int(pos.shape[0])
+    g = _h5_get(f, "/ions", p)
+    if not isinstance(g, h5py.Group):
+        if g is not None:
+            raise InputError(f"{p}: '/ions' is a dataset, not a group of datasets x, y, z, mass_to_charge; for "
+                             "another layout give --position-dataset and --mass-dataset")
+        raise InputError(f"{p}: no group '/ions' (found: {_names(f)}); for another layout give "
                          "--position-dataset and --mass-dataset")
-    g = f["ions"]
-    missing = [c for c in REQUIRED_COLUMNS if c not in g]
+    present = {}
+    for c in ALL_COLUMNS:
+        try:
+            present[c] = g.get(c, getlink=True) is not None
+        except (KeyError, ValueError, OSError, RuntimeError, TypeError):
+            present[c] = True  # _h5_dataset names the problem
+    missing = [c for c in REQUIRED_COLUMNS if not present[c]]
     if missing:
-        raise InputError(f"{p}: /ions lacks dataset(s) {', '.join(missing)}; found: {', '.join(sorted(g.keys())) or 'none'}")
+        raise InputError(f"{p}: /ions lacks dataset(s) {', '.join(missing)}; found: {_names(g)}")
     layout = {}
     n = None
+    first = None
     for c in ALL_COLUMNS:
-        if c not in g:
+        if not present[c]:
             continue
-        d = g[c]
-        if not isinstance(d, h5py.Dataset) or d.ndim != 1:
-            raise InputError(f"{p}: /ions/{c} must be a 1-D dataset")
-        if d.dtype.kind not in "fiu":
-            raise InputError(f"{p}: /ions/{c} holds {d.dtype}, not numbers")
+        d = _h5_dataset(f, f"/ions/{c}", p)
+        if d.ndim != 1:
+            raise InputError(f"{p}: /ions/{c} must be a 1-D dataset, has shape {d.shape}")
         if n is None:
-            n = d.shape[0]
+            n, first = d.shape[0], c
         elif d.shape[0] != n:
-            raise InputError(f"{p}: datasets of unequal length (/ions/x has {n} rows, /ions/{c} has {d.shape[0]})")
+            raise InputError(f"{p}: datasets of unequal length (/ions/{first} has {n} rows, /ions/{c} has "
+                             f"{d.shape[0]})")
         layout[c] = (d, None)
-    unit = g.attrs.get("length_unit", f.attrs.get("length_unit", "nm"))
-    return layout, _as_str(unit), int(n)
+    unit = _unit_attr(p, (g, "/ions"), (f, "/"))
+    return layout, unit, int(n)
 
 
-def _as_str(v):
-    if isinstance(v, bytes):
-        return v.decode()
-    if isinstance(v, np.ndarray) and v.shape == ():
-        v = v[()]
-        return v.decode() if isinstance(v, bytes) else str(v)
+def _names(g, k: int = 10) -> str:
+    """The first ``k`` member names of a group, for messages."""
+    try:
+        names = []
+        for name in g:
+            names.append(clean_text(name, 40))
+            if len(names) > k:
+                break
+    except (KeyError, ValueError, OSError, RuntimeError):
+        return "unreadable"
+    if not names:
+        return "nothing"
+    return ", ".join(sorted(names[:k])) + (", ..." if len(names) > k else "")
+
+
+def _unit_attr(p: Path, *holders) -> str:
+    """The ``length_unit`` attribute of the first holder (object, name) that has it; ``"nm"`` if none."""
+    for obj, name in holders:
+        try:
+            if "length_unit" not in obj.attrs:
+                continue
+            v = obj.attrs["length_unit"]
+        except (UnicodeDecodeError, OSError, KeyError, ValueError, TypeError, RuntimeError) as e:
+            why = "not UTF-8 text" if isinstance(e, UnicodeDecodeError) else clean_text(str(e).split("(")[0].strip())
+            raise InputError(f"{p}: attribute length_unit of '{name}' cannot be read ({why}); expected 'nm' or "
+                             "'angstrom'") from None
+        return _as_str(v, f"{p}: attribute length_unit of '{name}'")
+    return "nm"
+
+
+def _as_str(v, where: str = "attribute") -> str:
+    """An attribute value as text: str, UTF-8 bytes, or a one-element array of those."""
+    if isinstance(v, np.ndarray):
+        if v.size != 1:
+            raise InputError(f"{where} must be one text value such as 'nm', holds an array of shape {v.shape}")
+        v = v.reshape(-1)[0]
+    if isinstance(v, np.void):
+        raise InputError(f"{where} must be text such as 'nm', holds opaque or compound data")
+    if isinstance(v, (bytes, np.bytes_)):
+        try:
+            return bytes(v).decode("utf-8")
+        except UnicodeDecodeError:
+            raise InputError(f"{where} is not UTF-8 text ({clean_text(repr(bytes(v)[:20]))}); expected 'nm' or "
+                             "'angstrom'") from None
     return str(v)
 
 
@@ -371,9 +633,9 @@ class IonSource:
             self.factor = _check_unit(self.unit, str(self.path))
             if self.n == 0:
                 raise InputError(f"{self.path}: the ion datasets are empty")
-            dts = {c: self._layout[c][0].dtype for c in self.COLUMNS}
+            dts = {c: _read_dtype(self._layout[c][0].dtype) for c in self.COLUMNS}
             self.xyz_dtype = np.dtype(np.float32) if all(dts[c] == np.float32 for c in "xyz") else np.dtype(np.float64)
-            self.m_dtype = np.dtype(np.float32) if dts["mass_to_charge"] == np.float32 else np.dtype(np.float64)
+            self.m_dtype = dts["mass_to_charge"]
             self._raw = self._raw_plan()
         except BaseException:
             self._f.close()
@@ -689,8 +951,7 @@ def read_ions(path, length_unit: str | None = None, position_dataset: str | None
         with _h5_source(p, length_unit, position_dataset, mass_dataset) as (layout, unit, factor, n):
             cols = {}
             for c, (d, j) in layout.items():
-                dtype = d.dtype if d.dtype.kind == "f" else np.float64
-                cols[c] = np.empty(n, dtype=dtype)
+                cols[c] = np.empty(n, dtype=_read_dtype(d.dtype))
             _read_into(layout, cols, n, p)
             ions = _finish(cols, factor, IonMeta(str(p), sha, unit), strict, str(p))
     if len(ions) == 0:

@@ -16,12 +16,16 @@ import numpy as np
 
 from .exceptions import InputError
 
-__all__ = ["IonList", "IonMeta", "LENGTH_UNITS", "OPTIONAL_COLUMNS", "REQUIRED_COLUMNS", "valid_rows"]
+__all__ = ["IonList", "IonMeta", "LENGTH_UNITS", "MAX_ABS_POSITION_NM", "OPTIONAL_COLUMNS", "REQUIRED_COLUMNS",
+           "check_position_extent", "valid_rows"]
 
 #: factor that converts a length in the named unit to nm
 LENGTH_UNITS = {"nm": 1.0, "angstrom": 0.1}
 REQUIRED_COLUMNS = ("x", "y", "z", "mass_to_charge")
 OPTIONAL_COLUMNS = ("multiplicity", "pulse", "voltage")
+#: largest magnitude of a position read from a file, nm (100 micrometres: an atom-probe
+#: reconstruction spans at most a few micrometres, so anything beyond is a unit or column mistake)
+MAX_ABS_POSITION_NM = 1e5
 
 
 def valid_rows(cols: dict, block: int = 1 << 18):
@@ -31,12 +35,23 @@ def valid_rows(cols: dict, block: int = 1 << 18):
     finiteness of several columns is tested on their sum (NaN and inf propagate through a sum; a
     row whose finite values overflow the sum is re-checked column by column).
     """
+    finite, positive, _ = _scan(cols, block, False)
+    return finite, positive
+
+
+def _scan(cols: dict, block: int = 1 << 18, extent: bool = True):
+    """:func:`valid_rows` plus, with ``extent``, the (min, max) in nm of x, y and z over the finite
+    rows (``None`` for a column without finite rows), taken per block while it is in cache."""
     floats = [v for v in cols.values() if v is not None and v.dtype.kind == "f"]
     m = cols["mass_to_charge"]
     n = m.shape[0]
     finite = np.empty(n, dtype=bool)
     positive = np.empty(n, dtype=bool)
     dtype = np.result_type(*floats)
+    pos = [cols[c] for c in ("x", "y", "z")] if extent else []
+    n_blocks = -(-n // block)
+    lows = np.full((len(pos), n_blocks), np.nan)
+    highs = np.full((len(pos), n_blocks), np.nan)
 
     def run(span):
         lo, hi = span
@@ -49,6 +64,9 @@ def valid_rows(cols: dict, block: int = 1 << 18):
                 np.add(acc, v[s:e], out=acc)
             np.isfinite(acc, out=finite[s:e])
             np.greater(m[s:e], 0, out=positive[s:e])
+            for k, v in enumerate(pos):  # reductions of the block just read, still in cache
+                lows[k, s // block] = v[s:e].min()
+                highs[k, s // block] = v[s:e].max()
 
     if n >= 16 * block and (os.cpu_count() or 1) > 1:
         # numpy releases the GIL in ufuncs: split the rows between two threads
@@ -63,7 +81,60 @@ def valid_rows(cols: dict, block: int = 1 << 18):
         for v in floats:
             ok &= np.isfinite(v[bad])
         finite[bad[ok]] = True
-    return finite, positive
+    ext = None
+    if extent:
+        ext = {}
+        for k, c in enumerate(("x", "y", "z")):
+            v = pos[k]
+            redo = np.flatnonzero(~(np.isfinite(lows[k]) & np.isfinite(highs[k])))
+            for b in redo:  # blocks holding NaN or inf: their extent over the finite rows only
+                s, e = b * block, min(n, (b + 1) * block)
+                w = v[s:e][np.isfinite(v[s:e])]
+                lows[k, b], highs[k, b] = (w.min(), w.max()) if w.size else (np.nan, np.nan)
+            ok = np.isfinite(lows[k])
+            ext[c] = (float(lows[k][ok].min()), float(highs[k][ok].max())) if ok.any() else None
+    return finite, positive, ext
+
+
+def check_position_extent(extent: dict, where: str, cols: dict | None = None,
+                          limit: float = MAX_ABS_POSITION_NM) -> None:
+    """Refuse positions beyond ``limit`` nm in magnitude.
+
+    Parameters
+    ----------
+    extent : dict of str -> (float, float) or None
+        (min, max) of ``x``, ``y`` and ``z`` in nm.
+    where : str
+        Source named in the message.
+    cols : dict of str -> ndarray, optional
+        The columns (nm), to name the first offending data row.
+    limit : float, nm
+        Largest accepted magnitude (default :data:`MAX_ABS_POSITION_NM`).
+
+    Raises
+    ------
+    InputError
+        One line naming the column, the value and (with ``cols``) its data row, and what to check.
+    """
+    for c in ("x", "y", "z"):
+        lo_hi = extent.get(c)
+        if lo_hi is None:
+            continue
+        lo, hi = lo_hi
+        if -limit <= lo and hi <= limit:
+            continue
+        value = hi if abs(hi) >= abs(lo) else lo
+        row = ""
+        if cols is not None and cols.get(c) is not None:
+            v = cols[c]
+            with np.errstate(invalid="ignore"):
+                far = np.flatnonzero(np.isfinite(v) & (np.abs(v) > limit))
+            if far.size:
+                row = f" at data row {int(far[0]) + 1}"
+                value = float(v[far[0]])
+        raise InputError(f"{where}: {c} = {value:.4g} nm{row} is beyond +-{limit:g} nm, far larger than any "
+                         "atom-probe reconstruction (a few micrometres); check the length unit and that the "
+                         "columns hold positions")
 
 
 @dataclass(frozen=True)
@@ -182,6 +253,9 @@ class IonList:
     ) -> "IonList":
         """Build an ion list, dropping rows with NaN/inf values or non-positive mass-to-charge.
 
+        This is the builder of the file readers: positions (nm) beyond +-:data:`MAX_ABS_POSITION_NM`
+        are refused (a length-unit or column mistake), whatever ``strict``.
+
         Parameters
         ----------
         strict : bool
@@ -206,7 +280,8 @@ class IonList:
         lengths = {k: v.shape[0] for k, v in cols.items() if v is not None}
         if len(set(lengths.values())) > 1:
             raise InputError(f"{where}: columns have unequal lengths {lengths}")
-        finite, positive = valid_rows(cols)
+        finite, positive, extent = _scan(cols)
+        check_position_extent(extent, where, cols)
         n_nonfinite = int(finite.size - np.count_nonzero(finite))
         n_nonpos = int(np.count_nonzero(finite & ~positive)) if n_nonfinite or not positive.all() else 0
         if n_nonfinite == 0 and n_nonpos == 0:

@@ -18,6 +18,10 @@ A formula is element symbols each followed by an optional count, with optional p
 groups: ``Zn``, ``NiO``, ``CoOH``, ``C2H2``, ``H2O``, ``Co(OH)2``. An *ion* is written as the
 formula followed by one ``+`` per charge: ``Zn+``, ``Zn++`` (Zn at 2+), ``C2+`` (C2 at 1+),
 ``C++`` (C at 2+), so the label is never ambiguous. A formula without ``+`` means charge 1.
+
+Bounds: a formula has at most :data:`MAX_FORMULA_CHARS` characters and :data:`MAX_FORMULA_ATOMS`
+atoms in all (field-evaporated molecular ions hold a few atoms; the bound keeps the isotope
+enumeration small), and an ion at most :data:`MAX_CHARGE` charges.
 """
 
 from __future__ import annotations
@@ -32,6 +36,9 @@ from .exceptions import InputError
 
 __all__ = [
     "ELECTRON_MASS_DA",
+    "MAX_FORMULA_ATOMS",
+    "MAX_FORMULA_CHARS",
+    "MAX_CHARGE",
     "IsotopePattern",
     "parse_formula",
     "canonical_formula",
@@ -43,6 +50,13 @@ __all__ = [
 ]
 
 _TOKEN = re.compile(r"([A-Z][a-z]?)(\d*)|(\()|(\))(\d*)")
+
+#: most atoms in one formula (all elements together)
+MAX_FORMULA_ATOMS = 64
+#: longest formula text, characters
+MAX_FORMULA_CHARS = 200
+#: highest charge state of an ion
+MAX_CHARGE = 8
 
 
 def _electron_mass() -> float:
@@ -75,53 +89,83 @@ def parse_formula(formula: str) -> dict:
         Malformed formula or unknown element (one-line message naming the formula).
     """
     if not isinstance(formula, str) or not formula.strip():
-        raise InputError(f"formula must be a non-empty string of element symbols such as 'CoOH', got {formula!r}")
+        raise InputError(f"formula must be a non-empty string of element symbols such as 'CoOH', "
+                         f"got {_show(formula)}")
     text = formula.strip()
+    if len(text) > MAX_FORMULA_CHARS:
+        raise InputError(f"formula {_show(text)}: {len(text)} characters, more than {MAX_FORMULA_CHARS}")
+    shown = _show(text)
     stack = [{}]
     pos = 0
     while pos < len(text):
         m = _TOKEN.match(text, pos)
         if m is None:
             raise InputError(
-                f"formula '{formula}': unexpected '{text[pos]}' at character {pos + 1}; expected element "
+                f"formula {shown}: unexpected {_show(text[pos])} at character {pos + 1}; expected element "
                 "symbols with counts, e.g. 'CoOH' or 'C2H2'")
         sym, count, opening, closing, gcount = m.groups()
         if sym is not None:
-            n = int(count) if count else 1
-            if n < 1:
-                raise InputError(f"formula '{formula}': count of {sym} must be >= 1, got {count}")
-            _check_element(sym, formula)
+            n = _count(count, f"count of {sym}", shown)
+            _check_element(sym, shown)
             stack[-1][sym] = stack[-1].get(sym, 0) + n
+            _check_atoms(stack[-1], shown)
         elif opening:
             stack.append({})
         else:
             if len(stack) == 1:
-                raise InputError(f"formula '{formula}': ')' at character {pos + 1} without a matching '('")
-            n = int(gcount) if gcount else 1
-            if n < 1:
-                raise InputError(f"formula '{formula}': group count must be >= 1, got {gcount}")
+                raise InputError(f"formula {shown}: ')' at character {pos + 1} without a matching '('")
+            n = _count(gcount, "group count", shown)
             group = stack.pop()
             if not group:
-                raise InputError(f"formula '{formula}': empty group '()'")
+                raise InputError(f"formula {shown}: empty group '()'")
             for s, k in group.items():
                 stack[-1][s] = stack[-1].get(s, 0) + k * n
+            _check_atoms(stack[-1], shown)
         pos = m.end()
     if len(stack) != 1:
-        raise InputError(f"formula '{formula}': '(' without a matching ')'")
+        raise InputError(f"formula {shown}: '(' without a matching ')'")
     return stack[0]
 
 
-def _check_element(sym: str, formula: str) -> None:
+def _show(value) -> str:
+    """A formula or character quoted for a one-line message (non-printables escaped, cut short)."""
+    text = repr(value) if not isinstance(value, str) else "'" + value + "'"
+    text = "".join(c if c.isprintable() else c.encode("unicode_escape", "backslashreplace").decode("ascii")
+                   for c in text[:61])
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
+def _count(digits: str, what: str, shown: str) -> int:
+    """A count written in a formula (1 when absent), bounded by MAX_FORMULA_ATOMS."""
+    if not digits:
+        return 1
+    if len(digits) > 4 or int(digits) > MAX_FORMULA_ATOMS:
+        raise InputError(f"formula {shown}: {what} {digits[:12]}{'...' if len(digits) > 12 else ''} is more than "
+                         f"{MAX_FORMULA_ATOMS} atoms (an ion holds at most {MAX_FORMULA_ATOMS} atoms)")
+    n = int(digits)
+    if n < 1:
+        raise InputError(f"formula {shown}: {what} must be >= 1, got {digits}")
+    return n
+
+
+def _check_atoms(atoms: dict, shown: str) -> None:
+    total = sum(atoms.values())
+    if total > MAX_FORMULA_ATOMS:
+        raise InputError(f"formula {shown}: {total} atoms, more than the {MAX_FORMULA_ATOMS} an ion may hold")
+
+
+def _check_element(sym: str, shown: str) -> None:
+    """Raise unless ``sym`` is an element with natural isotopes (``shown``: the quoted formula)."""
     import periodictable as pt
 
     try:
         el = pt.elements.symbol(sym)
     except ValueError:
-        raise InputError(f"formula '{formula}': unknown element '{sym}'") from None
+        raise InputError(f"formula {shown}: unknown element '{sym}'") from None
     if getattr(el, "isotope", None) is not None:  # D and T are isotopes, not elements
-        raise InputError(f"formula '{formula}': '{sym}' is an isotope symbol; use the element symbol")
+        raise InputError(f"formula {shown}: '{sym}' is an isotope symbol; use the element symbol")
     if el.number == 0 or not any(iso.abundance > 0 for iso in el):
-        raise InputError(f"formula '{formula}': element '{sym}' has no naturally occurring isotopes")
+        raise InputError(f"formula {shown}: element '{sym}' has no naturally occurring isotopes")
 
 
 def canonical_formula(formula: str) -> str:
@@ -149,12 +193,17 @@ def parse_ion(text: str) -> tuple:
         Canonical formula and charge state (1 when no ``+`` is given).
     """
     if not isinstance(text, str) or not text.strip():
-        raise InputError(f"ion must be a formula followed by one '+' per charge (e.g. 'Zn++'), got {text!r}")
+        raise InputError(f"ion must be a formula followed by one '+' per charge (e.g. 'Zn++'), got {_show(text)}")
     t = text.strip()
+    if len(t) > MAX_FORMULA_CHARS + MAX_CHARGE:
+        raise InputError(f"ion {_show(t)}: {len(t)} characters, more than {MAX_FORMULA_CHARS + MAX_CHARGE}")
     body = t.rstrip("+")
     charge = len(t) - len(body) or 1
     if "+" in body or "-" in body:
-        raise InputError(f"ion '{text}': write the charge as one '+' per charge at the end (e.g. 'Zn++' for Zn 2+)")
+        raise InputError(f"ion {_show(text)}: write the charge as one '+' per charge at the end "
+                         "(e.g. 'Zn++' for Zn 2+)")
+    if charge > MAX_CHARGE:
+        raise InputError(f"ion {_show(t)}: charge {charge} is more than {MAX_CHARGE}")
     return canonical_formula(body), charge
 
 
@@ -182,7 +231,7 @@ def element_isotopes(symbol: str) -> tuple:
     """
     import periodictable as pt
 
-    _check_element(symbol, symbol)
+    _check_element(symbol, _show(symbol))
     el = pt.elements.symbol(symbol)
     iso = [(i.isotope, float(i.mass), float(i.abundance) / 100.0) for i in el if i.abundance > 0]
     a = np.array([i[0] for i in iso], dtype=np.int64)
@@ -277,8 +326,8 @@ def isotope_pattern(formula: str, charge: int = 1, *, min_fraction: float = 1e-4
     >>> round(float(p.mass_to_charge_da[0]), 4)
     29.4666
     """
-    if isinstance(charge, bool) or not isinstance(charge, (int, np.integer)) or charge < 1:
-        raise InputError(f"charge of '{formula}' must be an integer >= 1, got {charge!r}")
+    if isinstance(charge, bool) or not isinstance(charge, (int, np.integer)) or not 1 <= charge <= MAX_CHARGE:
+        raise InputError(f"charge of {_show(formula)} must be an integer from 1 to {MAX_CHARGE}, got {_show(charge)}")
     if not 0 <= min_fraction < 1:
         raise InputError(f"min_fraction must be in [0, 1), got {min_fraction}")
     if not isinstance(formula, str):

@@ -13,20 +13,38 @@ A lattice is described in TOML (schema in the README)::
 
 or by a preset name (``honeycomb``, ``triangular``, ``square``) with ``a``, ``repeat`` and
 ``sites_per_repeat``. Cell vectors: ``a`` along +x, ``b`` at angle ``gamma`` from ``a``.
+
+Sanity bounds, checked before any geometry is built (a mistyped unit otherwise asks for billions
+of rods): ``a`` and ``b`` in [0.1, 100] nm (:data:`CELL_EDGE_RANGE_NM`), ``repeat`` in
+[0.05, 50] nm (:data:`REPEAT_RANGE_NM`), ``gamma`` in (0, 180) degrees, ``sites_per_repeat`` from 1
+to 64, at most 64 rods per cell and at most 1000 rod axes per nm^2 of cross-section
+(:data:`MAX_ROD_DENSITY_PER_NM2`); every number finite.
 """
 
 from __future__ import annotations
 
 import math
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
 from .exceptions import InputError
+from .tomlfile import load_toml, short_repr
 
-__all__ = ["Lattice", "PRESETS"]
+__all__ = ["Lattice", "PRESETS", "CELL_EDGE_RANGE_NM", "REPEAT_RANGE_NM", "MAX_SITES_PER_REPEAT", "MAX_RODS_PER_CELL",
+           "MAX_ROD_DENSITY_PER_NM2"]
+
+#: accepted cell edge lengths a, b (nm); framework rod spacings are a few nm
+CELL_EDGE_RANGE_NM = (0.1, 100.0)
+#: accepted translation period along the rod (nm)
+REPEAT_RANGE_NM = (0.05, 50.0)
+#: most metal sites per repeat
+MAX_SITES_PER_REPEAT = 64
+#: most rod axes in one cell
+MAX_RODS_PER_CELL = 64
+#: most rod axes per nm^2 of cross-section (bounds the work of every rod search)
+MAX_ROD_DENSITY_PER_NM2 = 1000.0
 
 # Fractional rod positions of the presets. Honeycomb: of the 9 points (i/3, j/3) of a hexagonal
 # cell, the 6 that are not on the sqrt(3) x sqrt(3) superlattice {(0,0), (1/3,2/3), (2/3,1/3)};
@@ -38,6 +56,21 @@ PRESETS = {
     "triangular": {"gamma": 120.0, "rods": ((0.0, 0.0),)},
     "square": {"gamma": 90.0, "rods": ((0.0, 0.0),)},
 }
+
+
+def _is_number(v) -> bool:
+    """Whether ``v`` is a real number (not a bool)."""
+    return isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, (bool, np.bool_))
+
+
+def _finite_number(v) -> bool:
+    """Whether ``v`` is a real number (not a bool) that is finite as a float."""
+    if not _is_number(v):
+        return False
+    try:
+        return math.isfinite(v)
+    except OverflowError:  # an integer beyond the float range
+        return False
 
 
 @dataclass(frozen=True)
@@ -70,22 +103,38 @@ class Lattice:
 
     def __post_init__(self):
         where = f"lattice {self.name}" if self.name else "lattice"
-        for key in ("a_nm", "b_nm", "repeat_nm"):
+        for key, (lo, hi) in (("a_nm", CELL_EDGE_RANGE_NM), ("b_nm", CELL_EDGE_RANGE_NM),
+                              ("repeat_nm", REPEAT_RANGE_NM)):
             v = getattr(self, key)
-            if not isinstance(v, (int, float)) or isinstance(v, bool) or not math.isfinite(v) or v <= 0:
-                raise InputError(f"{where}: {key[:-3]} must be a positive length in nm, got {v!r}")
+            if not _finite_number(v) or v <= 0:
+                raise InputError(f"{where}: {key[:-3]} must be a positive length in nm, got {short_repr(v)}")
+            if not lo <= v <= hi:
+                raise InputError(f"{where}: {key[:-3]} = {v:.6g} nm is outside the accepted {lo:g}-{hi:g} nm; "
+                                 "check the value and its unit (lengths are in nm)")
+            object.__setattr__(self, key, float(v))
         g = self.gamma_deg
-        if not isinstance(g, (int, float)) or not math.isfinite(g) or not 0 < g < 180:
-            raise InputError(f"{where}: gamma must be an angle in (0, 180) degrees, got {g!r}")
+        if not _finite_number(g) or not 0 < g < 180:
+            raise InputError(f"{where}: gamma must be an angle in (0, 180) degrees, got {short_repr(g)}")
+        object.__setattr__(self, "gamma_deg", float(g))
         s = self.sites_per_repeat
         if isinstance(s, bool) or not isinstance(s, (int, np.integer)) or s < 1:
-            raise InputError(f"{where}: sites_per_repeat must be a positive integer, got {s!r}")
+            raise InputError(f"{where}: sites_per_repeat must be a positive integer, got {short_repr(s)}")
+        if s > MAX_SITES_PER_REPEAT:
+            raise InputError(f"{where}: sites_per_repeat = {short_repr(s)} is more than {MAX_SITES_PER_REPEAT}")
+        shape = np.shape(self.rods_frac) if isinstance(self.rods_frac, np.ndarray) else None
+        if shape is not None and (len(shape) != 2 or shape[0] > MAX_RODS_PER_CELL):
+            raise InputError(f"{where}: rods must be an (n, 2) list of at most {MAX_RODS_PER_CELL} fractional "
+                             f"pairs, got shape {shape}")
+        if shape is None and isinstance(self.rods_frac, (list, tuple)) and len(self.rods_frac) > MAX_RODS_PER_CELL:
+            raise InputError(f"{where}: rods lists {len(self.rods_frac)} rod axes, more than {MAX_RODS_PER_CELL} "
+                             "per cell")
         try:
             rods = np.array(self.rods_frac, dtype=float)
-        except (TypeError, ValueError):
+        except (TypeError, ValueError, OverflowError):
             raise InputError(f"{where}: rods must be a list of [u, v] fractional pairs") from None
-        if rods.ndim != 2 or rods.shape[1] != 2 or rods.shape[0] == 0:
-            raise InputError(f"{where}: rods must be a non-empty (n, 2) list of fractions, got shape {rods.shape}")
+        if rods.ndim != 2 or rods.shape[1] != 2 or rods.shape[0] == 0 or rods.shape[0] > MAX_RODS_PER_CELL:
+            raise InputError(f"{where}: rods must be a non-empty (n, 2) list of at most {MAX_RODS_PER_CELL} "
+                             f"fractions, got shape {rods.shape}")
         if not np.isfinite(rods).all() or (rods < 0).any() or (rods > 1).any():
             raise InputError(f"{where}: rod positions must be fractions in [0, 1], got {rods.tolist()}")
         rods = np.mod(rods, 1.0)
@@ -97,6 +146,10 @@ class Lattice:
         rods.flags.writeable = False
         object.__setattr__(self, "rods_frac", rods)
         object.__setattr__(self, "sites_per_repeat", int(s))
+        density = rods.shape[0] / self.cell_area_nm2
+        if density > MAX_ROD_DENSITY_PER_NM2:
+            raise InputError(f"{where}: {density:.4g} rod axes per nm^2 (cell area {self.cell_area_nm2:.3g} nm^2 from "
+                             f"a, b and gamma), more than {MAX_ROD_DENSITY_PER_NM2:g}; check a, b and gamma")
         d = self.nearest_rod_distance_nm
         if d < 1e-3 * min(self.a_nm, self.b_nm):
             raise InputError(f"{where}: two rods coincide (nearest rod-rod distance {d:.3g} nm)")
@@ -181,6 +234,9 @@ class Lattice:
         p = PRESETS[key]
         if a is None or repeat is None:
             raise InputError(f"lattice preset '{name}' needs --a (nm) and --repeat (nm)")
+        for field, v in (("a", a), ("b", b), ("repeat", repeat)):
+            if v is not None and not _finite_number(v):
+                raise InputError(f"lattice preset '{key}': {field} must be a finite number in nm, got {short_repr(v)}")
         return cls(float(a), float(b if b is not None else a), p["gamma"], np.array(p["rods"]),
                    float(repeat), sites_per_repeat, key)
 
@@ -198,16 +254,19 @@ class Lattice:
                     raise InputError(f"{where}: missing field '{k}' in table [{table}]")
         c, r = d["cell"], d["rod"]
         for k in ("a", "b", "gamma"):
-            if isinstance(c[k], bool) or not isinstance(c[k], (int, float)):
-                raise InputError(f"{where}: [cell] {k} must be a number, got {c[k]!r}")
-        if isinstance(r["repeat"], bool) or not isinstance(r["repeat"], (int, float)):
-            raise InputError(f"{where}: [rod] repeat must be a number, got {r['repeat']!r}")
-        if not isinstance(r["sites_per_repeat"], int) or isinstance(r["sites_per_repeat"], bool):
-            raise InputError(f"{where}: [rod] sites_per_repeat must be an integer, got {r['sites_per_repeat']!r}")
-        if not isinstance(c["rods"], list) or not all(
-                isinstance(p, list) and len(p) == 2 and all(isinstance(q, (int, float)) and not isinstance(q, bool) for q in p)
+            if not _finite_number(c[k]):
+                raise InputError(f"{where}: [cell] {k} must be a finite number, got {short_repr(c[k])}")
+        if not _finite_number(r["repeat"]):
+            raise InputError(f"{where}: [rod] repeat must be a finite number, got {short_repr(r['repeat'])}")
+        spr = r["sites_per_repeat"]
+        if not isinstance(spr, int) or isinstance(spr, bool) or not 1 <= spr <= MAX_SITES_PER_REPEAT:
+            raise InputError(f"{where}: [rod] sites_per_repeat must be an integer from 1 to {MAX_SITES_PER_REPEAT}, "
+                             f"got {short_repr(spr)}")
+        if not isinstance(c["rods"], list) or len(c["rods"]) > MAX_RODS_PER_CELL or not all(
+                isinstance(p, list) and len(p) == 2 and all(_finite_number(q) for q in p)
                 for p in c["rods"]):
-            raise InputError(f"{where}: [cell] rods must be a list of [u, v] number pairs")
+            raise InputError(f"{where}: [cell] rods must be a list of at most {MAX_RODS_PER_CELL} [u, v] pairs of "
+                             "finite numbers")
         return cls(float(c["a"]), float(c["b"]), float(c["gamma"]), np.array(c["rods"], float).reshape(-1, 2),
                    float(r["repeat"]), r["sites_per_repeat"], where)
 
@@ -215,14 +274,7 @@ class Lattice:
     def from_toml(cls, path) -> "Lattice":
         """Read a lattice description from a TOML file."""
         p = Path(path)
-        if not p.is_file():
-            raise InputError(f"lattice file not found: {p}")
-        try:
-            d = tomllib.loads(p.read_text(encoding="utf-8"))
-        except UnicodeDecodeError:
-            raise InputError(f"{p}: not a text file") from None
-        except tomllib.TOMLDecodeError as e:
-            raise InputError(f"{p}: malformed TOML ({e})") from None
+        d, _ = load_toml(p, "lattice file")
         return cls.from_dict(d, where=str(p))
 
     @classmethod

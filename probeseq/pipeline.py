@@ -28,12 +28,15 @@ from .ions import IonList
 from .lattice import Lattice
 
 __all__ = ["AnalysisOptions", "AnalysisResult", "analyze", "analyze_file", "write_analysis", "RESULTS_SCHEMA_VERSION",
-           "DecodedTracks", "save_decoded", "load_decoded", "read_replicates",
+           "DecodedTracks", "save_decoded", "load_decoded", "read_replicates", "load_results",
            "TRACKS_COLUMNS", "RUNS_COLUMNS"]
 
 #: version of the results.json layout; bumped when a key changes meaning or moves
 RESULTS_SCHEMA_VERSION = 1
 TRACKS_COLUMNS = ("rod", "rod_x_nm", "rod_y_nm", "site", "z_nm", "state", "posterior")
+#: largest accepted --n-boot and --n-starts (each resample or start costs a pass over every rod)
+MAX_BOOT = 100_000
+MAX_STARTS = 1_000
 RUNS_COLUMNS = ("rod", "first_site", "last_site", "length_sites", "length_nm", "z_start_nm", "z_end_nm",
                 "metal", "mean_posterior")
 
@@ -89,19 +92,22 @@ class AnalysisOptions:
     Attributes
     ----------
     seed : int
-        Seed of every random choice (EM starts, bootstraps, nulls); the same seed gives the same results.
+        Seed of every random choice (EM starts, bootstraps, nulls), in [0, 2**63); the same seed
+        gives the same results.
     n_starts : int
-        EM starts of the decoder.
+        EM starts of the decoder, 1 to :data:`MAX_STARTS`.
     n_boot : int
-        Bootstrap resamples over rods.
+        Bootstrap resamples over rods, 20 to :data:`MAX_BOOT`.
     long_block_sites : float, sites
-        Mean run length of the least abundant metal at or above which runs are long blocks.
+        Mean run length of the least abundant metal at or above which runs are long blocks (> 1).
     alpha : float
-        Significance level of the tests.
+        Significance level of the tests, in (0, 0.5].
     copy_threshold : float
-        Neighbouring-rod correlation at or above which (when significant) rods count as copied.
+        Neighbouring-rod correlation at or above which (when significant) rods count as copied,
+        in (0, 1).
     rotation_deg, scale, offset_nm
-        Registration overrides (None = fit).
+        Registration overrides (None = fit): degrees, reconstruction / crystal length (in
+        [0.2, 5], see :data:`probeseq.validate.SCALE_RANGE`), nm.
     uncertain_below : float
         Sites whose best posterior is below this are flagged uncertain.
     """
@@ -119,18 +125,25 @@ class AnalysisOptions:
     species: Optional[tuple] = None
 
     def __post_init__(self):
-        if not (isinstance(self.alpha, (int, float)) and 0 < self.alpha < 1):
-            raise InputError(f"--alpha must be in (0, 1), got {self.alpha}")
-        if not (isinstance(self.long_block_sites, (int, float)) and self.long_block_sites >= 1):
-            raise InputError(f"--long-block-sites must be >= 1 site, got {self.long_block_sites}")
-        if not (isinstance(self.copy_threshold, (int, float)) and 0 <= self.copy_threshold <= 1):
-            raise InputError(f"--copy-threshold must be in [0, 1], got {self.copy_threshold}")
-        if not (isinstance(self.n_boot, int) and self.n_boot >= 20):
-            raise InputError(f"--n-boot must be an integer >= 20, got {self.n_boot}")
-        if not (isinstance(self.n_starts, int) and self.n_starts >= 1):
-            raise InputError(f"--n-starts must be an integer >= 1, got {self.n_starts}")
-        if not 0.5 <= self.uncertain_below <= 1:
-            raise InputError(f"--uncertain-below must be in [0.5, 1], got {self.uncertain_below}")
+        from .validate import check_number, check_scale, check_seed
+
+        check_seed(self.seed)
+        if self.seed is not None and not isinstance(self.seed, (int, np.integer)):
+            raise InputError(f"--seed must be an integer from 0 to 2**63 - 1, got {type(self.seed).__name__}")
+        check_number(self.n_starts, "--n-starts", 1, MAX_STARTS, integer=True)
+        check_number(self.n_boot, "--n-boot", 20, MAX_BOOT, integer=True)
+        check_number(self.long_block_sites, "--long-block-sites", 1, lo_open=True)
+        check_number(self.alpha, "--alpha", 0, 0.5, lo_open=True)
+        check_number(self.copy_threshold, "--copy-threshold", 0, 1, lo_open=True, hi_open=True)
+        check_number(self.uncertain_below, "--uncertain-below", 0.5, 1)
+        check_number(self.rotation_deg, "--rotation-deg", allow_none=True)
+        check_scale(self.scale)
+        if self.offset_nm is not None:
+            off = tuple(self.offset_nm) if isinstance(self.offset_nm, (tuple, list, np.ndarray)) else (self.offset_nm,)
+            if len(off) != 2:
+                raise InputError(f"--offset-nm takes two numbers 'x,y' in nm, got {len(off)}")
+            for v in off:
+                check_number(v, "--offset-nm")
 
     def to_dict(self) -> dict:
         return {k: (list(v) if isinstance(v, tuple) else v) for k, v in self.__dict__.items()}
@@ -817,8 +830,10 @@ def _fast_formats(table: dict, columns, fmt: dict) -> bool:
     return True
 
 
-def _write_table(path: Path, table: dict, columns, fmt: dict | None = None):
+def _write_table(path: Path, table: dict, columns, fmt: dict | None = None, comment: str | None = None):
     """Write columns of equal length as CSV, floats with the given printf formats.
+
+    ``comment`` is written first as one ``# ...`` line (readers that skip comments ignore it).
 
     Rows are formatted in blocks, so memory stays bounded for tables of tens of millions of rows;
     tables of fixed-point floats, integers and text go through the compiled formatter of
@@ -828,11 +843,13 @@ def _write_table(path: Path, table: dict, columns, fmt: dict | None = None):
     if all(isinstance(table[c], np.ndarray) for c in columns) and _fast_formats(table, columns, fmt):
         from .tables import write_csv
 
-        write_csv(path, [table], list(columns), fmt)
+        write_csv(path, [table], list(columns), fmt, comment=comment)
         return
     cols = [np.asarray(table[c]) for c in columns]
     row = ",".join(fmt.get(c, "%s") for c in columns) + "\n"
     with open(path, "w", encoding="utf-8", newline="") as fh:
+        if comment is not None:
+            fh.write(f"# {comment}\n")
         fh.write(",".join(columns) + "\n")
         n = len(cols[0]) if cols else 0
         step = 200_000
@@ -904,18 +921,52 @@ class DecodedTracks:
 
 
 def load_decoded(path) -> DecodedTracks:
-    """Read ``decoded.h5`` written by :func:`save_decoded`."""
-    import h5py
+    """Read ``decoded.h5`` written by :func:`save_decoded`, checking what it reads.
+
+    Checked: the group and every dataset (type and shape before reading: paths and flags
+    (n_rods, n_sites), posteriors (n_rods, n_sites, n_metals), stationary (n_metals,), transmat
+    (n_metals, n_metals)), path values in [-1, n_metals), finite posteriors in [0, 1], and
+    ``uncertain_below`` in (0, 1].
+
+    Raises
+    ------
+    InputError
+        Missing, truncated or damaged file, or a failed check; the message names the file and
+        the dataset or attribute.
+    """
+    from .validate import h5_array, h5_attr_json, h5_attr_number, h5_group, open_h5
 
     p = Path(path)
     if not p.is_file():
         raise InputError(f"{p}: not found (the output folder is incomplete or from an older probeseq)")
-    with h5py.File(p, "r") as f:
-        g = f["decoded"]
-        return DecodedTracks(metals=tuple(json.loads(g.attrs["metals"])), viterbi=g["viterbi"][...],
-                             posteriors=g["posteriors"][...], mask=g["mask"][...].astype(bool),
-                             uncertain=g["uncertain"][...].astype(bool), stationary=g["stationary"][...],
-                             transmat=g["transmat"][...], uncertain_below=float(g.attrs["uncertain_below"]))
+    with open_h5(p, "decoded file") as f:
+        g = h5_group(f, "decoded", p, "not written by probeseq's decoding")
+        metals = h5_attr_json(g, "metals", p)
+        if not isinstance(metals, list) or len(metals) < 2 or not all(isinstance(m, str) and m for m in metals):
+            raise InputError(f"{p}: attribute 'metals' must be a list of at least two metal symbols, got {metals!r:.60}")
+        k = len(metals)
+        vit = g.get("viterbi")
+        shape = getattr(vit, "shape", None)
+        if shape is None or len(shape) != 2:
+            h5_array(g, "viterbi", p, "iu", shape=(None, None))  # names what is wrong
+        rs = (int(shape[0]), int(shape[1]))
+        viterbi = h5_array(g, "viterbi", p, "iu", shape=rs)
+        posteriors = h5_array(g, "posteriors", p, "f", shape=rs + (k,))
+        mask = h5_array(g, "mask", p, "biu", shape=rs).astype(bool)
+        uncertain = h5_array(g, "uncertain", p, "biu", shape=rs).astype(bool)
+        stationary = h5_array(g, "stationary", p, "f", shape=(k,))
+        transmat = h5_array(g, "transmat", p, "f", shape=(k, k))
+        below = h5_attr_number(g, "uncertain_below", p, 0, 1, lo_open=True)
+    if viterbi.size and (viterbi.min() < -1 or viterbi.max() >= k):
+        raise InputError(f"{p}: dataset 'viterbi' holds metal indices outside -1..{k - 1} ({k} metals)")
+    if viterbi.size and (viterbi[mask] < 0).any():
+        raise InputError(f"{p}: dataset 'viterbi' marks used sites as masked (-1)")
+    for name, arr in (("posteriors", posteriors), ("stationary", stationary), ("transmat", transmat)):
+        if not (np.isfinite(arr).all() and (arr.size == 0 or (arr.min() >= 0 and arr.max() <= 1 + 1e-6))):
+            raise InputError(f"{p}: dataset '{name}' must hold probabilities in [0, 1] (found NaN, infinite or "
+                             "out-of-range values)")
+    return DecodedTracks(metals=tuple(metals), viterbi=viterbi, posteriors=posteriors, mask=mask,
+                         uncertain=uncertain, stationary=stationary, transmat=transmat, uncertain_below=below)
 
 
 def _write_replicates(stats, path):
@@ -934,14 +985,89 @@ def _write_replicates(stats, path):
 
 
 def read_replicates(outdir) -> dict:
-    """Bootstrap replicates written by :func:`write_analysis`: name -> (n_boot,) array."""
-    import h5py
+    """Bootstrap replicates written by :func:`write_analysis`: name -> (n_boot,) array.
+
+    A folder without ``bootstrap.h5`` gives an empty dict (no difference tests). Every dataset of
+    ``/replicates`` must be a 1-D floating-point array, all of one length (the resamples).
+
+    Raises
+    ------
+    InputError
+        Truncated or damaged file, a missing group, or a dataset of another type or shape.
+    """
+    from .validate import h5_array, h5_group, open_h5
 
     p = Path(outdir) / "bootstrap.h5"
     if not p.is_file():
         return {}
-    with h5py.File(p, "r") as f:
-        return {k: f["replicates"][k][...] for k in f["replicates"]}
+    out = {}
+    with open_h5(p, "bootstrap file") as f:
+        g = h5_group(f, "replicates", p, "not written by 'probeseq analyze'")
+        for name in g:
+            out[name] = h5_array(g, name, p, "fiu", shape=(None,)).astype(float, copy=False)
+    sizes = {v.size for v in out.values()}
+    if len(sizes) > 1:
+        raise InputError(f"{p}: the replicate datasets differ in length ({', '.join(map(str, sorted(sizes)))}); "
+                         "each must hold one value per resample")
+    return out
+
+
+def load_results(outdir) -> dict:
+    """Read and check ``results.json`` of an ``analyze`` output folder.
+
+    Checked: valid JSON holding an object; the schema version; ``classification`` (``label``
+    text, ``confidence`` a number in [0, 1]); ``composition`` (metal -> number or null);
+    ``statistics`` with ``intervals`` (name -> null or an object whose ``estimate``, ``low``,
+    ``high`` are numbers or null); ``provenance`` (``sample`` an object, ``metals`` a list of
+    text, ``run_name`` text, where present).
+
+    Returns
+    -------
+    dict
+        The parsed results.
+
+    Raises
+    ------
+    InputError
+        Names the file and the key that is missing or of the wrong type.
+    """
+    from .validate import read_json, require
+
+    d = Path(outdir)
+    p = d / "results.json"
+    if not p.is_file():
+        raise InputError(f"{d}: no results.json (not an 'analyze' output folder)")
+    res = read_json(p)
+    require(res, "schema_version", "integer", str(p), allow_none=True, optional=True)
+    v = res.get("schema_version")
+    if v != RESULTS_SCHEMA_VERSION or isinstance(v, bool):
+        raise InputError(f"{d}: written with results schema version {v}; this probeseq reads version "
+                         f"{RESULTS_SCHEMA_VERSION} (re-run 'probeseq analyze')")
+    cls = require(res, "classification", dict, str(p))
+    where = f"{p} [classification]"
+    require(cls, "label", str, where)
+    conf = require(cls, "confidence", "number", where)
+    if not 0 <= conf <= 1:
+        raise InputError(f"{where}: 'confidence' must be a number in [0, 1], got {conf}")
+    for key in ("along_rod", "rod_to_rod"):
+        require(cls, key, str, where, optional=True)
+    comp = require(res, "composition", dict, str(p))
+    for m in comp:
+        require(comp, m, "number", f"{p} [composition]", allow_none=True)
+    st = require(res, "statistics", dict, str(p))
+    intervals = require(st, "intervals", dict, f"{p} [statistics]")
+    for name in intervals:
+        iv = require(intervals, name, dict, f"{p} [statistics.intervals]", allow_none=True)
+        for key in () if iv is None else ("estimate", "low", "high"):
+            require(iv, key, "number", f"{p} [statistics.intervals.{name}]", optional=True)
+    prov = require(res, "provenance", dict, str(p))
+    where = f"{p} [provenance]"
+    require(prov, "sample", dict, where, optional=True)
+    metals = require(prov, "metals", list, where, optional=True)
+    if metals is not None and not all(isinstance(m, str) for m in metals):
+        raise InputError(f"{where}: 'metals' must be a list of metal symbols, got {metals!r:.60}")
+    require(prov, "run_name", str, where, optional=True)
+    return res
 
 
 def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> dict:
@@ -1000,16 +1126,20 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> 
 
 
 def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: Callable | None = None,
-                   report: bool = True, progress: Progress = None) -> Path:
+                   report: bool = True, progress: Progress = None, inputs=()) -> Path:
     """Write an analysis output folder (staged: complete or not at all).
 
     Files: ``results.json``, ``tracks.csv``, ``runs.csv``, ``ranges.toml``, ``columns.h5``,
-    ``decoded.h5``, ``bootstrap.h5``; with ``report``, ``figures/`` and ``report.html``. ``extra``
-    (called with the staging folder) may add more.
+    ``decoded.h5``, ``bootstrap.h5``, ``probeseq-manifest.json``; with ``report``, ``figures/`` and
+    ``report.html``. ``extra`` (called with the staging folder) may add more. ``inputs`` (paths)
+    are the analysis's inputs, which the output folder may neither be nor contain; an existing
+    folder is replaced only with ``force`` and only when it holds nothing but probeseq's outputs
+    (see :mod:`probeseq.outputs`).
     """
     from .outputs import staged_outdir, write_json
 
-    with staged_outdir(outdir, force=force) as st:
+    command = result.provenance.get("command_line")
+    with staged_outdir(outdir, force=force, inputs=inputs, command=command) as st:
         write_json(st / "results.json", result.to_dict())
         tracks = _Background(write_tracks, st / "tracks.csv", result.columns, result.decoded)
         try:

@@ -25,6 +25,10 @@ from .lattice import Lattice
 
 __all__ = ["PlanResult", "plan_experiment", "LABELS"]
 
+#: most simulated runs per arrangement or per persistence of the scan (each is a full analysis)
+MAX_RUNS_PER_CASE = 1000
+#: the simulated runs' seeds are taken modulo this (numpy seeds are below 2**63)
+SEED_SPACE = 2 ** 63 - 2 ** 20
 LABELS = ("random", "short-repeat", "long-block", "rod-to-rod-copied", "undetermined")
 PATTERN_LABEL = {"random": "random", "short-repeat": "short-repeat", "long-block": "long-block",
                  "copied": "rod-to-rod-copied"}
@@ -97,25 +101,44 @@ def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_r
     -------
     PlanResult
     """
+    from .pipeline import AnalysisOptions
     from .simulate import SimConfig
+    from .validate import check_number, check_seed
 
+    if isinstance(metals, str):
+        raise InputError(f"--metals must be a list of element symbols, got {metals!r:.60}")
     metals = tuple(metals)
     if len(metals) < 2:
         raise InputError(f"--metals needs at least two metals, got {list(metals)}")
-    if not 0 < efficiency <= 1:
-        raise InputError(f"--efficiency must be in (0, 1], got {efficiency}")
-    if not 0 <= lateral_resolution_nm < lattice.nearest_rod_distance_nm:
-        raise InputError(f"--lateral-resolution must be in [0, {lattice.nearest_rod_distance_nm:.3g}) nm "
-                         f"(the rod spacing), got {lateral_resolution_nm}")
-    if n_per_pattern < 1 or n_per_persistence < 1:
-        raise InputError("--runs-per-pattern and --runs-per-persistence must be >= 1")
-    lams = tuple(sorted(float(v) for v in persistences))
-    if any(not 0 < v < 1 for v in lams):
-        raise InputError(f"persistences must be in (0, 1), got {list(lams)}")
+    if not isinstance(lattice, Lattice):
+        raise InputError(f"lattice must be a probeseq Lattice, got {type(lattice).__name__}")
+    check_number(efficiency, "--efficiency", 0, 1, lo_open=True)
+    check_number(lateral_resolution_nm, "--lateral-resolution (nm)", 0, lattice.nearest_rod_distance_nm,
+                 hi_open=True)
+    check_number(n_per_pattern, "--runs-per-pattern", 1, MAX_RUNS_PER_CASE, integer=True)
+    check_number(n_per_persistence, "--runs-per-persistence", 1, MAX_RUNS_PER_CASE, integer=True)
+    check_number(power, "power", 0, 1, lo_open=True)
+    check_number(top_radius_nm, "--radius (nm)", 0, lo_open=True)
+    check_number(depth_nm, "--depth (nm)", 0, lo_open=True)
+    check_seed(seed)
+    if not isinstance(seed, (int, np.integer)):
+        raise InputError(f"--seed must be an integer from 0 to 2**63 - 1, got {seed!r:.40}")
+    for name, lam in (("long_block_persistence", long_block_persistence),
+                      ("short_repeat_persistence", short_repeat_persistence)):
+        check_number(lam, name, 0, 1, hi_open=True)
+    if workers is not None:
+        check_number(workers, "workers", 1, integer=True)
+    AnalysisOptions(seed=int(seed), n_boot=n_boot, n_starts=2)  # the analysis settings, checked before any work
+    try:
+        lams = tuple(sorted(float(v) for v in persistences))
+    except (TypeError, ValueError):
+        raise InputError(f"persistences must be numbers in (0, 1), got {persistences!r:.60}") from None
+    if not lams or any(not 0 < v < 1 for v in lams):
+        raise InputError(f"persistences must be numbers in (0, 1), got {list(lams)}")
     base = dict(metals=metals, composition=composition, eta=efficiency, sigma_xy_nm=lateral_resolution_nm,
                 lattice=lattice, top_radius_nm=top_radius_nm, depth_nm=depth_nm, copy_error=copy_error)
     jobs, kinds = [], []
-    s = int(seed) * 100_003
+    s = (int(seed) * 100_003) % SEED_SPACE  # seeds of the simulated runs stay below 2**63
     patterns = ("random", "short-repeat", "long-block", "copied")
     for pat in patterns:
         lam = {"short-repeat": short_repeat_persistence, "long-block": long_block_persistence}.get(pat)

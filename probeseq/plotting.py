@@ -154,7 +154,9 @@ def save_figure(fig, path, dpi: float = 300) -> Path:
                          f"got '{p.suffix or '(none)'}'")
     dpi = _check_dpi(dpi)
     p.parent.mkdir(parents=True, exist_ok=True)
-    meta = {".svg": {"Date": None}, ".pdf": {"CreationDate": None}, ".png": {}}[suffix]
+    from .outputs import figure_metadata
+
+    meta = figure_metadata(p)
     with matplotlib.rc_context(_SAVE_RC):
         fig.savefig(p, dpi=dpi, format=suffix[1:], metadata=meta)
     return p

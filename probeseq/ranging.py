@@ -77,7 +77,6 @@ from __future__ import annotations
 
 import math
 import re
-import tomllib
 from dataclasses import dataclass, field, replace
 from functools import lru_cache
 from pathlib import Path
@@ -85,12 +84,16 @@ from pathlib import Path
 import numpy as np
 
 from .exceptions import InputError
-from .isotopes import canonical_formula, ion_label, isotope_pattern, metal_atoms, parse_formula, parse_ion
+from .outputs import MARK
+from .isotopes import (MAX_CHARGE, canonical_formula, ion_label, isotope_pattern, metal_atoms, parse_formula,
+                       parse_ion)
+from .tomlfile import clean_text, load_toml, loads_toml, short_repr
 from .spectrum import (DEFAULT_RESOLVING_POWER, Background, PeakSearch, PeakShape, PeakTable, Spectrum, find_peaks,
                        fit_peak_shape, histogram, resolving_power_law)
 
 __all__ = [
     "DEFAULT_FRAGMENTS",
+    "MAX_RANGE_DA",
     "METAL_ION_TEMPLATES",
     "Range",
     "RangeSet",
@@ -102,6 +105,9 @@ __all__ = [
     "channel_tables",
     "metal_species",
 ]
+
+#: highest mass-to-charge a range may reach, Da (the lookup table spans 0 to the highest range edge)
+MAX_RANGE_DA = 2000.0
 
 #: ions expected of every metal M: (formula template, charge)
 METAL_ION_TEMPLATES = (("{M}", 1), ("{M}", 2), ("{M}", 3), ("{M}O", 1), ("{M}O", 2), ("{M}OH", 1),
@@ -158,23 +164,41 @@ class Range:
         return tuple(((f, z), float(p)) for f, z, p in self.shares)
 
 
+def _real(v) -> bool:
+    """Whether ``v`` is a finite real number (not a bool)."""
+    if isinstance(v, bool) or not isinstance(v, (int, float, np.integer, np.floating)):
+        return False
+    try:
+        return math.isfinite(v)
+    except OverflowError:  # an integer beyond the float range
+        return False
+
+
 def _check_range_fields(low, high, formula, charge, shares, where):
-    """Validate one range's values; return a Range."""
+    """Validate one range's values; return a Range.
+
+    ``low`` and ``high`` are finite numbers with ``0 < low < high <= MAX_RANGE_DA`` (Da), ``charge``
+    an integer from 1 to :data:`~probeseq.isotopes.MAX_CHARGE`, ``formula`` a formula of at most
+    :data:`~probeseq.isotopes.MAX_FORMULA_ATOMS` atoms.
+    """
     for name, v in (("low", low), ("high", high)):
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-            raise InputError(f"{where}: '{name}' must be a number in Da, got {v!r}")
+        if not _real(v):
+            raise InputError(f"{where}: '{name}' must be a number in Da (finite), got {short_repr(v)}")
     if low <= 0:
         raise InputError(f"{where}: 'low' must be positive, got {low}")
     if low >= high:
         raise InputError(f"{where}: 'low' ({low}) must be below 'high' ({high})")
+    if high > MAX_RANGE_DA:
+        raise InputError(f"{where}: 'high' = {high:g} Da is above {MAX_RANGE_DA:g} Da, the largest mass-to-charge "
+                         "a range may reach")
     if not isinstance(formula, str):
-        raise InputError(f"{where}: 'formula' must be a string such as \"CoOH\", got {formula!r}")
+        raise InputError(f"{where}: 'formula' must be a string such as \"CoOH\", got {short_repr(formula)}")
     try:
         formula = canonical_formula(formula)
     except InputError as e:
         raise InputError(f"{where}: {e}") from None
-    if isinstance(charge, bool) or not isinstance(charge, int) or charge < 1:
-        raise InputError(f"{where}: 'charge' must be an integer >= 1, got {charge!r}")
+    if isinstance(charge, bool) or not isinstance(charge, (int, np.integer)) or not 1 <= charge <= MAX_CHARGE:
+        raise InputError(f"{where}: 'charge' must be an integer >= 1 and <= {MAX_CHARGE}, got {short_repr(charge)}")
     out = []
     if shares:
         items = shares.items() if isinstance(shares, dict) else [(ion_label(f, z), p) for f, z, p in shares]
@@ -184,8 +208,9 @@ def _check_range_fields(low, high, formula, charge, shares, where):
                 f, z = parse_ion(key)
             except InputError as e:
                 raise InputError(f"{where}: shares: {e}") from None
-            if isinstance(p, bool) or not isinstance(p, (int, float)) or not 0 <= p <= 1:
-                raise InputError(f"{where}: shares: fraction of '{key}' must be a number in [0, 1], got {p!r}")
+            if not _real(p) or not 0 <= p <= 1:
+                raise InputError(f"{where}: shares: fraction of {short_repr(key)} must be a number in [0, 1], "
+                                 f"got {short_repr(p)}")
             out.append((f, z, float(p)))
             total += p
         if total > 1 + 1e-6:
@@ -282,7 +307,7 @@ class RangeSet:
         str
         """
         lines = [
-            "# probeseq range file (format 1). One [[range]] per mass-to-charge window:",
+            f"# probeseq range file (format 1), {MARK}. One [[range]] per mass-to-charge window:",
             "#   formula, charge: the ion species; low <= m/z < high, in Da.",
             "#   shares (optional): fraction of the window's ions per species (\"Ni+\", \"Zn++\": formula,",
             "#   one '+' per charge); the rest is background. Delete shares after moving a window.",
@@ -307,32 +332,36 @@ class RangeSet:
     def from_toml(cls, path) -> "RangeSet":
         """Read a range file; errors name the file, line and field."""
         p = Path(path)
-        if not p.is_file():
-            raise InputError(f"range file '{p}' does not exist")
-        return cls.from_toml_text(p.read_text(), where=str(p))
+        doc, text = load_toml(p, "range file")
+        return cls._from_doc(doc, text, str(p))
 
     @classmethod
     def from_toml_text(cls, text: str, where: str = "ranges") -> "RangeSet":
         """Parse range-file text (see :meth:`from_toml`)."""
-        try:
-            doc = tomllib.loads(text)
-        except tomllib.TOMLDecodeError as e:
-            raise InputError(f"{where}: not valid TOML: {e}") from None
+        return cls._from_doc(loads_toml(text, where, "range file"), text, where)
+
+    @classmethod
+    def _from_doc(cls, doc: dict, text: str, where: str) -> "RangeSet":
+        """Check and build the ranges of a parsed range file (``text``: its source, for line numbers)."""
         for key in doc:
             if key not in ("format", "metals", "range"):
-                raise InputError(f"{where} line {_key_line(text, key, 0, None)}: unknown top-level field '{key}' "
-                                 "(expected format, metals and [[range]] tables)")
+                raise InputError(f"{where} line {_key_line(text, key, 0, None)}: unknown top-level field "
+                                 f"'{clean_text(key)}' (expected format, metals and [[range]] tables)")
         fmt = doc.get("format", 1)
-        if fmt != 1:
-            raise InputError(f"{where}: unsupported 'format' {fmt!r}; this version reads format 1")
+        if isinstance(fmt, bool) or fmt != 1:
+            raise InputError(f"{where}: unsupported 'format' {short_repr(fmt)}; this version reads format 1")
         metals = doc.get("metals", [])
         if not isinstance(metals, list) or not all(isinstance(m, str) for m in metals):
-            raise InputError(f"{where}: 'metals' must be a list of element symbols, got {metals!r}")
+            raise InputError(f"{where}: 'metals' must be a list of element symbols, got {short_repr(metals)}")
         for m in metals:
-            if list(parse_formula(m).items()) != [(m, 1)]:
-                raise InputError(f"{where}: 'metals' entry '{m}' is not an element symbol")
+            try:
+                ok = list(parse_formula(m).items()) == [(m, 1)]
+            except InputError:
+                ok = False
+            if not ok:
+                raise InputError(f"{where}: 'metals' entry {short_repr(m)} is not an element symbol")
         items = doc.get("range", [])
-        if not isinstance(items, list):
+        if not isinstance(items, list) or not all(isinstance(item, dict) for item in items):
             raise InputError(f"{where}: 'range' must be an array of tables written [[range]]")
         if not items:
             raise InputError(f"{where}: no [[range]] tables found")
@@ -345,14 +374,15 @@ class RangeSet:
             for key in item:
                 if key not in ("formula", "charge", "low", "high", "shares"):
                     ln = _key_line(text, key, hline, nxt) or hline
-                    raise InputError(f"{where} line {ln} (range {k + 1}): unknown field '{key}' "
+                    raise InputError(f"{where} line {ln} (range {k + 1}): unknown field '{clean_text(key)}' "
                                      "(expected formula, charge, low, high, shares)")
             for key in ("formula", "charge", "low", "high"):
                 if key not in item:
                     raise InputError(f"{loc}: missing field '{key}'")
             shares = item.get("shares", {})
             if not isinstance(shares, dict):
-                raise InputError(f"{loc}: 'shares' must be a table such as {{ \"Zn+\" = 0.9 }}, got {shares!r}")
+                raise InputError(f"{loc}: 'shares' must be a table such as {{ \"Zn+\" = 0.9 }}, "
+                                 f"got {short_repr(shares)}")
             ranges.append(_check_range_fields(item["low"], item["high"], item["formula"], item["charge"],
                                               shares, loc))
             locs.append(f"{where} line {hline}" if hline else f"{where} range {k + 1}")

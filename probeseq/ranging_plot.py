@@ -150,6 +150,8 @@ def save_figure(fig, path) -> list:
     stem = p.with_suffix("") if p.suffix.lower() in (".png", ".svg") else p
     stem.parent.mkdir(parents=True, exist_ok=True)
     out = [stem.with_name(stem.name + ".png"), stem.with_name(stem.name + ".svg")]
-    fig.savefig(out[0], dpi=150)
-    fig.savefig(out[1])
+    from .outputs import figure_metadata
+
+    fig.savefig(out[0], dpi=150, metadata=figure_metadata(out[0]))
+    fig.savefig(out[1], metadata=figure_metadata(out[1]))
     return [str(o) for o in out]

@@ -59,6 +59,8 @@ import numpy as np
 
 from .exceptions import InputError
 from .lattice import Lattice
+from .tomlfile import short_repr
+from .validate import check_scale, check_seed
 
 __all__ = [
     "Registration",
@@ -1132,11 +1134,14 @@ def _check_xyz(x, y, z):
 def _check_override(name, value, n):
     if value is None:
         return None
-    a = np.asarray(value, dtype=float).ravel()
+    try:
+        a = np.asarray(value, dtype=float).ravel()
+    except (TypeError, ValueError):
+        raise InputError(f"{name} must be {n} finite number(s), got {short_repr(value)}") from None
     if a.size != n or not np.isfinite(a).all():
-        raise InputError(f"{name} must be {n} finite number(s), got {value!r}")
-    if name == "--scale" and not a[0] > 0:
-        raise InputError(f"--scale must be positive, got {value!r}")
+        raise InputError(f"{name} must be {n} finite number(s), got {short_repr(value)}")
+    if name == "--scale":
+        check_scale(float(a[0]))
     return a if n > 1 else float(a[0])
 
 
@@ -1196,6 +1201,7 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
     scale_range = (s_lo, s_hi)
     if not (isinstance(max_tilt_deg, (int, float)) and 0 < max_tilt_deg < 45):
         raise InputError(f"max_tilt_deg must be in (0, 45) degrees, got {max_tilt_deg!r}")
+    check_seed(random_state)
     rotation_deg = _check_override("--rotation-deg", rotation_deg, 1)
     scale = _check_override("--scale", scale, 1)
     offset_nm = _check_override("--offset-nm", offset_nm, 2)

@@ -44,10 +44,19 @@ import numpy as np
 from .exceptions import InputError
 from .ions import IonList, IonMeta
 from .lattice import PRESETS, Lattice
+from .tomlfile import short_repr
+from .validate import check_memory, check_number, check_scale, check_seed
 
 __all__ = ["SimConfig", "SimRun", "simulate_run", "markov_sequences", "PATTERNS", "DEFAULT_PERSISTENCE"]
 
 PATTERNS = ("random", "short-repeat", "long-block", "copied")
+#: most ions a simulated run may hold (a bound on the work and memory of one run)
+MAX_SIM_IONS = 200_000_000
+#: estimated peak memory per simulated ion (positions, species, truth arrays and temporaries), bytes;
+#: measured about 220-240 B per ion all told for runs of 1.5e6 and 5.3e6 ions
+BYTES_PER_ION = 200
+#: estimated peak memory per site of the rod grid the simulator places (depths, positions, masks), bytes
+BYTES_PER_GRID_SITE = 100
 DEFAULT_PERSISTENCE = {"random": 0.0, "short-repeat": 0.5, "long-block": 0.9, "copied": 0.0}
 
 # Linker-fragment ions of an organic framework and their relative rates (invented for the
@@ -58,9 +67,31 @@ ORGANIC_SPECIES = (
 )
 
 
+def _check_metal_symbol(symbol) -> None:
+    """Refuse a metal that is not the symbol of an element with natural isotopes (before any work)."""
+    import periodictable as pt
+
+    if not isinstance(symbol, str) or not symbol:
+        raise InputError(f"--metals: {symbol!r:.40} is not an element symbol (write e.g. Co,Zn)")
+    try:
+        el = pt.elements.symbol(symbol)
+    except ValueError:
+        raise InputError(f"--metals: '{symbol[:20]}' is not an element symbol (symbols are case-sensitive, "
+                         "e.g. Co,Zn)") from None
+    if getattr(el, "isotope", None) is not None or el.number == 0 or not any(i.abundance > 0 for i in el):
+        raise InputError(f"--metals: '{symbol}' is not an element with naturally occurring isotopes")
+
+
 @dataclass(frozen=True)
 class SimConfig:
-    """Parameters of a simulated run (lengths in nm, angles in degrees). See module docstring."""
+    """Parameters of a simulated run (lengths in nm, angles in degrees). See module docstring.
+
+    Every field is checked on construction, before any work: metals must be element symbols
+    with natural isotopes, numbers finite and in range, and the run's estimated size
+    (:meth:`expected_size`) at most :data:`MAX_SIM_IONS` ions and within the available memory
+    (:func:`probeseq.validate.check_memory`); otherwise :class:`InputError` names the options to
+    change.
+    """
 
     pattern: str = "random"
     metals: tuple = ("Co", "Zn")
@@ -99,33 +130,103 @@ class SimConfig:
             raise InputError(f"lattice must be a Lattice, got {type(self.lattice).__name__}")
         if self.packing not in PRESETS:
             raise InputError(f"--packing must be one of {', '.join(sorted(PRESETS))}, got '{self.packing}'")
+        if isinstance(self.metals, str) or not isinstance(self.metals, (tuple, list)):
+            raise InputError(f"--metals must be a list of element symbols, got {self.metals!r:.60}")
         if len(self.metals) < 2:
             raise InputError(f"--metals needs at least two metals, got {list(self.metals)}")
         if len(set(self.metals)) != len(self.metals):
             raise InputError(f"--metals lists a metal twice: {list(self.metals)}")
+        for m in self.metals:
+            _check_metal_symbol(m)
         if self.composition is not None:
-            f = np.asarray(self.composition, float)
-            if f.shape != (len(self.metals),) or (f <= 0).any():
-                raise InputError(f"--composition needs {len(self.metals)} positive fractions, got {list(self.composition)}")
-        if not 0 < self.eta <= 1:
-            raise InputError(f"--eta (detection efficiency) must be in (0, 1], got {self.eta}")
-        if self.persistence is not None and not 0 <= self.persistence < 1:
-            raise InputError(f"--persistence must be in [0, 1), got {self.persistence}")
-        if not 0 <= self.copy_error <= 1:
-            raise InputError(f"--copy-error must be in [0, 1], got {self.copy_error}")
-        for k in ("a_nm", "repeat_nm", "top_radius_nm", "depth_nm", "mrp"):
-            if not getattr(self, k) > 0:
-                raise InputError(f"{k} must be positive, got {getattr(self, k)}")
-        for k in ("sigma_xy_nm", "sigma_z_nm", "organic_per_site", "helix_radius_nm"):
-            if getattr(self, k) < 0:
-                raise InputError(f"{k} must be >= 0, got {getattr(self, k)}")
-        if not 0 <= self.background_fraction < 1:
-            raise InputError(f"background_fraction must be in [0, 1), got {self.background_fraction}")
-        if not 0 <= self.half_angle_deg < 45:
-            raise InputError(f"half_angle_deg must be in [0, 45), got {self.half_angle_deg}")
-        b = np.asarray(self.branching, float)
-        if b.shape != (3,) or (b < 0).any() or b.sum() <= 0:
+            try:
+                f = np.asarray(self.composition, float)
+            except (TypeError, ValueError):
+                f = np.full(0, np.nan)
+            if f.shape != (len(self.metals),) or not (np.isfinite(f).all() and (f > 0).all()):
+                raise InputError(f"--composition needs {len(self.metals)} positive finite fractions, "
+                                 f"got {short_repr(self.composition, 80)}")
+        check_number(self.eta, "--eta (detection efficiency)", 0, 1, lo_open=True)
+        check_number(self.persistence, "--persistence", 0, 1, hi_open=True, allow_none=True)
+        check_number(self.copy_error, "--copy-error", 0, 1)
+        for k, opt in (("a_nm", "--a"), ("repeat_nm", "--repeat"), ("top_radius_nm", "--top-radius"),
+                       ("depth_nm", "--depth"), ("mrp", "--mrp")):
+            check_number(getattr(self, k), opt if k == "mrp" else f"{opt} ({k})", 0, lo_open=True)
+        for k, opt in (("sigma_xy_nm", "--sigma-xy"), ("sigma_z_nm", "--sigma-z"),
+                       ("organic_per_site", "organic_per_site"), ("helix_radius_nm", "helix_radius_nm")):
+            check_number(getattr(self, k), f"{opt} ({k})" if opt != k else k, 0)
+        check_number(self.sites_per_repeat, "--sites-per-repeat", 1, integer=True)
+        check_number(self.background_fraction, "background_fraction", 0, 1, hi_open=True)
+        check_number(self.half_angle_deg, "--half-angle (half_angle_deg)", 0, 45, hi_open=True)
+        check_number(self.tail_fraction, "tail_fraction", 0, 1)
+        check_number(self.tail_scale, "tail_scale", 0)
+        check_number(self.rotation_deg, "rotation_deg", allow_none=True)
+        check_scale(self.scale, "scale")
+        check_number(self.tilt_deg, "tilt_deg", 0, 45, hi_open=True, allow_none=True)
+        check_number(self.tilt_azimuth_deg, "tilt_azimuth_deg", allow_none=True)
+        if self.offset_nm is not None:
+            off = np.atleast_1d(np.asarray(self.offset_nm, dtype=object))
+            if off.shape != (2,):
+                raise InputError(f"offset_nm must be two numbers (x, y) in nm, got {self.offset_nm!r:.60}")
+            for v in off:
+                check_number(v, "offset_nm")
+        check_seed(self.seed)
+        if not isinstance(self.seed, (int, np.integer)):
+            raise InputError(f"--seed must be an integer from 0 to 2**63 - 1, got {self.seed!r:.40}")
+        try:
+            b = np.asarray(self.branching, float)
+        except (TypeError, ValueError):
+            b = np.full(0, np.nan)
+        if b.shape != (3,) or not np.isfinite(b).all() or (b < 0).any() or b.sum() <= 0:
             raise InputError(f"branching needs 3 non-negative fractions (M+, M2+, MO+), got {self.branching}")
+        lat = self.lattice if self.lattice is not None else Lattice.from_preset(
+            self.packing, self.a_nm, self.repeat_nm, self.sites_per_repeat)
+        if self.depth_nm < lat.pitch_nm:
+            raise InputError(f"--depth (depth_nm) {self.depth_nm:g} nm is shorter than one site pitch "
+                             f"({lat.pitch_nm:.3g} nm)")
+        size = self.expected_size(lat)
+        remedy = "reduce --top-radius (top_radius_nm) or --depth (depth_nm)"
+        if size["ions"] > MAX_SIM_IONS:
+            raise InputError(f"the simulated needle (top radius {self.top_radius_nm:g} nm, depth {self.depth_nm:g} nm) "
+                             f"would hold about {size['ions']:.2g} ions, more than the simulator's limit of "
+                             f"{MAX_SIM_IONS:,}; {remedy}")
+        check_memory(size["bytes"], f"simulating about {size['ions']:.2g} ions (top radius {self.top_radius_nm:g} nm, "
+                     f"depth {self.depth_nm:g} nm)", remedy)
+
+    def expected_size(self, lattice: Lattice | None = None) -> dict:
+        """Estimated size of the run before simulating it.
+
+        Parameters
+        ----------
+        lattice : Lattice, optional
+            The lattice (default: ``self.lattice`` or the preset).
+
+        Returns
+        -------
+        dict
+            ``metal_sites`` (sites inside the needle), ``grid_sites`` (sites of all rods the
+            simulator places, inside or not), ``ions`` (metal, linker and background) and
+            ``bytes`` (estimated peak memory, from :data:`BYTES_PER_ION` and
+            :data:`BYTES_PER_GRID_SITE`).
+        """
+        lat = lattice or self.lattice or Lattice.from_preset(self.packing, self.a_nm, self.repeat_nm,
+                                                             self.sites_per_repeat)
+        ta = math.tan(math.radians(self.half_angle_deg))
+        r0, d = float(self.top_radius_nm), float(self.depth_nm)
+        r1 = r0 + d * ta
+        rho = lat.rod_density_per_nm2
+        n_sites = math.floor(d / lat.pitch_nm)
+        # sites inside: rods per area times the frustum volume, over the pitch
+        inside = rho * math.pi * d * (r0 * r0 + r0 * r1 + r1 * r1) / 3 / lat.pitch_nm
+        # rods placed: the disc the simulator searches (largest drawn offset, scale and tilt)
+        off = 1.0 if self.offset_nm is None else float(np.max(np.abs(np.asarray(self.offset_nm, float))))
+        scale = 0.96 if self.scale is None else min(float(self.scale), 1.0)
+        tilt = math.tan(math.radians(1.5 if self.tilt_deg is None else float(self.tilt_deg)))
+        reach = (r1 + off + tilt * d) / scale + 2 * lat.a_nm
+        grid = rho * math.pi * reach * reach * n_sites
+        ions = inside * (self.eta + self.organic_per_site) / (1 - self.background_fraction)
+        return {"metal_sites": inside, "grid_sites": grid, "ions": ions,
+                "bytes": BYTES_PER_ION * ions + BYTES_PER_GRID_SITE * grid}
 
     @property
     def composition_array(self) -> np.ndarray:
@@ -160,21 +261,28 @@ class SimRun:
     ion_species: np.ndarray
     config: SimConfig = field(default_factory=SimConfig)
 
+    @staticmethod
+    def output_paths(out) -> dict:
+        """The files :meth:`write` writes for ion file ``out``, by role."""
+        out = Path(out)
+        stem = out.with_suffix("")
+        return {"ions": out, "truth": stem.parent / (stem.name + ".truth.json"),
+                "lattice": stem.parent / (stem.name + ".lattice.toml")}
+
     def write(self, out, fmt: str | None = None) -> dict:
         """Write the ion list, ``<stem>.truth.json`` and ``<stem>.lattice.toml`` beside it.
 
         Returns the paths written, by role.
         """
         from .io import write_ions
+        from .outputs import MARK
 
-        out = Path(out)
-        write_ions(self.ions, out, fmt=fmt)
-        stem = out.with_suffix("")
-        truth_path = stem.parent / (stem.name + ".truth.json")
-        lattice_path = stem.parent / (stem.name + ".lattice.toml")
-        truth_path.write_text(json.dumps(self.truth, indent=1, sort_keys=True))
-        lattice_path.write_text(self.lattice.to_toml())
-        return {"ions": str(out), "truth": str(truth_path), "lattice": str(lattice_path)}
+        paths = self.output_paths(out)
+        paths["ions"].parent.mkdir(parents=True, exist_ok=True)
+        write_ions(self.ions, paths["ions"], fmt=fmt)
+        paths["truth"].write_text(json.dumps({**self.truth, "written_by": MARK}, indent=1, sort_keys=True))
+        paths["lattice"].write_text(f"# {MARK}: the true lattice of a simulated run\n" + self.lattice.to_toml())
+        return {k: str(v) for k, v in paths.items()}
 
 
 # ---------------------------------------------------------------------- isotope patterns
@@ -333,6 +441,10 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     keep_rods = inside.any(1)
     rod_xy, inside, axis, site_zr = rod_xy[keep_rods], inside[keep_rods], axis[keep_rods], site_zr[keep_rods]
     n_rods = rod_xy.shape[0]
+    if n_rods == 0:
+        raise InputError(f"no rod passes through the simulated needle (top radius {cfg.top_radius_nm:g} nm, rod spacing "
+                         f"{lat.nearest_rod_distance_nm:.3g} nm), so the run would hold no ion; increase --top-radius "
+                         "or reduce --a")
     seq = simulate_sequences(cfg, n_rods, n_sites, rng)
 
     # ---- metal ions

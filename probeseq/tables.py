@@ -160,7 +160,7 @@ def format_block(table: dict, columns, fmt: dict | None = None) -> bytes:
     return buf[:end].tobytes()
 
 
-def write_csv(path, blocks, columns, fmt: dict | None = None):
+def write_csv(path, blocks, columns, fmt: dict | None = None, comment: str | None = None):
     """Write a CSV file from an iterable of table blocks (dicts of equal-length columns).
 
     Parameters
@@ -172,8 +172,12 @@ def write_csv(path, blocks, columns, fmt: dict | None = None):
         Header and column order.
     fmt : dict of str -> str, optional
         ``'%.<d>f'`` per float column.
+    comment : str, optional
+        One line written first as ``# comment``.
     """
     with open(path, "wb") as fh:
+        if comment is not None:
+            fh.write(f"# {comment}\n".encode("utf-8"))
         fh.write((",".join(columns) + "\n").encode("utf-8"))
         for block in blocks:
             n = len(np.asarray(block[columns[0]])) if columns else 0

@@ -43,8 +43,11 @@ def test_csv_export_respects_rods_and_depth(outdir):
     rod = int(np.flatnonzero(of.columns.mask.sum(1) > 20)[0])
     z = of.columns.site_depths_nm()[rod][of.columns.mask[rod]]
     lo, hi = float(z[3]), float(z[12])
-    p = export_outdir(d, "csv", rods=np.array([rod]), depth_nm=(lo, hi))
-    rows = list(csv.DictReader(open(p)))
+    p = export_outdir(d, "csv", rods=np.array([rod]), depth_nm=(lo, hi), force=True)
+    with open(p) as fh:
+        first = fh.readline()
+        rows = list(csv.DictReader(fh))
+    assert first.startswith("# written by probeseq")  # the mark that lets --force replace it later
     assert {int(r["rod"]) for r in rows} == {rod}
     zs = np.array([float(r["z_nm"]) for r in rows])
     assert zs.min() >= lo - 1e-3 and zs.max() <= hi + 1e-3 and len(rows) == 10
@@ -58,7 +61,7 @@ def test_bad_export_requests(outdir, capsys):
     with pytest.raises(InputError, match="empty window"):
         parse_depth("5:2")
     with pytest.raises(InputError, match="no decoded site"):
-        export_outdir(d, "csv", depth_nm=(1000.0, 2000.0))
+        export_outdir(d, "csv", depth_nm=(1000.0, 2000.0), force=True)
     code = main(["export", str(d), "--format", "docx"])
     err = capsys.readouterr().err
     assert code == 1 and "not supported" in err
