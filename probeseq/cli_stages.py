@@ -437,11 +437,7 @@ def _batch(src: Path, out: Path, flags: list, force: bool):
     from .outputs import check_outdir
 
     subs = _run_folders(src)
-    check_outdir(out, force, [src, *subs])
-    try:
-        out.mkdir(parents=True, exist_ok=True)
-    except OSError as e:
-        raise InputError(f"--out {out}: cannot create the folder ({e.strerror})") from None
+    check_outdir(out, force, [src, *subs])  # each run's folder is made when its results are complete
     jobs = [(sub, out / sub.name, flags) for sub in subs]
     workers = max(1, min(2, os.cpu_count() or 1, len(jobs)))
     say(f"analysing {len(jobs)} run folders of {src} with {workers} processes into {out}")

@@ -21,6 +21,7 @@ from pathlib import Path
 import numpy as np
 
 from .exceptions import DataQualityWarning, InputError
+from .tomlfile import short_repr
 
 __all__ = ["RunRecord", "Comparison", "load_runs", "compare_runs", "difference_test", "order_value",
            "KEY_STATISTICS"]
@@ -104,6 +105,13 @@ def order_value(value):
     return v if math.isfinite(v) else None
 
 
+def _cell(value):
+    """A metadata value for one table cell: numbers as they are, anything else as short text."""
+    if value is None or (isinstance(value, (int, float)) and not isinstance(value, bool)):
+        return value
+    return short_repr(value) if not isinstance(value, str) else value
+
+
 def difference_test(rep_a, rep_b, random_state=None):
     """Bootstrap test of ``a - b``: (difference interval low, high, two-sided p).
 
@@ -142,7 +150,8 @@ class Comparison:
         for rec in self.runs:
             for s in self.statistics:
                 iv = rec.intervals.get(s) or {}
-                rows.append({"run": rec.name, "order_value": rec.metadata.get(self.order_by) if self.order_by else "",
+                rows.append({"run": rec.name, "order_value": _cell(rec.metadata.get(self.order_by))
+                             if self.order_by else "",
                              "label": rec.label, "statistic": s, "estimate": iv.get("estimate"),
                              "low": iv.get("low"), "high": iv.get("high")})
         return rows

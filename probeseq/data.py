@@ -133,6 +133,9 @@ class RodColumns:
 
 
 COLUMNS_FILE_VERSION = 1
+#: most ions a column file may count at one site when read back: a site holds one metal atom
+#: (counts of a few with neighbours' crosstalk), so far more means a damaged or hand-edited file
+MAX_COUNT_PER_SITE = 1e6
 
 
 def save_columns(columns: RodColumns, path) -> None:
@@ -215,6 +218,9 @@ def load_columns(path) -> RodColumns:
             raise InputError(f"{p}: dataset 'counts' holds NaN or infinite values at used sites")
         if used.size and used.min() < 0:
             raise InputError(f"{p}: dataset 'counts' holds negative counts at used sites")
+        if used.size and float(used.max()) > MAX_COUNT_PER_SITE:
+            raise InputError(f"{p}: dataset 'counts' holds {float(used.max()):.3g} ions at one site; a site is one "
+                             f"metal atom, so more than {MAX_COUNT_PER_SITE:.0e} means a damaged or hand-edited file")
         pitch = h5_attr_number(g, "pitch_nm", p, 0, lo_open=True)
         z_ref = h5_attr_number(g, "z_ref_nm", p)
         crosstalk = h5_attr_number(g, "crosstalk", p, 0, 1)

@@ -914,11 +914,16 @@ def _check_columns(columns) -> list:
     return notes
 
 
+#: most EM starts and iterations a fit accepts (more gains nothing and only makes a run hang)
+MAX_STARTS = 1_000
+MAX_ITER = 100_000
+
+
 def _check_options(n_starts, max_iter, tol, uncertain_below):
-    if not isinstance(n_starts, (int, np.integer)) or isinstance(n_starts, bool) or n_starts < 1:
-        raise InputError(f"n_starts must be an integer >= 1, got {n_starts!r}")
-    if not isinstance(max_iter, (int, np.integer)) or isinstance(max_iter, bool) or max_iter < 1:
-        raise InputError(f"max_iter must be an integer >= 1, got {max_iter!r}")
+    if not isinstance(n_starts, (int, np.integer)) or isinstance(n_starts, bool) or not 1 <= n_starts <= MAX_STARTS:
+        raise InputError(f"n_starts (--n-starts) must be an integer in [1, {MAX_STARTS}], got {n_starts!r}")
+    if not isinstance(max_iter, (int, np.integer)) or isinstance(max_iter, bool) or not 1 <= max_iter <= MAX_ITER:
+        raise InputError(f"max_iter must be an integer in [1, {MAX_ITER}], got {max_iter!r}")
     if not (isinstance(tol, (int, float)) and math.isfinite(tol) and tol > 0):
         raise InputError(f"tol must be a positive number (log-likelihood per site), got {tol!r}")
     _check_uncertain(uncertain_below)

@@ -15,6 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from .exceptions import InputError
+from .tomlfile import short_repr
 
 __all__ = ["FORMATS", "OutputFolder", "load_outdir", "select_sites", "export_outdir", "parse_rods", "parse_depth"]
 
@@ -159,6 +160,12 @@ def export_outdir(outdir, fmt: str, out=None, rods=None, depth_nm=None, size: st
     fmt = str(fmt).lower()
     if fmt not in FORMATS:
         raise InputError(f"--format '{fmt}' is not supported; choose one of {', '.join(FORMATS)}")
+    from .plotting import SIZE_PRESETS_MM, _check_dpi
+
+    if isinstance(size, str) and size not in SIZE_PRESETS_MM:  # (width_mm, height_mm) is checked when drawn
+        raise InputError(f"--size {short_repr(size)} is not a figure width preset; choose one of "
+                         f"{', '.join(SIZE_PRESETS_MM)}")
+    _check_dpi(dpi)
     ext = {"hdf5": "h5"}.get(fmt, fmt)
     path = Path(out) if out is not None else Path(outdir) / "exports" / f"tracks.{ext}"
     if path.suffix.lower() != f".{ext}":

@@ -626,6 +626,7 @@ class IonSource:
         self.path = _check_file(path)
         if ion_file_kind(self.path) != "hdf5":
             raise InputError(f"{self.path}: block reads need an HDF5 file (.h5, .hdf5)")
+        _check_read_options(self.path, "hdf5", length_unit, position_dataset, mass_dataset)
         self._f = _open_h5(self.path)
         try:
             self._layout, unit_in_file, self.n = _h5_layout(self._f, self.path, position_dataset, mass_dataset)
@@ -893,6 +894,7 @@ def iter_ion_chunks(path, chunk_size: int = DEFAULT_CHUNK, length_unit: str | No
     """
     p = _check_file(path)
     kind = ion_file_kind(p)
+    _check_read_options(p, kind, length_unit, position_dataset, mass_dataset)
     if chunk_size < 1:
         raise InputError(f"chunk_size must be >= 1, got {chunk_size}")
     if kind == "text":
@@ -905,6 +907,19 @@ def iter_ion_chunks(path, chunk_size: int = DEFAULT_CHUNK, length_unit: str | No
         for s in range(0, n, chunk_size):
             cols = _read_block(layout, s, min(n, s + chunk_size), p)
             yield _finish(cols, factor, IonMeta(str(p), sha, unit), strict, f"{p} rows {s + 1}-{min(n, s + chunk_size)}")
+
+
+def _check_read_options(p: Path, kind: str, length_unit, position_dataset, mass_dataset) -> None:
+    """Refuse reading options that are given but empty or unknown, and HDF5 dataset paths given
+    for a text file (they would be silently ignored)."""
+    if length_unit is not None:
+        _check_unit(length_unit, f"{p}: --length-unit")
+    for name, v in (("--position-dataset", position_dataset), ("--mass-dataset", mass_dataset)):
+        if v is not None and not str(v).strip():
+            raise InputError(f"{p}: {name} is empty; give an HDF5 dataset path such as /data/positions")
+    if kind == "text" and (position_dataset or mass_dataset):
+        raise InputError(f"{p}: --position-dataset and --mass-dataset name HDF5 datasets; a text ion file names "
+                         "its columns in its header (x, y, z, mass_to_charge)")
 
 
 def _finish(cols, factor, meta, strict, where) -> IonList:
@@ -940,6 +955,7 @@ def read_ions(path, length_unit: str | None = None, position_dataset: str | None
     """
     p = _check_file(path)
     kind = ion_file_kind(p)
+    _check_read_options(p, kind, length_unit, position_dataset, mass_dataset)
     if kind == "text":
         unit = length_unit or "nm"
         factor = _check_unit(unit, str(p))
@@ -962,7 +978,7 @@ def read_ions(path, length_unit: str | None = None, position_dataset: str | None
 
 # ---------------------------------------------------------------------- writers
 def write_ions(ions: IonList, path, fmt: str | None = None, compression: str | None = None,
-               chunk_rows: int = 1_000_000, float_format: str = "%.6g", dtype=None) -> Path:
+               chunk_rows: int = 1_000_000, float_format: str = "%.6g", dtype=None, mark: bool = False) -> Path:
     """Write an ion list as CSV/TSV text or HDF5 (positions in nm).
 
     The file is written to a temporary name beside the target and moved into place when complete,
@@ -978,7 +994,13 @@ def write_ions(ions: IonList, path, fmt: str | None = None, compression: str | N
         HDF5 chunk length in rows.
     dtype : numpy dtype, optional
         HDF5 dataset dtype (default: the arrays' own).
+    mark : bool
+        Carry probeseq's mark (:data:`probeseq.outputs.MARK`), which lets ``--force`` replace the
+        file later: only for data probeseq made up (the simulator), never for a converted
+        measurement, which must stay irreplaceable.
     """
+    from .outputs import MARK
+
     p = Path(path)
     if fmt is None:
         kind = ion_file_kind(p)
@@ -997,6 +1019,8 @@ def write_ions(ions: IonList, path, fmt: str | None = None, compression: str | N
 
             n = len(ions)
             with h5py.File(tmp, "w") as f:
+                if mark:
+                    f.attrs["written_by"] = MARK
                 g = f.create_group("ions")
                 g.attrs["length_unit"] = "nm"
                 g.attrs["mass_to_charge_unit"] = "Da"
@@ -1014,7 +1038,7 @@ def write_ions(ions: IonList, path, fmt: str | None = None, compression: str | N
 
             sep = "," if fmt == "csv" else "\t"
             with open(tmp, "w", encoding="utf-8", newline="") as fh:
-                fh.write("# ion list written by probeseq; positions in nm, mass_to_charge in Da\n")
+                fh.write(f"# ion list{', ' + MARK if mark else ''}; positions in nm, mass_to_charge in Da\n")
                 pd.DataFrame(cols).to_csv(fh, sep=sep, index=False, float_format=float_format)
         os.replace(tmp, p)
     finally:

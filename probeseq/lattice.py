@@ -137,6 +137,13 @@ class Lattice:
                              f"fractions, got shape {rods.shape}")
         if not np.isfinite(rods).all() or (rods < 0).any() or (rods > 1).any():
             raise InputError(f"{where}: rod positions must be fractions in [0, 1], got {rods.tolist()}")
+        if len(np.unique(np.round(rods, 4), axis=0)) < len(rods):  # the same rod typed twice: a slip
+            import warnings
+
+            from .exceptions import DataQualityWarning
+
+            warnings.warn(f"{where}: rods lists the same fractional position more than once; it is one rod axis",
+                          DataQualityWarning, stacklevel=3)
         rods = np.mod(rods, 1.0)
         rods[np.isclose(rods, 1.0)] = 0.0
         # duplicate positions (e.g. 0 and 1) are one rod

@@ -24,7 +24,7 @@ import numpy as np
 from ._version import __version__
 from .data import RodColumns
 from .exceptions import DataQualityWarning, InputError
-from .ions import IonList
+from .ions import IonList, check_position_extent
 from .lattice import Lattice
 
 __all__ = ["AnalysisOptions", "AnalysisResult", "analyze", "analyze_file", "write_analysis", "RESULTS_SCHEMA_VERSION",
@@ -36,7 +36,6 @@ RESULTS_SCHEMA_VERSION = 1
 TRACKS_COLUMNS = ("rod", "rod_x_nm", "rod_y_nm", "site", "z_nm", "state", "posterior")
 #: largest accepted --n-boot and --n-starts (each resample or start costs a pass over every rod)
 MAX_BOOT = 100_000
-MAX_STARTS = 1_000
 RUNS_COLUMNS = ("rod", "first_site", "last_site", "length_sites", "length_nm", "z_start_nm", "z_end_nm",
                 "metal", "mean_posterior")
 
@@ -95,7 +94,7 @@ class AnalysisOptions:
         Seed of every random choice (EM starts, bootstraps, nulls), in [0, 2**63); the same seed
         gives the same results.
     n_starts : int
-        EM starts of the decoder, 1 to :data:`MAX_STARTS`.
+        EM starts of the decoder, 1 to :data:`probeseq.decode.MAX_STARTS`.
     n_boot : int
         Bootstrap resamples over rods, 20 to :data:`MAX_BOOT`.
     long_block_sites : float, sites
@@ -130,13 +129,15 @@ class AnalysisOptions:
         check_seed(self.seed)
         if self.seed is not None and not isinstance(self.seed, (int, np.integer)):
             raise InputError(f"--seed must be an integer from 0 to 2**63 - 1, got {type(self.seed).__name__}")
+        from .decode import MAX_STARTS  # here: the decoder's module is heavy to import
+
         check_number(self.n_starts, "--n-starts", 1, MAX_STARTS, integer=True)
         check_number(self.n_boot, "--n-boot", 20, MAX_BOOT, integer=True)
         check_number(self.long_block_sites, "--long-block-sites", 1, lo_open=True)
         check_number(self.alpha, "--alpha", 0, 0.5, lo_open=True)
         check_number(self.copy_threshold, "--copy-threshold", 0, 1, lo_open=True, hi_open=True)
         check_number(self.uncertain_below, "--uncertain-below", 0.5, 1)
-        check_number(self.rotation_deg, "--rotation-deg", allow_none=True)
+        check_number(self.rotation_deg, "--rotation-deg", -360, 360, allow_none=True)
         check_scale(self.scale)
         if self.offset_nm is not None:
             off = tuple(self.offset_nm) if isinstance(self.offset_nm, (tuple, list, np.ndarray)) else (self.offset_nm,)
@@ -670,6 +671,9 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
                 rr, cols, n_metal, tally, ext = _fit_and_count(
                     sample, metals, lattice, opts, ranges, clock, blocks, src.factor, strict=strict, where=str(path),
                     message=f"ranging, drawing and binning all {n} ions in chunks of {chunk_size}")
+                # the sample was checked on reading; the rows outside it are checked by their extent
+                check_position_extent({"x": (float(ext[0]), float(ext[1])), "y": (float(ext[2]), float(ext[3])),
+                                       "z": (float(ext[4]), float(ext[5]))}, str(path))
                 unit = src.unit
             # the count array is finished here; the checksum (provenance, not needed for the counts)
             # starts now and runs at low priority alongside the next stages; it is waited for at the

@@ -29,6 +29,8 @@ __all__ = ["PlanResult", "plan_experiment", "LABELS"]
 MAX_RUNS_PER_CASE = 1000
 #: the simulated runs' seeds are taken modulo this (numpy seeds are below 2**63)
 SEED_SPACE = 2 ** 63 - 2 ** 20
+#: most ions a plan may simulate over all its runs (about an hour of work on a 2-core machine)
+MAX_PLAN_IONS = 3e8
 LABELS = ("random", "short-repeat", "long-block", "rod-to-rod-copied", "undetermined")
 PATTERN_LABEL = {"random": "random", "short-repeat": "short-repeat", "long-block": "long-block",
                  "copied": "rod-to-rod-copied"}
@@ -102,7 +104,7 @@ def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_r
     PlanResult
     """
     from .pipeline import AnalysisOptions
-    from .simulate import SimConfig
+    from .simulate import MAX_TOP_RADIUS_NM, SimConfig
     from .validate import check_number, check_seed
 
     if isinstance(metals, str):
@@ -118,7 +120,7 @@ def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_r
     check_number(n_per_pattern, "--runs-per-pattern", 1, MAX_RUNS_PER_CASE, integer=True)
     check_number(n_per_persistence, "--runs-per-persistence", 1, MAX_RUNS_PER_CASE, integer=True)
     check_number(power, "power", 0, 1, lo_open=True)
-    check_number(top_radius_nm, "--radius (nm)", 0, lo_open=True)
+    check_number(top_radius_nm, "--radius (nm)", 0, MAX_TOP_RADIUS_NM, lo_open=True)
     check_number(depth_nm, "--depth (nm)", 0, lo_open=True)
     check_seed(seed)
     if not isinstance(seed, (int, np.integer)):
@@ -146,6 +148,11 @@ def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_r
             s += 1
             jobs.append((SimConfig(pattern=pat, persistence=lam, seed=s, **base), n_boot))
             kinds.append(("pattern", pat))
+    one = jobs[0][0].expected_size()["ions"]
+    total = one * (len(patterns) * n_per_pattern + len(lams) * n_per_persistence)
+    if total > MAX_PLAN_IONS:
+        raise InputError(f"the plan would simulate about {total:.2g} ions ({one:.2g} per run), more than its limit "
+                         f"of {MAX_PLAN_IONS:.0e}; reduce --radius, --depth or the runs per case")
     for lam in lams:
         for i in range(n_per_persistence):
             s += 1

@@ -60,7 +60,8 @@ import numpy as np
 from .exceptions import InputError
 from .lattice import Lattice
 from .tomlfile import short_repr
-from .validate import check_scale, check_seed
+from .ions import MAX_ABS_POSITION_NM
+from .validate import check_number, check_scale, check_seed
 
 __all__ = [
     "Registration",
@@ -1142,6 +1143,10 @@ def _check_override(name, value, n):
         raise InputError(f"{name} must be {n} finite number(s), got {short_repr(value)}")
     if name == "--scale":
         check_scale(float(a[0]))
+    if name == "--rotation-deg":
+        check_number(float(a[0]), name, -360, 360)
+    if name == "--offset-nm":
+        check_number(float(np.abs(a).max()), "--offset-nm (largest magnitude, nm)", 0, MAX_ABS_POSITION_NM)
     return a if n > 1 else float(a[0])
 
 

@@ -52,6 +52,9 @@ __all__ = ["SimConfig", "SimRun", "simulate_run", "markov_sequences", "PATTERNS"
 PATTERNS = ("random", "short-repeat", "long-block", "copied")
 #: most ions a simulated run may hold (a bound on the work and memory of one run)
 MAX_SIM_IONS = 200_000_000
+#: largest needle top radius, nm: atom-probe specimens are sharpened to apex radii of tens of nm
+#: (common practice; recalled from memory: about 20-100 nm), so a larger value is a slip of units
+MAX_TOP_RADIUS_NM = 150.0
 #: estimated peak memory per simulated ion (positions, species, truth arrays and temporaries), bytes;
 #: measured about 220-240 B per ion all told for runs of 1.5e6 and 5.3e6 ions
 BYTES_PER_ION = 200
@@ -146,12 +149,16 @@ class SimConfig:
             if f.shape != (len(self.metals),) or not (np.isfinite(f).all() and (f > 0).all()):
                 raise InputError(f"--composition needs {len(self.metals)} positive finite fractions, "
                                  f"got {short_repr(self.composition, 80)}")
+            if abs(f.sum() - 1.0) > 0.01:  # rounding (0.33,0.33,0.33) is fine; 0.3,0.3 is a mistake
+                raise InputError(f"--composition: the site fractions must add up to 1, got {short_repr(self.composition, 80)} "
+                                 f"(sum {f.sum():.3g})")
         check_number(self.eta, "--eta (detection efficiency)", 0, 1, lo_open=True)
         check_number(self.persistence, "--persistence", 0, 1, hi_open=True, allow_none=True)
         check_number(self.copy_error, "--copy-error", 0, 1)
         for k, opt in (("a_nm", "--a"), ("repeat_nm", "--repeat"), ("top_radius_nm", "--top-radius"),
                        ("depth_nm", "--depth"), ("mrp", "--mrp")):
             check_number(getattr(self, k), opt if k == "mrp" else f"{opt} ({k})", 0, lo_open=True)
+        check_number(self.top_radius_nm, "--top-radius (top_radius_nm)", 0, MAX_TOP_RADIUS_NM, lo_open=True)
         for k, opt in (("sigma_xy_nm", "--sigma-xy"), ("sigma_z_nm", "--sigma-z"),
                        ("organic_per_site", "organic_per_site"), ("helix_radius_nm", "helix_radius_nm")):
             check_number(getattr(self, k), f"{opt} ({k})" if opt != k else k, 0)
@@ -279,7 +286,7 @@ class SimRun:
 
         paths = self.output_paths(out)
         paths["ions"].parent.mkdir(parents=True, exist_ok=True)
-        write_ions(self.ions, paths["ions"], fmt=fmt)
+        write_ions(self.ions, paths["ions"], fmt=fmt, mark=True)
         paths["truth"].write_text(json.dumps({**self.truth, "written_by": MARK}, indent=1, sort_keys=True))
         paths["lattice"].write_text(f"# {MARK}: the true lattice of a simulated run\n" + self.lattice.to_toml())
         return {k: str(v) for k, v in paths.items()}

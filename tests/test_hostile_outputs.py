@@ -459,7 +459,7 @@ def test_expected_size_tracks_a_real_run():
 @pytest.mark.parametrize("flags,fragment", [
     (["--metals", "Co,Xx"], "'Xx' is not an element"), (["--depth", "nan"], "--depth"),
     (["--radius", "inf"], "--radius"), (["--seed", "-1"], "--seed"), (["--efficiency", "nan"], "--efficiency"),
-    (["--radius", "5000"], "--top-radius"),
+    (["--radius", "5000"], "--radius"),
 ])
 def test_cli_plan_refuses_before_any_work(flags, fragment, tmp_path, capsys):
     args = ["plan", "--metals", "Co,Zn", "--lattice", "honeycomb", "--a", "2.6", "--repeat", "0.68", "-q",

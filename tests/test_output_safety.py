@@ -309,3 +309,16 @@ def test_a_swap_cut_between_its_two_renames_is_completed_or_undone(tmp_path, sta
             pass
     assert (target / "results.json").read_text() == ("new" if staging_complete else "old")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["other", "out"]
+
+
+@pytest.mark.parametrize("suffix", [".csv", ".h5"])
+def test_only_simulated_ion_files_carry_the_mark(tmp_path, small_run, suffix):
+    """A converted measurement must never become replaceable by --force; simulated data may."""
+    from probeseq.io import write_ions
+
+    converted = write_ions(small_run.ions, tmp_path / f"converted{suffix}")
+    simulated = Path(small_run.write(tmp_path / f"simulated{suffix}")["ions"])
+    assert not is_probeseq_file(converted)
+    assert is_probeseq_file(simulated)
+    with pytest.raises(InputError, match="not written by probeseq"):
+        check_outfile(converted, force=True)
