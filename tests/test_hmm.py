@@ -27,7 +27,7 @@ hmm = pytest.importorskip("hmmlearn.hmm")  # source: hmmlearn 0.3.3
 
 # The occasionally dishonest casino.
 # source: Durbin, Eddy, Krogh & Mitchison 1998, ch. 3 p. 54, parameters as listed in
-# the project reference sheet (REFERENCES.md) section 3 (hmmlearn examples/plot_casino_example.py):
+# docs/REFERENCES.md §3 (hmmlearn examples/plot_casino_example.py):
 # F->L 0.05, L->F 0.10; fair die 1/6 per face; loaded die 1/10 for faces 1-5 and 1/2 for 6.
 CASINO_A = np.array([[0.95, 0.05], [0.10, 0.90]])
 CASINO_B = np.array([[1 / 6] * 6, [1 / 10] * 5 + [1 / 2]])
@@ -166,7 +166,7 @@ def test_casino_matches_hmmlearn(implementation):
 
 
 def test_casino_stationary_distribution():
-    # source: REFERENCES.md section 3 check [R]: stationary (2/3, 1/3)
+    # source: docs/REFERENCES.md §3 check [lib]: stationary (2/3, 1/3)
     np.testing.assert_allclose(stationary_distribution(CASINO_A), [2 / 3, 1 / 3], atol=1e-14)
     pi = stationary_distribution(np.array([[0.2, 0.8, 0.0], [0.1, 0.6, 0.3], [0.5, 0.0, 0.5]]))
     np.testing.assert_allclose(pi @ np.array([[0.2, 0.8, 0.0], [0.1, 0.6, 0.3], [0.5, 0.0, 0.5]]), pi, atol=1e-14)

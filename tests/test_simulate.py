@@ -61,7 +61,7 @@ def test_isotope_fractions_match_periodictable(big_random):
 
 def test_ion_lines_named_values():
     # m/z as neutral isotope mass / charge; check values from periodictable (run here, see
-    # shared REFERENCES: Co2+ 29.4666, CoO+ 74.9281)
+    # docs/REFERENCES.md §1: Co2+ 29.4666, CoO+ 74.9281)
     m, p = ion_lines("Co", 2)
     assert m.size == 1 and abs(m[0] - 29.4666) < 1e-4
     m, p = ion_lines("CoO", 1)

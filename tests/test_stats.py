@@ -72,7 +72,7 @@ def forward_backward_binary_flip(obs, transmat, flip):
 
 # ---------------------------------------------------------------------- runs test
 def test_runs_moments_textbook_check_value():
-    # source: the project reference sheet (REFERENCES.md) section 4 (Wald & Wolfowitz 1940 moments):
+    # source: docs/REFERENCES.md §4 (Wald & Wolfowitz 1940 moments):
     # n1 = n2 = 10 -> E = 11, Var = 4.73684
     mean, var = S.runs_expectation(10, 10)
     assert mean == pytest.approx(11.0)
@@ -82,7 +82,7 @@ def test_runs_moments_textbook_check_value():
 @pytest.mark.parametrize("n1,n2", [(7, 5), (3, 9), (6, 6)])
 def test_runs_moments_match_exact_distribution(n1, n2):
     # source: exact law of the number of runs (Swed & Eisenhart 1943), as written in
-    # the project reference sheet (REFERENCES.md) section 4: P(R=2k) = 2 C(n1-1,k-1) C(n2-1,k-1) / C(n,n1), ...
+    # docs/REFERENCES.md §4: P(R=2k) = 2 C(n1-1,k-1) C(n2-1,k-1) / C(n,n1), ...
     c = math.comb
     n = n1 + n2
     pmf = {}
@@ -144,7 +144,7 @@ def test_runs_test_calibrated_on_independent_sites_and_detects_blocks():
 # ---------------------------------------------------------------------- chain quantities
 def test_entropy_rate_two_state_check_value():
     # source: Cover & Thomas 2006 Thm 4.2.4, two-state closed form; check value from
-    # the project reference sheet (REFERENCES.md) section 4: alpha = 0.05, beta = 0.1 -> 0.347263 bits
+    # docs/REFERENCES.md §4: alpha = 0.05, beta = 0.1 -> 0.347263 bits
     a = np.array([[0.95, 0.05], [0.10, 0.90]])
     assert float(S.entropy_rate_bits(a)) == pytest.approx(0.347263, abs=1e-6)
 
@@ -169,7 +169,7 @@ def test_entropy_of_independent_sites_equals_chain_with_identical_rows():
 
 def test_casino_chain_stationary_and_run_lengths():
     # source: Durbin et al. 1998 p.54 occasionally dishonest casino (F->L 0.05, L->F 0.10); check values
-    # from the project reference sheet (REFERENCES.md) section 3: stationary (2/3, 1/3), mean runs 20 and 10
+    # from docs/REFERENCES.md §3: stationary (2/3, 1/3), mean runs 20 and 10
     a = np.array([[0.95, 0.05], [0.10, 0.90]])
     np.testing.assert_allclose(S.stationary_distribution(a), [2 / 3, 1 / 3])
     np.testing.assert_allclose(S.mean_run_length(a), [20.0, 10.0])
@@ -198,7 +198,7 @@ def test_persistence_and_run_length_of_simulator_chain(lam):
 
 def test_g2_matches_scipy_log_likelihood_contingency(rng):
     # source: scipy 1.17 scipy.stats.chi2_contingency(lambda_="log-likelihood"); Anderson & Goodman
-    # 1957 df = (K-1)^2 (the project reference sheet (REFERENCES.md) section 4)
+    # 1957 df = (K-1)^2 (docs/REFERENCES.md §4)
     t = rng.integers(5, 60, size=(3, 3)).astype(float)
     g2, df, p = S.g2_markov_test(t)
     ref = sps.chi2_contingency(t, lambda_="log-likelihood", correction=False)
@@ -234,7 +234,7 @@ def test_decoded_runs_mark_truncation_by_rod_ends_and_mask():
 
 def test_run_lengths_of_independent_sites_follow_geometric_law():
     # source: scipy 1.17 scipy.stats.geom; run length of iid Bernoulli(q) is Geometric(1 - q)
-    # (the project reference sheet (REFERENCES.md) section 4)
+    # (docs/REFERENCES.md §4)
     rng = np.random.default_rng(77)
     q = 0.3
     seq = (rng.random((1, 100_000)) < q).astype(int)
