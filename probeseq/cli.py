@@ -16,56 +16,15 @@ from typing import Annotated, List, Optional
 
 import typer
 
-from ._version import __version__
+from .cli_common import _STATE, app, deprecated_option, renamed, say, split_list
 from .exceptions import InputError, ProbeseqError
 
-app = typer.Typer(
-    name="probeseq",
-    help="Read the metal sequence along the rods of mixed-metal framework crystals from "
-         "atom-probe tomography ion lists.",
-    add_completion=False,
-    no_args_is_help=True,
-    rich_markup_mode=None,
-    pretty_exceptions_enable=False,
-    context_settings={"help_option_names": ["-h", "--help"]},
-)
-
-_STATE = {"quiet": False, "verbose": False}
-
-
-def _version(value: bool):
-    if value:
-        typer.echo(f"probeseq {__version__}")
-        raise typer.Exit()
-
-
-@app.callback()
-def _root(
-    version: Annotated[Optional[bool], typer.Option("--version", callback=_version, is_eager=True,
-                                                    help="Print the version and exit.")] = None,
-):
-    """probeseq: from a reconstructed ion list to the metal sequence along each rod."""
-
-
-def say(msg: str = ""):
-    """Print a line to standard output unless --quiet."""
-    if not _STATE["quiet"]:
-        typer.echo(msg)
-
-
-def split_list(value: Optional[str], what: str) -> list:
-    """Split a comma-separated option value; empty items are an error."""
-    if value is None:
-        return []
-    items = [v.strip() for v in value.split(",")]
-    if any(not v for v in items):
-        raise InputError(f"{what}: empty item in '{value}' (give a comma-separated list, e.g. Co,Zn)")
-    return items
-
+__all__ = ["app", "main", "run", "say", "split_list"]
 
 # ---------------------------------------------------------------------- simulate
 @app.command()
 def simulate(
+    ctx: typer.Context,
     out: Annotated[Path, typer.Argument(help="Ion file to write (.csv, .tsv, .h5); the truth (.truth.json) "
                                              "and lattice (.lattice.toml) are written beside it.")],
     pattern: Annotated[str, typer.Option(help="random | short-repeat | long-block | copied")] = "random",
@@ -74,26 +33,39 @@ def simulate(
     persistence: Annotated[Optional[float], typer.Option(help="Markov persistence lam in [0, 1) "
                                                                "(default 0.5 short-repeat, 0.9 long-block, 0 otherwise).")] = None,
     copy_error: Annotated[float, typer.Option(help="Per-site copy error of the copied pattern.")] = 0.05,
-    packing: Annotated[str, typer.Option(help="honeycomb | triangular | square")] = "honeycomb",
-    a: Annotated[float, typer.Option("--a", help="Cell edge a, nm.")] = 2.6,
-    repeat: Annotated[float, typer.Option(help="Repeat along the rod, nm.")] = 0.68,
-    sites_per_repeat: Annotated[int, typer.Option(help="Metal sites per repeat.")] = 3,
-    top_radius: Annotated[float, typer.Option(help="Needle top radius, nm.")] = 7.0,
+    lattice: Annotated[str, typer.Option(help="Lattice preset: honeycomb | triangular | square, or a lattice "
+                                              "TOML file.")] = "honeycomb",
+    a: Annotated[float, typer.Option("--a", help="Cell edge a, nm (with a preset).")] = 2.6,
+    repeat: Annotated[float, typer.Option(help="Repeat along the rod, nm (with a preset).")] = 0.68,
+    sites_per_repeat: Annotated[int, typer.Option(help="Metal sites per repeat (with a preset).")] = 3,
+    tip_radius: Annotated[float, typer.Option(help="Needle tip (top) radius, nm.")] = 7.0,
     half_angle: Annotated[float, typer.Option(help="Needle half-angle, degrees.")] = 8.0,
     depth: Annotated[float, typer.Option(help="Analysed depth, nm.")] = 40.0,
-    eta: Annotated[float, typer.Option(help="Detection efficiency in (0, 1].")] = 0.5,
-    sigma_xy: Annotated[float, typer.Option(help="Lateral blur, nm.")] = 0.10,
-    sigma_z: Annotated[float, typer.Option(help="Depth blur, nm.")] = 0.04,
+    detection_efficiency: Annotated[float, typer.Option(help="Detection efficiency in (0, 1].")] = 0.5,
+    lateral_blur: Annotated[float, typer.Option(help="Lateral blur (spread of positions across the rods), "
+                                                     "nm.")] = 0.10,
+    depth_blur: Annotated[float, typer.Option(help="Depth blur (spread of positions along the rods), nm.")] = 0.04,
     mrp: Annotated[float, typer.Option(help="Mass resolving power m/dm (FWHM).")] = 600.0,
     seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
     force: Annotated[bool, typer.Option(help="Replace existing files that probeseq wrote.")] = False,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")] = False,
+    packing: Annotated[Optional[str], deprecated_option("--packing", "--lattice")] = None,
+    top_radius: Annotated[Optional[float], deprecated_option("--top-radius", "--tip-radius")] = None,
+    eta: Annotated[Optional[float], deprecated_option("--eta", "--detection-efficiency")] = None,
+    sigma_xy: Annotated[Optional[float], deprecated_option("--sigma-xy", "--lateral-blur")] = None,
+    sigma_z: Annotated[Optional[float], deprecated_option("--sigma-z", "--depth-blur")] = None,
 ):
     """Simulate a run of a rod framework with known truth (synthetic data for tests and demos)."""
+    from .lattice import PRESETS, Lattice
     from .outputs import check_outfile
     from .simulate import SimConfig, SimRun, simulate_run
 
     _STATE["quiet"] = quiet
+    lattice = renamed(ctx, "--lattice", lattice, "--packing", packing)
+    tip_radius = renamed(ctx, "--tip-radius", tip_radius, "--top-radius", top_radius)
+    detection_efficiency = renamed(ctx, "--detection-efficiency", detection_efficiency, "--eta", eta)
+    lateral_blur = renamed(ctx, "--lateral-blur", lateral_blur, "--sigma-xy", sigma_xy)
+    depth_blur = renamed(ctx, "--depth-blur", depth_blur, "--sigma-z", sigma_z)
     mets = tuple(split_list(metals, "--metals"))
     comp = None
     if composition is not None:
@@ -101,14 +73,17 @@ def simulate(
             comp = tuple(float(v) for v in split_list(composition, "--composition"))
         except ValueError:
             raise InputError(f"--composition: '{composition}' is not a list of numbers") from None
+    preset = str(lattice).lower() in PRESETS
+    given_lattice = None if preset else Lattice.from_spec(lattice)
+    inputs = [] if preset else [Path(lattice)]
     ion_file_kind_check(out)
     for what, p in SimRun.output_paths(out).items():
-        check_outfile(p, force, what="OUT" if what == "ions" else f"OUT ({what} file)")
+        check_outfile(p, force, inputs, what="OUT" if what == "ions" else f"OUT ({what} file)")
     cfg = SimConfig(pattern=pattern, metals=mets, composition=comp, persistence=persistence,
-                    copy_error=copy_error, packing=packing, a_nm=a, repeat_nm=repeat,
-                    sites_per_repeat=sites_per_repeat, top_radius_nm=top_radius,
-                    half_angle_deg=half_angle, depth_nm=depth, eta=eta, sigma_xy_nm=sigma_xy,
-                    sigma_z_nm=sigma_z, mrp=mrp, seed=seed)
+                    copy_error=copy_error, packing=str(lattice).lower() if preset else "honeycomb",
+                    lattice=given_lattice, a_nm=a, repeat_nm=repeat, sites_per_repeat=sites_per_repeat,
+                    top_radius_nm=tip_radius, half_angle_deg=half_angle, depth_nm=depth, eta=detection_efficiency,
+                    sigma_xy_nm=lateral_blur, sigma_z_nm=depth_blur, mrp=mrp, seed=seed)
     run = simulate_run(cfg)
     paths = run.write(out)
     c = run.truth["counts"]
@@ -253,7 +228,7 @@ def main(argv: Optional[List[str]] = None) -> int:
         return _interrupted()
     except MemoryError:
         sys.stderr.write("error: out of memory; give a smaller input (an HDF5 ion file is read in blocks, a text "
-                         "file is read whole), or for simulate/plan a smaller --top-radius or --depth\n")
+                         "file is read whole), or for simulate/plan a smaller --tip-radius or --depth\n")
         return 1
     except Exception as e:  # last line of defence: one line, never a traceback
         if os.environ.get("PROBESEQ_DEBUG"):
@@ -267,8 +242,20 @@ def main(argv: Optional[List[str]] = None) -> int:
 
 
 def _register_commands():
-    """Import the modules that add further commands to ``app`` (kept lazy for a fast --help)."""
-    from . import cli_stages  # noqa: F401
+    """Import the modules that add further commands to ``app``; give every command its whole summary.
+
+    The summary of a command in ``probeseq --help`` is the first paragraph of its docstring,
+    wrapped but never cut short (the command-line layer would otherwise shorten it to the width
+    of the terminal).
+    """
+    import inspect as _inspect
+
+    from . import cli_stages  # noqa: F401  (one way: cli_stages never imports this module)
+
+    for info in app.registered_commands:
+        doc = _inspect.getdoc(info.callback) or ""
+        if info.short_help is None and doc:
+            info.short_help = " ".join(doc.split("\n\n")[0].split())
 
 
 def run():

@@ -1,11 +1,13 @@
 """CLI commands of the pipeline stages (ranging, columns, decoding, analysis), joined to ``app``.
 
+``app`` and the shared helpers come from :mod:`probeseq.cli_common`; this module never imports
+:mod:`probeseq.cli`, which loads it when a command runs (one-way dependency, no import cycle).
+
 Each command is a thin wrapper: parse, call one library function, write, summarise.
 """
 
 from __future__ import annotations
 
-import json
 import shlex
 import sys
 import time
@@ -14,7 +16,7 @@ from typing import Annotated, Optional
 
 import typer
 
-from .cli import _STATE, app, say, split_list
+from .cli_common import _STATE, app, deprecated_option, renamed, say, split_list
 from .exceptions import InputError
 from .outputs import figure_metadata
 
@@ -72,15 +74,8 @@ def _metals(text):
     return tuple(mets)
 
 
-def _read(path, length_unit, position_dataset, mass_dataset, strict):
-    from .io import read_ions
-
-    return read_ions(path, length_unit=length_unit, position_dataset=position_dataset,
-                     mass_dataset=mass_dataset, strict=strict)
-
-
 class _Reporter:
-    """Progress on standard error (unless quiet), and a copy of every line for ``log.txt``.
+    """Progress on standard error (unless quiet); ``log.txt`` keeps its own copy (:func:`probeseq.batch.analyze_run`).
 
     Each stage prints one line when it starts; on a terminal a ticker keeps the line's elapsed
     time running while the stage works, so a long step never looks frozen.
@@ -91,7 +86,6 @@ class _Reporter:
 
         self.quiet, self.verbose = quiet, verbose
         self.t0 = time.perf_counter()
-        self.lines = []
         self._tty = (not quiet) and sys.stderr.isatty()
         self._current = None
         self._lock = threading.Lock()
@@ -109,7 +103,6 @@ class _Reporter:
 
     def __call__(self, stage: str, message: str):
         line = f"[{time.perf_counter() - self.t0:7.1f} s] {stage}: {message}"
-        self.lines.append(line)
         if self.quiet:
             return
         with self._lock:
@@ -136,11 +129,6 @@ class _Reporter:
                 sys.stderr.flush()
             self._current = None
 
-    def note(self, message: str):
-        self.lines.append(message)
-        if self.verbose and not self.quiet:
-            sys.stderr.write(message + "\n")
-
 
 # ---------------------------------------------------------------------- range
 @app.command("range")
@@ -157,7 +145,8 @@ def range_cmd(
 ):
     """Range the mass spectrum: find peaks, match ions, calibrate, and write an editable range file."""
     from .outputs import check_outfile, staged_file
-    from .ranging import RangeSet, auto_range
+    from .pipeline import range_file
+    from .ranging import RangeSet
 
     _STATE["quiet"] = quiet
     inputs = [ions, ranges]
@@ -166,9 +155,11 @@ def range_cmd(
     for f in figures:
         check_outfile(f, force, inputs + [out], what="--figure")
     mets = _metals(metals)
-    il = _read(ions, length_unit, position_dataset, mass_dataset, strict)
     given = RangeSet.from_toml(ranges) if ranges is not None else None
-    rr = auto_range(il.mass_to_charge, mets, species=split_list(species, "--species") or None, ranges=given)
+    # the ranging of 'analyze': the same sample of the file, ranged by the same call
+    rr, _ = range_file(ions, mets, species=split_list(species, "--species") or None, ranges=given,
+                       length_unit=length_unit, position_dataset=position_dataset, mass_dataset=mass_dataset,
+                       strict=strict)
     with staged_file(out, force, inputs) as part:
         rr.to_toml(part)
     say(f"wrote {out}: {len(rr.ranges)} ranges")
@@ -222,34 +213,28 @@ def columns(
     strict: Strict = False, force: Force = False, quiet: Quiet = False,
 ):
     """Register the rod lattice and cut the rods into sites: writes columns.h5, registration.json, a figure."""
-    from .columns import build_columns
-    from .columns_plot import plot_rod_density
     from .data import save_columns
     from .outputs import check_outdir, staged_outdir, write_json
-    from .ranging import RangeSet, assign_channels, auto_range
-    from .validate import check_scale, check_seed
+    from .pipeline import AnalysisOptions, count_file, write_density_figure
+    from .ranging import RangeSet
 
     _STATE["quiet"] = quiet
     inputs = [ions, ranges, *_lattice_inputs(lattice)]
     check_outdir(out, force, inputs)
     mets = _metals(metals)
     lat = _lattice(lattice, a, repeat, sites_per_repeat)
-    check_seed(seed)
-    scale = check_scale(scale)
-    offset = _parse_offset(offset_nm)
-    il = _read(ions, length_unit, position_dataset, mass_dataset, strict)
+    opts = AnalysisOptions(seed=seed, rotation_deg=rotation_deg, scale=scale, offset_nm=_parse_offset(offset_nm))
     given = RangeSet.from_toml(ranges) if ranges is not None else None
-    rr = auto_range(il.mass_to_charge, mets, ranges=given)
-    w = assign_channels(il.mass_to_charge, rr.ranges, mets).weights()
-    sel = w.sum(1) > 0
-    cols = build_columns(il.x[sel], il.y[sel], il.z[sel], w[sel], mets, lat, rotation_deg=rotation_deg,
-                         scale=scale, offset_nm=offset, random_state=seed)
+    # the count stage of 'analyze': sample, ranging, detection balance, registration, fused pass
+    counted = count_file(ions, mets, lat, ranges=given, options=opts, length_unit=length_unit,
+                         position_dataset=position_dataset, mass_dataset=mass_dataset, strict=strict)
+    cols, rr = counted.columns, counted.ranging
     with staged_outdir(out, force=force, inputs=inputs, command=_command_line()) as st:
         save_columns(cols, st / "columns.h5")
         write_json(st / "registration.json", {"resolvable": cols.resolvable, "crosstalk": cols.crosstalk,
                                               "n_rods": cols.n_rods, "n_sites": cols.n_sites, **cols.params})
         rr.to_toml(st / "ranges.toml")
-        plot_rod_density(il.x[sel], il.y[sel], il.z[sel], cols, st / "density.png")
+        write_density_figure(counted.figure_ions, rr, cols, st / "density.png")
     reg = cols.params.get("registration", {})
     say(f"wrote {out}: {cols.n_rods} rods x {cols.n_sites} sites ({int(cols.mask.sum())} used)")
     if reg:
@@ -269,18 +254,15 @@ def decode(
 ):
     """Fit the hidden Markov model to every rod and decode the metal sequences."""
     from .data import load_columns
-    from .decode import fit_decoder
     from .outputs import check_outdir, staged_outdir, write_json
+    from .pipeline import AnalysisOptions, decode_stage
 
     _STATE["quiet"] = quiet
+    opts = AnalysisOptions(seed=seed, n_starts=n_starts)
     check_outdir(out, force, [columns_dir])
     cols = load_columns(Path(columns_dir) / "columns.h5")
-    dec = fit_decoder(cols, n_starts=n_starts, random_state=seed)
-    groups = None
-    if not cols.resolvable:
-        from .groups import analyze_groups
-
-        groups = analyze_groups(cols, random_state=seed)
+    # the decoding stage of 'analyze' (and its groups-of-rods analysis when rods are not resolvable)
+    dec, groups = decode_stage(cols, opts)
     with staged_outdir(out, force=force, inputs=[columns_dir], command=_command_line()) as st:
         write_json(st / "decoding.json", {"decoding": dec.to_dict(),
                                           "groups": None if groups is None else groups.to_dict()})
@@ -292,20 +274,27 @@ def decode(
 
 
 def _write_decoded_tables(folder, cols, dec):
-    from .pipeline import RUNS_COLUMNS, RUNS_FORMATS, _write_table, runs_table, write_tracks
+    """``tracks.csv``, ``runs.csv`` and ``decoded.h5`` (paths, posteriors, flags), as 'analyze' writes them."""
+    from .pipeline import RUNS_COLUMNS, RUNS_FORMATS, _write_table, runs_table, save_decoded, write_tracks
 
     write_tracks(folder / "tracks.csv", cols, dec)
     _write_table(folder / "runs.csv", runs_table(cols, dec), RUNS_COLUMNS, RUNS_FORMATS)
+    save_decoded(dec, folder / "decoded.h5")
 
 
 # ---------------------------------------------------------------------- analyze
+SitesOrRunOpt = Annotated[Optional[int], typer.Option("--sites-per-repeat", help="Metal sites per repeat (with a "
+                                                                                 "preset; default 3).")]
+
+
 @app.command()
 def analyze(
-    ions: Annotated[Path, typer.Argument(help="Ion file (.csv, .tsv, .txt, .h5), or a run folder holding the "
-                                              "ion file and run.toml.")],
+    ions: Annotated[Path, typer.Argument(help="Ion file (.csv, .tsv, .txt, .h5), a run folder holding the "
+                                              "ion file and run.toml, or a batch folder of run folders.")],
     metals: Metals = None,
-    lattice: LatticeOpt = None, a: AOpt = None, repeat: RepeatOpt = None, sites_per_repeat: SitesOpt = 3,
-    out: Annotated[Optional[Path], typer.Option(help="Output folder (default: analysis_<name>).")] = None,
+    lattice: LatticeOpt = None, a: AOpt = None, repeat: RepeatOpt = None, sites_per_repeat: SitesOrRunOpt = None,
+    out: Annotated[Optional[Path], typer.Option(help="Output folder (default: analysis_<name>); for a batch, "
+                                                     "the folder of the runs' output folders.")] = None,
     ranges: RangesOpt = None,
     seed: Annotated[int, typer.Option(help="Random seed; the same seed gives the same results.")] = 0,
     long_block_sites: Annotated[float, typer.Option(help="Mean run length (sites) of the least abundant metal at "
@@ -323,166 +312,65 @@ def analyze(
                                                      "folder (refused by default).")] = False,
     strict: Strict = False, force: Force = False, quiet: Quiet = False, verbose: Verbose = False,
 ):
-    """Run the whole analysis: ranging, columns, decoding, statistics and classification.
+    """Run the whole analysis: ranging, columns, decoding, statistics and classification; also for a batch.
 
-    IONS may be an ion file, a run folder (ion file + run.toml), or a folder of run folders
-    (a batch: each run is written to OUT/<run folder name>).
+    IONS may be an ion file, a run folder (the ion file plus run.toml), or a batch folder: a
+    folder of run folders, each analysed into OUT/<run folder name> (two runs at a time) with the
+    same options, which take precedence over each run.toml. A batch prints one line per run and
+    exits with 1 if any run failed; the others are still written.
     """
-    from .lattice import Lattice
+    from .batch import analyze_run, run_folders, summary_lines
     from .pipeline import AnalysisOptions
-    from .pipeline import analyze_file, write_analysis
-    from .outputs import check_outdir
-    from .ranging import RangeSet
-    from .runinfo import read_run_folder, safe_file_name
+    from .runinfo import safe_file_name
 
     _STATE["quiet"] = quiet
     # options first: a bad value is one error before any work, not one failure per run of a batch
     opts = AnalysisOptions(seed=seed, n_starts=n_starts, n_boot=n_boot, long_block_sites=long_block_sites,
                            alpha=alpha, copy_threshold=copy_threshold, rotation_deg=rotation_deg, scale=scale,
                            offset_nm=_parse_offset(offset_nm))
-    sample = {}
+    mets = _metals(metals) if metals is not None else None
+    common = dict(options=opts, metals=mets, lattice=lattice, a=a, repeat=repeat, sites_per_repeat=sites_per_repeat,
+                  ranges=ranges, length_unit=length_unit, position_dataset=position_dataset,
+                  mass_dataset=mass_dataset, strict=strict, allow_outside=allow_outside, force=force,
+                  command_line=_command_line())
     src = Path(ions)
-    inputs = [src, ranges, *_lattice_inputs(lattice)]
-    if src.is_dir() and not (src / "run.toml").exists() and _run_folders(src):
-        flags = ["--seed", str(seed), "--long-block-sites", str(long_block_sites), "--alpha", str(alpha),
-                 "--copy-threshold", str(copy_threshold), "--n-boot", str(n_boot), "--n-starts", str(n_starts)]
-        if strict:
-            flags.append("--strict")
-        if allow_outside:
-            flags.append("--allow-outside")
-        if force:
-            flags.append("--force")
-        default_out = Path(f"analysis_{safe_file_name(src.resolve().name)}")
-        return _batch(src, Path(out) if out is not None else default_out, flags, force)
-    if src.is_dir():
-        desc = read_run_folder(src, allow_outside=allow_outside)
-        inputs += [desc.folder / "run.toml", desc.ions, desc.ranges, *_lattice_inputs(desc.lattice)]
-        sample = dict(desc.sample)
-        ion_path = desc.ions
-        mets = _metals(metals) if metals else desc.metals
-        if lattice is None:
-            lat = Lattice.from_spec(desc.lattice, a=desc.lattice_args.get("a"),
-                                    repeat=desc.lattice_args.get("repeat"),
-                                    sites_per_repeat=desc.lattice_args.get("sites_per_repeat", 3))
-        else:
-            lat = _lattice(lattice, a, repeat, sites_per_repeat)
-        ranges = ranges or desc.ranges
-        sample["detection_efficiency_given"] = desc.detection_efficiency
-        name = desc.name
-        default_out = f"analysis_{desc.safe_name}"
-    else:
-        ion_path = src
-        if metals is None:
-            raise InputError("--metals is required (or give a run folder with run.toml)")
-        mets = _metals(metals)
-        lat = _lattice(lattice, a, repeat, sites_per_repeat)
-        name = src.stem
-        default_out = f"analysis_{safe_file_name(name)}"
-    outdir = Path(out) if out is not None else Path(default_out)
-    check_outdir(outdir, force, inputs)
+    if src.is_dir() and not (src / "run.toml").exists() and run_folders(src):
+        batch_out = Path(out) if out is not None else Path(f"analysis_{safe_file_name(src.resolve().name)}")
+        return _batch(src, batch_out, common, verbose)
     rep = _Reporter(quiet, verbose)
-    rs = RangeSet.from_toml(ranges) if ranges is not None else None
-    prov = {"command_line": _command_line(), "sample": sample, "run_name": name}
     try:
-        res = analyze_file(ion_path, mets, lat, ranges=rs, options=opts, progress=rep, provenance=prov,
-                           length_unit=length_unit, position_dataset=position_dataset, mass_dataset=mass_dataset,
-                           strict=strict)
-    except BaseException:
-        rep.done()
-        raise
-
-    def extra(folder):
-        (folder / "log.txt").write_text("\n".join(rep.lines + [""] + _summary_lines(res)) + "\n", encoding="utf-8")
-
-    rep("writing", f"{outdir}")
-    try:
-        write_analysis(res, outdir, force=force, extra=extra, progress=rep, inputs=inputs)
+        ra = analyze_run(src, out, progress=rep, **common)
     finally:
         rep.done()
-    for line in _summary_lines(res, verbose=verbose):
+    for line in summary_lines(ra.result, verbose=verbose):
         say(line)
 
 
-def _run_folders(folder: Path) -> list:
-    return sorted(p for p in folder.iterdir() if p.is_dir() and (p / "run.toml").is_file())
+def _batch(src: Path, out: Path, common: dict, verbose: bool):
+    """Analyse a batch folder with :func:`probeseq.batch.analyze_batch`; one summary line per run."""
+    from .batch import analyze_batch
 
+    def start(n_runs, n_workers):
+        say(f"analysing {n_runs} run folders of {src} with {n_workers} processes into {out}")
 
-def _batch_one(job):
-    """Analyse one run folder of a batch in a worker process; returns (name, exit code, summary)."""
-    import contextlib
-    import io
+    def show(o):
+        if o.ok:
+            say(f"  {o.run:32s} {o.label} (confidence {o.confidence:.2f})")
+        else:
+            say(f"  {o.run:32s} failed: {o.error}")
+        if verbose:
+            for r in o.reasons:
+                say(f"  {'':32s}   - {r}")
+            for w in o.warnings:
+                say(f"  {'':32s}   warning: {w}")
 
-    from .cli import main
-
-    sub, outdir, flags = job
-    err = io.StringIO()
-    with contextlib.redirect_stderr(err):
-        code = main(["analyze", str(sub), "--out", str(outdir), "-q", *flags])
-    summary = ""
-    res = outdir / "results.json"
-    if code == 0 and res.is_file():
-        r = json.loads(res.read_text())
-        c = r["classification"]
-        summary = f"{c['label']} (confidence {c['confidence']:.2f})"
-    else:
-        summary = err.getvalue().strip().splitlines()[-1] if err.getvalue().strip() else f"exit {code}"
-    return sub.name, code, summary
-
-
-def _batch(src: Path, out: Path, flags: list, force: bool):
-    """Analyse every run folder under ``src`` into ``out/<run>``, two at a time (both cores)."""
-    import os
-    from concurrent.futures import ProcessPoolExecutor
-
-    from .outputs import check_outdir
-
-    subs = _run_folders(src)
-    check_outdir(out, force, [src, *subs])  # each run's folder is made when its results are complete
-    jobs = [(sub, out / sub.name, flags) for sub in subs]
-    workers = max(1, min(2, os.cpu_count() or 1, len(jobs)))
-    say(f"analysing {len(jobs)} run folders of {src} with {workers} processes into {out}")
-    failed = 0
-    with ProcessPoolExecutor(max_workers=workers) as ex:
-        for name, code, summary in ex.map(_batch_one, jobs):
-            failed += code != 0
-            say(f"  {name:32s} {summary}")
+    outcomes = analyze_batch(src, out, progress=show, started=start, **common)
+    failed = [o for o in outcomes if not o.ok]
     if failed:
-        raise InputError(f"{failed} of {len(jobs)} runs failed (see above); the others were written to {out}")
-
-
-def _summary_lines(res, verbose: bool = False) -> list:
-    c = res.classification
-    st = res.statistics
-    lines = [f"verdict: {c.label} (along rods: {c.along_rod}; rod to rod: {c.rod_to_rod}; "
-             f"confidence {c.confidence:.2f})"]
-    d = res.to_dict()
-    lines.append(f"{'metal':6s} {'fraction':>18s} {'mean run (sites)':>24s} {'x independent':>14s}")
-    for m in res.metals:
-        iv = d["composition_interval"][m] or {}
-        f, flo, fhi = d["composition"][m], iv.get("low", float("nan")), iv.get("high", float("nan"))
-        r, rlo, rhi = st.interval(f"mean_run_length_sites.{m}")
-        ratio = st.estimates.get(f"run_length_ratio.{m}", float("nan"))
-        lines.append(f"{m:6s} {f:8.3f} [{flo:.3f}-{fhi:.3f}] {r:10.2f} [{rlo:.2f}-{rhi:.2f}] {ratio:14.2f}")
-    col = res.columns
-    lines.append(f"rods {col.n_rods}, sites used {int(col.mask.sum())}, detection efficiency "
-                 f"{res.decoded.eta:.3f}, persistence {st.estimates.get('persistence', float('nan')):.3f}")
-    for w in res.warnings:
-        lines.append(f"warning: {w}")
-    if verbose:
-        lines.append("reasons:")
-        lines.extend(f"  - {r}" for r in c.reasons)
-        reg = col.params.get("registration", {})
-        if reg:
-            lines.append(f"registration: rotation {reg.get('rotation_deg', float('nan')):.3f} +- "
-                         f"{reg.get('rotation_deg_err', float('nan')):.3f} deg, scale {reg.get('scale', float('nan')):.4f}"
-                         f" +- {reg.get('scale_err', float('nan')):.4f}, tilt {reg.get('tilt_deg', float('nan')):.3f} deg, "
-                         f"lateral spread {reg.get('sigma_xy_nm', float('nan')):.3f} nm, crosstalk {col.crosstalk:.3f}")
-        dec = res.decoded
-        lines.append(f"decoder: log-likelihood {dec.loglik:.1f}, {dec.n_iter} EM iterations "
-                     f"({'converged' if dec.converged else 'NOT converged'}), LR {dec.lr_stat:.1f} "
-                     f"(df {dec.lr_df}), BIC {dec.bic:.1f} vs {dec.bic_indep:.1f} independent")
-    lines.append("timings (s): " + ", ".join(f"{k} {v:.2f}" for k, v in res.timings_s.items()))
-    return lines
+        where = "" if _STATE["quiet"] else "; reasons above"
+        rest = "no run was written" if len(failed) == len(outcomes) else f"the others were written to {out}"
+        raise InputError(f"{len(failed)} of {len(outcomes)} runs failed ({', '.join(o.run for o in failed[:5])}"
+                         f"{', ...' if len(failed) > 5 else ''}{where}); {rest}")
 
 
 # ---------------------------------------------------------------------- compare
@@ -542,23 +430,32 @@ def compare(
 # ---------------------------------------------------------------------- plan
 @app.command()
 def plan(
+    ctx: typer.Context,
     metals: Metals = None,
     lattice: LatticeOpt = None, a: AOpt = None, repeat: RepeatOpt = None, sites_per_repeat: SitesOpt = 3,
-    efficiency: Annotated[float, typer.Option(help="Detection efficiency of the instrument, (0, 1].")] = 0.5,
-    lateral_resolution: Annotated[float, typer.Option(help="Lateral resolution (spread of positions), nm.")] = 0.15,
+    detection_efficiency: Annotated[float, typer.Option(help="Detection efficiency of the instrument, "
+                                                             "(0, 1].")] = 0.5,
+    lateral_blur: Annotated[float, typer.Option(help="Lateral blur (spread of positions across the rods), "
+                                                     "nm.")] = 0.15,
     runs_per_pattern: Annotated[int, typer.Option(help="Simulated runs per arrangement.")] = 4,
     runs_per_persistence: Annotated[int, typer.Option(help="Simulated runs per persistence of the scan.")] = 3,
-    radius: Annotated[float, typer.Option(help="Needle top radius of the simulated runs, nm.")] = 5.0,
+    tip_radius: Annotated[float, typer.Option(help="Needle tip (top) radius of the simulated runs, nm.")] = 5.0,
     depth: Annotated[float, typer.Option(help="Depth of the simulated runs, nm.")] = 25.0,
     out: Annotated[Optional[Path], typer.Option(help="Write the plan as JSON here.")] = None,
     seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
     force: ForceFile = False, quiet: Quiet = False,
+    efficiency: Annotated[Optional[float], deprecated_option("--efficiency", "--detection-efficiency")] = None,
+    lateral_resolution: Annotated[Optional[float], deprecated_option("--lateral-resolution", "--lateral-blur")] = None,
+    radius: Annotated[Optional[float], deprecated_option("--radius", "--tip-radius")] = None,
 ):
     """Before acquiring: simulate runs under your conditions and report what the analysis can tell apart."""
     from .outputs import check_outfile, staged_file, write_json
     from .plan import plan_experiment
 
     _STATE["quiet"] = quiet
+    detection_efficiency = renamed(ctx, "--detection-efficiency", detection_efficiency, "--efficiency", efficiency)
+    lateral_blur = renamed(ctx, "--lateral-blur", lateral_blur, "--lateral-resolution", lateral_resolution)
+    tip_radius = renamed(ctx, "--tip-radius", tip_radius, "--radius", radius)
     inputs = _lattice_inputs(lattice)
     if out is not None:
         check_outfile(out, force, inputs)
@@ -572,9 +469,9 @@ def plan(
             if i == n:
                 sys.stderr.write("\n")
 
-    res = plan_experiment(mets, lat, efficiency=efficiency, lateral_resolution_nm=lateral_resolution,
+    res = plan_experiment(mets, lat, efficiency=detection_efficiency, lateral_resolution_nm=lateral_blur,
                           n_per_pattern=runs_per_pattern, n_per_persistence=runs_per_persistence,
-                          top_radius_nm=radius, depth_nm=depth, seed=seed, progress=prog)
+                          top_radius_nm=tip_radius, depth_nm=depth, seed=seed, progress=prog)
     say(f"expected confusion (rows: true arrangement, columns: label given), {res.n_runs} simulated runs")
     say(f"{'':18s}" + "".join(f"{lab[:12]:>13s}" for lab in res.labels))
     for i, p in enumerate(res.patterns):
@@ -596,20 +493,25 @@ def plan(
 # ---------------------------------------------------------------------- export
 @app.command()
 def export(
+    ctx: typer.Context,
     outdir: Annotated[Path, typer.Argument(help="An 'analyze' output folder.")],
     format: Annotated[str, typer.Option("--format", help="csv | json | hdf5 | svg | pdf | png")] = "csv",
     rods: Annotated[Optional[str], typer.Option(help="Rod ids, e.g. 3,5,10-12 (default all).")] = None,
-    depth: Annotated[Optional[str], typer.Option(help="Depth window 'A:B' in nm (default all).")] = None,
+    depth_window: Annotated[Optional[str], typer.Option(help="Depth window 'A:B' in nm, either side may be "
+                                                             "left empty (default all).")] = None,
     out: Annotated[Optional[Path], typer.Option(help="File to write (default OUTDIR/exports/tracks.<ext>).")] = None,
     size: Annotated[str, typer.Option(help="Figure width preset: one-column | two-column.")] = "two-column",
     dpi: Annotated[int, typer.Option(help="Resolution of PNG figures.")] = 300,
     force: ForceFile = False, quiet: Quiet = False,
+    depth: Annotated[Optional[str], deprecated_option("--depth", "--depth-window")] = None,
 ):
     """Export decoded tracks (tables, JSON, self-describing HDF5) or the tracks figure (SVG, PDF, PNG)."""
     from .export import export_outdir, load_outdir, parse_depth, parse_rods
 
     _STATE["quiet"] = quiet
+    depth_window = renamed(ctx, "--depth-window", depth_window, "--depth", depth)
+    window = parse_depth(depth_window)
     of = load_outdir(outdir)
     path = export_outdir(outdir, format, out=out, rods=parse_rods(rods, of.columns.n_rods),
-                         depth_nm=parse_depth(depth), size=size, dpi=dpi, force=force)
+                         depth_nm=window, size=size, dpi=dpi, force=force)
     say(f"wrote {path}")

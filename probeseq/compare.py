@@ -14,13 +14,13 @@ recalled from memory).
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
 from .exceptions import DataQualityWarning, InputError
+from .outputs import finite_or_none
 from .tomlfile import short_repr
 
 __all__ = ["RunRecord", "Comparison", "load_runs", "compare_runs", "difference_test", "order_value",
@@ -102,7 +102,7 @@ def order_value(value):
             return None
     else:
         return None
-    return v if math.isfinite(v) else None
+    return finite_or_none(v)
 
 
 def _cell(value):

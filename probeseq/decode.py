@@ -81,8 +81,10 @@ from scipy.special import gammaln
 
 from .data import RodColumns
 from .exceptions import ConvergenceWarning, DataQualityWarning, InputError
+from .outputs import finite_or_none
 from .validate import check_seed
-from .hmm import forward_backward_scaled, run_em, stationary_distribution, update_transmat, viterbi
+from .chain import list_runs, persistence, stationary_distribution
+from .hmm import forward_backward_scaled, run_em, update_transmat, viterbi
 
 __all__ = [
     "DecoderParams",
@@ -185,12 +187,13 @@ class DecoderParams:
 
     @property
     def persistence(self) -> float:
-        """``lam = (trace(A) - 1) / (K - 1)``; for ``A = lam I + (1 - lam) 1 f`` this is lam.
+        """Persistence of ``transmat`` (dimensionless), :func:`probeseq.chain.persistence`.
 
-        For two metals it equals ``1 - (p01 + p10)``, the second eigenvalue of ``A``.
+        ``lam = sum_k f_k lam_k`` with ``lam_k = (A_kk - f_k) / (1 - f_k)`` and ``f`` the stationary
+        composition, the same number the statistics report; for ``A = lam I + (1 - lam) 1 f`` it
+        is lam, and for two metals ``1 - (p01 + p10)``, the second eigenvalue of ``A``.
         """
-        k = self.n_metals
-        return float((np.trace(self.transmat) - 1.0) / (k - 1))
+        return persistence(self.transmat)
 
     @property
     def crosstalk(self) -> float:
@@ -688,7 +691,8 @@ class DecodeResult:
     stationary : (K,) ndarray of float
         Stationary distribution = composition.
     persistence : float
-        ``(trace(A) - 1) / (K - 1)`` (``1 - p01 - p10`` for two metals).
+        :func:`probeseq.chain.persistence` of ``transmat`` (``1 - p01 - p10`` for two metals),
+        dimensionless; the statistics' ``persistence`` of the same matrix.
     eta : float
         Detection efficiency of a site's own ion.
     extra_rate : (K,) ndarray of float, counts per site
@@ -775,12 +779,13 @@ class DecodeResult:
         return DecoderParams(transmat=self.transmat, eta=self.eta, extra_rate=self.extra_rate)
 
     def to_dict(self) -> dict:
-        """JSON-serialisable summary (no per-site arrays)."""
+        """JSON-serialisable summary (no per-site arrays; NaN and infinities become None).
 
-        def num(v):
-            v = float(v)
-            return v if math.isfinite(v) else None
-
+        ``mean_decoded_run_length_sites`` is the mean length, in sites, of the runs on the Viterbi
+        paths (runs cut by a rod end or the mask included, so it is shorter than the fitted chain's
+        ``1 / (1 - A_kk)``, which the statistics report as ``mean_run_length_sites``).
+        """
+        num = finite_or_none
         obs = self.mask
         lengths = self.runs["length"]
         metal = self.runs["metal"]
@@ -817,7 +822,7 @@ class DecodeResult:
             "n_uncertain": int(self.uncertain.sum()),
             "fraction_uncertain": num(self.uncertain.sum() / max(self.n_obs, 1)),
             "n_runs": int(lengths.size),
-            "mean_run_length_sites": mean_run,
+            "mean_decoded_run_length_sites": mean_run,
             "start_logliks": [num(v) for v in self.start_logliks],
             "warnings": list(self.warnings),
         }
@@ -825,6 +830,9 @@ class DecodeResult:
 
 def runs_table(path, mask, posteriors) -> dict:
     """Runs of equal metal along each rod's decoded path, broken at masked sites.
+
+    The runs of :func:`probeseq.chain.list_runs` (the one run listing of probeseq), with the
+    columns a decoding keeps.
 
     Parameters
     ----------
@@ -839,36 +847,8 @@ def runs_table(path, mask, posteriors) -> dict:
         ``rod, first_site, last_site, length, metal`` (int64) and ``mean_posterior`` (mean
         posterior of the run's metal over its sites), ordered by rod then site.
     """
-    path = np.asarray(path)
-    k = posteriors.shape[2]
-    v = np.where(mask, path, -1).astype(np.int8 if k < 127 else np.int64, copy=False)
-    n_rods, n_sites = v.shape
-    valid = v >= 0
-    start = valid.copy()
-    start[:, 1:] &= v[:, 1:] != v[:, :-1]
-    end = valid.copy()
-    end[:, :-1] &= v[:, :-1] != v[:, 1:]
-    s_idx = np.flatnonzero(start.ravel())
-    e_idx = np.flatnonzero(end.ravel())
-    del start, end
-    p = np.take_along_axis(posteriors, np.maximum(v, 0)[:, :, None], axis=2)[:, :, 0]
-    p[~valid] = 0
-    length = e_idx - s_idx + 1
-    # every valid site after a run's start and before the next run's start is in the run, the
-    # others hold 0: one sum per run from its start to the next start (in float64)
-    if s_idx.size:
-        sums = np.add.reduceat(p.reshape(-1), s_idx, dtype=np.float64)
-    else:
-        sums = np.zeros(0)
-    mean_post = sums / np.maximum(length, 1)
-    return {
-        "rod": (s_idx // n_sites).astype(np.int64),
-        "first_site": (s_idx % n_sites).astype(np.int64),
-        "last_site": (e_idx % n_sites).astype(np.int64),
-        "length": length.astype(np.int64),
-        "metal": v.ravel()[s_idx].astype(np.int64),
-        "mean_posterior": mean_post,
-    }
+    runs = list_runs(path, mask, posteriors)
+    return {key: runs[key] for key in ("rod", "first_site", "last_site", "length", "metal", "mean_posterior")}
 
 
 # --------------------------------------------------------------------------------------------

@@ -99,15 +99,15 @@ def parse_depth(text):
         return None
     s = str(text)
     if ":" not in s:
-        raise InputError(f"--depth: '{s}' is not a window 'A:B' in nm")
+        raise InputError(f"--depth-window: '{s}' is not a window 'A:B' in nm")
     a, b = s.split(":", 1)
     try:
         lo = float(a) if a.strip() else -np.inf
         hi = float(b) if b.strip() else np.inf
     except ValueError:
-        raise InputError(f"--depth: '{s}' is not a window 'A:B' of numbers in nm") from None
+        raise InputError(f"--depth-window: '{s}' is not a window 'A:B' of numbers in nm") from None
     if not lo < hi:
-        raise InputError(f"--depth: empty window {s} (A must be below B)")
+        raise InputError(f"--depth-window: empty window {s} (A must be below B)")
     return lo, hi
 
 

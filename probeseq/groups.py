@@ -57,6 +57,7 @@ import numpy as np
 
 from .data import RodColumns
 from .exceptions import DataQualityWarning, InputError
+from .outputs import finite_or_none
 
 __all__ = ["GroupResult", "analyze_groups", "tile_groups", "MIN_GROUPS", "MIN_AUTOCORR"]
 
@@ -145,9 +146,7 @@ class GroupResult:
     def to_dict(self) -> dict:
         """JSON-serialisable summary."""
 
-        def num(v):
-            v = float(v)
-            return v if math.isfinite(v) else None
+        num = finite_or_none
 
         def arr(a):
             return [num(v) for v in np.asarray(a, dtype=float).ravel()]
@@ -246,9 +245,11 @@ def _deviation(s, n, eta, extra, comp):
 
 
 def _autocov(d, valid, max_lag):
+    """Autocovariance of the group deviations at lags 1..max_lag and its standard error (NaN where
+    fewer than 2 site pairs), in squared site fractions."""
     n_sites = d.shape[1]
     out = np.full(max_lag + 1, np.nan)
-    se = np.full(max_lag + 1, np.nan)
+    err = np.full(max_lag + 1, np.nan)
     for k in range(1, max_lag + 1):
         if k >= n_sites:
             break
@@ -258,17 +259,19 @@ def _autocov(d, valid, max_lag):
             continue
         prod = (d[:, :-k] * d[:, k:]).sum(axis=2)[both]
         out[k] = prod.mean()
-        se[k] = prod.std() / math.sqrt(cnt)
-    return out, se
+        err[k] = prod.std() / math.sqrt(cnt)
+    return out, err
 
 
-def _fit_persistence(cov, se, var0):
-    """lam from log C(k) = a + k log lam over the leading lags with clear positive C(k)."""
-    if not (np.isfinite(cov[1]) and cov[1] > 2.0 * se[1] and var0 > 0):
+def _fit_persistence(cov, cov_err, var0):
+    """lam from log C(k) = a + k log lam over the leading lags with clear positive C(k).
+
+    ``cov_err`` is the standard error of ``cov`` (same unit)."""
+    if not (np.isfinite(cov[1]) and cov[1] > 2.0 * cov_err[1] and var0 > 0):
         return 0.0
     ks = []
     for k in range(1, cov.size):
-        if not (np.isfinite(cov[k]) and cov[k] > 0 and cov[k] >= MIN_AUTOCORR * var0 and cov[k] > se[k]):
+        if not (np.isfinite(cov[k]) and cov[k] > 0 and cov[k] >= MIN_AUTOCORR * var0 and cov[k] > cov_err[k]):
             break
         ks.append(k)
     if len(ks) < 2:
@@ -381,7 +384,7 @@ def analyze_groups(columns: RodColumns, group_sizes=None, random_state=None, max
     out = {key: np.zeros(n_sizes) for key in ("mean_rods", "inv_size", "var", "var_raw", "noise", "weight")}
     var_metal = np.zeros((n_sizes, k))
     acov = np.full((n_sizes, max_lag + 1), np.nan)
-    acov_se = np.full((n_sizes, max_lag + 1), np.nan)
+    acov_err = np.full((n_sizes, max_lag + 1), np.nan)
     d1 = None
     for i, (n, g, s, cnt) in enumerate(groups):
         d, valid = _deviation(s, cnt, eta, extra, comp)
@@ -399,7 +402,7 @@ def analyze_groups(columns: RodColumns, group_sizes=None, random_state=None, max
         out["mean_rods"][i] = nv.mean()
         out["inv_size"][i] = np.mean(1.0 / nv)
         out["weight"][i] = nv.size / max(raw_m.sum(), 1e-12) ** 2
-        acov[i, 1:], acov_se[i, 1:] = (a[1:] for a in _autocov(d, valid, max_lag))
+        acov[i, 1:], acov_err[i, 1:] = (a[1:] for a in _autocov(d, valid, max_lag))
         acov[i, 0] = out["var"][i]
         if n == 1:
             d1 = (d, valid)
@@ -433,7 +436,7 @@ def analyze_groups(columns: RodColumns, group_sizes=None, random_state=None, max
             rho_nb = float((d[i] * d[j]).sum(axis=2)[both].mean() / sigma2)
 
     # along-rod correlation from the smallest group size
-    lam = _fit_persistence(acov[0], acov_se[0], acov[0, 0])
+    lam = _fit_persistence(acov[0], acov_err[0], acov[0, 0])
     if lam <= 0:
         length = 0.0
     elif lam >= 1:

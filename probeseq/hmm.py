@@ -10,9 +10,10 @@ emission likelihood 1 (log-emission 0), which leaves every result of the real si
   rescaled every ``RESCALE_EVERY`` steps (every step when the range checks ask for it), which
   keeps every number in range for sequences of any length (checked on 5 x 10^4 sites).
 * :func:`viterbi` -- the most probable state path, in log space.
-* :func:`stationary_distribution`, :func:`update_transmat` -- the transition-matrix M-step for a
-  chain that starts in its own stationary distribution (a generalised EM step with a
-  back-tracking guard, so the likelihood never decreases).
+* :func:`update_transmat` -- the transition-matrix M-step for a chain that starts in its own
+  stationary distribution (a generalised EM step with a back-tracking guard, so the likelihood
+  never decreases); :func:`stationary_distribution` is :func:`probeseq.chain.stationary_distribution`,
+  kept here under its old name.
 * :func:`run_em` -- the generic EM loop: iteration limit, tolerance, best-so-far tracking.
 
 Layout convention: arrays are ``(n_seq, n_steps, n_states)`` at the interface; internally the
@@ -26,6 +27,7 @@ from typing import Callable
 
 import numpy as np
 
+from .chain import stationary_distribution
 from .exceptions import InputError
 
 __all__ = [
@@ -422,30 +424,6 @@ def viterbi(log_emission, transmat, startprob, *, lengths=None, time_major: bool
     if lengths is not None:
         path[np.arange(n_steps)[None, :] > last[:, None]] = -1
     return logprob, path
-
-
-def stationary_distribution(transmat) -> np.ndarray:
-    """Stationary distribution pi of a transition matrix (pi A = pi, sum 1).
-
-    Solved as a least-squares linear system, so reducible chains give one of their
-    stationary distributions rather than failing.
-
-    Parameters
-    ----------
-    transmat : (n_states, n_states) ndarray of float
-
-    Returns
-    -------
-    (n_states,) ndarray of float
-    """
-    a = np.asarray(transmat, dtype=float)
-    k = a.shape[0]
-    m = np.vstack([a.T - np.eye(k), np.ones((1, k))])
-    rhs = np.zeros(k + 1)
-    rhs[-1] = 1.0
-    pi = np.linalg.lstsq(m, rhs, rcond=None)[0]
-    pi = np.clip(pi, 0.0, None)
-    return pi / pi.sum()
 
 
 def _xlogy(x, y):

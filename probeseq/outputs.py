@@ -468,10 +468,40 @@ def staged_file(path, force: bool = False, inputs=(), what: str = "--out"):
 
 
 # ---------------------------------------------------------------------- JSON
+def finite_or_none(value):
+    """A number as a Python float, or None when it is NaN or infinite (JSON has no NaN).
+
+    The one NaN-to-None rule of probeseq's JSON outputs; :func:`to_jsonable` applies it to every
+    float it meets.
+
+    Parameters
+    ----------
+    value : float, int or numpy scalar
+        Any number, in whatever unit it carries (the unit is unchanged).
+
+    Returns
+    -------
+    float or None
+    """
+    v = float(value)
+    return v if np.isfinite(v) else None
+
+
 def to_jsonable(obj):
     """Convert numpy scalars/arrays, paths and tuples, recursively, to plain JSON types.
 
-    Non-finite floats become ``None`` (JSON has no NaN).
+    Non-finite floats become ``None`` (JSON has no NaN, see :func:`finite_or_none`); integers and
+    booleans stay integers and booleans, other objects are returned unchanged.
+
+    Parameters
+    ----------
+    obj : object
+        Nested dicts, lists and tuples of numbers, numpy scalars or arrays, paths and text.
+
+    Returns
+    -------
+    object
+        The same structure made of dict, list, str, int, float, bool and None.
     """
     if isinstance(obj, dict):
         return {str(k): to_jsonable(v) for k, v in obj.items()}
@@ -484,8 +514,7 @@ def to_jsonable(obj):
     if isinstance(obj, (np.integer,)):
         return int(obj)
     if isinstance(obj, (np.floating, float)):
-        v = float(obj)
-        return v if np.isfinite(v) else None
+        return finite_or_none(obj)
     if isinstance(obj, Path):
         return str(obj)
     return obj

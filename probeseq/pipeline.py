@@ -4,6 +4,11 @@
 :func:`write_analysis` writes its output folder (``results.json``, ``tracks.csv``, ``runs.csv`` and
 the intermediate files). Each stage is a pure library call; this module only joins them, times
 them and reports progress through an optional callback.
+
+The stages are public so the stage commands run exactly what ``analyze`` runs:
+:func:`range_file` (ranging on the run's sample), :func:`count_file` / :func:`count_ions`
+(ranging, registration and the fused counting pass, giving a :class:`CountResult`) and
+:func:`decode_stage` (the rod model, and groups of rods when single rods are not resolvable).
 """
 
 from __future__ import annotations
@@ -28,6 +33,8 @@ from .ions import IonList, check_position_extent
 from .lattice import Lattice
 
 __all__ = ["AnalysisOptions", "AnalysisResult", "analyze", "analyze_file", "write_analysis", "RESULTS_SCHEMA_VERSION",
+           "CountResult", "count_ions", "count_file", "range_file", "range_sample", "decode_stage",
+           "write_density_figure",
            "DecodedTracks", "save_decoded", "load_decoded", "read_replicates", "load_results",
            "TRACKS_COLUMNS", "RUNS_COLUMNS"]
 
@@ -274,12 +281,11 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
 
     Notes
     -----
-    Ranging and registration are fitted on a bounded sample of :data:`SAMPLE_IONS` ions taken
-    as :data:`SAMPLE_BLOCKS` contiguous blocks spread evenly over the run (ions are in
-    acquisition order, so each block is a thin depth slice of the whole cross-section); then one
-    fused pass (:mod:`probeseq.counting`) ranges, draws, assigns and counts every ion. This is
-    the same procedure as :func:`analyze_file`, so both give the same count array for the same
-    ions.
+    The stages are :func:`count_ions` (ranging and registration fitted on a bounded sample of
+    :data:`SAMPLE_IONS` ions taken as :data:`SAMPLE_BLOCKS` contiguous blocks spread evenly over
+    the run, then one fused pass of :mod:`probeseq.counting` that ranges, draws, assigns and
+    counts every ion), :func:`decode_stage`, then statistics and classification. This is the
+    same procedure as :func:`analyze_file`, so both give the same count array for the same ions.
 
     See Also
     --------
@@ -287,32 +293,129 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
     """
     opts = options or AnalysisOptions()
     metals = _check_metals(metals)
-    if not isinstance(ions, IonList) or len(ions) == 0:
-        raise InputError("no ions to analyse")
+    _check_ions(ions)
     _preload_libraries()
-    n_sample = {}
+    return _analyze_ions(ions, metals, lattice, opts, ranges, progress, provenance, SAMPLE_IONS)
+
+
+def _analyze_ions(ions, metals, lattice, opts, ranges, progress, provenance, sample_ions) -> AnalysisResult:
+    """:func:`analyze` with checked arguments and a given sample size."""
 
     def counts_stage(clock):
-        n = len(ions)
-        with clock.stage("sampling", f"taking a sample of {min(n, SAMPLE_IONS)} of {n} ions in "
-                                     f"{SAMPLE_BLOCKS} depth blocks"):
-            sample = ions.subset(_block_index(n, SAMPLE_BLOCKS, _block_rows(SAMPLE_IONS)))
-            n_sample["n"] = len(sample)
-        x, y, z = _same_float(ions.x, ions.y, ions.z)
-        m = ions.mass_to_charge
-        bounds = [(s, min(n, s + PASS_CHUNK)) for s in range(0, n, PASS_CHUNK)]
+        return _count_ions(ions, metals, lattice, opts, ranges, clock, sample_ions)
 
-        def blocks():
-            return ((s, x[s:e], y[s:e], z[s:e], m[s:e]) for s, e in bounds)
+    return _run(counts_stage, metals, lattice, opts, progress, provenance, ions.meta)
 
-        rr, cols, n_metal, _, _ = _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, 1.0,
-                                                 message=f"ranging, drawing and binning all {n} ions in one pass")
-        return rr, cols, n_metal
 
+def _check_ions(ions):
+    if not isinstance(ions, IonList) or len(ions) == 0:
+        raise InputError("no ions to analyse")
+
+
+@dataclass(frozen=True)
+class CountResult:
+    """The count stage of one run (:func:`count_file`, :func:`count_ions`): ranging, registration
+    and the count array, exactly as :func:`analyze_file` makes them.
+
+    Attributes
+    ----------
+    ranging : RangingResult
+        The ranged mass spectrum (fitted on at most :data:`RANGING_IONS` ions of the sample).
+    columns : RodColumns
+        Counts (n_rods, n_sites, n_metals), whole ions per site, with their geometry;
+        ``params["detection_balance"]`` holds the per-metal thinning factors of the pass.
+    n_metal_ions : int
+        Ions of the whole run that fall in a range holding a metal.
+    sample : IonList
+        The bounded sample (``sample_ions`` ions at most, in :data:`SAMPLE_BLOCKS` depth blocks)
+        on which the spectrum was ranged and the lattice registered; positions in nm.
+    ions_summary : dict
+        Rows, extents (nm), mass-to-charge range (Da), dropped rows and sample size (the ``ions``
+        section of ``results.json``). For a streamed file ``sha256`` is None (:func:`analyze_file`
+        computes the checksum alongside the later stages).
+    timings_s : dict
+        Wall time of each stage, s.
+    ions : IonList or None
+        The whole ion list when it was held in memory (text files, :func:`count_ions`), else None.
+
+    Notes
+    -----
+    Unpacks as ``ranging, columns, n_metal_ions = count_file(...)``.
+    """
+
+    ranging: object
+    columns: RodColumns
+    n_metal_ions: int
+    sample: IonList = field(repr=False)
+    ions_summary: dict
+    timings_s: dict
+    ions: Optional[IonList] = field(default=None, repr=False)
+
+    @property
+    def figure_ions(self) -> IonList:
+        """The ions the figures draw: the whole list when held in memory, else the sample."""
+        return self.sample if self.ions is None else self.ions
+
+    def __iter__(self):
+        return iter((self.ranging, self.columns, self.n_metal_ions))
+
+
+def count_ions(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: AnalysisOptions | None = None,
+               progress: Progress = None) -> CountResult:
+    """Range, register and count an ion list held in memory: the count stage of :func:`analyze`.
+
+    Parameters
+    ----------
+    ions : IonList
+        Positions in nm, mass-to-charge in Da.
+    metals : sequence of str
+        Metal symbols, in channel order.
+    lattice : Lattice
+    ranges : RangeSet, optional
+        Ranges to use instead of automatic ranging.
+    options : AnalysisOptions, optional
+        Uses ``seed`` (registration, column plan and the per-ion metal draws), ``species`` and the
+        registration overrides ``rotation_deg``, ``scale``, ``offset_nm``.
+    progress : callable(stage, message), optional
+
+    Returns
+    -------
+    CountResult
+        Equal (count array, ranging, registration) to what :func:`analyze` with the same
+        arguments records.
+    """
+    opts = options or AnalysisOptions()
+    metals = _check_metals(metals)
+    _check_ions(ions)
+    _preload_libraries()
+    return _count_ions(ions, metals, lattice, opts, ranges, _Clock(progress), SAMPLE_IONS)
+
+
+def _count_ions(ions, metals, lattice, opts, ranges, clock, sample_ions) -> CountResult:
+    """The count stage on an ion list in memory: sample, fits, then the fused pass over every ion."""
+    n = len(ions)
+    with clock.stage("sampling", f"taking a sample of {min(n, sample_ions)} of {n} ions in "
+                                 f"{SAMPLE_BLOCKS} depth blocks"):
+        sample = _memory_sample(ions, sample_ions)
+    x, y, z = _same_float(ions.x, ions.y, ions.z)
+    m = ions.mass_to_charge
+    bounds = [(s, min(n, s + PASS_CHUNK)) for s in range(0, n, PASS_CHUNK)]
+
+    def blocks():
+        return ((s, x[s:e], y[s:e], z[s:e], m[s:e]) for s, e in bounds)
+
+    rr, cols, n_metal, _, _ = _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, 1.0,
+                                             message=f"ranging, drawing and binning all {n} ions in one pass")
     summary = ions.summary()
-    res = _run(counts_stage, metals, lattice, opts, progress, provenance, summary, ions.meta)
-    summary["sampled_ions"] = int(n_sample["n"])
-    return replace(res, figure_ions=ions)
+    summary["sampled_ions"] = int(len(sample))
+    return CountResult(ranging=rr, columns=cols, n_metal_ions=n_metal, sample=sample, ions_summary=summary,
+                       timings_s=clock.timings, ions=ions)
+
+
+def _memory_sample(ions: IonList, sample_ions: int) -> IonList:
+    """The sample blocks of an ion list in memory (the rows :func:`probeseq.io.read_ion_sample`
+    reads from a file)."""
+    return ions.subset(_block_index(len(ions), SAMPLE_BLOCKS, _block_rows(sample_ions)))
 
 
 #: ions of the bounded sample on which ranging and registration are fitted (both paths)
@@ -396,15 +499,14 @@ def _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, factor,
 def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
     """Ranging, detection balance, registration and column plan, all on the bounded sample."""
     from .columns import plan_columns
-    from .ranging import assign_channels, auto_range
+    from .ranging import assign_channels
     from .registration import register_lattice
 
     m = sample.mass_to_charge
-    stride = max(1, -(-m.size // RANGING_IONS))
-    m_fit = m[::stride]
+    stride = _ranging_stride(m.size)
     with _single_threaded_blas():
-        with clock.stage("ranging", f"ranging the mass spectrum of {m_fit.size} sampled ions"):
-            rr = auto_range(m_fit, metals, species=opts.species, ranges=ranges)
+        with clock.stage("ranging", f"ranging the mass spectrum of {m[::stride].size} sampled ions"):
+            rr = range_sample(sample, metals, species=opts.species, ranges=ranges)
             ca = assign_channels(m, rr.ranges, metals)
             # the ranged ions' channels: a stride of the sample's (assignment is per ion)
             ca_fit = ca if stride == 1 else replace(ca, range_index=ca.range_index[::stride],
@@ -419,6 +521,36 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
                                    offset_nm=opts.offset_nm, random_state=opts.seed)
             geom = plan_columns(x, y, z, reg, random_state=opts.seed)
     return rr, thin, geom
+
+
+def _ranging_stride(n: int) -> int:
+    """Stride over the sample's ions that leaves at most :data:`RANGING_IONS` to range."""
+    return max(1, -(-int(n) // RANGING_IONS))
+
+
+def range_sample(sample: IonList, metals, *, species=None, ranges=None):
+    """Range the mass spectrum of a sample as the count stage does.
+
+    Parameters
+    ----------
+    sample : IonList
+        The sample of a run (:attr:`CountResult.sample`, :func:`range_file`); an even stride of at
+        most :data:`RANGING_IONS` of its ions is ranged.
+    metals : sequence of str
+        Metal symbols, in channel order.
+    species : sequence of str, optional
+        Framework ions to predict instead of the defaults (``AnalysisOptions.species``).
+    ranges : RangeSet, optional
+        Ranges to use instead of automatic ranging (their shares and composition are still fitted).
+
+    Returns
+    -------
+    RangingResult
+    """
+    from .ranging import auto_range
+
+    m = sample.mass_to_charge
+    return auto_range(m[::_ranging_stride(m.size)], tuple(metals), species=species, ranges=ranges)
 
 
 def _start_pass(rr, metals, thin, geom, seed):
@@ -547,27 +679,59 @@ def _check_metals(metals) -> tuple:
     return metals
 
 
-def _run(counts_stage, metals, lattice, opts, progress, provenance, ions_summary, meta) -> AnalysisResult:
-    """The stages after the count array, shared by the in-memory and the streamed analysis."""
-    from .classify import classify
+def decode_stage(columns: RodColumns, options: AnalysisOptions | None = None, *, progress: Progress = None):
+    """Fit the rod model to every rod and decode it, and analyse groups of rods when single rods
+    are not resolvable: the decoding stage of :func:`analyze` and :func:`analyze_file`.
+
+    Parameters
+    ----------
+    columns : RodColumns
+        Counts (n_rods, n_sites, n_metals) of the count stage (:attr:`CountResult.columns`, or
+        read back with :func:`probeseq.data.load_columns`).
+    options : AnalysisOptions, optional
+        Uses ``n_starts`` (EM starts), ``seed`` and ``uncertain_below``.
+    progress : callable(stage, message), optional
+
+    Returns
+    -------
+    decoded : DecodeResult
+        Fitted parameters, Viterbi paths (n_rods, n_sites) and posteriors (n_rods, n_sites,
+        n_metals).
+    groups : GroupResult or None
+        The groups-of-rods analysis when ``columns.resolvable`` is False, else None.
+    """
+    return _decode_stage(columns, options or AnalysisOptions(), _Clock(progress))
+
+
+def _decode_stage(cols, opts, clock):
     from .decode import fit_decoder
+
+    with clock.stage("decoding", f"fitting the rod model to {cols.n_rods} rods x {cols.n_sites} sites"):
+        dec = fit_decoder(cols, n_starts=opts.n_starts, random_state=opts.seed,
+                          uncertain_below=opts.uncertain_below)
+    groups = None
+    if not cols.resolvable:
+        from .groups import analyze_groups
+
+        with clock.stage("groups", "single rods are not resolvable: analysing groups of rods"):
+            groups = analyze_groups(cols, random_state=opts.seed)
+    return dec, groups
+
+
+def _run(counts_stage, metals, lattice, opts, progress, provenance, meta) -> AnalysisResult:
+    """The stages after the count array, shared by the in-memory and the streamed analysis;
+    ``counts_stage(clock)`` returns the :class:`CountResult`."""
+    from .classify import classify
     from .stats import compute_statistics
 
     clock = _Clock(progress)
     with warnings.catch_warnings(record=True) as wlist:
         warnings.simplefilter("always")
         t_counts = time.perf_counter()
-        rr, cols, n_metal = counts_stage(clock)
+        counted = counts_stage(clock)
         clock.timings["to_counts"] = round(time.perf_counter() - t_counts, 4)
-        with clock.stage("decoding", f"fitting the rod model to {cols.n_rods} rods x {cols.n_sites} sites"):
-            dec = fit_decoder(cols, n_starts=opts.n_starts, random_state=opts.seed,
-                              uncertain_below=opts.uncertain_below)
-        groups = None
-        if not cols.resolvable:
-            from .groups import analyze_groups
-
-            with clock.stage("groups", "single rods are not resolvable: analysing groups of rods"):
-                groups = analyze_groups(cols, random_state=opts.seed)
+        cols = counted.columns
+        dec, groups = _decode_stage(cols, opts, clock)
         with clock.stage("statistics", f"statistics with {opts.n_boot} bootstrap resamples over rods"):
             st = compute_statistics(dec, cols, n_boot=opts.n_boot, random_state=opts.seed)
         with clock.stage("classification", "classifying the arrangement"):
@@ -584,14 +748,219 @@ def _run(counts_stage, metals, lattice, opts, progress, provenance, ions_summary
             "lattice": lattice.to_dict(), "lattice_source": lattice.name, "seed": opts.seed,
             "input": {"source": meta.source, "sha256": meta.sha256}}
     prov.update(provenance or {})
-    return AnalysisResult(metals=metals, lattice=lattice, options=opts, ions_summary=ions_summary, ranging=rr,
-                          n_metal_ions=n_metal, columns=cols, decoded=dec, groups=groups, statistics=st,
-                          classification=cl, timings_s=clock.timings, warnings=tuple(warn), provenance=prov)
+    return AnalysisResult(metals=metals, lattice=lattice, options=opts, ions_summary=counted.ions_summary,
+                          ranging=counted.ranging, n_metal_ions=counted.n_metal_ions, columns=cols, decoded=dec,
+                          groups=groups, statistics=st, classification=cl, timings_s=clock.timings,
+                          warnings=tuple(warn), provenance=prov, figure_ions=counted.figure_ions)
 
 
 #: HDF5 files with at most this many ions are read whole and passed to :func:`analyze`
 #: (0: every HDF5 file is streamed; both paths give the same count array)
 STREAM_ABOVE_IONS = 0
+
+
+def _check_pass_sizes(chunk_size, sample_ions):
+    if isinstance(chunk_size, bool) or not isinstance(chunk_size, (int, np.integer)) or chunk_size < 1:
+        raise InputError(f"chunk_size must be a positive integer, got {chunk_size!r}")
+    if isinstance(sample_ions, bool) or not isinstance(sample_ions, (int, np.integer)) or sample_ions < 1000:
+        raise InputError(f"sample_ions must be an integer >= 1000, got {sample_ions!r}")
+
+
+def _read_whole(path, kind, stream_above, position_dataset, mass_dataset) -> bool:
+    """Whether an ion file is read whole (text, or HDF5 of at most ``stream_above`` ions) rather
+    than streamed."""
+    from .io import count_ions as n_rows
+
+    return kind == "text" or bool(stream_above and n_rows(path, position_dataset, mass_dataset) <= stream_above)
+
+
+def _read_all(path, progress, length_unit, position_dataset, mass_dataset, strict) -> IonList:
+    from .io import read_ions
+
+    if progress:
+        progress("reading", f"{path}")
+    return read_ions(path, length_unit=length_unit, position_dataset=position_dataset,
+                     mass_dataset=mass_dataset, strict=strict)
+
+
+def count_file(path, metals, lattice: Lattice, *, ranges=None, options: AnalysisOptions | None = None,
+               length_unit=None, position_dataset=None, mass_dataset=None, strict: bool = False,
+               progress: Progress = None, stream_above: int = STREAM_ABOVE_IONS, chunk_size: int = PASS_CHUNK,
+               sample_ions: int = SAMPLE_IONS) -> CountResult:
+    """Range, register and count an ion file: the count stage of :func:`analyze_file`.
+
+    Text files (and HDF5 files of at most ``stream_above`` ions) are read whole and counted by
+    :func:`count_ions`'s procedure; HDF5 files are streamed (a sample, then one fused pass in
+    chunks of ``chunk_size`` ions), exactly as :func:`analyze_file` does.
+
+    Parameters
+    ----------
+    path : str or Path
+        Ion file (.csv, .tsv, .txt, .h5).
+    metals : sequence of str
+        Metal symbols, in channel order.
+    lattice : Lattice
+    ranges : RangeSet, optional
+        Ranges to use instead of automatic ranging.
+    options : AnalysisOptions, optional
+        Uses ``seed``, ``species``, ``rotation_deg``, ``scale`` and ``offset_nm``.
+    length_unit, position_dataset, mass_dataset, strict
+        As for :func:`probeseq.io.read_ions`.
+    progress : callable(stage, message), optional
+    stream_above, chunk_size, sample_ions : int
+        As for :func:`analyze_file`.
+
+    Returns
+    -------
+    CountResult
+        Equal (count array, ranging, registration) to what :func:`analyze_file` with the same
+        arguments records.
+    """
+    from .io import ion_file_kind
+
+    _preload_libraries()
+    opts = options or AnalysisOptions()
+    metals = _check_metals(metals)
+    kind = ion_file_kind(path)
+    _check_pass_sizes(chunk_size, sample_ions)
+    clock = _Clock(progress)
+    if _read_whole(path, kind, stream_above, position_dataset, mass_dataset):
+        ions = _read_all(path, progress, length_unit, position_dataset, mass_dataset, strict)
+        _check_ions(ions)
+        return _count_ions(ions, metals, lattice, opts, ranges, clock, sample_ions)
+    return _count_stream(path, metals, lattice, opts, ranges, clock, length_unit=length_unit,
+                         position_dataset=position_dataset, mass_dataset=mass_dataset, strict=strict,
+                         chunk_size=chunk_size, sample_ions=sample_ions)
+
+
+def range_file(path, metals, *, species=None, ranges=None, length_unit=None, position_dataset=None,
+               mass_dataset=None, strict: bool = False, progress: Progress = None,
+               stream_above: int = STREAM_ABOVE_IONS, sample_ions: int = SAMPLE_IONS):
+    """Range the mass spectrum of an ion file on the sample :func:`count_file` ranges.
+
+    The sample is the one of the count stage (:data:`SAMPLE_BLOCKS` contiguous blocks of at most
+    ``sample_ions`` ions in all, spread evenly over the file: the whole file when it is smaller),
+    and the spectrum is ranged by :func:`range_sample`, so with the same ``species`` and
+    ``ranges`` the result equals :attr:`CountResult.ranging`. An HDF5 file is read only in its
+    sample blocks (so ``strict`` checks the sampled rows); a text file is read whole.
+
+    Parameters
+    ----------
+    path : str or Path
+        Ion file (.csv, .tsv, .txt, .h5).
+    metals : sequence of str
+        Metal symbols, in channel order.
+    species : sequence of str, optional
+        Framework ions to predict instead of the defaults.
+    ranges : RangeSet, optional
+        Ranges to use instead of automatic ranging.
+    length_unit, position_dataset, mass_dataset, strict
+        As for :func:`probeseq.io.read_ions`.
+    progress : callable(stage, message), optional
+    stream_above, sample_ions : int
+        As for :func:`analyze_file`.
+
+    Returns
+    -------
+    ranging : RangingResult
+    sample : IonList
+        The sample (positions in nm, mass-to-charge in Da).
+    """
+    from .io import IonSource, ion_file_kind
+
+    metals = _check_metals(metals)
+    kind = ion_file_kind(path)
+    _check_pass_sizes(PASS_CHUNK, sample_ions)
+    clock = _Clock(progress)
+    if _read_whole(path, kind, stream_above, position_dataset, mass_dataset):
+        ions = _read_all(path, progress, length_unit, position_dataset, mass_dataset, strict)
+        _check_ions(ions)
+        n = len(ions)
+        with clock.stage("sampling", f"taking a sample of {min(n, sample_ions)} of {n} ions in "
+                                     f"{SAMPLE_BLOCKS} depth blocks"):
+            sample = _memory_sample(ions, sample_ions)
+    else:
+        with IonSource(path, length_unit=length_unit, position_dataset=position_dataset,
+                       mass_dataset=mass_dataset) as src:
+            sample = _stream_sample(src, path, clock, sample_ions, strict)
+    n_fit = sample.mass_to_charge[::_ranging_stride(len(sample))].size
+    with _single_threaded_blas():
+        with clock.stage("ranging", f"ranging the mass spectrum of {n_fit} sampled ions"):
+            rr = range_sample(sample, metals, species=species, ranges=ranges)
+    return rr, sample
+
+
+def _stream_sample(src, path, clock, sample_ions, strict) -> IonList:
+    """The sample blocks of an open :class:`probeseq.io.IonSource` (invalid rows dropped)."""
+    from .io import read_ion_sample
+
+    n = src.n
+    with clock.stage("sampling", f"reading a sample of {min(n, sample_ions)} of {n} ions in "
+                                 f"{SAMPLE_BLOCKS} depth blocks"):
+        sample, _ = read_ion_sample(src, SAMPLE_BLOCKS, _block_rows(sample_ions), strict=strict)
+    if len(sample) == 0:
+        raise InputError(f"{path}: no valid ions in the sample (all rows dropped)")
+    return sample
+
+
+def _count_stream(path, metals, lattice, opts, ranges, clock, *, length_unit, position_dataset, mass_dataset,
+                  strict, chunk_size, sample_ions, after_pass=None) -> CountResult:
+    """The count stage of a streamed HDF5 file: sample, fits, then the fused pass in chunks.
+
+    ``after_pass()`` is called once the count array is finished and the file closed (before the
+    dropped rows are reported).
+    """
+    from .io import IonSource
+
+    with IonSource(path, length_unit=length_unit, position_dataset=position_dataset,
+                   mass_dataset=mass_dataset) as src:
+        n = src.n
+        sample = _stream_sample(src, path, clock, sample_ions, strict)
+
+        def blocks():
+            return _file_blocks(src, int(chunk_size))
+
+        rr, cols, n_metal, tally, ext = _fit_and_count(
+            sample, metals, lattice, opts, ranges, clock, blocks, src.factor, strict=strict, where=str(path),
+            message=f"ranging, drawing and binning all {n} ions in chunks of {chunk_size}")
+        # the sample was checked on reading; the rows outside it are checked by their extent
+        check_position_extent({"x": (float(ext[0]), float(ext[1])), "y": (float(ext[2]), float(ext[3])),
+                               "z": (float(ext[4]), float(ext[5]))}, str(path))
+        unit = src.unit
+    if after_pass is not None:
+        after_pass()
+    summary = _stream_summary(path, tally, ext, unit, n, len(sample))
+    return CountResult(ranging=rr, columns=cols, n_metal_ions=n_metal, sample=sample, ions_summary=summary,
+                       timings_s=clock.timings)
+
+
+def _stream_summary(path, tally, ext, unit, n_rows, n_sample) -> dict:
+    """The ``ions`` section of a streamed file from the pass's tally and extents (``sha256``
+    None); warns of dropped rows, and raises when no row was valid."""
+    from .counting import tally_dict
+
+    t = tally_dict(tally)
+    dropped = {}
+    if t["n_nonfinite"]:
+        dropped["non-finite"] = t["n_nonfinite"]
+    if t["n_nonpositive"]:
+        dropped["non-positive mass_to_charge"] = t["n_nonpositive"]
+    if dropped:
+        why = ", ".join(f"{v} {k}" for k, v in dropped.items())
+        warnings.warn(f"{path}: dropped {sum(dropped.values())} rows ({why})", DataQualityWarning, stacklevel=3)
+    if t["n_valid"] == 0:
+        raise InputError(f"{path}: no valid ions (all {n_rows} rows dropped: {dropped})")
+    n_valid = int(tally[1])
+    summary = {"n_ions": n_valid, "source": str(path), "sha256": None,
+               "length_unit_in_file": unit, "rows_dropped": int(sum(dropped.values())),
+               "dropped": dropped, "columns": ["x", "y", "z", "mass_to_charge"]}
+    if n_valid:
+        summary.update({"x_range_nm": [float(ext[0]), float(ext[1])], "y_range_nm": [float(ext[2]), float(ext[3])],
+                        "z_range_nm": [float(ext[4]), float(ext[5])],
+                        "mass_to_charge_range_da": [float(ext[6]), float(ext[7])]})
+    summary.update({"n_rows": int(n_rows), "sampled_ions": int(n_sample),
+                    "sample_blocks": int(SAMPLE_BLOCKS), "streamed": True})
+    return summary
 
 
 def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: AnalysisOptions | None = None,
@@ -601,9 +970,12 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
                  sample_ions: int = SAMPLE_IONS) -> AnalysisResult:
     """Run the whole pipeline on an ion file; HDF5 files are streamed with bounded memory.
 
-    Text files (and HDF5 files of at most ``stream_above`` ions, 0 by default) are read whole and
-    passed to :func:`analyze`. An HDF5 file is read in two steps, so peak memory is the count array
-    plus a sample and two chunks:
+    The stages are those of the library: the count stage :func:`count_file` (ranging,
+    registration and the fused counting pass), :func:`decode_stage`, then statistics and
+    classification. Text files (and HDF5 files of at most ``stream_above`` ions, 0 by default) are
+    read whole and analysed as by :func:`analyze` (with a sample of at most ``sample_ions`` ions,
+    taken by the same rule as from a streamed file). An HDF5 file is read in two steps, so peak
+    memory is the count array plus a sample and two chunks:
 
     1. a sample of at most ``sample_ions`` ions, read as :data:`SAMPLE_BLOCKS` contiguous blocks
        spread evenly over the file (each a thin depth slice of the whole cross-section), on which
@@ -623,116 +995,68 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
     for the counts and is waited for at the end (``timings_s.checksum_wait``).
     ``timings_s.startup`` is the library start-up before the clock (imports, numba's runtime).
     """
-    from .io import IonSource, count_ions, file_sha256_mapped, ion_file_kind, read_ion_sample, read_ions
+    from .io import ion_file_kind
 
     t_start = _preload_libraries()
     opts = options or AnalysisOptions()
     metals = _check_metals(metals)
     kind = ion_file_kind(path)
-    if isinstance(chunk_size, bool) or not isinstance(chunk_size, (int, np.integer)) or chunk_size < 1:
-        raise InputError(f"chunk_size must be a positive integer, got {chunk_size!r}")
-    if isinstance(sample_ions, bool) or not isinstance(sample_ions, (int, np.integer)) or sample_ions < 1000:
-        raise InputError(f"sample_ions must be an integer >= 1000, got {sample_ions!r}")
+    _check_pass_sizes(chunk_size, sample_ions)
     t0 = time.perf_counter()
-    if kind == "text" or (stream_above and count_ions(path, position_dataset, mass_dataset) <= stream_above):
-        if progress:
-            progress("reading", f"{path}")
-        ions = read_ions(path, length_unit=length_unit, position_dataset=position_dataset,
-                         mass_dataset=mass_dataset, strict=strict)
+    if _read_whole(path, kind, stream_above, position_dataset, mass_dataset):
+        ions = _read_all(path, progress, length_unit, position_dataset, mass_dataset, strict)
         t_read = time.perf_counter() - t0
-        res = analyze(ions, metals, lattice, ranges=ranges, options=opts, progress=progress, provenance=provenance)
+        _check_ions(ions)
+        res = _analyze_ions(ions, metals, lattice, opts, ranges, progress, provenance, sample_ions)
         res.timings_s["startup"] = round(t_start, 4)
         res.timings_s["read"] = round(t_read, 4)
         res.timings_s["read_to_counts"] = round(t_read + res.timings_s["to_counts"], 4)
         res.timings_s["total"] = round(time.perf_counter() - t0, 4)
         return res
+    res, t_wait = _analyze_stream(path, metals, lattice, opts, ranges, progress, provenance, t0,
+                                  dict(length_unit=length_unit, position_dataset=position_dataset,
+                                       mass_dataset=mass_dataset, strict=strict, chunk_size=chunk_size,
+                                       sample_ions=sample_ions))
+    res.timings_s["startup"] = round(t_start, 4)
+    res.timings_s["checksum_wait"] = round(t_wait, 4)
+    res.timings_s["total"] = round(time.perf_counter() - t0, 4)
+    return res
 
-    state = {}
-    block_rows = _block_rows(sample_ions)
+
+def _analyze_stream(path, metals, lattice, opts, ranges, progress, provenance, t0, read_args):
+    """:func:`analyze_file` on a streamed HDF5 file; returns (result, seconds waited for the checksum).
+
+    The checksum thread starts once the count array is finished (``after_pass``): hashing during
+    the pass slowed the pass (both read the file through memory maps of the page cache):
+    read_to_counts at 1e8 ions had a median of 1.90 s against 1.65 s with the checksum after it,
+    in 8 alternating runs each.
+    """
+    from .io import file_sha256_mapped
+    from .ions import IonMeta
 
     sha = {}
     hasher = threading.Thread(target=_checksum_in_background, args=(file_sha256_mapped, path, sha), daemon=True,
                               name="probeseq-sha256")
 
     def counts_stage(clock):
-        try:
-            with IonSource(path, length_unit=length_unit, position_dataset=position_dataset,
-                           mass_dataset=mass_dataset) as src:
-                n = src.n
-                with clock.stage("sampling", f"reading a sample of {min(n, sample_ions)} of {n} ions in "
-                                             f"{SAMPLE_BLOCKS} depth blocks"):
-                    sample, _ = read_ion_sample(src, SAMPLE_BLOCKS, block_rows, strict=strict)
-                if len(sample) == 0:
-                    raise InputError(f"{path}: no valid ions in the sample (all rows dropped)")
-
-                def blocks():
-                    return _file_blocks(src, int(chunk_size))
-
-                rr, cols, n_metal, tally, ext = _fit_and_count(
-                    sample, metals, lattice, opts, ranges, clock, blocks, src.factor, strict=strict, where=str(path),
-                    message=f"ranging, drawing and binning all {n} ions in chunks of {chunk_size}")
-                # the sample was checked on reading; the rows outside it are checked by their extent
-                check_position_extent({"x": (float(ext[0]), float(ext[1])), "y": (float(ext[2]), float(ext[3])),
-                                       "z": (float(ext[4]), float(ext[5]))}, str(path))
-                unit = src.unit
-            # the count array is finished here; the checksum (provenance, not needed for the counts)
-            # starts now and runs at low priority alongside the next stages; it is waited for at the
-            # end. Hashing during the pass slowed the pass (both read the file through memory maps
-            # of the page cache): read_to_counts at 1e8 ions had a median of 1.90 s against 1.65 s
-            # with the checksum after it, in 8 alternating runs each
+        def after_pass():
             clock.timings["read_to_counts"] = round(time.perf_counter() - t0, 4)
             hasher.start()
-        except BaseException:
-            if hasher.ident is not None:
-                hasher.join()
-            raise
-        state.update(tally=tally, ext=ext, unit=unit, sample=sample, n_rows=n)
-        from .counting import tally_dict
 
-        t = tally_dict(tally)
-        dropped = {}
-        if t["n_nonfinite"]:
-            dropped["non-finite"] = t["n_nonfinite"]
-        if t["n_nonpositive"]:
-            dropped["non-positive mass_to_charge"] = t["n_nonpositive"]
-        state["dropped"] = dropped
-        if dropped:
-            why = ", ".join(f"{v} {k}" for k, v in dropped.items())
-            warnings.warn(f"{path}: dropped {sum(dropped.values())} rows ({why})", DataQualityWarning, stacklevel=2)
-        if t["n_valid"] == 0:
-            raise InputError(f"{path}: no valid ions (all {n} rows dropped: {dropped})")
-        return rr, cols, n_metal
+        return _count_stream(path, metals, lattice, opts, ranges, clock, after_pass=after_pass, **read_args)
 
-    from .ions import IonMeta
-
-    meta = IonMeta(str(path), "", length_unit or "nm")
+    meta = IonMeta(str(path), "", read_args["length_unit"] or "nm")
     try:
-        res = _run(counts_stage, metals, lattice, opts, progress, provenance, {}, meta)
+        res = _run(counts_stage, metals, lattice, opts, progress, provenance, meta)
     finally:
+        t_wait = time.perf_counter()
         if hasher.ident is not None:
-            t_wait = time.perf_counter()
             hasher.join()
-            t_wait = time.perf_counter() - t_wait
+        t_wait = time.perf_counter() - t_wait
     if isinstance(sha.get("hex"), BaseException):
         raise sha["hex"]
-    state["sha"] = sha["hex"]
-    t = state["tally"]
-    ext = state["ext"]
-    n_valid = int(t[1])
-    summary = {"n_ions": n_valid, "source": str(path), "sha256": state["sha"],
-               "length_unit_in_file": state["unit"], "rows_dropped": int(sum(state["dropped"].values())),
-               "dropped": state["dropped"], "columns": ["x", "y", "z", "mass_to_charge"]}
-    if n_valid:
-        summary.update({"x_range_nm": [float(ext[0]), float(ext[1])], "y_range_nm": [float(ext[2]), float(ext[3])],
-                        "z_range_nm": [float(ext[4]), float(ext[5])],
-                        "mass_to_charge_range_da": [float(ext[6]), float(ext[7])]})
-    summary.update({"n_rows": int(state["n_rows"]), "sampled_ions": len(state["sample"]),
-                    "sample_blocks": int(SAMPLE_BLOCKS), "streamed": True})
-    res.provenance["input"] = {"source": str(path), "sha256": state["sha"]}
-    res.timings_s["startup"] = round(t_start, 4)
-    res.timings_s["checksum_wait"] = round(t_wait, 4)
-    res.timings_s["total"] = round(time.perf_counter() - t0, 4)
-    return replace(res, ions_summary=summary, figure_ions=state["sample"])
+    res.provenance["input"] = {"source": str(path), "sha256": sha["hex"]}
+    return replace(res, ions_summary={**res.ions_summary, "sha256": sha["hex"]}), t_wait
 
 
 _PRELOADED = []
@@ -1117,16 +1441,33 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> 
 
     attempt("spectrum", spectrum, ())
     if result.figure_ions is not None:
-        def density():
-            from .columns_plot import plot_rod_density
-            from .ranging import assign_channels
-
-            ions = result.figure_ions
-            sel = assign_channels(ions.mass_to_charge, result.ranging.ranges, result.metals).weights().sum(1) > 0
-            return plot_rod_density(ions.x[sel], ions.y[sel], ions.z[sel], result.columns, folder / "density.png")
-
-        attempt("density", density, ())
+        attempt("density", lambda: write_density_figure(result.figure_ions, result.ranging, result.columns,
+                                                        folder / "density.png"), ())
     return figs
+
+
+def write_density_figure(ions: IonList, ranging, columns: RodColumns, path):
+    """Draw the metal-ion density across the rods with the registered lattice (``density.png``).
+
+    Parameters
+    ----------
+    ions : IonList
+        The ions to draw (:attr:`CountResult.figure_ions`); those in ranges holding a metal of
+        ``columns.metals`` are drawn, positions in nm.
+    ranging : RangingResult
+    columns : RodColumns
+    path : str or Path
+        PNG file to write.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from .columns_plot import plot_rod_density
+    from .ranging import assign_channels
+
+    sel = assign_channels(ions.mass_to_charge, ranging.ranges, columns.metals).weights().sum(1) > 0
+    return plot_rod_density(ions.x[sel], ions.y[sel], ions.z[sel], columns, path)
 
 
 def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: Callable | None = None,

@@ -114,13 +114,13 @@ def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_r
         raise InputError(f"--metals needs at least two metals, got {list(metals)}")
     if not isinstance(lattice, Lattice):
         raise InputError(f"lattice must be a probeseq Lattice, got {type(lattice).__name__}")
-    check_number(efficiency, "--efficiency", 0, 1, lo_open=True)
-    check_number(lateral_resolution_nm, "--lateral-resolution (nm)", 0, lattice.nearest_rod_distance_nm,
+    check_number(efficiency, "--detection-efficiency", 0, 1, lo_open=True)
+    check_number(lateral_resolution_nm, "--lateral-blur (nm)", 0, lattice.nearest_rod_distance_nm,
                  hi_open=True)
     check_number(n_per_pattern, "--runs-per-pattern", 1, MAX_RUNS_PER_CASE, integer=True)
     check_number(n_per_persistence, "--runs-per-persistence", 1, MAX_RUNS_PER_CASE, integer=True)
     check_number(power, "power", 0, 1, lo_open=True)
-    check_number(top_radius_nm, "--radius (nm)", 0, MAX_TOP_RADIUS_NM, lo_open=True)
+    check_number(top_radius_nm, "--tip-radius (nm)", 0, MAX_TOP_RADIUS_NM, lo_open=True)
     check_number(depth_nm, "--depth (nm)", 0, lo_open=True)
     check_seed(seed)
     if not isinstance(seed, (int, np.integer)):
@@ -152,7 +152,7 @@ def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_r
     total = one * (len(patterns) * n_per_pattern + len(lams) * n_per_persistence)
     if total > MAX_PLAN_IONS:
         raise InputError(f"the plan would simulate about {total:.2g} ions ({one:.2g} per run), more than its limit "
-                         f"of {MAX_PLAN_IONS:.0e}; reduce --radius, --depth or the runs per case")
+                         f"of {MAX_PLAN_IONS:.0e}; reduce --tip-radius, --depth or the runs per case")
     for lam in lams:
         for i in range(n_per_persistence):
             s += 1

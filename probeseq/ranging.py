@@ -715,8 +715,10 @@ def _identity() -> Calibration:
 
 
 def _num(x):
-    x = float(x)
-    return x if math.isfinite(x) else None
+    """A number for JSON: a float, or None for NaN and infinities (:func:`probeseq.outputs.finite_or_none`)."""
+    from .outputs import finite_or_none
+
+    return finite_or_none(x)
 
 
 # ============================================================================ species and lines

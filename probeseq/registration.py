@@ -527,8 +527,10 @@ class Registration:
 
 
 def _f(v):
-    v = float(v)
-    return v if math.isfinite(v) else None
+    """A number for JSON: a float, or None for NaN and infinities (:func:`probeseq.outputs.finite_or_none`)."""
+    from .outputs import finite_or_none
+
+    return finite_or_none(v)
 
 
 # ====================================================================== Fourier stage

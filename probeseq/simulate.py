@@ -132,7 +132,7 @@ class SimConfig:
         if self.lattice is not None and not isinstance(self.lattice, Lattice):
             raise InputError(f"lattice must be a Lattice, got {type(self.lattice).__name__}")
         if self.packing not in PRESETS:
-            raise InputError(f"--packing must be one of {', '.join(sorted(PRESETS))}, got '{self.packing}'")
+            raise InputError(f"--lattice must be one of {', '.join(sorted(PRESETS))}, got '{self.packing}'")
         if isinstance(self.metals, str) or not isinstance(self.metals, (tuple, list)):
             raise InputError(f"--metals must be a list of element symbols, got {self.metals!r:.60}")
         if len(self.metals) < 2:
@@ -152,14 +152,14 @@ class SimConfig:
             if abs(f.sum() - 1.0) > 0.01:  # rounding (0.33,0.33,0.33) is fine; 0.3,0.3 is a mistake
                 raise InputError(f"--composition: the site fractions must add up to 1, got {short_repr(self.composition, 80)} "
                                  f"(sum {f.sum():.3g})")
-        check_number(self.eta, "--eta (detection efficiency)", 0, 1, lo_open=True)
+        check_number(self.eta, "--detection-efficiency (eta)", 0, 1, lo_open=True)
         check_number(self.persistence, "--persistence", 0, 1, hi_open=True, allow_none=True)
         check_number(self.copy_error, "--copy-error", 0, 1)
-        for k, opt in (("a_nm", "--a"), ("repeat_nm", "--repeat"), ("top_radius_nm", "--top-radius"),
+        for k, opt in (("a_nm", "--a"), ("repeat_nm", "--repeat"), ("top_radius_nm", "--tip-radius"),
                        ("depth_nm", "--depth"), ("mrp", "--mrp")):
             check_number(getattr(self, k), opt if k == "mrp" else f"{opt} ({k})", 0, lo_open=True)
-        check_number(self.top_radius_nm, "--top-radius (top_radius_nm)", 0, MAX_TOP_RADIUS_NM, lo_open=True)
-        for k, opt in (("sigma_xy_nm", "--sigma-xy"), ("sigma_z_nm", "--sigma-z"),
+        check_number(self.top_radius_nm, "--tip-radius (top_radius_nm)", 0, MAX_TOP_RADIUS_NM, lo_open=True)
+        for k, opt in (("sigma_xy_nm", "--lateral-blur"), ("sigma_z_nm", "--depth-blur"),
                        ("organic_per_site", "organic_per_site"), ("helix_radius_nm", "helix_radius_nm")):
             check_number(getattr(self, k), f"{opt} ({k})" if opt != k else k, 0)
         check_number(self.sites_per_repeat, "--sites-per-repeat", 1, integer=True)
@@ -192,7 +192,7 @@ class SimConfig:
             raise InputError(f"--depth (depth_nm) {self.depth_nm:g} nm is shorter than one site pitch "
                              f"({lat.pitch_nm:.3g} nm)")
         size = self.expected_size(lat)
-        remedy = "reduce --top-radius (top_radius_nm) or --depth (depth_nm)"
+        remedy = "reduce --tip-radius (top_radius_nm) or --depth (depth_nm)"
         if size["ions"] > MAX_SIM_IONS:
             raise InputError(f"the simulated needle (top radius {self.top_radius_nm:g} nm, depth {self.depth_nm:g} nm) "
                              f"would hold about {size['ions']:.2g} ions, more than the simulator's limit of "
@@ -450,7 +450,7 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     n_rods = rod_xy.shape[0]
     if n_rods == 0:
         raise InputError(f"no rod passes through the simulated needle (top radius {cfg.top_radius_nm:g} nm, rod spacing "
-                         f"{lat.nearest_rod_distance_nm:.3g} nm), so the run would hold no ion; increase --top-radius "
+                         f"{lat.nearest_rod_distance_nm:.3g} nm), so the run would hold no ion; increase --tip-radius "
                          "or reduce --a")
     seq = simulate_sequences(cfg, n_rods, n_sites, rng)
 

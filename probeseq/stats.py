@@ -9,10 +9,13 @@ sum of the *expected* transition counts (posterior-summed xi) over rods, and the
 posterior-summed site occupancy. Quantities that are by definition properties of the decoded path
 (the run-length distribution, the Wald-Wolfowitz runs test) use the path, and say so.
 
-Definitions (K metals, fitted transition matrix P, stationary distribution mu, composition f):
+Definitions (K metals, fitted transition matrix P, stationary distribution mu, composition f;
+the chain quantities are defined once, in :mod:`probeseq.chain`, and listed in docs/GLOSSARY.md):
 
-* mean run length of metal k: ``1 / (1 - P_kk)`` sites (the mean dwell of a Markov chain),
-  and ``1 / (1 - f_k)`` for independent sites of the same composition;
+* mean run length of metal k (``mean_run_length_sites``): ``1 / (1 - P_kk)`` sites of the fitted
+  chain (the mean dwell of a Markov chain), and ``1 / (1 - f_k)`` for independent sites of the
+  same composition. The mean length of the runs on the decoded paths is a different number (the
+  decoder's ``mean_decoded_run_length_sites``: shorter, as runs cut by a rod end or the mask count);
 * persistence: ``P_kk = mu_k + lam_k (1 - mu_k)``, so ``lam_k = (P_kk - mu_k) / (1 - mu_k)``; the
   summary ``lam = sum_k mu_k lam_k``. For K = 2 every ``lam_k = 1 - p01 - p10``;
 * entropy rate ``H = -sum_ij mu_i P_ij log2 P_ij`` bits per site (Cover & Thomas 2006, Thm 4.2.4),
@@ -43,7 +46,14 @@ import numba
 import numpy as np
 from scipy import stats as _sps
 
+from . import chain as _chain
+from .chain import independent_run_lengths as independent_run_length
+from .chain import masked_paths as _masked_paths
+from .chain import mean_run_lengths as mean_run_length
+from .chain import signed_states as _signed_states
+from .chain import stationary_distribution
 from .exceptions import DataQualityWarning, InputError
+from .outputs import to_jsonable
 
 __all__ = [
     "RunStatistics",
@@ -98,36 +108,6 @@ def transition_matrix(counts) -> np.ndarray:
     return np.where(rows > 0, n / np.maximum(rows, _EPS), fallback)
 
 
-def stationary_distribution(transmat) -> np.ndarray:
-    """Stationary distribution mu of a transition matrix (mu P = mu, sum mu = 1).
-
-    Parameters
-    ----------
-    transmat : (..., K, K) ndarray of float
-        Row-stochastic matrices.
-
-    Returns
-    -------
-    (..., K) ndarray of float
-    """
-    p = np.asarray(transmat, dtype=float)
-    k = p.shape[-1]
-    a = np.swapaxes(p, -1, -2) - np.eye(k)
-    a = a.copy()
-    a[..., -1, :] = 1.0
-    b = np.zeros(p.shape[:-1])
-    b[..., -1] = 1.0
-    try:
-        mu = np.linalg.solve(a, b[..., None])[..., 0]
-    except np.linalg.LinAlgError:
-        flat_a = a.reshape(-1, k, k)
-        flat_b = b.reshape(-1, k)
-        mu = np.stack([np.linalg.lstsq(flat_a[i], flat_b[i], rcond=None)[0] for i in range(len(flat_a))])
-        mu = mu.reshape(p.shape[:-1])
-    mu = np.clip(mu, 0.0, None)
-    return mu / np.maximum(mu.sum(axis=-1, keepdims=True), _EPS)
-
-
 def composition_from_occupancy(occupancy) -> np.ndarray:
     """Composition from (expected) site occupancy counts.
 
@@ -147,56 +127,33 @@ def composition_from_occupancy(occupancy) -> np.ndarray:
     return occ / max(float(occ.sum()), _EPS)
 
 
-def mean_run_length(transmat) -> np.ndarray:
-    """Mean run (dwell) length of each state, ``1 / (1 - P_kk)``, in sites.
-
-    Parameters
-    ----------
-    transmat : (..., K, K) ndarray of float
-
-    Returns
-    -------
-    (..., K) ndarray of float, sites
-        ``inf`` for an absorbing state.
-    """
-    d = np.diagonal(np.asarray(transmat, dtype=float), axis1=-2, axis2=-1)
-    with np.errstate(divide="ignore"):
-        return 1.0 / (1.0 - d)
-
-
-def independent_run_length(composition) -> np.ndarray:
-    """Mean run length of independent sites of composition f, ``1 / (1 - f_k)``, in sites."""
-    f = np.asarray(composition, dtype=float)
-    with np.errstate(divide="ignore"):
-        return 1.0 / (1.0 - f)
-
-
 def persistence(transmat, mu=None):
-    """Persistence of a chain: per-state ``lam_k`` and the mu-weighted summary.
+    """Persistence of a chain: the summary ``lam`` and the per-metal ``lam_k``.
 
-    ``P_kk = mu_k + lam_k (1 - mu_k)`` as in the simulator's chains (keep the state with
-    probability lam, else redraw from the composition), so ``lam_k = (P_kk - mu_k)/(1 - mu_k)``:
-    0 for independent sites, 1 for a chain that never changes state, negative for alternation.
+    Both come from :mod:`probeseq.chain` (:func:`probeseq.chain.persistence` and
+    :func:`probeseq.chain.persistence_per_state`), the one definition that the decoder, the
+    statistics and the report use: ``lam_k = (P_kk - mu_k) / (1 - mu_k)``, ``lam = sum_k mu_k lam_k``.
 
     Parameters
     ----------
     transmat : (..., K, K) ndarray of float
+        Row-stochastic matrices.
     mu : (..., K) ndarray of float, optional
-        Composition to measure against; the chain's stationary distribution by default.
+        Composition to measure against (site fractions); the chain's stationary distribution by
+        default.
 
     Returns
     -------
     lam : (...,) ndarray of float
-        ``sum_k mu_k lam_k``.
+        ``sum_k mu_k lam_k``, dimensionless.
     lam_k : (..., K) ndarray of float
+        Dimensionless.
     """
     p = np.asarray(transmat, dtype=float)
     mu = stationary_distribution(p) if mu is None else np.asarray(mu, dtype=float)
-    d = np.diagonal(p, axis1=-2, axis2=-1)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        lam_k = (d - mu) / (1.0 - mu)
-    lam = np.nansum(mu * lam_k, axis=-1)
-    return lam, lam_k
+    lam_k = _chain.persistence_per_state(p, mu)
+    return np.asarray(_chain.persistence(p, mu)), lam_k
+
 
 
 def _xlog2x(p):
@@ -303,37 +260,6 @@ def _count_transitions(p, tr, occ):
 
 
 # ---------------------------------------------------------------------- decoded paths
-def _masked_paths(paths, mask=None) -> np.ndarray:
-    """Paths as a signed integer array, negative where masked.
-
-    A signed integer input keeps its dtype (so int8 paths stay int8); unsigned and boolean inputs
-    are widened to the smallest signed type that holds them; anything else is cast to int64. Masked
-    sites are set to -1 (in a copy; the input is never changed).
-    """
-    p = np.asarray(paths)
-    if p.ndim != 2:
-        raise InputError(f"decoded paths must be (n_rods, n_sites), got shape {p.shape}")
-    p = _signed_states(p)
-    if mask is not None:
-        m = np.asarray(mask, dtype=bool)
-        if m.shape != p.shape:
-            raise InputError(f"mask shape {m.shape} does not match decoded paths {p.shape}")
-        p = np.where(m, p, p.dtype.type(-1))
-    return p
-
-
-def _signed_states(p: np.ndarray) -> np.ndarray:
-    """A signed integer view or copy of a state array (no copy for signed integer dtypes)."""
-    kind = p.dtype.kind
-    if kind == "i":
-        return p
-    if kind == "b":
-        return p.astype(np.int8)
-    if kind == "u":
-        return p.astype(np.int16 if p.itemsize == 1 else np.int32 if p.itemsize == 2 else np.int64)
-    return p.astype(np.int64)
-
-
 def _state_dtype(n_states: int):
     """Smallest signed integer dtype holding -1 and states 0..n_states-1."""
     for dt in (np.int8, np.int16, np.int32):
@@ -371,6 +297,8 @@ class RunLengths:
 def decoded_runs(paths, mask=None) -> RunLengths:
     """Split decoded paths into runs, marking those cut by a rod end or the mask.
 
+    The runs are those of :func:`probeseq.chain.list_runs` (the one run listing of probeseq).
+
     Parameters
     ----------
     paths : (n_rods, n_sites) ndarray of int
@@ -381,45 +309,9 @@ def decoded_runs(paths, mask=None) -> RunLengths:
     -------
     RunLengths
     """
-    p = _masked_paths(paths, mask)
-    none, flags = np.empty(0, np.int64), np.empty(0, np.bool_)
-    n = _fill_runs(p, none, none, none, none, flags, flags, False)  # count them first
-    rod = np.empty(n, np.int64)
-    start = np.empty(n, np.int64)
-    length = np.empty(n, np.int64)
-    state = np.empty(n, np.int64)
-    left = np.empty(n, np.bool_)
-    right = np.empty(n, np.bool_)
-    _fill_runs(p, rod, start, length, state, left, right, True)
-    return RunLengths(rod=rod, start=start, length=length, state=state, left_truncated=left,
-                      right_truncated=right)
-
-
-@numba.njit(cache=True, nogil=True)
-def _fill_runs(p, rod, start, length, state, left, right, write):
-    """Runs of non-negative states in the paths (a masked site ends a run), in path order; returns
-    their number. With ``write``, their rod, start, length, state and truncation flags are written
-    to the arrays (sized by a first call without)."""
-    n_rods, n_sites = p.shape
-    q = 0
-    for r in range(n_rods):
-        s = 0
-        while s < n_sites:
-            v = p[r, s]
-            e = s + 1
-            while e < n_sites and p[r, e] == v:
-                e += 1
-            if v >= 0:
-                if write:
-                    rod[q] = r
-                    start[q] = s
-                    length[q] = e - s
-                    state[q] = v
-                    left[q] = s == 0 or p[r, s - 1] < 0
-                    right[q] = e == n_sites or p[r, e] < 0
-                q += 1
-            s = e
-    return q
+    runs = _chain.list_runs(paths, mask)
+    return RunLengths(rod=runs["rod"], start=runs["first_site"], length=runs["length"], state=runs["metal"],
+                      left_truncated=runs["left_truncated"], right_truncated=runs["right_truncated"])
 
 
 @numba.njit(cache=True, nogil=True)
@@ -1414,25 +1306,25 @@ class RunStatistics:
         e = self.estimates
         out = {
             "metals": list(self.metals),
-            "pitch_nm": _j(self.pitch_nm),
+            "pitch_nm": to_jsonable(self.pitch_nm),
             "n_rods": int(self.n_rods),
             "n_sites_used": int(self.n_sites_used),
             "n_boot": int(self.n_boot),
             "random_state": self.random_state,
             "least_abundant": self.metals[self.least_abundant],
-            "transmat": _j(self.transmat),
+            "transmat": to_jsonable(self.transmat),
             "notes": list(self.notes),
         }
         for grp in ("composition", "mean_run_length_sites", "mean_run_length_nm", "run_length_ratio",
                     "independent_run_length_sites", "persistence_per_metal"):
-            out[grp] = {mt: _j(e[f"{grp}.{mt}"]) for mt in self.metals}
+            out[grp] = {mt: to_jsonable(e[f"{grp}.{mt}"]) for mt in self.metals}
         for key in ("persistence", "entropy_rate_bits", "entropy_independent_bits"):
-            out[key] = _j(e[key])
+            out[key] = to_jsonable(e[key])
         out["runs_test"] = {
             "metal": self.metals[self.least_abundant],
-            "z": _j(e["runs_test.z"]),
-            "p": _j(e["runs_test.p"]),
-            "per_metal": {mt: {kk: _j(vv) for kk, vv in d.items()} for mt, d in self.runs_test_per_metal.items()},
+            "z": to_jsonable(e["runs_test.z"]),
+            "p": to_jsonable(e["runs_test.p"]),
+            "per_metal": {mt: {kk: to_jsonable(vv) for kk, vv in d.items()} for mt, d in self.runs_test_per_metal.items()},
         }
         rr = self.rod_to_rod
         if rr is None:
@@ -1440,50 +1332,32 @@ class RunStatistics:
         else:
             out["rod_to_rod"] = {
                 "metal": self.metals[rr.metal],
-                "corr": _j(rr.corr),
-                "corr_lags": {str(int(d)): _j(c) for d, c in zip(rr.lags, rr.corr_lags)},
-                "statistic": _j(rr.statistic),
+                "corr": to_jsonable(rr.corr),
+                "corr_lags": {str(int(d)): to_jsonable(c) for d, c in zip(rr.lags, rr.corr_lags)},
+                "statistic": to_jsonable(rr.statistic),
                 "best_lag": int(rr.best_lag),
-                "p_value": _j(rr.p_value),
-                "null_mean": _j(rr.null_mean),
+                "p_value": to_jsonable(rr.p_value),
+                "null_mean": to_jsonable(rr.null_mean),
                 "n_null": int(np.isfinite(rr.null).sum()),
-                "corr_nonneighbour": _j(rr.corr_nonneighbour),
-                "p_nonneighbour": _j(rr.p_nonneighbour),
-                "kappa": _j(rr.kappa),
-                "corr_corrected": _j(rr.corr_corrected),
-                "corr_corrected_lags": {str(int(d)): _j(c) for d, c in zip(rr.lags, rr.corr_corrected_lags)},
-                "statistic_corrected": _j(rr.statistic_corrected),
-                "reliability": _j(rr.reliability),
+                "corr_nonneighbour": to_jsonable(rr.corr_nonneighbour),
+                "p_nonneighbour": to_jsonable(rr.p_nonneighbour),
+                "kappa": to_jsonable(rr.kappa),
+                "corr_corrected": to_jsonable(rr.corr_corrected),
+                "corr_corrected_lags": {str(int(d)): to_jsonable(c) for d, c in zip(rr.lags, rr.corr_corrected_lags)},
+                "statistic_corrected": to_jsonable(rr.statistic_corrected),
+                "reliability": to_jsonable(rr.reliability),
                 "n_pairs": rr.n_pairs,
                 "n_sites_compared": rr.n_sites_compared,
             }
-        out["markov_test"] = {k: _j(v) for k, v in self.markov_test.items()}
+        out["markov_test"] = {k: to_jsonable(v) for k, v in self.markov_test.items()}
         out["run_lengths"] = {
-            mt: {k: _j(v) for k, v in d.items()} for mt, d in self.run_lengths.items()
+            mt: {k: to_jsonable(v) for k, v in d.items()} for mt, d in self.run_lengths.items()
         }
         out["intervals"] = {}
         for name in sorted(self.estimates):
             est, lo, hi = self.interval(name)
-            out["intervals"][name] = {"estimate": _j(est), "low": _j(lo), "high": _j(hi)}
+            out["intervals"][name] = {"estimate": to_jsonable(est), "low": to_jsonable(lo), "high": to_jsonable(hi)}
         return out
-
-
-def _j(v):
-    """Make a value JSON-able: arrays to lists, NaN/inf to None, numpy scalars to Python."""
-    if isinstance(v, dict):
-        return {str(k): _j(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [_j(x) for x in v]
-    if isinstance(v, np.ndarray):
-        return _j(v.tolist())
-    if isinstance(v, (bool, np.bool_)):
-        return bool(v)
-    if isinstance(v, (int, np.integer)):
-        return int(v)
-    if isinstance(v, (float, np.floating)):
-        v = float(v)
-        return v if math.isfinite(v) else None
-    return v
 
 
 # ---------------------------------------------------------------------- main entry points

@@ -245,6 +245,16 @@ def check_memory(nbytes: float, what: str, remedy: str) -> None:
 
 
 # ---------------------------------------------------------------------- JSON
+def parse_json(text: str, what: str):
+    """``json.loads`` whose failures are one-line :class:`InputError` s starting with ``what``."""
+    try:
+        return json.loads(text)
+    except RecursionError:
+        raise InputError(f"{what} not valid JSON (nested too deeply)") from None
+    except ValueError as e:
+        raise InputError(f"{what} not valid JSON ({_first_line(e)})") from None
+
+
 def read_json(path, max_bytes: int = MAX_JSON_BYTES):
     """Parse a JSON file; every failure is an :class:`InputError` naming the file.
 
@@ -266,12 +276,7 @@ def read_json(path, max_bytes: int = MAX_JSON_BYTES):
         raise InputError(f"{p}: not UTF-8 text (the file is damaged)") from None
     except OSError as e:
         raise InputError(f"{p}: cannot be read ({e.strerror or e})") from None
-    try:
-        return json.loads(text)
-    except RecursionError:
-        raise InputError(f"{p}: not valid JSON (nested too deeply)") from None
-    except ValueError as e:
-        raise InputError(f"{p}: not valid JSON ({e})") from None
+    return parse_json(text, f"{p}:")
 
 
 # ---------------------------------------------------------------------- HDF5
@@ -395,9 +400,4 @@ def h5_attr_json(g, key: str, where):
             raise InputError(f"{where}: attribute '{key}' is not UTF-8 text") from None
     if not isinstance(v, str):
         raise InputError(f"{where}: attribute '{key}' must be JSON text, got {_kind_of(v)}")
-    try:
-        return json.loads(v)
-    except RecursionError:
-        raise InputError(f"{where}: attribute '{key}' is not valid JSON (nested too deeply)") from None
-    except ValueError as e:
-        raise InputError(f"{where}: attribute '{key}' is not valid JSON ({e})") from None
+    return parse_json(v, f"{where}: attribute '{key}' is")

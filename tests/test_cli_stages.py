@@ -95,5 +95,5 @@ def test_plan_small(tmp_path, capsys):
     assert conf.shape == (4, 5) and conf.sum() == 4
     assert len(plan["persistence_scan"]["persistence"]) == len(plan["persistence_scan"]["share_not_random"])
     code = main(["plan", "--metals", "Co,Zn", "--lattice", "square", "--a", "1.2", "--repeat", "0.7",
-                 "--efficiency", "1.5"])
-    assert code == 1 and "--efficiency" in capsys.readouterr().err
+                 "--detection-efficiency", "1.5"])
+    assert code == 1 and "--detection-efficiency" in capsys.readouterr().err

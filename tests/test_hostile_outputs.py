@@ -423,11 +423,12 @@ def test_stage_entry_points_check_seed_and_scale(good_outdir, tmp_path, capsys):
 @pytest.mark.parametrize("flags,fragment", [
     (["--metals", "Co,Xx"], "'Xx' is not an element"), (["--metals", "Co,CO"], "'CO' is not an element"),
     (["--metals", "co,Zn"], "'co' is not an element"),
-    (["--depth", "inf"], "--depth"), (["--depth", "nan"], "--depth"), (["--top-radius", "inf"], "--top-radius"),
+    (["--depth", "inf"], "--depth"), (["--depth", "nan"], "--depth"), (["--tip-radius", "inf"], "--tip-radius"),
     (["--a", "nan"], "--a"), (["--a", "1e300"], "1e+300"), (["--composition", "nan,nan"], "--composition"),
-    (["--composition", "inf,1"], "--composition"), (["--eta", "0"], "--eta"), (["--eta", "nan"], "--eta"),
-    (["--seed", "-1"], "--seed"), (["--mrp", "inf"], "--mrp"), (["--sigma-xy", "inf"], "--sigma-xy"),
-    (["--top-radius", "5000"], "--top-radius"), (["--depth", "0.1"], "site pitch"),
+    (["--composition", "inf,1"], "--composition"), (["--detection-efficiency", "0"], "--detection-efficiency"),
+    (["--detection-efficiency", "nan"], "--detection-efficiency"),
+    (["--seed", "-1"], "--seed"), (["--mrp", "inf"], "--mrp"), (["--lateral-blur", "inf"], "--lateral-blur"),
+    (["--tip-radius", "5000"], "--tip-radius"), (["--depth", "0.1"], "site pitch"),
 ])
 def test_cli_simulate_refuses_before_any_work(flags, fragment, tmp_path, capsys):
     out = tmp_path / "s.csv"
@@ -442,7 +443,7 @@ def test_simulation_too_large_for_memory_names_the_figure_and_options(monkeypatc
     cfg = SimConfig(top_radius_nm=40.0)
     need = cfg.expected_size()["bytes"]
     monkeypatch.setattr(v, "available_memory_bytes", lambda: int(need / 2))
-    with pytest.raises(InputError, match=r"needs about .*iB of memory.*--top-radius.*--depth"):
+    with pytest.raises(InputError, match=r"needs about .*iB of memory.*--tip-radius.*--depth"):
         SimConfig(top_radius_nm=40.0)
     monkeypatch.setattr(v, "available_memory_bytes", lambda: int(need * 4))
     SimConfig(top_radius_nm=40.0)
@@ -458,8 +459,8 @@ def test_expected_size_tracks_a_real_run():
 
 @pytest.mark.parametrize("flags,fragment", [
     (["--metals", "Co,Xx"], "'Xx' is not an element"), (["--depth", "nan"], "--depth"),
-    (["--radius", "inf"], "--radius"), (["--seed", "-1"], "--seed"), (["--efficiency", "nan"], "--efficiency"),
-    (["--radius", "5000"], "--radius"),
+    (["--tip-radius", "inf"], "--tip-radius"), (["--seed", "-1"], "--seed"),
+    (["--detection-efficiency", "nan"], "--detection-efficiency"), (["--tip-radius", "5000"], "--tip-radius"),
 ])
 def test_cli_plan_refuses_before_any_work(flags, fragment, tmp_path, capsys):
     args = ["plan", "--metals", "Co,Zn", "--lattice", "honeycomb", "--a", "2.6", "--repeat", "0.68", "-q",

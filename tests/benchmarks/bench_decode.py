@@ -20,6 +20,7 @@ import warnings
 import numpy as np
 from scipy.special import gammaln
 
+from probeseq import chain
 from probeseq.data import RodColumns
 from probeseq.decode import DecoderParams, decode, fit_decoder
 from probeseq.hmm import forward_backward, forward_backward_scaled, viterbi
@@ -50,7 +51,7 @@ def generate(n_rods, n_sites, *, eta, lam, comp, crosstalk=0.05, background=0.01
     realised = {"eta": r.size / s.size, "composition": np.bincount(s.ravel(), minlength=k) / s.size}
     trans = np.zeros((k, k))
     np.add.at(trans, (s[:, :-1].ravel(), s[:, 1:].ravel()), 1.0)
-    realised["persistence"] = (np.trace(trans / trans.sum(1, keepdims=True)) - 1) / (k - 1)
+    realised["persistence"] = chain.persistence(trans / trans.sum(1, keepdims=True))
     metal = s[r, t]
     if blur > 0:
         mv = rng.random(r.size) < blur

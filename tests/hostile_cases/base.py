@@ -56,7 +56,7 @@ def make_base(folder, runner) -> Path:
     folder.mkdir(parents=True)
     run = folder / "run"
     run.mkdir()
-    _check(runner, ["simulate", str(run / "ions.h5"), "--pattern", "long-block", "--top-radius", "5",
+    _check(runner, ["simulate", str(run / "ions.h5"), "--pattern", "long-block", "--tip-radius", "5",
                     "--depth", "14", "--seed", "7", "-q"], folder, folder)
     (run / "ions.lattice.toml").rename(run / "lattice.toml")
     (run / "ions.truth.json").unlink()

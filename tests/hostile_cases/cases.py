@@ -64,7 +64,7 @@ def _seed(*parts) -> int:
 
 LAT = ("--lattice", "{in}/lattice.toml")
 ANALYZE_FAST = ("--n-boot", "20", "--n-starts", "1")
-PLAN_FAST = ("--runs-per-pattern", "1", "--runs-per-persistence", "1", "--radius", "3", "--depth", "5")
+PLAN_FAST = ("--runs-per-pattern", "1", "--runs-per-persistence", "1", "--tip-radius", "3", "--depth", "5")
 
 
 def _ion_argv(command: str, ion: str):
@@ -267,11 +267,11 @@ def _option_cases():
     def add(cmd, tag, argv, recipe=(), expect="error", slow=False):
         out.append(Case(f"{cmd}/option-{tag}", cmd, "option", tuple(argv), tuple(recipe), expect, slow))
 
-    sim = ("simulate", "{work}/sim/ions.h5", "--top-radius", "3", "--depth", "6", "-q")
+    sim = ("simulate", "{work}/sim/ions.h5", "--tip-radius", "3", "--depth", "6", "-q")
     sim_opts = [
         ("seed-negative", ["--seed", "-1"]), ("seed-2^70", ["--seed", str(2 ** 70)]), ("seed-text", ["--seed", "abc"]),
-        ("top-radius-0", ["--top-radius", "0"]), ("top-radius-negative", ["--top-radius", "-1"]),
-        ("top-radius-nan", ["--top-radius", "nan"]), ("depth-inf", ["--depth", "inf"]), ("depth-nan", ["--depth", "nan"]),
+        ("top-radius-0", ["--tip-radius", "0"]), ("top-radius-negative", ["--tip-radius", "-1"]),
+        ("top-radius-nan", ["--tip-radius", "nan"]), ("depth-inf", ["--depth", "inf"]), ("depth-nan", ["--depth", "nan"]),
         ("depth-0", ["--depth", "0"]), ("a-1e300", ["--a", "1e300"]), ("a-0", ["--a", "0"]), ("a-nan", ["--a", "nan"]),
         ("a-negative", ["--a", "-2.6"]), ("a-1e-300", ["--a", "1e-300"]), ("repeat-0", ["--repeat", "0"]),
         ("repeat-inf", ["--repeat", "inf"]), ("sites-0", ["--sites-per-repeat", "0"]),
@@ -284,23 +284,23 @@ def _option_cases():
         ("metals-empty-item", ["--metals", "Co,,Zn"]), ("pattern-bogus", ["--pattern", "bogus"]),
         ("persistence-1", ["--persistence", "1"]), ("persistence-negative", ["--persistence", "-0.1"]),
         ("persistence-nan", ["--persistence", "nan"]), ("copy-error-2", ["--copy-error", "2"]),
-        ("copy-error-nan", ["--copy-error", "nan"]), ("eta-0", ["--eta", "0"]), ("eta-2", ["--eta", "2"]),
-        ("eta-nan", ["--eta", "nan"]), ("sigma-xy-negative", ["--sigma-xy", "-1"]), ("sigma-z-inf", ["--sigma-z", "inf"]),
+        ("copy-error-nan", ["--copy-error", "nan"]), ("eta-0", ["--detection-efficiency", "0"]), ("eta-2", ["--detection-efficiency", "2"]),
+        ("eta-nan", ["--detection-efficiency", "nan"]), ("sigma-xy-negative", ["--lateral-blur", "-1"]), ("sigma-z-inf", ["--depth-blur", "inf"]),
         ("mrp-0", ["--mrp", "0"]), ("mrp-negative", ["--mrp", "-600"]), ("half-angle-90", ["--half-angle", "90"]),
-        ("half-angle-negative", ["--half-angle", "-5"]), ("packing-hex", ["--packing", "hex"]),
+        ("half-angle-negative", ["--half-angle", "-5"]), ("packing-hex", ["--lattice", "hex"]),
     ]
     for tag, extra in sim_opts:
         add("simulate", tag, sim + tuple(extra))
-    for tag, extra in (("top-radius-500", ["--top-radius", "500"]), ("depth-1e9", ["--depth", "1e9"]),
+    for tag, extra in (("top-radius-500", ["--tip-radius", "500"]), ("depth-1e9", ["--depth", "1e9"]),
                        ("a-0.01", ["--a", "0.01"]), ("repeat-1e-9", ["--repeat", "1e-9"]),
                        ("sites-100000", ["--sites-per-repeat", "100000"])):
         add("simulate", tag, sim + tuple(extra), slow=True)
     add("simulate", "composition-1-0", sim + ("--composition", "1,0"), expect="either")
-    add("simulate", "out-xyz-extension", ("simulate", "{work}/sim/ions.xyz", "--top-radius", "3", "--depth", "6"))
-    add("simulate", "out-no-extension", ("simulate", "{work}/sim/ions", "--top-radius", "3", "--depth", "6"))
-    add("simulate", "out-deep-new-folder", ("simulate", "{work}/a/b/c/ions.csv", "--top-radius", "3", "--depth", "6"),
+    add("simulate", "out-xyz-extension", ("simulate", "{work}/sim/ions.xyz", "--tip-radius", "3", "--depth", "6"))
+    add("simulate", "out-no-extension", ("simulate", "{work}/sim/ions", "--tip-radius", "3", "--depth", "6"))
+    add("simulate", "out-deep-new-folder", ("simulate", "{work}/a/b/c/ions.csv", "--tip-radius", "3", "--depth", "6"),
         expect="valid")
-    add("simulate", "out-existing-folder", ("simulate", "{in}/folder.h5", "--top-radius", "3", "--depth", "6"),
+    add("simulate", "out-existing-folder", ("simulate", "{in}/folder.h5", "--tip-radius", "3", "--depth", "6"),
         (_step("make_dir", name="folder.h5"),))
 
     ins = ("inspect", "{in}/ions.h5")
@@ -416,19 +416,19 @@ def _option_cases():
 
     plan = ("plan", "--metals", "Co,Zn", "--lattice", "honeycomb", "--a", "2.6", "--repeat", "0.68", *PLAN_FAST)
     for tag, extra in (
-            ("efficiency-0", ["--efficiency", "0"]), ("efficiency-2", ["--efficiency", "2"]),
-            ("efficiency-nan", ["--efficiency", "nan"]), ("efficiency-negative", ["--efficiency", "-1"]),
-            ("lateral-negative", ["--lateral-resolution", "-1"]), ("lateral-nan", ["--lateral-resolution", "nan"]),
-            ("lateral-inf", ["--lateral-resolution", "inf"]), ("runs-per-pattern-0", ["--runs-per-pattern", "0"]),
+            ("efficiency-0", ["--detection-efficiency", "0"]), ("efficiency-2", ["--detection-efficiency", "2"]),
+            ("efficiency-nan", ["--detection-efficiency", "nan"]), ("efficiency-negative", ["--detection-efficiency", "-1"]),
+            ("lateral-negative", ["--lateral-blur", "-1"]), ("lateral-nan", ["--lateral-blur", "nan"]),
+            ("lateral-inf", ["--lateral-blur", "inf"]), ("runs-per-pattern-0", ["--runs-per-pattern", "0"]),
             ("runs-per-pattern-negative", ["--runs-per-pattern", "-1"]),
-            ("runs-per-persistence-0", ["--runs-per-persistence", "0"]), ("radius-0", ["--radius", "0"]),
-            ("radius-nan", ["--radius", "nan"]), ("radius-negative", ["--radius", "-3"]), ("depth-inf", ["--depth", "inf"]),
+            ("runs-per-persistence-0", ["--runs-per-persistence", "0"]), ("radius-0", ["--tip-radius", "0"]),
+            ("radius-nan", ["--tip-radius", "nan"]), ("radius-negative", ["--tip-radius", "-3"]), ("depth-inf", ["--depth", "inf"]),
             ("depth-0", ["--depth", "0"]), ("depth-nan", ["--depth", "nan"]), ("seed-negative", ["--seed", "-1"]),
             ("metals-one", ["--metals", "Co"]), ("metals-lowercase", ["--metals", "co,zn"]),
             ("a-1e300", ["--a", "1e300"]), ("a-0", ["--a", "0"]), ("sites-0", ["--sites-per-repeat", "0"]),
             ("lattice-unknown-preset", ["--lattice", "hexagonal"])):
         add("plan", tag, plan + tuple(extra))
-    add("plan", "radius-500", plan + ("--radius", "500"), slow=True)
+    add("plan", "radius-500", plan + ("--tip-radius", "500"), slow=True)
     add("plan", "lattice-missing", ("plan", "--metals", "Co,Zn", *PLAN_FAST))
     add("plan", "out-no-folder", plan + ("--out", "{work}/nodir/plan.json"), expect="either", slow=True)
 
@@ -441,11 +441,11 @@ def _option_cases():
             ("rods-text", ["--rods", "a"], "error"), ("rods-empty-item", ["--rods", "1,,2"], "error"),
             ("rods-unknown", ["--rods", "99999"], "error"), ("rods-huge-range", ["--rods", "0-99999999999"], "error"),
             ("rods-open-range", ["--rods", "3-"], "error"), ("rods-blank", ["--rods", " "], "either"),
-            ("depth-reversed", ["--depth", "20:10"], "error"), ("depth-text", ["--depth", "a:b"], "error"),
-            ("depth-nan", ["--depth", "nan:nan"], "error"), ("depth-inf-reversed", ["--depth", "inf:-inf"], "error"),
-            ("depth-colon-only", ["--depth", ":"], "either"), ("depth-one-number", ["--depth", "5"], "error"),
-            ("depth-three-parts", ["--depth", "1:2:3"], "error"), ("depth-outside-run", ["--depth", "1e6:2e6"], "error"),
-            ("depth-whole-line", ["--depth", "-inf:inf"], "either"), ("size-huge", ["--size", "huge"], "error"),
+            ("depth-reversed", ["--depth-window", "20:10"], "error"), ("depth-text", ["--depth-window", "a:b"], "error"),
+            ("depth-nan", ["--depth-window", "nan:nan"], "error"), ("depth-inf-reversed", ["--depth-window", "inf:-inf"], "error"),
+            ("depth-colon-only", ["--depth-window", ":"], "either"), ("depth-one-number", ["--depth-window", "5"], "error"),
+            ("depth-three-parts", ["--depth-window", "1:2:3"], "error"), ("depth-outside-run", ["--depth-window", "1e6:2e6"], "error"),
+            ("depth-whole-line", ["--depth-window", "-inf:inf"], "either"), ("size-huge", ["--size", "huge"], "error"),
             ("dpi-0", ["--format", "png", "--dpi", "0", "--out", "{work}/t.png"], "error"),
             ("dpi-negative", ["--format", "png", "--dpi", "-1", "--out", "{work}/t.png"], "error"),
             ("dpi-100000", ["--format", "png", "--dpi", "100000", "--out", "{work}/t.png"], "error"),
@@ -523,7 +523,7 @@ def _out_path_cases():
     add("plan", "onto-lattice-input", plan + ("--out", "{in}/lattice.toml"), lat, slow=True)
     add("plan", "onto-existing-json", plan + ("--out", "{in}/plan.json"), lat, slow=True)
     add("plan", "onto-folder", plan + ("--out", "{in}"), lat, slow=True)
-    sim = ("--top-radius", "3", "--depth", "6")
+    sim = ("--tip-radius", "3", "--depth", "6")
     add("simulate", "onto-existing-ion-file", ("simulate", "{in}/run/ions.h5", *sim), run)
     add("simulate", "onto-existing-lattice-sibling", ("simulate", "{in}/run/ions2.h5", *sim),
         run + (_step("copy_base", what="lattice", dest="run/ions2.lattice.toml"),))
