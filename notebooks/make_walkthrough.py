@@ -43,7 +43,7 @@ from probeseq.ranging_plot import plot_ranging
 rr = auto_range(ions.mass_to_charge, run.metals)
 comp = rr.to_dict()["composition"]
 for m in run.metals:
-    print(f"{m}: {100 * comp[m]['fraction']:.2f} % +- {100 * comp[m]['sigma']:.2f} % of metal atoms")
+    print(f"{m}: {100 * comp[m]['fraction']:.2f} % +- {100 * comp[m]['fraction_err']:.2f} % of metal atoms")
 print(len(rr.ranges), "ranges;", len(rr.unmatched), "strong peaks left unranged")
 plot_ranging(rr, "walkthrough_spectrum")  # writes walkthrough_spectrum.png and .svg
 display(Image("walkthrough_spectrum.png"))"""),

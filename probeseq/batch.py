@@ -415,8 +415,9 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
     options, metals, lattice, a, repeat, sites_per_repeat, ranges, length_unit, position_dataset, mass_dataset, strict, allow_outside, force, command_line
         As for :func:`analyze_run`, for every run.
     workers : int, optional
-        Worker processes (default :data:`DEFAULT_WORKERS`, at most the number of processors and
-        of runs).
+        Worker processes (at most the number of processors and of runs). Default: ``n_jobs`` of
+        :func:`probeseq.runtime.configure` (the command line's ``--jobs``) when set, else
+        :data:`DEFAULT_WORKERS`; each worker's compiled kernels then use its share of ``n_jobs``.
     progress : callable, optional
         Called with each :class:`BatchOutcome`, in the order of the runs, as results come in.
     started : callable, optional
@@ -434,6 +435,7 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
     """
     from concurrent.futures import ProcessPoolExecutor
 
+    from . import runtime
     from .lattice import Lattice
     from .outputs import check_outdir
     from .pipeline import AnalysisOptions
@@ -453,8 +455,7 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
         _build_lattice(lattice, a, repeat, sites_per_repeat, "--lattice")
     if ranges is not None:
         RangeSet.from_toml(ranges)
-    if workers is None:
-        workers = DEFAULT_WORKERS
+    workers = runtime.worker_count(workers, DEFAULT_WORKERS)
     if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
         raise InputError(f"workers must be a positive integer, got {workers!r}")
     kwargs = dict(options=options or AnalysisOptions(), metals=metals,
@@ -467,7 +468,9 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
     if started is not None:
         started(len(jobs), n)
     outcomes = []
-    with ProcessPoolExecutor(max_workers=n) as ex:
+    runtime.ensure()  # the fork-safe threading layer, before the workers start
+    with ProcessPoolExecutor(max_workers=n, initializer=runtime.configure,
+                             initargs=(runtime.worker_jobs(n),)) as ex:
         for outcome in ex.map(_batch_job, jobs):
             outcomes.append(outcome)
             if progress is not None:

@@ -50,8 +50,16 @@ def _version(value: bool):
 def _root(
     version: Annotated[Optional[bool], typer.Option("--version", callback=_version, is_eager=True,
                                                     help="Print the version and exit.")] = None,
+    jobs: Annotated[Optional[int], typer.Option(
+        "--jobs", metavar="N", show_default=False,
+        help="Threads for compiled kernels and worker processes for batches; default: all cores "
+             "(batch folders and plan: 2 worker processes). Give it before the command, e.g. "
+             "'probeseq --jobs 2 analyze ...'.")] = None,
 ):
     """probeseq: from a reconstructed ion list to the metal sequence along each rod."""
+    from . import runtime
+
+    runtime.configure(n_jobs=jobs)
 
 
 def say(msg: str = ""):

@@ -168,7 +168,7 @@ def range_cmd(
     for m in mets:
         c = comp.get(m, {})
         if c:
-            say(f"  {m:3s} {100 * c['fraction']:6.2f} % +- {100 * c['sigma']:.2f} % (atomic, of metal atoms)")
+            say(f"  {m:3s} {100 * c['fraction']:6.2f} % +- {100 * c['fraction_err']:.2f} % (atomic, of metal atoms)")
     if len(rr.unmatched):
         say(f"  {len(rr.unmatched)} strong peaks unmatched (left unranged): " + "; ".join(rr.unmatched_nearest[:6]))
     if figures:

@@ -39,10 +39,12 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
+from typing import NamedTuple
 
 import numba
 import numpy as np
 
+from . import runtime
 from .data import RodColumns
 from .exceptions import InputError
 from .lattice import Lattice
@@ -52,6 +54,7 @@ from .registration import (RESOLVABLE_CROSSTALK, Registration, RodLocator, _cach
 
 __all__ = [
     "ColumnGeometry",
+    "KernelGeometry",
     "ColumnBinner",
     "plan_columns",
     "assign_rods",
@@ -80,6 +83,83 @@ _FB = -2_100_000_000  # lookup offsets below _FB_LIMIT are fallback rows: _FB + 
 _FB_LIMIT = -1_000_000_000
 _CHUNK = 1 << 18  # ions per assignment pass (measured fastest of 2^14..2^20)
 _BLOCK = 1 << 22  # ions per bincount (one pass over the touched bins per block)
+
+
+class KernelGeometry(NamedTuple):
+    """The rod and site lookup of a :class:`ColumnGeometry` as plain arrays and scalars, by name.
+
+    Built by :meth:`ColumnGeometry.kernel_geometry` and passed whole to compiled loops (numba takes
+    a named tuple of arrays and scalars as one argument; the loops read its fields by name). The
+    lookup tables are the geometry's own arrays (no copy when they already have the listed type).
+    An ion at (x, y, z) nm lies in fine table cell ``floor(cell_xy @ (x, y) + cell_z * z +
+    cell_origin)``, i.e. in unit cell ``cell >> grid_bits`` relative to the rod table's origin and
+    in grid cell ``cell & (n_grid - 1)`` within it; its site is ``floor(site_coef[0] * z +
+    site_coef[1] * x + site_coef[2] * y - site_coef[3])``.
+
+    Attributes
+    ----------
+    cell_xy : (2, 2) ndarray of float64, 1/nm
+        Lateral part of the map to fine table cells (fractional map times ``n_grid``).
+    cell_z : (2,) ndarray of float64, 1/nm
+        Depth part of the map to fine table cells.
+    cell_origin : (2,) ndarray of float64
+        Offset of the map to fine table cells, relative to the rod table's first unit cell.
+    site_coef : (4,) ndarray of float64
+        ``(1, g_x, g_y, u_0) / plane_spacing_nm`` (1/nm, 1/nm, 1/nm, dimensionless): the site of an
+        ion from its plane coordinate ``u = z + g . (x, y)``, ``u_0`` being the lower bound of site 0.
+    frac_xy : (2, 2) ndarray of float64, 1/nm
+        Lateral part of the exact map to fractional cell coordinates (for fallback cells).
+    frac_z : (2,) ndarray of float64, 1/nm
+        Depth part of the exact map to fractional cell coordinates.
+    frac_origin : (2,) ndarray of float64
+        Offset of the exact map, relative to the rod table's first unit cell.
+    n_grid : int
+        Grid cells per unit cell edge (a power of two).
+    grid_bits : int
+        ``log2(n_grid)``.
+    lut_offset : (n_grid * n_grid,) ndarray of int32
+        Per grid cell: rod code offset, the beyond-cutoff offset, or a fallback row (see
+        :attr:`ColumnGeometry.lut_offset`).
+    code_offset : (n_codes + 1,) ndarray of int32
+        Rod table offset of each rod code of the locator; the last entry is the beyond-cutoff offset.
+    candidates : (n_fallback_cells, k_max) ndarray of int32
+        Candidate rod codes of each fallback grid cell (:attr:`RodLocator.candidates`).
+    code_frac : (n_codes, 2) ndarray of float64
+        Rod position of each code relative to the ion's unit cell, fractional coordinates.
+    metric : (2, 2) ndarray of float64, nm^2
+        Metric of the fractional coordinates (:attr:`RodLocator.metric`).
+    cutoff2_nm2 : float, nm^2
+        Squared assignment cutoff (``inf`` for none).
+    n_cells_i, n_cells_j : int
+        Unit cells of the rod table along the two cell axes.
+    rods_per_cell : int
+        Rods in one unit cell.
+    rod_key : (2 * n_cells_i * n_cells_j * rods_per_cell,) ndarray of int32
+        Rod index of every table entry, ``-1`` for none (see :attr:`ColumnGeometry.rod_key`).
+    n_sites : int
+        Sites per rod.
+    """
+
+    cell_xy: np.ndarray
+    cell_z: np.ndarray
+    cell_origin: np.ndarray
+    site_coef: np.ndarray
+    frac_xy: np.ndarray
+    frac_z: np.ndarray
+    frac_origin: np.ndarray
+    n_grid: np.int64
+    grid_bits: np.int64
+    lut_offset: np.ndarray
+    code_offset: np.ndarray
+    candidates: np.ndarray
+    code_frac: np.ndarray
+    metric: np.ndarray
+    cutoff2_nm2: np.float64
+    n_cells_i: np.int64
+    n_cells_j: np.int64
+    rods_per_cell: np.int64
+    rod_key: np.ndarray
+    n_sites: np.int64
 
 
 @dataclass(frozen=True, eq=False)
@@ -126,7 +206,7 @@ class ColumnGeometry:
     locator: RodLocator = field(repr=False)
     table_origin: tuple = field(repr=False)  # (i0, j0, ni, nj)
     rod_table: np.ndarray = field(repr=False)  # (ni * nj * nb,) int32 -> rod index or -1
-    code_offset: np.ndarray = field(repr=False)  # (n_codes + 1,) int64, last entry a sentinel
+    code_offset: np.ndarray = field(repr=False)  # (n_codes + 1,) int32, last entry a sentinel
     lut_offset: np.ndarray = field(repr=False)  # (G * G,) int32: code offset, _EXCL or _FB + row
     rod_key: np.ndarray = field(repr=False)  # (2 * ni * nj * nb,) int32: first half -1, then rod or -1
     frac_affine: tuple = field(repr=False)  # registration.frac_map(), computed once
@@ -158,6 +238,40 @@ class ColumnGeometry:
         """(n_rods, n_sites) depth of every site on its rod axis, nm."""
         reg = self.registration
         return _rod_site_z(self.site_z_nm, self.rod_xy_nm, reg.tilt, reg.z_ref_nm, reg.scale)
+
+    def kernel_geometry(self) -> KernelGeometry:
+        """The rod and site lookup as a :class:`KernelGeometry` for compiled loops.
+
+        The arithmetic is that of :func:`_assign_chunk`: the same maps and the same tables (the
+        tables are this geometry's arrays, not copies, when they already have the listed type).
+
+        Returns
+        -------
+        KernelGeometry
+        """
+        loc = self.locator
+        G = loc.n_grid
+        i0, j0, ni, nj = self.table_origin
+        M, e, c = self.frac_affine
+        gp, denom = _plane_model(self.registration.tilt, self.registration.scale)
+        du = self.plane_spacing_nm
+        ns = self.n_sites
+        u0 = (self.site_z_nm[0] * denom - 0.5 * du) if ns else 0.0
+        return KernelGeometry(
+            cell_xy=(M * G), cell_z=(e * G), cell_origin=((c - np.array([i0, j0])) * G),
+            site_coef=np.array([1.0 / du, gp[0] / du, gp[1] / du, u0 / du]),
+            frac_xy=np.ascontiguousarray(M, np.float64), frac_z=np.ascontiguousarray(e, np.float64),
+            frac_origin=np.array([c[0] - i0, c[1] - j0], np.float64),
+            n_grid=np.int64(G), grid_bits=np.int64(G.bit_length() - 1),
+            lut_offset=np.ascontiguousarray(self.lut_offset, np.int32),
+            code_offset=np.ascontiguousarray(self.code_offset, np.int32),
+            candidates=np.ascontiguousarray(loc.candidates, np.int32),
+            code_frac=np.ascontiguousarray(loc.code_frac, np.float64),
+            metric=np.ascontiguousarray(loc.metric, np.float64),
+            cutoff2_nm2=np.float64(loc.cutoff_nm ** 2 if math.isfinite(loc.cutoff_nm) else np.inf),
+            n_cells_i=np.int64(ni), n_cells_j=np.int64(nj), rods_per_cell=np.int64(self.lattice.rods_per_cell),
+            rod_key=np.ascontiguousarray(self.rod_key, np.int32), n_sites=np.int64(ns),
+        )
 
     def to_dict(self) -> dict:
         """JSON-able description of the geometry (no per-rod arrays)."""
@@ -398,6 +512,7 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
             np.ascontiguousarray(ocen[:, 1], np.float64), np.ascontiguousarray(orad, np.float64),
             float(edge_margin_nm), float(zlo), float(zhi))
     maybe = np.zeros(cells.shape[0], np.bool_)
+    runtime.ensure()  # a fork-safe threading layer before the first parallel kernel
     _maybe_inside_kernel(*args, maybe)  # rods that may be inside at some depth (a safe bound)
     if not maybe.all():
         cells, xy_ref, dz_rod = cells[maybe], xy_ref[maybe], dz_rod[maybe]
@@ -850,6 +965,7 @@ def compact_counts(counts: np.ndarray) -> np.ndarray:
     if c.dtype != np.float64 or not c.size or not c.flags.c_contiguous:
         return c
     out = np.empty(c.shape, np.float32)
+    runtime.ensure()  # a fork-safe threading layer before the first parallel kernel
     return out if _to_float32_if_whole(c.reshape(-1), out.reshape(-1)) else c
 
 
@@ -869,7 +985,8 @@ def _to_float32_if_whole(src, dst):
     return not bad.any()
 
 
-def columns_from_counts(geometry: ColumnGeometry, counts, metals, ion_stats: dict) -> RodColumns:
+def columns_from_counts(geometry: ColumnGeometry, counts, metals, ion_stats: dict,
+                        extra_params: dict | None = None) -> RodColumns:
     """Wrap a finished (n_rods, n_sites, n_metals) count array and its geometry as RodColumns.
 
     Parameters
@@ -880,6 +997,9 @@ def columns_from_counts(geometry: ColumnGeometry, counts, metals, ion_stats: dic
     metals : sequence of str
     ion_stats : dict
         Ion tallies recorded in ``params["ions"]`` (see :meth:`ColumnBinner.stats`).
+    extra_params : dict, optional
+        Further JSON-able entries of ``params``, after "registration", "columns" and "ions" (the
+        params of the returned, frozen object are read-only).
     """
     g = geometry
     metals = tuple(str(m) for m in metals)
@@ -887,7 +1007,7 @@ def columns_from_counts(geometry: ColumnGeometry, counts, metals, ion_stats: dic
         raise InputError(f"counts have shape {counts.shape}, expected {(g.n_rods, g.n_sites, len(metals))}")
     counts = compact_counts(counts)
     reg = g.registration
-    params = {"registration": reg.to_dict(), "columns": g.to_dict(), "ions": dict(ion_stats)}
+    params = {"registration": reg.to_dict(), "columns": g.to_dict(), "ions": dict(ion_stats), **(extra_params or {})}
     depth = _rod_site_z(g.site_z_nm[:1], g.rod_xy_nm, reg.tilt, reg.z_ref_nm, float(reg.scale))
     offset = (depth[:, 0] - g.site_z_nm[0]) if g.n_sites else np.zeros(g.n_rods)
     return RodColumns(counts=counts, mask=g.mask, metals=metals, rod_xy_nm=g.rod_xy_nm.copy(),

@@ -35,12 +35,17 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numba
 import numpy as np
 
 from .exceptions import InputError
+from .ranging import LookupTable
 from .registration import nearest_candidate
+
+if TYPE_CHECKING:
+    from .columns import KernelGeometry
 
 __all__ = ["CountPlan", "CountPass", "make_count_plan", "ion_uniforms", "draw_key", "new_tally",
            "tally_dict", "default_threads", "TALLY_FIELDS"]
@@ -55,6 +60,11 @@ _TO_UNIT = np.float64(1.0 / 9007199254740992.0)  # 2**-53
 TALLY_FIELDS = ("n_rows", "n_valid", "n_nonfinite", "n_nonpositive", "n_metal", "n_binned", "n_beyond_cutoff",
                 "n_unused_rod", "n_outside_depth", "first_bad_row", "n_fallback")
 _T = {k: i for i, k in enumerate(TALLY_FIELDS)}
+# codes of the packed range table (:meth:`probeseq.ranging.LookupTable.candidate_table`)
+_UNRANGED = LookupTable.UNRANGED
+_EDGE = LookupTable.EDGE
+_CODE_BASE = LookupTable.CODE_BASE
+_CELLS_PER_DA = LookupTable.CELLS_PER_DA
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
@@ -120,15 +130,18 @@ class CountPlan:
     key : numpy.uint64
         Key of the metal draws (:func:`draw_key` of the seed).
     mass_lut : (n_cells,) ndarray of int32
-        Per 1/1024-Da cell ``(range + 2) << 1 | candidate``: range -1 none, -2 a cell holding a range
-        edge; candidate 1 for a range holding metal or an edge cell.
+        Per 1/1024-Da cell ``(range + LookupTable.CODE_BASE) << 1 | candidate``, range being the
+        range index, ``LookupTable.UNRANGED`` or ``LookupTable.EDGE`` (a cell holding a range edge);
+        candidate 1 for a range holding metal or an edge cell
+        (:meth:`probeseq.ranging.LookupTable.candidate_table`).
     lows, highs : (n_ranges,) ndarray of float64, Da
     cum : (n_ranges, n_metals) ndarray of float64
         Cumulative thinned metal weights of each range (the draw picks the first metal whose
         cumulative weight exceeds the uniform number).
     has_metal : (n_ranges,) ndarray of bool
-    geometry : tuple
-        The rod and site lookup arrays in the order the kernel takes them.
+    geometry : KernelGeometry
+        The rod and site lookup of the column geometry, by name
+        (:meth:`probeseq.columns.ColumnGeometry.kernel_geometry`).
     """
 
     n_rods: int
@@ -140,7 +153,7 @@ class CountPlan:
     highs: np.ndarray
     cum: np.ndarray
     has_metal: np.ndarray
-    geometry: tuple
+    geometry: KernelGeometry
 
     @property
     def metal_range(self) -> np.ndarray:
@@ -184,44 +197,12 @@ def make_count_plan(ranges, metals, thin, geometry, seed) -> CountPlan:
     wr = np.asarray(w[:-1], np.float64) * thin[None, :]  # (n_ranges, K), the unranged row dropped
     cum = np.ascontiguousarray(np.cumsum(np.minimum(wr, 1.0), axis=1)) if wr.size else np.zeros((0, len(metals)))
     has_metal = (wr > 0).any(1) if wr.size else np.zeros(0, bool)
-    # packed range table: (range + 2) << 1 | candidate, candidate = a metal range or an edge cell
-    r2 = np.asarray(lk.lut, np.int64) + 2
-    cand_flag = np.concatenate([[1, 0], has_metal.astype(np.int64)]) if has_metal.size else np.array([1, 0])
-    packed = ((r2 << 1) | cand_flag[r2]).astype(np.int32)
+    # packed range table: (range + CODE_BASE) << 1 | candidate, candidate = a metal range or an edge cell
+    packed = lk.candidate_table(has_metal)
     return CountPlan(n_rods=geometry.n_rods, n_sites=geometry.n_sites, n_metals=len(metals), key=draw_key(seed),
                      mass_lut=packed, lows=np.asarray(lk.lows, np.float64),
                      highs=np.asarray(lk.highs, np.float64), cum=cum, has_metal=np.ascontiguousarray(has_metal),
-                     geometry=_geometry_arrays(geometry))
-
-
-def _geometry_arrays(g) -> tuple:
-    """The rod and site lookup arrays of ColumnGeometry ``g`` in the order the kernel takes them."""
-    from .columns import _plane_model
-
-    loc = g.locator
-    G = loc.n_grid
-    i0, j0, ni, nj = g.table_origin
-    M, e, c = g.frac_affine
-    gp, denom = _plane_model(g.registration.tilt, g.registration.scale)
-    du = g.plane_spacing_nm
-    ns = g.n_sites
-    u0 = (g.site_z_nm[0] * denom - 0.5 * du) if ns else 0.0
-    geom = dict(
-        a=(M * G), ez=(e * G), cc=((c - np.array([i0, j0])) * G),
-        site=np.array([1.0 / du, gp[0] / du, gp[1] / du, u0 / du]),
-        M=np.ascontiguousarray(M, np.float64), e=np.ascontiguousarray(e, np.float64),
-        cfb=np.array([c[0] - i0, c[1] - j0], np.float64),
-        G=np.int64(G), sh=np.int64(G.bit_length() - 1),
-        lut_offset=np.ascontiguousarray(g.lut_offset, np.int32),
-        code_offset=np.ascontiguousarray(g.code_offset, np.int32),
-        cand=np.ascontiguousarray(loc.candidates, np.int32),
-        code_frac=np.ascontiguousarray(loc.code_frac, np.float64),
-        metric=np.ascontiguousarray(loc.metric, np.float64),
-        cut2=np.float64(loc.cutoff_nm ** 2 if math.isfinite(loc.cutoff_nm) else np.inf),
-        ni=np.int64(ni), nj=np.int64(nj), nb=np.int64(g.lattice.rods_per_cell),
-        rod_key=np.ascontiguousarray(g.rod_key, np.int32), ns=np.int64(ns),
-    )
-    return tuple(geom.values())
+                     geometry=geometry.kernel_geometry())
 
 
 #: rod blocks of the grouped increments (a block's bins of one depth slice stay in cache)
@@ -335,9 +316,9 @@ def _slow_check_kernel(x, y, z, m, row0, factor, tally, ext):
 def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel, rows, metals):
     """Rows of ``m[:n]`` in ranges holding metal, each with its drawn metal; returns their number.
 
-    Loop 1 (every row, mass-to-charge only): one table load gives the range (+ 2) and whether the
-    row is a candidate (a range holding metal, or a cell holding a range edge, resolved in loop 2);
-    candidates are listed as (row << rbits) | (range + 2), written always and kept by advancing the
+    Loop 1 (every row, mass-to-charge only): one table load gives the range (+ _CODE_BASE) and whether
+    the row is a candidate (a range holding metal, or a cell holding a range edge, resolved in loop 2);
+    candidates are listed as (row << rbits) | (range + _CODE_BASE), written always and kept by advancing the
     count: no branch. A NaN or non-positive m lands in the last cell, no range. Loop 2: edge cells
     by binary search, then the metal draw; the selected rows (local, increasing) go to ``rows`` and
     their metals to ``metals``. Positions are not read (invalid positions are dropped when placed).
@@ -345,10 +326,10 @@ def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel
     K = cum.shape[1]
     n_ranges = lows.size
     rbits = 1
-    while (np.int64(1) << rbits) < n_ranges + 2:
+    while (np.int64(1) << rbits) < n_ranges + _CODE_BASE:
         rbits += 1
     top = mass_lut.size - 1
-    one_k = m.dtype.type(1024.0)
+    one_k = m.dtype.type(_CELLS_PER_DA)
     nsel = 0
     for i in range(n):
         f = m[i] * one_k
@@ -361,8 +342,8 @@ def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel
     for q in range(nsel):
         iv = np.int64(sel[q])
         i = iv >> rbits
-        r = (iv & rmask) - 2
-        if r == -2:  # a cell holding a range edge: binary search (first low above m)
+        r = (iv & rmask) - _CODE_BASE
+        if r == _EDGE:  # a cell holding a range edge: binary search (first low above m)
             mv = np.float64(m[i])
             lo = 0
             hi = n_ranges
@@ -373,7 +354,7 @@ def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel
                 else:
                     hi = mid
             k = lo - 1
-            r = k if (k >= 0 and mv < highs[k]) else -1
+            r = k if (k >= 0 and mv < highs[k]) else _UNRANGED
             if r < 0 or metal_range[r + 1] == 0:
                 continue
         metal = 0
@@ -391,15 +372,36 @@ def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel
 
 
 @numba.njit(cache=True, nogil=True)
-def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K,
-                   a, ez, cc, site_c, M, e, cfb, G, sh, lut_offset, code_offset, cand, code_frac, metric, cut2,
-                   ni, nj, nb, rod_key, ns,
+def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
                    tally, keys, order, bucket, bstart, rshift):
     """Place the selected ions ``rows[lo:hi]`` (rows of x, y, z) with their drawn ``metals`` on
-    their rod and site (arithmetic as columns._assign_chunk), then sort their bins by block of rods."""
+    their rod and site (arithmetic as columns._assign_chunk), then sort their bins by block of rods.
+
+    ``geo`` is the :class:`probeseq.columns.KernelGeometry` of the column geometry, read by name.
+    """
     fdt = x.dtype.type
     fac = fdt(factor)
     scale = factor != 1.0
+    a = geo.cell_xy
+    ez = geo.cell_z
+    cc = geo.cell_origin
+    site_c = geo.site_coef
+    M = geo.frac_xy
+    e = geo.frac_z
+    cfb = geo.frac_origin
+    G = geo.n_grid
+    sh = geo.grid_bits
+    lut_offset = geo.lut_offset
+    code_offset = geo.code_offset
+    cand = geo.candidates
+    code_frac = geo.code_frac
+    metric = geo.metric
+    cut2 = geo.cutoff2_nm2
+    ni = geo.n_cells_i
+    nj = geo.n_cells_j
+    nb = geo.rods_per_cell
+    rod_key = geo.rod_key
+    ns = geo.n_sites
     a00 = fdt(a[0, 0]); a01 = fdt(a[0, 1]); a10 = fdt(a[1, 0]); a11 = fdt(a[1, 1])
     ez0 = fdt(ez[0]); ez1 = fdt(ez[1]); cc0 = fdt(cc[0]); cc1 = fdt(cc[1])
     s0 = fdt(site_c[0]); s1 = fdt(site_c[1]); s2 = fdt(site_c[2]); s3 = fdt(site_c[3])
@@ -765,7 +767,7 @@ class CountPass:
                 hi = _select_kernel(ms, b - a, np.int64(row0 + a), plan.key, plan.mass_lut, plan.lows, plan.highs,
                                     plan.cum, plan.metal_range, sl.sel, sl.rows, sl.metals)
                 _locate_kernel(xs, ys, zs, sl.rows, sl.metals, np.int64(0), np.int64(hi), np.float64(self.factor),
-                               np.int64(plan.n_metals), *plan.geometry,
+                               np.int64(plan.n_metals), plan.geometry,
                                sl.tally, sl.keys, sl.order, sl.bucket, sl.bstart, sl.rshift)
                 nk[k] = int(sl.tally[5]) - before
             return run
@@ -790,9 +792,9 @@ class CountPass:
 
 
 def plan_rbits(plan: CountPlan) -> int:
-    """Bits of the range code (range + 2) in the kernel's packed (row, range) list."""
+    """Bits of the range code (range + _CODE_BASE) in the kernel's packed (row, range) list."""
     rbits = 1
-    while (1 << rbits) < plan.lows.size + 2:
+    while (1 << rbits) < plan.lows.size + _CODE_BASE:
         rbits += 1
     return rbits
 

@@ -6,13 +6,44 @@ count array rods x sites x metal channels with its geometry.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 
 import numpy as np
 
 from .exceptions import InputError
 
-__all__ = ["RodColumns", "save_columns", "load_columns", "COLUMNS_FILE_VERSION"]
+__all__ = ["RodColumns", "ReadOnlyParams", "save_columns", "load_columns", "COLUMNS_FILE_VERSION"]
+
+
+class ReadOnlyParams(dict):
+    """A dict that refuses every change: the parameters of a frozen :class:`RodColumns`.
+
+    It is a ``dict`` (so JSON writers, ``isinstance(p, dict)`` and ``{**p, ...}`` work as before)
+    whose mutating methods raise ``TypeError``; nested dicts are read-only too. A changed copy is
+    built with ``dataclasses.replace(columns, params={**columns.params, key: value})``; ``dict(p)``
+    or ``p.copy()`` give a plain, mutable (shallow) copy. Pickles and copies as itself.
+
+    Parameters
+    ----------
+    params : mapping, optional
+        The parameters (str keys; JSON-able values).
+    """
+
+    __slots__ = ()
+
+    def __init__(self, params=()):
+        super().__init__((k, ReadOnlyParams(v) if isinstance(v, Mapping) else v) for k, v in dict(params).items())
+
+    def _refuse(self, *args, **kwargs):
+        raise TypeError("RodColumns.params is read-only: build a new RodColumns with "
+                        "dataclasses.replace(columns, params={**columns.params, ...})")
+
+    __setitem__ = __delitem__ = __ior__ = _refuse
+    clear = pop = popitem = setdefault = update = _refuse
+
+    def __reduce__(self):
+        return type(self), (dict(self),)
 
 
 @dataclass(frozen=True)
@@ -45,8 +76,9 @@ class RodColumns:
         Whether single rods are resolvable (expected crosstalk below the documented threshold).
     crosstalk : float
         Expected fraction of a rod's ions assigned to another rod.
-    params : dict
-        Fitted registration parameters and quality figures, JSON-serialisable.
+    params : mapping
+        Fitted registration parameters and quality figures, JSON-serialisable; stored as a
+        :class:`ReadOnlyParams` (a dict that refuses changes, nested dicts included).
     site_z_offset_nm : (n_rods,) ndarray of float, nm
         Depth offset of each rod's sites: site k of rod r lies at depth
         ``site_z_nm[k] + site_z_offset_nm[r]``. With tilted rods the planes of sites are
@@ -98,6 +130,10 @@ class RodColumns:
         off = np.zeros(c.shape[0]) if self.site_z_offset_nm is None else np.asarray(self.site_z_offset_nm, float)
         if off.shape != (c.shape[0],):
             raise InputError(f"site_z_offset_nm has shape {off.shape}, expected ({c.shape[0]},)")
+        if not isinstance(self.params, Mapping):
+            raise InputError(f"params must be a mapping, got {type(self.params).__name__}")
+        if not isinstance(self.params, ReadOnlyParams):
+            object.__setattr__(self, "params", ReadOnlyParams(self.params))
         object.__setattr__(self, "site_z_offset_nm", off)
         object.__setattr__(self, "counts", c)
         object.__setattr__(self, "mask", m)

@@ -14,23 +14,29 @@ The stages are public so the stage commands run exactly what ``analyze`` runs:
 from __future__ import annotations
 
 import json
-import os
 import sys
 import threading
 import time
 import warnings
-from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Callable, Optional
+from typing import TYPE_CHECKING, Callable, Optional
 
 import numpy as np
 
+from . import runtime
 from ._version import __version__
 from .data import RodColumns
 from .exceptions import DataQualityWarning, InputError
 from .ions import IonList, check_position_extent
 from .lattice import Lattice
+
+if TYPE_CHECKING:  # type names only: these modules are heavy to import
+    from .classify import Classification
+    from .decode import DecodeResult
+    from .groups import GroupResult
+    from .ranging import RangingResult
+    from .stats import RunStatistics
 
 __all__ = ["AnalysisOptions", "AnalysisResult", "analyze", "analyze_file", "write_analysis", "RESULTS_SCHEMA_VERSION",
            "CountResult", "count_ions", "count_file", "range_file", "range_sample", "decode_stage",
@@ -159,19 +165,48 @@ class AnalysisOptions:
 
 @dataclass(frozen=True)
 class AnalysisResult:
-    """Everything :func:`analyze` found, stage by stage."""
+    """Everything :func:`analyze` found, stage by stage.
+
+    Attributes
+    ----------
+    metals : tuple of str
+        Metal symbols, in channel order.
+    lattice : Lattice
+    options : AnalysisOptions
+    ions_summary : dict
+        The ``ions`` section of ``results.json`` (rows, extents in nm, mass-to-charge range in Da).
+    ranging : RangingResult
+        The ranged mass spectrum.
+    n_metal_ions : int
+        Ions of the run in a range holding a metal.
+    columns : RodColumns
+        Counts (n_rods, n_sites, n_metals) with their geometry.
+    decoded : DecodeResult
+        Fitted rod model, Viterbi paths (n_rods, n_sites) and posteriors (n_rods, n_sites, n_metals).
+    groups : GroupResult or None
+        The groups-of-rods analysis when single rods are not resolvable, else None.
+    statistics : RunStatistics
+    classification : Classification
+    timings_s : dict of str -> float
+        Wall time of each stage, s.
+    warnings : tuple of str
+    provenance : dict
+        Tool, version, options, inputs and seed (the ``provenance`` section of ``results.json``).
+    figure_ions : IonList or None
+        Ions kept for the figures, if any.
+    """
 
     metals: tuple
     lattice: Lattice
     options: AnalysisOptions
     ions_summary: dict
-    ranging: object
+    ranging: RangingResult
     n_metal_ions: int
     columns: RodColumns
-    decoded: object
-    groups: object
-    statistics: object
-    classification: object
+    decoded: DecodeResult
+    groups: Optional[GroupResult]
+    statistics: RunStatistics
+    classification: Classification
     timings_s: dict
     warnings: tuple
     provenance: dict = field(default_factory=dict)
@@ -198,7 +233,7 @@ class AnalysisResult:
         comp, comp_iv = {}, {}
         for m in self.metals:
             c = rcomp.get(m) or {}
-            f, sd = c.get("fraction"), c.get("sigma")
+            f, sd = c.get("fraction"), c.get("fraction_err")
             if f is None:
                 f = st["composition"][m]
                 comp_iv[m] = st["intervals"].get(f"composition.{m}")
@@ -294,7 +329,7 @@ def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: An
     opts = options or AnalysisOptions()
     metals = _check_metals(metals)
     _check_ions(ions)
-    _preload_libraries()
+    runtime.preload()
     return _analyze_ions(ions, metals, lattice, opts, ranges, progress, provenance, SAMPLE_IONS)
 
 
@@ -343,7 +378,7 @@ class CountResult:
     Unpacks as ``ranging, columns, n_metal_ions = count_file(...)``.
     """
 
-    ranging: object
+    ranging: RangingResult
     columns: RodColumns
     n_metal_ions: int
     sample: IonList = field(repr=False)
@@ -387,7 +422,7 @@ def count_ions(ions: IonList, metals, lattice: Lattice, *, ranges=None, options:
     opts = options or AnalysisOptions()
     metals = _check_metals(metals)
     _check_ions(ions)
-    _preload_libraries()
+    runtime.preload()
     return _count_ions(ions, metals, lattice, opts, ranges, _Clock(progress), SAMPLE_IONS)
 
 
@@ -452,39 +487,6 @@ def _same_float(x, y, z):
     return x.astype(dt), y.astype(dt), z.astype(dt)
 
 
-@contextmanager
-def _single_threaded_blas():
-    """Limit BLAS/LAPACK to one thread inside the fits: their matrices are small, and a second
-    BLAS thread on a busy two-core machine costs far more than it gives (measured: a 3000 x 16 SVD
-    took 0.25 s with two threads against 2 ms with one).
-
-    The loaded libraries are inspected once per process (:func:`_blas_controller`; inspecting
-    them took 40 ms with numba's libraries loaded), then each limit costs microseconds.
-    """
-    try:
-        ctl = _blas_controller().limit(limits=1, user_api="blas")
-    except Exception:  # threadpoolctl missing or unable to inspect the libraries: run as is
-        ctl = None
-    try:
-        yield
-    finally:
-        if ctl is not None:
-            ctl.restore_original_limits()
-
-
-_BLAS_CONTROLLER = []
-
-
-def _blas_controller():
-    """threadpoolctl's view of the loaded BLAS libraries, made on first use (raises ImportError
-    without threadpoolctl)."""
-    if not _BLAS_CONTROLLER:
-        from threadpoolctl import ThreadpoolController
-
-        _BLAS_CONTROLLER.append(ThreadpoolController())
-    return _BLAS_CONTROLLER[0]
-
-
 def _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, factor, *, strict: bool = False,
                    where: str = "", message: str = ""):
     """Fits on the sample, then the pass over ``blocks()``; returns (rr, cols, n_metal, tally, ext)."""
@@ -504,7 +506,7 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
 
     m = sample.mass_to_charge
     stride = _ranging_stride(m.size)
-    with _single_threaded_blas():
+    with runtime.single_threaded_blas():
         with clock.stage("ranging", f"ranging the mass spectrum of {m[::stride].size} sampled ions"):
             rr = range_sample(sample, metals, species=opts.species, ranges=ranges)
             ca = assign_channels(m, rr.ranges, metals)
@@ -570,6 +572,8 @@ def _run_pass(plan, counts, factor, strict, blocks, where="", threads=None):
     """
     from .counting import FLOAT32_LIMIT, CountPass
 
+    if threads is None:
+        threads = runtime.pass_threads()  # None: the pass's own default
     with CountPass(plan, counts, threads=threads, factor=factor, strict=strict) as cp:
         for row0, x, y, z, m in blocks():
             cp.add(row0, x, y, z, m)
@@ -597,8 +601,8 @@ def _finish_pass(geom, counts, metals, tally, thin):
         raise InputError(f"no ions fall in ranges of the metals {', '.join(metals)}")
     stats = {"n_ions": n_metal, "n_binned": t["n_binned"], "n_beyond_cutoff": t["n_beyond_cutoff"],
              "n_unused_rod": t["n_unused_rod"], "n_outside_depth": t["n_outside_depth"]}
-    cols = columns_from_counts(geom, counts, metals, stats)
-    cols.params["detection_balance"] = {m: float(v) for m, v in zip(metals, thin)}
+    balance = {m: float(v) for m, v in zip(metals, thin)}
+    cols = columns_from_counts(geom, counts, metals, stats, extra_params={"detection_balance": balance})
     return cols, n_metal
 
 
@@ -818,7 +822,7 @@ def count_file(path, metals, lattice: Lattice, *, ranges=None, options: Analysis
     """
     from .io import ion_file_kind
 
-    _preload_libraries()
+    runtime.preload()
     opts = options or AnalysisOptions()
     metals = _check_metals(metals)
     kind = ion_file_kind(path)
@@ -884,7 +888,7 @@ def range_file(path, metals, *, species=None, ranges=None, length_unit=None, pos
                        mass_dataset=mass_dataset) as src:
             sample = _stream_sample(src, path, clock, sample_ions, strict)
     n_fit = sample.mass_to_charge[::_ranging_stride(len(sample))].size
-    with _single_threaded_blas():
+    with runtime.single_threaded_blas():
         with clock.stage("ranging", f"ranging the mass spectrum of {n_fit} sampled ions"):
             rr = range_sample(sample, metals, species=species, ranges=ranges)
     return rr, sample
@@ -997,7 +1001,7 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
     """
     from .io import ion_file_kind
 
-    t_start = _preload_libraries()
+    t_start = runtime.preload()
     opts = options or AnalysisOptions()
     metals = _check_metals(metals)
     kind = ion_file_kind(path)
@@ -1035,7 +1039,7 @@ def _analyze_stream(path, metals, lattice, opts, ranges, progress, provenance, t
     from .ions import IonMeta
 
     sha = {}
-    hasher = threading.Thread(target=_checksum_in_background, args=(file_sha256_mapped, path, sha), daemon=True,
+    hasher = threading.Thread(target=runtime.background_checksum, args=(file_sha256_mapped, path, sha), daemon=True,
                               name="probeseq-sha256")
 
     def counts_stage(clock):
@@ -1057,51 +1061,6 @@ def _analyze_stream(path, metals, lattice, opts, ranges, progress, provenance, t
         raise sha["hex"]
     res.provenance["input"] = {"source": str(path), "sha256": sha["hex"]}
     return replace(res, ions_summary={**res.ions_summary, "sha256": sha["hex"]}), t_wait
-
-
-_PRELOADED = []
-
-
-def _preload_libraries() -> float:
-    """Import the libraries the counts stage uses and start numba's compiled-code runtime (loading
-    the cached kernels' machinery), once per process; returns the seconds it took.
-
-    This is library start-up, not reading: :func:`analyze_file` runs it before its clock starts and
-    records it as ``timings_s.startup``, so ``read_to_counts`` measures the data work.
-    """
-    if _PRELOADED:
-        return 0.0
-    t = time.perf_counter()
-    import h5py  # noqa: F401
-    import scipy.ndimage  # noqa: F401
-    import scipy.optimize  # noqa: F401
-    import scipy.signal  # noqa: F401
-    import scipy.spatial  # noqa: F401
-    import scipy.special  # noqa: F401
-
-    from . import columns, ranging, registration  # noqa: F401
-    from .counting import ion_uniforms
-
-    try:
-        _blas_controller()
-    except Exception:  # threadpoolctl missing or unable to inspect the libraries
-        pass
-    ion_uniforms(0, 0, 1)  # the first compiled call sets up numba's typing and target contexts
-    _PRELOADED.append(True)
-    return time.perf_counter() - t
-
-
-def _checksum_in_background(fn, path, out: dict):
-    """Thread body: ``out["hex"] = fn(path)`` (or the error, re-raised by the caller), run at a lower
-    scheduling priority where the system allows it, so it only takes CPU time the pass leaves."""
-    try:
-        os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), 19)
-    except (AttributeError, OSError):
-        pass
-    try:
-        out["hex"] = fn(path)
-    except BaseException as e:  # re-raised in the calling thread
-        out["hex"] = InputError(f"{path}: could not read the file for its checksum ({e})")
 
 
 def _file_blocks(src, chunk: int):
@@ -1184,36 +1143,6 @@ def _write_table(path: Path, table: dict, columns, fmt: dict | None = None, comm
         for s0 in range(0, n, step):
             block = [c[s0:s0 + step].tolist() for c in cols]
             fh.write("".join(row % r for r in zip(*block)))
-
-
-class _Background:
-    """Run a function in a forked child process (no pickling: the child inherits the data), so a
-    long table write uses the second core while figures are drawn. Falls back to running it in place
-    where fork is not available."""
-
-    def __init__(self, fn, *args):
-        import multiprocessing as mp
-
-        self.proc = None
-        try:
-            ctx = mp.get_context("fork")
-        except ValueError:
-            fn(*args)
-            return
-        self.proc = ctx.Process(target=fn, args=args, daemon=True)
-        self.proc.start()
-
-    def join(self, what: str):
-        if self.proc is None:
-            return
-        self.proc.join()
-        if self.proc.exitcode != 0:
-            raise InputError(f"writing {what} failed (exit code {self.proc.exitcode})")
-
-    def kill(self):
-        if self.proc is not None and self.proc.is_alive():
-            self.proc.terminate()
-            self.proc.join()
 
 
 def save_decoded(decoded, path):
@@ -1486,7 +1415,7 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
     command = result.provenance.get("command_line")
     with staged_outdir(outdir, force=force, inputs=inputs, command=command) as st:
         write_json(st / "results.json", result.to_dict())
-        tracks = _Background(write_tracks, st / "tracks.csv", result.columns, result.decoded)
+        tracks = runtime.Background(write_tracks, st / "tracks.csv", result.columns, result.decoded)
         try:
             _write_rest(result, st, report, progress, extra)
             tracks.join("tracks.csv")

@@ -20,6 +20,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from . import runtime
 from .exceptions import InputError
 from .lattice import Lattice
 
@@ -97,7 +98,9 @@ def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_r
     n_per_pattern, n_per_persistence : int
         Simulated runs per arrangement and per persistence of the scan.
     workers : int, optional
-        Processes (default: all cores, at most 2 on this project's reference machine).
+        Processes. Default: ``n_jobs`` of :func:`probeseq.runtime.configure` (the command
+        line's ``--jobs``) when set, else two (one on a single core); each worker's compiled
+        kernels then use its share of ``n_jobs``.
 
     Returns
     -------
@@ -158,10 +161,12 @@ def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_r
             s += 1
             jobs.append((SimConfig(pattern="short-repeat", persistence=lam, seed=s, **base), n_boot))
             kinds.append(("scan", lam))
-    n_workers = workers or min(2, os.cpu_count() or 1)
+    n_workers = min(runtime.worker_count(workers, min(2, os.cpu_count() or 1)), len(jobs))
     results = []
     if n_workers > 1:
-        with ProcessPoolExecutor(max_workers=n_workers) as ex:
+        runtime.ensure()  # the fork-safe threading layer, before the workers start
+        with ProcessPoolExecutor(max_workers=n_workers, initializer=runtime.configure,
+                                 initargs=(runtime.worker_jobs(n_workers),)) as ex:
             for i, r in enumerate(ex.map(_one, jobs)):
                 results.append(r)
                 if progress:

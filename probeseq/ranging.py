@@ -95,6 +95,7 @@ __all__ = [
     "DEFAULT_FRAGMENTS",
     "MAX_RANGE_DA",
     "METAL_ION_TEMPLATES",
+    "LookupTable",
     "Range",
     "RangeSet",
     "Calibration",
@@ -125,7 +126,6 @@ DEFAULT_FRAGMENTS = (
 #: otherwise its peak is reported as unmatched (an ion nobody predicted on a minor isotope line)
 _MIN_EXPLAINED = 0.2
 _LUT_SCALE = 1024.0  # cells per Da; a power of two, so m * scale is exact in float32 and float64
-_EDGE = np.int32(-2)
 
 
 # ============================================================================ ranges
@@ -413,13 +413,35 @@ def _key_line(text, key, start, stop):
 
 # ============================================================================ channels
 @dataclass(frozen=True)
-class _Lookup:
+class LookupTable:
     """Range lookup table on 1/1024-Da cells, with exact handling of cells holding an edge.
 
+    Every cell stores the index of the range covering it, :attr:`UNRANGED` where no range does and
+    :attr:`EDGE` where a range edge splits the cell (such cells are resolved by binary search).
     With a channel table (at most 16 channels) every cell stores ``range_index << 4 | channel``,
-    so one gather gives both; cells that hold a range edge store range index ``-2`` and are
-    resolved by binary search.
+    so one gather gives both. These codes are defined here only; :meth:`candidate_table` packs
+    them for the compiled counting pass.
+
+    Attributes
+    ----------
+    lut : (n_cells,) ndarray of int32
+        Code of each 1/1024-Da cell (read-only).
+    lows, highs : (n_ranges,) ndarray of float64, Da
+        Range bounds, sorted.
+    channel : (n_ranges + 1,) ndarray of int8 or None
+        Channel of each range (last entry: unranged), if the table carries channels.
+    shift : int
+        Bits of the channel in every cell (0 without channels, else 4).
     """
+
+    #: range index of a value in no range
+    UNRANGED = -1
+    #: range index stored in a cell that holds a range edge (resolved by binary search)
+    EDGE = -2
+    #: added to a stored range index to make every code of :meth:`candidate_table` non-negative
+    CODE_BASE = 2
+    #: cells per Da (a power of two, so ``m * CELLS_PER_DA`` is exact in float32 and float64)
+    CELLS_PER_DA = _LUT_SCALE
 
     lut: np.ndarray
     lows: np.ndarray
@@ -428,7 +450,8 @@ class _Lookup:
     shift: int
 
     @classmethod
-    def build(cls, ranges: RangeSet, channel=None) -> "_Lookup":
+    def build(cls, ranges: RangeSet, channel=None) -> "LookupTable":
+        """Table of ``ranges`` (with the per-range ``channel`` table, (n_ranges + 1,) int8, if given)."""
         lows, highs = ranges.lows_da, ranges.highs_da
         top = int(math.ceil((highs.max() if highs.size else 0.0) * _LUT_SCALE)) + 2
         starts = np.arange(top, dtype=np.float64) / _LUT_SCALE
@@ -436,11 +459,11 @@ class _Lookup:
         edges = np.concatenate([lows, highs])
         cells = np.floor(edges * _LUT_SCALE).astype(np.int64)
         exact_start = cells / _LUT_SCALE == edges  # an edge on a cell start does not split the cell
-        ri[cells[~exact_start]] = _EDGE
+        ri[cells[~exact_start]] = cls.EDGE
         shift = 0
         if channel is not None and int(channel.max(initial=0)) < 16:
             shift = 4
-            ri = (ri << 4) | np.where(ri == _EDGE, 0, channel[np.maximum(ri, -1)]).astype(np.int32)
+            ri = (ri << 4) | np.where(ri == cls.EDGE, 0, channel[np.maximum(ri, cls.UNRANGED)]).astype(np.int32)
         ri.flags.writeable = False
         return cls(ri, lows, highs, channel, shift)
 
@@ -476,7 +499,7 @@ class _Lookup:
                 np.bitwise_and(idx, 15, out=ch[s:e], casting="unsafe")
             else:
                 np.take(self.lut, idx, out=out)
-            edge = np.flatnonzero(out == _EDGE)
+            edge = np.flatnonzero(out == self.EDGE)
             if edge.size:
                 out[edge] = _exact(m[s:e][edge].astype(np.float64), self.lows, self.highs)
             if ch is not None:
@@ -488,18 +511,45 @@ class _Lookup:
         return ri if ch is None else (ri, ch)
 
 
+    def candidate_table(self, candidate) -> np.ndarray:
+        """The table packed for the compiled counting pass, with a candidate flag per cell.
+
+        Parameters
+        ----------
+        candidate : (n_ranges,) array of bool
+            Ranges whose ions are candidates (for the counting pass: ranges holding metal).
+
+        Returns
+        -------
+        (n_cells,) ndarray of int32
+            ``(code + CODE_BASE) << 1 | flag`` per cell, ``code`` the cell's range index,
+            :attr:`UNRANGED` or :attr:`EDGE`; ``flag`` is 1 for a candidate range and for an edge
+            cell (resolved later), 0 for unranged cells.
+        """
+        if self.shift:
+            raise InputError("candidate_table needs a lookup table without channels")
+        candidate = np.asarray(candidate, bool).reshape(-1)
+        if candidate.size != self.lows.size:
+            raise InputError(f"candidate must have {self.lows.size} entries, got {candidate.size}")
+        flag = np.zeros(candidate.size + self.CODE_BASE, np.int64)
+        flag[self.EDGE + self.CODE_BASE] = 1
+        flag[self.CODE_BASE:] = candidate
+        code = np.asarray(self.lut, np.int64) + self.CODE_BASE
+        return ((code << 1) | flag[code]).astype(np.int32)
+
+
 def _exact(m64, lows, highs):
-    """Range index of each value (``-1`` outside every range), by binary search."""
+    """Range index of each value (``LookupTable.UNRANGED`` outside every range), by binary search."""
     if lows.size == 0:
-        return np.full(m64.shape, -1, dtype=np.int32)
+        return np.full(m64.shape, LookupTable.UNRANGED, dtype=np.int32)
     k = np.searchsorted(lows, m64, side="right") - 1
     inside = (k >= 0) & (m64 < highs[np.maximum(k, 0)])
-    return np.where(inside, k, -1).astype(np.int32)
+    return np.where(inside, k, LookupTable.UNRANGED).astype(np.int32)
 
 
 @lru_cache(maxsize=16)
-def _lookup_for(ranges: RangeSet, metals: tuple | None = None) -> _Lookup:
-    return _Lookup.build(ranges, None if metals is None else _weights_for(ranges, metals)[2])
+def _lookup_for(ranges: RangeSet, metals: tuple | None = None) -> LookupTable:
+    return LookupTable.build(ranges, None if metals is None else _weights_for(ranges, metals)[2])
 
 
 def channel_tables(ranges: RangeSet, metals) -> tuple:
@@ -1046,7 +1096,7 @@ class RangingResult:
             ranges.append({"ion": r.label, "formula": r.formula, "charge": r.charge, "low_da": r.low_da,
                            "high_da": r.high_da, "counts": float(self.gross_counts[j]),
                            "background_counts": float(self.background_counts[j]),
-                           "background_sigma": float(self.background_sigma[j]),
+                           "background_counts_err": float(self.background_sigma[j]),
                            "shares": {ion_label(f, z): p for f, z, p in r.shares},
                            "deconvolved": j in self.deconvolved,
                            "peak_da": (float(self.peaks.position_da[self.range_peak[j]])
@@ -1057,16 +1107,16 @@ class RangingResult:
                        "net_counts": float(self.peaks.net_counts[i]), "nearest_prediction": near})
         return {
             "metals": list(self.metals),
-            "composition": {m: {"fraction": _num(x), "sigma": _num(s)}
+            "composition": {m: {"fraction": _num(x), "fraction_err": _num(s)}
                             for m, x, s in zip(self.metals, self.composition, self.composition_sigma)},
-            "metal_atoms": {m: {"atoms": float(a), "sigma": float(s)}
+            "metal_atoms": {m: {"atoms": float(a), "atoms_err": float(s)}
                             for m, a, s in zip(self.metals, self.metal_atoms, self.metal_atoms_sigma)},
             "resolving_power": _num(self.resolving_power),
             "peak_shape": None if self.peak_shape is None else self.peak_shape.to_dict(),
             "calibration": self.calibration.to_dict(),
             "ranges": ranges,
             "deconvolved_ranges": [int(j) for j in self.deconvolved],
-            "species": [{"ion": ion_label(f, z), "amount": float(a), "sigma": float(s)}
+            "species": [{"ion": ion_label(f, z), "amount": float(a), "amount_err": float(s)}
                         for (f, z), a, s in zip(self.species, self.amounts, self.amounts_sigma)],
             "unmatched_peaks": un,
             "n_peaks": len(self.peaks),

@@ -32,6 +32,8 @@ import math
 import numba
 import numpy as np
 
+from . import runtime
+
 __all__ = ["fit_pass", "decode_pass", "set_threads"]
 
 _EPS = 1e-9
@@ -40,11 +42,13 @@ RESCALE_EVERY = 8
 
 
 def set_threads(n: int | None) -> int:
-    """Set the number of threads of the kernels (None: all cores); returns the number set."""
-    n_max = numba.config.NUMBA_NUM_THREADS
-    n = n_max if n is None else max(1, min(int(n), n_max))
-    numba.set_num_threads(n)
-    return n
+    """Set the number of threads of the kernels (None: all cores); returns the number used.
+
+    The same as :func:`probeseq.runtime.configure` with ``n_jobs=n`` (which also sets the
+    worker processes of batches); the kernels take their thread count from there on every call.
+    """
+    runtime.configure(n)
+    return runtime.kernel_threads()
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
@@ -376,6 +380,7 @@ def fit_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob):
     g0 = np.zeros((n, k))
     own = np.zeros((n, k))
     adj = np.zeros((n, k))
+    runtime.ensure()
     _fit_kernel(counts, mask, rods, first, span, float(eta), np.ascontiguousarray(mu, dtype=float),
                 np.ascontiguousarray(transmat, dtype=float), np.ascontiguousarray(startprob, dtype=float),
                 ll, xi, g0, own, adj, _states(k))
@@ -407,6 +412,7 @@ def decode_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, u
     post = np.zeros((n_rods, n_sites, k), dtype=np.float32)
     path = np.full((n_rods, n_sites), -1, dtype=np.int8)
     unc = np.zeros((n_rods, n_sites), dtype=bool)
+    runtime.ensure()
     _decode_kernel(counts, mask, rods, first, span, float(eta), np.ascontiguousarray(mu, dtype=float),
                    np.ascontiguousarray(transmat, dtype=float), np.ascontiguousarray(startprob, dtype=float),
                    float(uncertain_below), ll, xi, occ, post, path, unc, _states(np.asarray(mu).size))

@@ -406,3 +406,30 @@ def test_compact_counts_only_when_exact():
         x = whole.copy()
         x[7, 3, 1] = bad
         assert compact_counts(x) is x
+
+
+def test_params_read_only(tmp_path):
+    """A frozen RodColumns keeps its params: changes raise, a changed copy is a new object."""
+    import dataclasses
+    import pickle
+
+    from probeseq.data import load_columns, save_columns
+
+    cols = RodColumns(counts=np.zeros((1, 2, 1)), mask=np.ones((1, 2), bool), metals=("Zn",),
+                      rod_xy_nm=[[0.0, 0.0]], tilt=[0.0, 0.0], z_ref_nm=0.0, site_z_nm=[0.0, 1.0], pitch_nm=1.0,
+                      params={"registration": {"scale": 1.0}, "ions": {"n_ions": 3}})
+    with pytest.raises(TypeError):
+        cols.params["detection_balance"] = {}
+    with pytest.raises(TypeError):
+        cols.params["registration"]["scale"] = 2.0
+    with pytest.raises(TypeError):
+        cols.params.update(a=1)
+    more = dataclasses.replace(cols, params={**cols.params, "detection_balance": {"Zn": 1.0}})
+    assert "detection_balance" not in cols.params and more.params["detection_balance"] == {"Zn": 1.0}
+    assert pickle.loads(pickle.dumps(more)).params == more.params
+    assert json.loads(json.dumps(more.params)) == more.params
+    save_columns(more, tmp_path / "c.h5")
+    assert load_columns(tmp_path / "c.h5").params == more.params
+    with pytest.raises(InputError):
+        RodColumns(counts=np.zeros((1, 2, 1)), mask=np.ones((1, 2), bool), metals=("Zn",), rod_xy_nm=[[0.0, 0.0]],
+                   tilt=[0.0, 0.0], z_ref_nm=0.0, site_z_nm=[0.0, 1.0], pitch_nm=1.0, params=[1])

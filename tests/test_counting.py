@@ -376,3 +376,34 @@ def test_same_seed_same_results_file(tmp_path, run):
     assert json.dumps(a, sort_keys=True, default=str) == json.dumps(b, sort_keys=True, default=str)
     assert a["ions"]["streamed"] and a["ions"]["n_ions"] == run.ions.n_ions
     assert a["ions"]["sha256"] and a["provenance"]["input"]["sha256"] == a["ions"]["sha256"]
+
+
+def test_kernel_geometry_is_the_geometry_arrays(fitted):
+    """The compiled pass reads the geometry by name, from the geometry's own tables (no copies)."""
+    from probeseq.columns import KernelGeometry
+
+    _rr, _thin, geom = fitted
+    kg = geom.kernel_geometry()
+    assert isinstance(kg, KernelGeometry)
+    for name in ("lut_offset", "code_offset", "rod_key"):
+        assert np.shares_memory(getattr(kg, name), getattr(geom, name)), name
+    assert kg.n_sites == geom.n_sites and kg.rods_per_cell == geom.lattice.rods_per_cell
+    assert kg.n_grid == 1 << kg.grid_bits == geom.locator.n_grid
+
+
+def test_candidate_table_codes(fitted):
+    """The packed range table holds the codes of probeseq.ranging.LookupTable, defined there once."""
+    from probeseq.ranging import LookupTable
+
+    rr, _thin, _geom = fitted
+    lk = LookupTable.build(rr.ranges)
+    cand = np.arange(len(rr.ranges)) % 2 == 0
+    packed = lk.candidate_table(cand).astype(np.int64)
+    code = (packed >> 1) - LookupTable.CODE_BASE
+    flag = packed & 1
+    assert np.array_equal(code, lk.lut)
+    assert (flag[code == LookupTable.EDGE] == 1).all() and (flag[code == LookupTable.UNRANGED] == 0).all()
+    ranged = code >= 0
+    assert np.array_equal(flag[ranged], cand[code[ranged]])
+    with pytest.raises(InputError):
+        lk.candidate_table(cand[:-1])

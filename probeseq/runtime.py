@@ -1,0 +1,310 @@
+"""Performance plumbing in one place: thread counts, BLAS limits, start-up and fork-safety.
+
+Nothing here changes a result; it only decides how the work is spread over the machine.
+
+One setting, ``n_jobs``, given to :func:`configure` (the command line's ``--jobs``), is the budget
+of the whole process:
+
+* threads of the compiled kernels (numba's ``prange`` loops): ``n_jobs``, or all cores when None;
+* the fused counting pass: at most ``n_jobs`` of its worker threads (its own default, two, when
+  None; see :func:`probeseq.counting.default_threads`);
+* worker processes of a batch (:func:`probeseq.batch.analyze_batch`) and of
+  :func:`probeseq.plan.plan_experiment` when they are not given a count: ``n_jobs`` (their own
+  defaults when None), each worker then running its kernels on its share of ``n_jobs``.
+
+:func:`configure` also chooses numba's threading layer: the fork-safe ``'workqueue'`` unless the
+user chose one (``NUMBA_THREADING_LAYER`` or ``numba.config.THREADING_LAYER``). Worker processes
+and the table written by a forked child (:class:`Background`) run compiled kernels, and numba's
+GNU OpenMP layer aborts a forked child that starts a parallel loop. The layer is set in the
+environment when numba is not imported yet, else in numba's configuration; either way before
+numba starts its threads.
+
+The command line calls :func:`configure` once at start. Library users need not call it: the
+first kernel use calls :func:`ensure`, which configures the defaults (all cores, the fork-safe
+layer) once, so the default behaviour is the same with or without a call. Importing this module
+imports nothing beyond the standard library.
+"""
+
+from __future__ import annotations
+
+import operator
+import os
+import sys
+import threading
+import time
+from contextlib import contextmanager
+
+from .exceptions import InputError
+
+__all__ = ["configure", "ensure", "jobs", "kernel_threads", "pass_threads", "worker_count", "worker_jobs",
+           "single_threaded_blas", "preload", "Background", "background_checksum", "MAX_JOBS", "FORK_SAFE_LAYER"]
+
+#: largest accepted ``n_jobs``: more than the cores of any machine this runs on; a larger value is a typo
+MAX_JOBS = 1024
+#: numba's threading layer used unless the user chose one (fork-safe, needs no extra library)
+FORK_SAFE_LAYER = "workqueue"
+
+_STATE = {"configured": False, "n_jobs": None, "layer_set": False, "limited": False}
+_BLAS_CONTROLLER = []
+_PRELOADED = []
+
+
+def _check_jobs(n_jobs):
+    """``n_jobs`` as an int (or None); raises a one-line InputError for anything else."""
+    if n_jobs is None:
+        return None
+    if isinstance(n_jobs, bool):
+        raise InputError(f"--jobs (n_jobs) must be a whole number from 1 to {MAX_JOBS}, got {n_jobs!r}")
+    try:
+        n = operator.index(n_jobs)
+    except TypeError:
+        raise InputError(f"--jobs (n_jobs) must be a whole number from 1 to {MAX_JOBS}, "
+                         f"got {n_jobs!r:.40}") from None
+    if not 1 <= n <= MAX_JOBS:
+        raise InputError(f"--jobs (n_jobs) must be a whole number from 1 to {MAX_JOBS}, got {n}")
+    return int(n)
+
+
+def _choose_layer():
+    """Use the fork-safe threading layer unless the user chose one (before numba starts threads)."""
+    user_env = "NUMBA_THREADING_LAYER" in os.environ and not _STATE["layer_set"]
+    if user_env:
+        return
+    numba = sys.modules.get("numba")
+    if numba is None:
+        os.environ["NUMBA_THREADING_LAYER"] = FORK_SAFE_LAYER  # read by numba when it is imported
+        _STATE["layer_set"] = True
+        return
+    config = getattr(numba, "config", None)
+    if config is not None and getattr(config, "THREADING_LAYER", "default") == "default":
+        config.THREADING_LAYER = FORK_SAFE_LAYER
+        os.environ["NUMBA_THREADING_LAYER"] = FORK_SAFE_LAYER  # the same for child processes
+        _STATE["layer_set"] = True
+
+
+def configure(n_jobs: int | None = None) -> None:
+    """Set the process's thread and worker budget and numba's threading layer.
+
+    Parameters
+    ----------
+    n_jobs : int, optional
+        Threads of the compiled kernels, and worker processes of a batch or a plan when they
+        are not given a count; from 1 to :data:`MAX_JOBS`. None (the default): all cores for the
+        kernels, the batch's and plan's own defaults for the workers. A count above numba's
+        thread pool (``NUMBA_NUM_THREADS``, by default the number of cores) gives the whole pool.
+
+    Raises
+    ------
+    InputError
+        ``n_jobs`` is not a whole number from 1 to :data:`MAX_JOBS`.
+
+    Notes
+    -----
+    Call it again to change the setting, e.g. ``configure(None)`` to go back to all cores. The
+    threading layer is chosen only when numba has not started its threads yet; numba is imported
+    here only when ``n_jobs`` limits the threads, so a call with the defaults costs nothing at
+    start-up and leaves numba exactly as it would be without the call.
+    """
+    n = _check_jobs(n_jobs)
+    _choose_layer()
+    _STATE["n_jobs"] = n
+    _STATE["configured"] = True
+    if n is not None or (_STATE["limited"] and "numba" in sys.modules):
+        _apply_threads()
+
+
+def ensure() -> None:
+    """Configure the defaults once if :func:`configure` was never called, then apply the thread
+    count in the calling thread (numba's count is per thread) once ``n_jobs`` has ever limited it.
+    Called before kernels run; costs microseconds after the first call."""
+    if not _STATE["configured"]:
+        configure(None)
+    elif _STATE["limited"] and "numba" in sys.modules:
+        _apply_threads()
+
+
+def _apply_threads() -> int:
+    """Set numba's thread count of the calling thread from ``n_jobs``; returns it."""
+    import numba
+
+    n_max = int(numba.config.NUMBA_NUM_THREADS)
+    n = _STATE["n_jobs"]
+    if n is not None:
+        _STATE["limited"] = True  # from now on every thread is set explicitly (numba's count is per thread)
+    n = n_max if n is None else min(n, n_max)
+    if numba.get_num_threads() != n:
+        numba.set_num_threads(n)
+    return n
+
+
+def jobs() -> int | None:
+    """The ``n_jobs`` last given to :func:`configure` (None: not limited)."""
+    return _STATE["n_jobs"]
+
+
+def kernel_threads() -> int:
+    """Threads the compiled kernels use in the calling thread (configuring the defaults first
+    when needed); imports numba."""
+    ensure()
+    return _apply_threads()
+
+
+def pass_threads() -> int | None:
+    """Worker threads of the fused counting pass: None (the pass's own default) unless ``n_jobs``
+    is set, else at most ``n_jobs`` of the default."""
+    n = _STATE["n_jobs"]
+    if n is None:
+        return None
+    from .counting import default_threads
+
+    return max(1, min(n, default_threads()))
+
+
+def worker_count(workers: int | None, default: int) -> int:
+    """Worker processes to use: ``workers`` when given, else ``n_jobs`` when set, else ``default``."""
+    if workers is not None:
+        return workers
+    n = _STATE["n_jobs"]
+    return default if n is None else n
+
+
+def worker_jobs(n_workers: int) -> int | None:
+    """``n_jobs`` for each of ``n_workers`` worker processes: an equal share of ``n_jobs`` (at
+    least one), or None (all cores, as before) when ``n_jobs`` is not set. Give it to
+    :func:`configure` as the workers' initializer."""
+    n = _STATE["n_jobs"]
+    return None if n is None else max(1, n // max(1, int(n_workers)))
+
+
+# ---------------------------------------------------------------------- BLAS
+@contextmanager
+def single_threaded_blas():
+    """Limit BLAS/LAPACK to one thread inside the block.
+
+    The fits' matrices are small, and a second BLAS thread on a busy two-core machine costs far
+    more than it gives (measured: a 3000 x 16 SVD took 0.25 s with two threads against 2 ms with
+    one). The loaded libraries are inspected once per process (inspecting them took 40 ms with
+    numba's libraries loaded), then each limit costs microseconds. Without threadpoolctl, or when
+    it cannot inspect the libraries, the block runs as is.
+    """
+    try:
+        ctl = _blas_controller().limit(limits=1, user_api="blas")
+    except Exception:  # threadpoolctl missing or unable to inspect the libraries: run as is
+        ctl = None
+    try:
+        yield
+    finally:
+        if ctl is not None:
+            ctl.restore_original_limits()
+
+
+def _blas_controller():
+    """threadpoolctl's view of the loaded BLAS libraries, made on first use (raises ImportError
+    without threadpoolctl)."""
+    if not _BLAS_CONTROLLER:
+        from threadpoolctl import ThreadpoolController
+
+        _BLAS_CONTROLLER.append(ThreadpoolController())
+    return _BLAS_CONTROLLER[0]
+
+
+# ---------------------------------------------------------------------- start-up
+def preload() -> float:
+    """Import the libraries the count stage uses and start numba's compiled-code runtime,
+    once per process; returns the seconds it took (0 after the first call).
+
+    This is library start-up, not data work: :func:`probeseq.pipeline.analyze_file` runs it
+    before its clock starts and records it as ``timings_s.startup``. It configures the runtime
+    defaults first (:func:`ensure`), so the threading layer is chosen before numba is imported.
+    """
+    ensure()
+    if _PRELOADED:
+        return 0.0
+    t = time.perf_counter()
+    import h5py  # noqa: F401
+    import scipy.ndimage  # noqa: F401
+    import scipy.optimize  # noqa: F401
+    import scipy.signal  # noqa: F401
+    import scipy.spatial  # noqa: F401
+    import scipy.special  # noqa: F401
+
+    from . import columns, ranging, registration  # noqa: F401
+    from .counting import ion_uniforms
+
+    try:
+        _blas_controller()
+    except Exception:  # threadpoolctl missing or unable to inspect the libraries
+        pass
+    ensure()  # numba is imported now: apply the thread count
+    ion_uniforms(0, 0, 1)  # the first compiled call sets up numba's typing and target contexts
+    _PRELOADED.append(True)
+    return time.perf_counter() - t
+
+
+# ---------------------------------------------------------------------- background work
+def background_checksum(fn, path, out: dict):
+    """Thread body: ``out["hex"] = fn(path)`` (or a one-line InputError, for the caller to
+    re-raise), run at the lowest scheduling priority where the system allows it, so it only takes
+    CPU time the other work leaves.
+
+    Parameters
+    ----------
+    fn : callable
+        Checksum function of a path, returning its hex digest.
+    path : str or Path
+    out : dict
+        Receives ``"hex"``.
+    """
+    try:
+        os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), 19)
+    except (AttributeError, OSError):
+        pass
+    try:
+        out["hex"] = fn(path)
+    except BaseException as e:  # re-raised in the calling thread
+        out["hex"] = InputError(f"{path}: could not read the file for its checksum ({e})")
+
+
+class Background:
+    """Run ``fn(*args)`` in a forked child process (no pickling: the child inherits the data), so
+    a long table write uses another core while figures are drawn. Where fork is not available it
+    runs in place, at once.
+
+    Parameters
+    ----------
+    fn : callable
+    *args
+        Its arguments.
+
+    Notes
+    -----
+    The child may run compiled kernels; the fork-safe threading layer (:func:`configure`) keeps
+    that safe, so the layer is settled (:func:`ensure`) before forking.
+    """
+
+    def __init__(self, fn, *args):
+        import multiprocessing as mp
+
+        self.proc = None
+        try:
+            ctx = mp.get_context("fork")
+        except ValueError:
+            fn(*args)
+            return
+        ensure()
+        self.proc = ctx.Process(target=fn, args=args, daemon=True)
+        self.proc.start()
+
+    def join(self, what: str):
+        """Wait for the child; raise a one-line InputError naming ``what`` if it failed."""
+        if self.proc is None:
+            return
+        self.proc.join()
+        if self.proc.exitcode != 0:
+            raise InputError(f"writing {what} failed (exit code {self.proc.exitcode})")
+
+    def kill(self):
+        """Stop the child if it still runs (after an error in the parent)."""
+        if self.proc is not None and self.proc.is_alive():
+            self.proc.terminate()
+            self.proc.join()
