@@ -787,6 +787,17 @@ def _read_all(path, progress, length_unit, position_dataset, mass_dataset, stric
                      mass_dataset=mass_dataset, strict=strict)
 
 
+def _whole_ions(path, kind, stream_above, progress, length_unit, position_dataset, mass_dataset,
+                strict) -> IonList | None:
+    """The whole ion list, checked, when the file is read whole (:func:`_read_whole`); None when
+    it is to be streamed."""
+    if not _read_whole(path, kind, stream_above, position_dataset, mass_dataset):
+        return None
+    ions = _read_all(path, progress, length_unit, position_dataset, mass_dataset, strict)
+    _check_ions(ions)
+    return ions
+
+
 def count_file(path, metals, lattice: Lattice, *, ranges=None, options: AnalysisOptions | None = None,
                length_unit=None, position_dataset=None, mass_dataset=None, strict: bool = False,
                progress: Progress = None, stream_above: int = STREAM_ABOVE_IONS, chunk_size: int = PASS_CHUNK,
@@ -828,9 +839,8 @@ def count_file(path, metals, lattice: Lattice, *, ranges=None, options: Analysis
     kind = ion_file_kind(path)
     _check_pass_sizes(chunk_size, sample_ions)
     clock = _Clock(progress)
-    if _read_whole(path, kind, stream_above, position_dataset, mass_dataset):
-        ions = _read_all(path, progress, length_unit, position_dataset, mass_dataset, strict)
-        _check_ions(ions)
+    ions = _whole_ions(path, kind, stream_above, progress, length_unit, position_dataset, mass_dataset, strict)
+    if ions is not None:
         return _count_ions(ions, metals, lattice, opts, ranges, clock, sample_ions)
     return _count_stream(path, metals, lattice, opts, ranges, clock, length_unit=length_unit,
                          position_dataset=position_dataset, mass_dataset=mass_dataset, strict=strict,
@@ -876,9 +886,8 @@ def range_file(path, metals, *, species=None, ranges=None, length_unit=None, pos
     kind = ion_file_kind(path)
     _check_pass_sizes(PASS_CHUNK, sample_ions)
     clock = _Clock(progress)
-    if _read_whole(path, kind, stream_above, position_dataset, mass_dataset):
-        ions = _read_all(path, progress, length_unit, position_dataset, mass_dataset, strict)
-        _check_ions(ions)
+    ions = _whole_ions(path, kind, stream_above, progress, length_unit, position_dataset, mass_dataset, strict)
+    if ions is not None:
         n = len(ions)
         with clock.stage("sampling", f"taking a sample of {min(n, sample_ions)} of {n} ions in "
                                      f"{SAMPLE_BLOCKS} depth blocks"):
@@ -887,6 +896,10 @@ def range_file(path, metals, *, species=None, ranges=None, length_unit=None, pos
         with IonSource(path, length_unit=length_unit, position_dataset=position_dataset,
                        mass_dataset=mass_dataset) as src:
             sample = _stream_sample(src, path, clock, sample_ions, strict)
+        if sample.meta.n_dropped:  # the count stage reports the whole file's; ranging sees only the sample
+            why = ", ".join(f"{k} {v}" for k, v in sample.meta.dropped.items())
+            warnings.warn(f"{path}: dropped {sample.meta.n_dropped} rows of the sample ranged ({why})",
+                          DataQualityWarning, stacklevel=2)
     n_fit = sample.mass_to_charge[::_ranging_stride(len(sample))].size
     with runtime.single_threaded_blas():
         with clock.stage("ranging", f"ranging the mass spectrum of {n_fit} sampled ions"):
@@ -1007,10 +1020,9 @@ def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: Analys
     kind = ion_file_kind(path)
     _check_pass_sizes(chunk_size, sample_ions)
     t0 = time.perf_counter()
-    if _read_whole(path, kind, stream_above, position_dataset, mass_dataset):
-        ions = _read_all(path, progress, length_unit, position_dataset, mass_dataset, strict)
+    ions = _whole_ions(path, kind, stream_above, progress, length_unit, position_dataset, mass_dataset, strict)
+    if ions is not None:
         t_read = time.perf_counter() - t0
-        _check_ions(ions)
         res = _analyze_ions(ions, metals, lattice, opts, ranges, progress, provenance, sample_ions)
         res.timings_s["startup"] = round(t_start, 4)
         res.timings_s["read"] = round(t_read, 4)
