@@ -311,138 +311,24 @@ def analyze_groups(columns: RodColumns, group_sizes=None, random_state=None, max
         The count totals are over-dispersed, so the detection efficiency cannot be estimated
         from their moments (it is then set to the mean count per rod-site).
     """
-    if not isinstance(columns, RodColumns):
-        raise InputError(f"columns must be a probeseq.data.RodColumns, got {type(columns).__name__}")
-    c, m = columns.counts, columns.mask
-    n_rods, n_sites, k = c.shape
-    if n_rods < 4:
-        raise InputError(f"columns: the groups analysis needs at least 4 rods, got {n_rods}")
-    if not m.any():
-        raise InputError(f"columns.mask: all {m.size} sites are masked; nothing to analyse")
-    x = np.where(m[:, :, None], c, 0.0)
-    if not np.all(np.isfinite(x)) or np.any(x < 0):
-        raise InputError("columns.counts: counts at unmasked sites must be finite and >= 0")
-    per_metal = x.sum(axis=(0, 1))
-    if (per_metal > 0).sum() < 2 or k < 2:
-        raise InputError(
-            f"columns.counts: need counts in at least two metal channels, found"
-            f" {[columns.metals[i] for i in np.flatnonzero(per_metal > 0)]}"
-        )
-    if not (isinstance(max_lag, (int, np.integer)) and max_lag >= 1):
-        raise InputError(f"max_lag must be an integer >= 1, got {max_lag!r}")
-    max_lag = int(min(max_lag, n_sites - 1)) if n_sites > 1 else 0
+    x, per_metal, max_lag = _checked_counts(columns, max_lag)
+    m = columns.mask
+    n_rods, _, k = columns.counts.shape
     rng = np.random.default_rng(random_state)
     notes = []
-
-    if group_sizes is None:
-        sizes = [1]
-        while (2 * sizes[-1]) * MIN_GROUPS <= n_rods:
-            sizes.append(2 * sizes[-1])
-        if len(sizes) < 2:
-            sizes.append(2)
-    else:
-        sizes = sorted({int(v) for v in np.atleast_1d(group_sizes)})
-        if any(v < 1 for v in sizes) or any(float(v) != int(v) for v in np.atleast_1d(group_sizes)):
-            raise InputError(f"group_sizes must be positive integers, got {group_sizes!r}")
-
+    sizes = _group_size_list(group_sizes, n_rods)
     comp = per_metal / per_metal.sum()
-    groups = []
-    for n in sizes:
-        labels = tile_groups(columns.rod_xy_nm, n, rng)
-        g = int(labels.max()) + 1 if labels.size and labels.max() >= 0 else 0
-        if g < 2:
-            notes.append(f"group size {n}: fewer than 2 groups of rods; size dropped")
-            continue
-        s, cnt = _group_sums(x, m, labels)
-        groups.append((n, g, s, cnt))
-    if len(groups) < 2:
-        raise InputError(
-            f"group_sizes {sizes}: need at least two group sizes that form 2 or more groups of rods"
-            f" ({n_rods} rods)"
-        )
-
-    # detection efficiency and extras from the moments of the count totals
-    enough = [gr for gr in groups if gr[1] >= MIN_GROUPS] or groups[:1]
-    _, _, s_m, n_m = enough[-1]
-    tot = s_m.sum(axis=2)
-    ok = n_m > 0
-    u = tot[ok].sum() / n_m[ok].sum()
-    v = float(((tot[ok] - n_m[ok] * u) ** 2).sum() / n_m[ok].sum())
-    if u - v > 1e-6:
-        eta = min(math.sqrt(u - v), 1.0)
-    else:
-        eta = min(u, 1.0)
-        msg = (
-            f"count totals are over-dispersed (mean {u:.3g}, variance {v:.3g} per rod-site): the"
-            f" detection efficiency cannot be read from their moments; using eta = {eta:.3g}"
-        )
-        notes.append(msg)
-        warnings.warn(msg, DataQualityWarning, stacklevel=2)
-    extra = max(u - eta, 0.0)
-
-    n_sizes = len(groups)
-    out = {key: np.zeros(n_sizes) for key in ("mean_rods", "inv_size", "var", "var_raw", "noise", "weight")}
-    var_metal = np.zeros((n_sizes, k))
-    acov = np.full((n_sizes, max_lag + 1), np.nan)
-    acov_err = np.full((n_sizes, max_lag + 1), np.nan)
-    d1 = None
-    for i, (n, g, s, cnt) in enumerate(groups):
-        d, valid = _deviation(s, cnt, eta, extra, comp)
-        nv = cnt[valid].astype(float)
-        raw_m = (d[valid] ** 2).mean(axis=0)
-        # detection noise: the variance of the totals per observed rod at this size
-        # (independent of the metals present), shared out over the channels by composition
-        tot = s.sum(axis=2)[valid]
-        v_n = float(((tot - nv * u) ** 2).sum() / nv.sum())
-        noise_m = v_n / eta**2 * comp * np.mean(1.0 / nv)
-        var_metal[i] = raw_m - noise_m
-        out["var_raw"][i] = raw_m.sum()
-        out["noise"][i] = noise_m.sum()
-        out["var"][i] = var_metal[i].sum()
-        out["mean_rods"][i] = nv.mean()
-        out["inv_size"][i] = np.mean(1.0 / nv)
-        out["weight"][i] = nv.size / max(raw_m.sum(), 1e-12) ** 2
-        acov[i, 1:], acov_err[i, 1:] = (a[1:] for a in _autocov(d, valid, max_lag))
-        acov[i, 0] = out["var"][i]
-        if n == 1:
-            d1 = (d, valid)
-
-    # variance against 1/n: V = a + b h, sigma^2 = a + b, rho = a / sigma^2; when single rods
-    # are not resolvable, crosstalk blurs the smallest groups, which are left out of the fit
-    h, vv, w = out["inv_size"], out["var"], out["weight"]
-    sizes_used = np.array([gr[0] for gr in groups])
-    fit = sizes_used >= (1 if columns.resolvable else UNRESOLVED_MIN_SIZE)
-    if fit.sum() < 2:
-        fit[:] = True
-    design = np.column_stack([np.ones(n_sizes), h])[fit] * np.sqrt(w[fit])[:, None]
-    (a_fit, b_fit), *_ = np.linalg.lstsq(design, vv[fit] * np.sqrt(w[fit]), rcond=None)
-    sigma2 = float(a_fit + b_fit)
-    rho = float(a_fit / sigma2) if sigma2 > 0 else float("nan")
-    with np.errstate(divide="ignore", invalid="ignore"):
-        rho_n = np.where(h < 1 - 1e-9, (vv / sigma2 - h) / (1 - h), np.nan) if sigma2 > 0 else np.full(n_sizes, np.nan)
+    groups = _tile_all_sizes(columns, x, m, sizes, rng, notes)
+    eta, extra, u = _detection_rates(groups, notes)
+    out, var_metal, acov, acov_err, d1 = _variance_by_size(groups, eta, extra, u, comp, k, max_lag)
+    h, vv = out["inv_size"], out["var"]
+    sigma2, rho, rho_n = _fit_variance_law(out, groups, columns.resolvable)
     sigma2_exp = float(1.0 - (comp**2).sum())
-
-    # neighbouring single rods
-    rho_nb = float("nan")
-    pairs = columns.neighbours
-    if pairs.size and sigma2 > 0:
-        if d1 is None:
-            s1, c1 = _group_sums(x, m, np.arange(n_rods))
-            d1 = _deviation(s1, c1, eta, extra, comp)
-        d, valid = d1
-        i, j = pairs[:, 0], pairs[:, 1]
-        both = valid[i] & valid[j]
-        if both.any():
-            rho_nb = float((d[i] * d[j]).sum(axis=2)[both].mean() / sigma2)
+    rho_nb = _neighbour_correlation(columns, x, d1, sigma2, eta, extra, comp)
 
     # along-rod correlation from the smallest group size
     lam = _fit_persistence(acov[0], acov_err[0], acov[0, 0])
-    if lam <= 0:
-        length = 0.0
-    elif lam >= 1:
-        length = float("inf")
-    else:
-        length = -1.0 / math.log(lam)
+    length = _correlation_length(lam)
     with np.errstate(divide="ignore", invalid="ignore"):
         acorr = acov / acov[:, :1]
 
@@ -474,3 +360,159 @@ def analyze_groups(columns: RodColumns, group_sizes=None, random_state=None, max
         composition=comp,
         warnings=notes,
     )
+
+
+def _checked_counts(columns, max_lag):
+    """Validate the input; return the masked counts, the totals per metal and the usable max lag."""
+    if not isinstance(columns, RodColumns):
+        raise InputError(f"columns must be a probeseq.data.RodColumns, got {type(columns).__name__}")
+    c, m = columns.counts, columns.mask
+    n_rods, n_sites, k = c.shape
+    if n_rods < 4:
+        raise InputError(f"columns: the groups analysis needs at least 4 rods, got {n_rods}")
+    if not m.any():
+        raise InputError(f"columns.mask: all {m.size} sites are masked; nothing to analyse")
+    x = np.where(m[:, :, None], c, 0.0)
+    if not np.all(np.isfinite(x)) or np.any(x < 0):
+        raise InputError("columns.counts: counts at unmasked sites must be finite and >= 0")
+    per_metal = x.sum(axis=(0, 1))
+    if (per_metal > 0).sum() < 2 or k < 2:
+        raise InputError(
+            f"columns.counts: need counts in at least two metal channels, found"
+            f" {[columns.metals[i] for i in np.flatnonzero(per_metal > 0)]}"
+        )
+    if not (isinstance(max_lag, (int, np.integer)) and max_lag >= 1):
+        raise InputError(f"max_lag must be an integer >= 1, got {max_lag!r}")
+    max_lag = int(min(max_lag, n_sites - 1)) if n_sites > 1 else 0
+    return x, per_metal, max_lag
+
+
+def _group_size_list(group_sizes, n_rods):
+    """The sorted group sizes: the given ones (checked) or 1, 2, 4, ... while enough groups form."""
+    if group_sizes is None:
+        sizes = [1]
+        while (2 * sizes[-1]) * MIN_GROUPS <= n_rods:
+            sizes.append(2 * sizes[-1])
+        if len(sizes) < 2:
+            sizes.append(2)
+    else:
+        sizes = sorted({int(v) for v in np.atleast_1d(group_sizes)})
+        if any(v < 1 for v in sizes) or any(float(v) != int(v) for v in np.atleast_1d(group_sizes)):
+            raise InputError(f"group_sizes must be positive integers, got {group_sizes!r}")
+    return sizes
+
+
+def _tile_all_sizes(columns, x, m, sizes, rng, notes):
+    """Tile the rods into groups for each size; return (n, groups, sums, counts) per usable size."""
+    groups = []
+    for n in sizes:
+        labels = tile_groups(columns.rod_xy_nm, n, rng)
+        g = int(labels.max()) + 1 if labels.size and labels.max() >= 0 else 0
+        if g < 2:
+            notes.append(f"group size {n}: fewer than 2 groups of rods; size dropped")
+            continue
+        s, cnt = _group_sums(x, m, labels)
+        groups.append((n, g, s, cnt))
+    if len(groups) < 2:
+        raise InputError(
+            f"group_sizes {sizes}: need at least two group sizes that form 2 or more groups of rods"
+            f" ({columns.counts.shape[0]} rods)"
+        )
+    return groups
+
+
+def _detection_rates(groups, notes):
+    """Detection efficiency, extra rate and mean total per rod-site from the count-total moments."""
+    enough = [gr for gr in groups if gr[1] >= MIN_GROUPS] or groups[:1]
+    _, _, s_m, n_m = enough[-1]
+    tot = s_m.sum(axis=2)
+    ok = n_m > 0
+    u = tot[ok].sum() / n_m[ok].sum()
+    v = float(((tot[ok] - n_m[ok] * u) ** 2).sum() / n_m[ok].sum())
+    if u - v > 1e-6:
+        eta = min(math.sqrt(u - v), 1.0)
+    else:
+        eta = min(u, 1.0)
+        msg = (
+            f"count totals are over-dispersed (mean {u:.3g}, variance {v:.3g} per rod-site): the"
+            f" detection efficiency cannot be read from their moments; using eta = {eta:.3g}"
+        )
+        notes.append(msg)
+        warnings.warn(msg, DataQualityWarning, stacklevel=3)
+    extra = max(u - eta, 0.0)
+    return eta, extra, u
+
+
+def _variance_by_size(groups, eta, extra, u, comp, k, max_lag):
+    """Noise-corrected variance and autocovariance per group size; also the single-rod deviations."""
+    n_sizes = len(groups)
+    out = {key: np.zeros(n_sizes) for key in ("mean_rods", "inv_size", "var", "var_raw", "noise", "weight")}
+    var_metal = np.zeros((n_sizes, k))
+    acov = np.full((n_sizes, max_lag + 1), np.nan)
+    acov_err = np.full((n_sizes, max_lag + 1), np.nan)
+    d1 = None
+    for i, (n, g, s, cnt) in enumerate(groups):
+        d, valid = _deviation(s, cnt, eta, extra, comp)
+        nv = cnt[valid].astype(float)
+        raw_m = (d[valid] ** 2).mean(axis=0)
+        # detection noise: the variance of the totals per observed rod at this size
+        # (independent of the metals present), shared out over the channels by composition
+        tot = s.sum(axis=2)[valid]
+        v_n = float(((tot - nv * u) ** 2).sum() / nv.sum())
+        noise_m = v_n / eta**2 * comp * np.mean(1.0 / nv)
+        var_metal[i] = raw_m - noise_m
+        out["var_raw"][i] = raw_m.sum()
+        out["noise"][i] = noise_m.sum()
+        out["var"][i] = var_metal[i].sum()
+        out["mean_rods"][i] = nv.mean()
+        out["inv_size"][i] = np.mean(1.0 / nv)
+        out["weight"][i] = nv.size / max(raw_m.sum(), 1e-12) ** 2
+        acov[i, 1:], acov_err[i, 1:] = (a[1:] for a in _autocov(d, valid, max_lag))
+        acov[i, 0] = out["var"][i]
+        if n == 1:
+            d1 = (d, valid)
+    return out, var_metal, acov, acov_err, d1
+
+
+def _fit_variance_law(out, groups, resolvable):
+    """Fit V = a + b/n; return sigma^2 = a + b, rho = a / sigma^2 and rho per group size."""
+    # when single rods are not resolvable, crosstalk blurs the smallest groups, which are left
+    # out of the fit
+    h, vv, w = out["inv_size"], out["var"], out["weight"]
+    n_sizes = len(groups)
+    sizes_used = np.array([gr[0] for gr in groups])
+    fit = sizes_used >= (1 if resolvable else UNRESOLVED_MIN_SIZE)
+    if fit.sum() < 2:
+        fit[:] = True
+    design = np.column_stack([np.ones(n_sizes), h])[fit] * np.sqrt(w[fit])[:, None]
+    (a_fit, b_fit), *_ = np.linalg.lstsq(design, vv[fit] * np.sqrt(w[fit]), rcond=None)
+    sigma2 = float(a_fit + b_fit)
+    rho = float(a_fit / sigma2) if sigma2 > 0 else float("nan")
+    with np.errstate(divide="ignore", invalid="ignore"):
+        rho_n = np.where(h < 1 - 1e-9, (vv / sigma2 - h) / (1 - h), np.nan) if sigma2 > 0 else np.full(n_sizes, np.nan)
+    return sigma2, rho, rho_n
+
+
+def _neighbour_correlation(columns, x, d1, sigma2, eta, extra, comp):
+    """Correlation of the deviations of neighbouring single rods (NaN when it cannot be formed)."""
+    rho_nb = float("nan")
+    pairs = columns.neighbours
+    if pairs.size and sigma2 > 0:
+        if d1 is None:
+            s1, c1 = _group_sums(x, columns.mask, np.arange(columns.counts.shape[0]))
+            d1 = _deviation(s1, c1, eta, extra, comp)
+        d, valid = d1
+        i, j = pairs[:, 0], pairs[:, 1]
+        both = valid[i] & valid[j]
+        if both.any():
+            rho_nb = float((d[i] * d[j]).sum(axis=2)[both].mean() / sigma2)
+    return rho_nb
+
+
+def _correlation_length(lam):
+    """Correlation length in sites, -1 / ln(lam), for persistence lam (0 and inf at the ends)."""
+    if lam <= 0:
+        return 0.0
+    if lam >= 1:
+        return float("inf")
+    return -1.0 / math.log(lam)

@@ -1192,23 +1192,9 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
     InputError
         Too few metal ions, a specimen narrower than one cell, or no lattice signal.
     """
-    if not isinstance(lattice, Lattice):
-        raise InputError(f"lattice must be a probeseq Lattice, got {type(lattice).__name__}")
-    x, y, z = _check_xyz(x, y, z)
+    x, y, z, scale_range = _check_registration_inputs(x, y, z, lattice, scale_range, max_tilt_deg,
+                                                      random_state)
     n_ions = x.size
-    if n_ions < MIN_METAL_IONS:
-        raise InputError(f"too few metal ions to register the lattice: {n_ions} given, need at least "
-                         f"{MIN_METAL_IONS}")
-    try:
-        s_lo, s_hi = (float(v) for v in scale_range)
-    except (TypeError, ValueError):
-        raise InputError(f"scale_range must be (low, high), got {scale_range!r}") from None
-    if not (0 < s_lo < s_hi and math.isfinite(s_hi)):
-        raise InputError(f"scale_range must be (low, high) with 0 < low < high, got {scale_range!r}")
-    scale_range = (s_lo, s_hi)
-    if not (isinstance(max_tilt_deg, (int, float)) and 0 < max_tilt_deg < 45):
-        raise InputError(f"max_tilt_deg must be in (0, 45) degrees, got {max_tilt_deg!r}")
-    check_seed(random_state)
     rotation_deg = _check_override("--rotation-deg", rotation_deg, 1)
     scale = _check_override("--scale", scale, 1)
     offset_nm = _check_override("--offset-nm", offset_nm, 2)
@@ -1239,6 +1225,69 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
 
     fixed = tuple(k for k, v in (("rotation_deg", rotation_deg), ("scale", scale), ("offset_nm", offset_nm),
                                  ("tilt", tilt)) if v is not None)
+    th0, s0, peak_ratio, t0, o0 = _initial_placement(
+        x, y, z, xr, yr, rad, center, lattice, d_nn, period, sub_phase, rotation_deg, scale, offset_nm,
+        tilt, z_ref_nm, scale_range, max_tilt_deg)
+
+    locator = _cached_locator(lattice, d_nn, 64)
+    p0 = [o0[0], o0[1], t0[0], t0[1], math.radians(th0), s0]
+    free = [offset_nm is None, offset_nm is None, tilt is None, tilt is None, rotation_deg is None, scale is None]
+    fit_r = FIT_RADIUS_FRAC * d_nn
+    xf, yf, zf = x[sub_fit], y[sub_fit], z[sub_fit]
+    if any(free):
+        p, cov, _, _, _ = _refine(xf, yf, zf, lattice, locator, p0, free, z_ref_nm, center, radius, fit_r)
+    else:
+        p, cov = np.array(p0, float), np.zeros((6, 6))
+    dist, ok = _distances(xf, yf, zf, lattice, locator, p, z_ref_nm)
+    theta, off = _fundamental_placement(p, lattice, shift_frac, period, rotation_deg is None, offset_nm is None)
+    # resolution and quality
+    d_ok = dist[ok]
+    sig_lat, sig_err, bg = _fit_sigma(d_ok, fit_r)
+    q_r = QUALITY_RADIUS_FRAC * d_nn
+    within = float((ok & (dist < q_r)).sum()) / xf.size
+    u0 = lattice.rod_density_per_nm2 * math.pi * q_r ** 2
+    quality = (within - u0) / (1 - u0)
+    crosstalk = expected_crosstalk(lattice, sig_lat) if math.isfinite(sig_lat) else float("nan")
+    err = np.sqrt(np.maximum(np.diag(cov), 0.0))
+    return Registration(
+        lattice=lattice, rotation_deg=float(theta), scale=float(p[5]), offset_nm=off, tilt=p[2:4].copy(),
+        z_ref_nm=float(z_ref_nm), rotation_deg_err=float(math.degrees(err[4])), scale_err=float(err[5]),
+        offset_nm_err=err[0:2], tilt_err=err[2:4], sigma_xy_nm=float(sig_lat * p[5]),
+        sigma_xy_nm_err=float(sig_err * p[5]), crosstalk=float(crosstalk),
+        resolvable=bool(crosstalk < RESOLVABLE_CROSSTALK), quality=float(quality), peak_ratio=float(peak_ratio),
+        background_fraction=float(bg), symmetry_order=int(order), n_ions=int(n_ions), n_fit=int(n_fit),
+        fixed=fixed)
+
+
+def _check_registration_inputs(x, y, z, lattice, scale_range, max_tilt_deg, random_state):
+    """Validate the inputs of :func:`register_lattice`; return ``(x, y, z, scale_range)``."""
+    if not isinstance(lattice, Lattice):
+        raise InputError(f"lattice must be a probeseq Lattice, got {type(lattice).__name__}")
+    x, y, z = _check_xyz(x, y, z)
+    n_ions = x.size
+    if n_ions < MIN_METAL_IONS:
+        raise InputError(f"too few metal ions to register the lattice: {n_ions} given, need at least "
+                         f"{MIN_METAL_IONS}")
+    try:
+        s_lo, s_hi = (float(v) for v in scale_range)
+    except (TypeError, ValueError):
+        raise InputError(f"scale_range must be (low, high), got {scale_range!r}") from None
+    if not (0 < s_lo < s_hi and math.isfinite(s_hi)):
+        raise InputError(f"scale_range must be (low, high) with 0 < low < high, got {scale_range!r}")
+    scale_range = (s_lo, s_hi)
+    if not (isinstance(max_tilt_deg, (int, float)) and 0 < max_tilt_deg < 45):
+        raise InputError(f"max_tilt_deg must be in (0, 45) degrees, got {max_tilt_deg!r}")
+    check_seed(random_state)
+    return x, y, z, scale_range
+
+
+def _initial_placement(x, y, z, xr, yr, rad, center, lattice, d_nn, period, sub_phase, rotation_deg, scale,
+                       offset_nm, tilt, z_ref_nm, scale_range, max_tilt_deg):
+    """Starting placement for the refinement: rotation and scale from the slab power spectrum,
+    then tilt and offset from the phases of the strongest reciprocal peaks (fixed values kept).
+
+    Returns ``(rotation_deg, scale, peak_ratio, tilt, offset_nm)``.
+    """
     sigma0 = d_nn / 6.0
     h = d_nn / 6.0
     extent = 2 * float(rad.max()) + 4 * h
@@ -1299,22 +1348,19 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
         o0 = center + (s0 * Rm @ lattice.cell_matrix) @ fo
     else:
         o0 = np.asarray(offset_nm, float)
+    return th0, s0, peak_ratio, t0, o0
 
-    locator = _cached_locator(lattice, d_nn, 64)
-    p0 = [o0[0], o0[1], t0[0], t0[1], math.radians(th0), s0]
-    free = [offset_nm is None, offset_nm is None, tilt is None, tilt is None, rotation_deg is None, scale is None]
-    fit_r = FIT_RADIUS_FRAC * d_nn
-    xf, yf, zf = x[sub_fit], y[sub_fit], z[sub_fit]
-    if any(free):
-        p, cov, _, _, _ = _refine(xf, yf, zf, lattice, locator, p0, free, z_ref_nm, center, radius, fit_r)
-    else:
-        p, cov = np.array(p0, float), np.zeros((6, 6))
-    dist, ok = _distances(xf, yf, zf, lattice, locator, p, z_ref_nm)
-    # reduce to the fundamental domain
+
+def _fundamental_placement(p, lattice, shift_frac, period, fit_rotation, fit_offset):
+    """Reduce fitted parameters ``p`` to the fundamental domain; return ``(rotation_deg, offset_nm)``.
+
+    A fitted rotation is brought into ``[0, period)`` with the matching symmetry shift of the
+    offset; a fitted offset is wrapped into the first cell.
+    """
     theta = math.degrees(p[4])
     off = p[0:2].copy()
     T = lattice.cell_matrix @ shift_frac
-    if rotation_deg is None:
+    if fit_rotation:
         while theta >= period:
             theta -= period
             off = off + p[5] * _rot(math.radians(theta)) @ T
@@ -1322,26 +1368,10 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
             off = off - p[5] * _rot(math.radians(theta)) @ T
             theta += period
     AC = p[5] * _rot(math.radians(theta)) @ lattice.cell_matrix
-    if offset_nm is None:
+    if fit_offset:
         fo = np.linalg.solve(AC, off)
         off = AC @ (fo - np.floor(fo))
-    # resolution and quality
-    d_ok = dist[ok]
-    sig_lat, sig_err, bg = _fit_sigma(d_ok, fit_r)
-    q_r = QUALITY_RADIUS_FRAC * d_nn
-    within = float((ok & (dist < q_r)).sum()) / xf.size
-    u0 = lattice.rod_density_per_nm2 * math.pi * q_r ** 2
-    quality = (within - u0) / (1 - u0)
-    crosstalk = expected_crosstalk(lattice, sig_lat) if math.isfinite(sig_lat) else float("nan")
-    err = np.sqrt(np.maximum(np.diag(cov), 0.0))
-    return Registration(
-        lattice=lattice, rotation_deg=float(theta), scale=float(p[5]), offset_nm=off, tilt=p[2:4].copy(),
-        z_ref_nm=float(z_ref_nm), rotation_deg_err=float(math.degrees(err[4])), scale_err=float(err[5]),
-        offset_nm_err=err[0:2], tilt_err=err[2:4], sigma_xy_nm=float(sig_lat * p[5]),
-        sigma_xy_nm_err=float(sig_err * p[5]), crosstalk=float(crosstalk),
-        resolvable=bool(crosstalk < RESOLVABLE_CROSSTALK), quality=float(quality), peak_ratio=float(peak_ratio),
-        background_fraction=float(bg), symmetry_order=int(order), n_ions=int(n_ions), n_fit=int(n_fit),
-        fixed=fixed)
+    return theta, off
 
 
 def _distances(x, y, z, lattice, locator, p, z_ref):

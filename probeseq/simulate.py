@@ -404,9 +404,49 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     lat = cfg.lattice if cfg.lattice is not None else Lattice.from_preset(cfg.packing, cfg.a_nm, cfg.repeat_nm,
                                                                               cfg.sites_per_repeat)
     k = len(cfg.metals)
-    pitch = lat.pitch_nm
+    dist = _draw_distortion(cfg, rng)
+    rods = _place_rods(cfg, lat, dist, rng)
+    rod_xy, inside, axis, site_zr, n_sites = rods["rod_xy"], rods["inside"], rods["axis"], rods["site_zr"], rods["n_sites"]
+    n_rods = rod_xy.shape[0]
+    seq = simulate_sequences(cfg, n_rods, n_sites, rng)
+    species, lines = _species_lines(cfg)
+    r_idx, s_idx, metal, xym, zm, sp_metal = _emit_metal_ions(cfg, rng, seq, inside, axis, site_zr, dist["R"])
+    n_metal = r_idx.size
+    sp_org, xyo, zo = _emit_organic_ions(cfg, rng, inside, k, dist["tilt"])
+    n_org = sp_org.size
 
-    # distortion (drawn when not given)
+    # ---- background, uniform in m/z and space
+    n_sig = n_metal + n_org
+    n_bg = int(rng.poisson(cfg.background_fraction / (1 - cfg.background_fraction) * n_sig))
+    xyb, zb = _uniform_in_needle(rng, n_bg, cfg)
+
+    sp_all = np.concatenate([sp_metal, sp_org])
+    mz = _draw_mass_to_charge(cfg, rng, sp_all, lines)
+    max_mz = max(float(m.max()) for m, _ in lines) * 1.15
+    mzb = rng.uniform(1.0, max_mz, n_bg)
+
+    x = np.concatenate([xym[:, 0], xyo[:, 0], xyb[:, 0]])
+    y = np.concatenate([xym[:, 1], xyo[:, 1], xyb[:, 1]])
+    z = np.concatenate([zm, zo, zb])
+    m = np.concatenate([mz, mzb])
+    ion_rod = np.concatenate([r_idx, np.full(n_org + n_bg, -1)])
+    ion_site = np.concatenate([s_idx, np.full(n_org + n_bg, -1)])
+    ion_metal = np.concatenate([metal, np.full(n_org + n_bg, -1)])
+    ion_species = np.concatenate([sp_all, np.full(n_bg, -1)])
+    ions, (ion_rod, ion_site, ion_metal, ion_species) = _evaporate(
+        cfg, rng, x, y, z, m, (ion_rod, ion_site, ion_metal, ion_species))
+
+    counts = {"ions": int(z.size), "rods": int(n_rods), "metal_sites": int(inside.sum()),
+              "metal_ions": int(n_metal), "organic_ions": int(n_org), "background_ions": int(n_bg)}
+    truth = _build_truth(cfg, lat, seq, inside, rods, dist, species, counts)
+    seq_out = np.where(inside, seq, -1).astype(np.int64)
+    return SimRun(ions=ions, lattice=lat, truth=truth, rod_xy_nm=rod_xy, rod_tilt=dist["tilt"], seq=seq_out,
+                  site_z_nm=site_zr, ion_rod=ion_rod, ion_site=ion_site, ion_metal=ion_metal,
+                  ion_species=ion_species, config=cfg)
+
+
+def _draw_distortion(cfg, rng):
+    """Rotation, scale, offset and tilt of the crystal (drawn when not given) and the lattice shift."""
     rot = float(rng.uniform(0, 360) if cfg.rotation_deg is None else cfg.rotation_deg)
     scale = float(rng.uniform(0.96, 1.04) if cfg.scale is None else cfg.scale)
     offset = np.array(rng.uniform(-1.0, 1.0, 2) if cfg.offset_nm is None else cfg.offset_nm, float)
@@ -424,11 +464,21 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     Rt = np.eye(3) + math.sin(tr) * K + (1 - math.cos(tr)) * (K @ K)
     d_tilted = Rt[:, 2]
     tilt = (R @ d_tilted[:2]) / d_tilted[2]  # (dx/dz, dy/dz) in the reconstruction frame
-    t = math.tan(tr)
+    return {"rot": rot, "scale": scale, "offset": offset, "tilt_deg": tilt_deg, "tilt_az": tilt_az,
+            "shift_frac": shift_frac, "R": R, "Rt": Rt, "tilt": tilt, "t": math.tan(tr)}
 
+
+def _place_rods(cfg, lat, dist, rng):
+    """Rods and sites in the reconstruction frame, keeping the rods that pass through the needle.
+
+    Returns a dict of ``rod_xy`` (axis at z = 0), ``inside`` (site mask), ``axis`` (lateral site
+    positions), ``site_zr`` (site depths), ``zc`` (sites along the rod), ``n_sites`` and ``phase``.
+    """
+    pitch = lat.pitch_nm
+    offset, Rt, R, tilt = dist["offset"], dist["Rt"], dist["R"], dist["tilt"]
     r_bottom = cfg.top_radius_nm + cfg.depth_nm * math.tan(math.radians(cfg.half_angle_deg))
-    reach = (r_bottom + np.abs(offset).max() + abs(t) * cfg.depth_nm) / min(scale, 1.0) + 2 * lat.a_nm
-    shift = shift_frac @ lat.cell_matrix.T
+    reach = (r_bottom + np.abs(offset).max() + abs(dist["t"]) * cfg.depth_nm) / min(dist["scale"], 1.0) + 2 * lat.a_nm
+    shift = dist["shift_frac"] @ lat.cell_matrix.T
     rods_cryst = lat.rod_positions(reach, center_nm=-shift) + shift
     n_sites = int(math.floor(cfg.depth_nm / pitch))
     if n_sites < 1:
@@ -447,24 +497,17 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     inside = (np.sqrt((axis ** 2).sum(-1)) < radius_at) & (site_zr >= 0) & (site_zr <= cfg.depth_nm)
     keep_rods = inside.any(1)
     rod_xy, inside, axis, site_zr = rod_xy[keep_rods], inside[keep_rods], axis[keep_rods], site_zr[keep_rods]
-    n_rods = rod_xy.shape[0]
-    if n_rods == 0:
+    if rod_xy.shape[0] == 0:
         raise InputError(f"no rod passes through the simulated needle (top radius {cfg.top_radius_nm:g} nm, rod spacing "
                          f"{lat.nearest_rod_distance_nm:.3g} nm), so the run would hold no ion; increase --tip-radius "
                          "or reduce --a")
-    seq = simulate_sequences(cfg, n_rods, n_sites, rng)
+    return {"rod_xy": rod_xy, "inside": inside, "axis": axis, "site_zr": site_zr, "zc": zc,
+            "n_sites": n_sites, "phase": phase}
 
-    # ---- metal ions
-    detected = inside & (rng.random(inside.shape) < cfg.eta)
-    r_idx, s_idx = np.nonzero(detected)
-    n_metal = r_idx.size
-    metal = seq[r_idx, s_idx].astype(np.int64)
-    ang = 2 * math.pi * s_idx / cfg.sites_per_repeat + rng.uniform(0, 2 * math.pi)
-    helix = cfg.helix_radius_nm * np.column_stack([np.cos(ang), np.sin(ang)]) @ R.T
-    zm = site_zr[r_idx, s_idx] + (rng.normal(0, cfg.sigma_z_nm, n_metal) if cfg.sigma_z_nm else 0.0)
-    xym = axis[r_idx, s_idx] + helix + rng.normal(0, cfg.sigma_xy_nm, (n_metal, 2))
 
-    species = []  # (formula, charge, kind, metal index)
+def _species_lines(cfg):
+    """Ion species (formula, charge, kind, metal index) and their isotope lines: metals, then linker."""
+    species = []
     lines = []
     for mi, el in enumerate(cfg.metals):
         for formula, charge in ((el, 1), (el, 2), (el + "O", 1)):
@@ -473,25 +516,38 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     for formula, charge, _ in ORGANIC_SPECIES:
         species.append((formula, charge, "organic", -1))
         lines.append(ion_lines(formula, charge))
+    return species, lines
+
+
+def _emit_metal_ions(cfg, rng, seq, inside, axis, site_zr, R):
+    """Detected metal ions: rod and site indices, metal, blurred positions and species index."""
+    detected = inside & (rng.random(inside.shape) < cfg.eta)
+    r_idx, s_idx = np.nonzero(detected)
+    n_metal = r_idx.size
+    metal = seq[r_idx, s_idx].astype(np.int64)
+    ang = 2 * math.pi * s_idx / cfg.sites_per_repeat + rng.uniform(0, 2 * math.pi)
+    helix = cfg.helix_radius_nm * np.column_stack([np.cos(ang), np.sin(ang)]) @ R.T
+    zm = site_zr[r_idx, s_idx] + (rng.normal(0, cfg.sigma_z_nm, n_metal) if cfg.sigma_z_nm else 0.0)
+    xym = axis[r_idx, s_idx] + helix + rng.normal(0, cfg.sigma_xy_nm, (n_metal, 2))
     branching = np.asarray(cfg.branching, float) / np.sum(cfg.branching)
     which = np.minimum(np.searchsorted(np.cumsum(branching), rng.random(n_metal), side="right"), 2)
     sp_metal = metal * 3 + which
+    return r_idx, s_idx, metal, xym, zm, sp_metal
 
-    # ---- organic fragments, uniform through the needle volume
+
+def _emit_organic_ions(cfg, rng, inside, k, tilt):
+    """Linker-fragment ions, uniform through the needle volume: species index and positions."""
     n_org = int(rng.poisson(cfg.organic_per_site * inside.sum() / max(cfg.eta, 1e-9) * cfg.eta))
     rates = np.array([w for _, _, w in ORGANIC_SPECIES])
     sp_org = 3 * k + np.minimum(np.searchsorted(np.cumsum(rates / rates.sum()), rng.random(n_org), side="right"),
                                 len(ORGANIC_SPECIES) - 1)
     xyo, zo = _uniform_in_needle(rng, n_org, cfg)
     xyo = xyo + tilt[None, :] * zo[:, None]
+    return sp_org, xyo, zo
 
-    # ---- background, uniform in m/z and space
-    n_sig = n_metal + n_org
-    n_bg = int(rng.poisson(cfg.background_fraction / (1 - cfg.background_fraction) * n_sig))
-    xyb, zb = _uniform_in_needle(rng, n_bg, cfg)
 
-    # ---- mass-to-charge
-    sp_all = np.concatenate([sp_metal, sp_org])
+def _draw_mass_to_charge(cfg, rng, sp_all, lines):
+    """Mass-to-charge of the signal ions: an isotope line, a Gaussian peak and a thermal tail."""
     mz = np.empty(sp_all.size)
     for si, (mzs, ps) in enumerate(lines):
         sel = np.flatnonzero(sp_all == si)
@@ -501,27 +557,28 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     mz = mz + rng.normal(0, 1, mz.size) * width
     tailed = rng.random(mz.size) < cfg.tail_fraction
     mz[tailed] += rng.exponential(1.0, tailed.sum()) * cfg.tail_scale * mz[tailed] / cfg.mrp
-    max_mz = max(float(m.max()) for m, _ in lines) * 1.15
-    mzb = rng.uniform(1.0, max_mz, n_bg)
+    return mz
 
-    x = np.concatenate([xym[:, 0], xyo[:, 0], xyb[:, 0]])
-    y = np.concatenate([xym[:, 1], xyo[:, 1], xyb[:, 1]])
-    z = np.concatenate([zm, zo, zb])
-    m = np.concatenate([mz, mzb])
-    ion_rod = np.concatenate([r_idx, np.full(n_org + n_bg, -1)])
-    ion_site = np.concatenate([s_idx, np.full(n_org + n_bg, -1)])
-    ion_metal = np.concatenate([metal, np.full(n_org + n_bg, -1)])
-    ion_species = np.concatenate([sp_all, np.full(n_bg, -1)])
 
-    # evaporation order: by depth with a little jitter; pulse numbers and a voltage ramp
+def _evaporate(cfg, rng, x, y, z, m, per_ion):
+    """Order the ions by depth with a little jitter; add pulse numbers and a voltage ramp.
+
+    Returns the :class:`IonList` and the arrays of ``per_ion`` in the same order.
+    """
     order = np.argsort(z + rng.normal(0, 0.3, z.size), kind="stable")
     x, y, z, m = x[order], y[order], z[order], m[order]
-    ion_rod, ion_site, ion_metal, ion_species = ion_rod[order], ion_site[order], ion_metal[order], ion_species[order]
+    per_ion = tuple(a[order] for a in per_ion)
     pulse = np.cumsum(rng.geometric(0.01, z.size)).astype(np.float64)
     voltage = 3000.0 + 3000.0 * np.clip(z / cfg.depth_nm, 0, 1) + rng.normal(0, 5, z.size)
     ions = IonList(x=x, y=y, z=z, mass_to_charge=m, multiplicity=np.ones(z.size), pulse=pulse,
                    voltage=voltage, meta=IonMeta(source="simulated"))
+    return ions, per_ion
 
+
+def _build_truth(cfg, lat, seq, inside, rods, dist, species, counts):
+    """The JSON-able truth of a run: pattern, composition, run lengths, distortion, counts and rods."""
+    k = len(cfg.metals)
+    rod_xy, site_zr, tilt = rods["rod_xy"], rods["site_zr"], dist["tilt"]
     f = cfg.composition_array
     lam = cfg.persistence_value
     # along a rod every pattern (copied included: its master chain) has mean run 1/((1-lam)(1-f_k))
@@ -535,7 +592,7 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     stay = np.array([np.sum((a == i) & (b == i) & both) for i in range(k)], float)
     leave = np.array([np.sum((a == i) & both) for i in range(k)], float)
     realised_runs = [float(leave[i] / max(leave[i] - stay[i], 1.0)) for i in range(k)]
-    truth = {
+    return {
         "about": "Synthetic run from probeseq's forward simulator. rods[]: axis x = x0 + dxdz*z, "
                  "y = y0 + dydz*z (reconstruction frame, nm); seq: digit i means metals[i], '.' outside the specimen.",
         "pattern": cfg.pattern,
@@ -551,28 +608,24 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
         "mean_run_length_sites": {el: emp_runs[i] for i, el in enumerate(cfg.metals)},
         "mean_run_length_realised": {el: realised_runs[i] for i, el in enumerate(cfg.metals)},
         "eta": cfg.eta,
-        "pitch_nm": pitch,
+        "pitch_nm": lat.pitch_nm,
         "d_nn_nm": lat.nearest_rod_distance_nm,
         "sigma_xy_nm": cfg.sigma_xy_nm,
         "sigma_z_nm": cfg.sigma_z_nm,
-        "distortion": {"rotation_deg": rot, "scale": scale, "offset_nm": offset.tolist(), "tilt_deg": tilt_deg,
-                       "tilt_azimuth_deg": tilt_az, "tilt_x": float(tilt[0]), "tilt_y": float(tilt[1]),
-                       "lattice_shift_frac": shift_frac.tolist(), "site_phase": phase},
-        "counts": {"ions": int(z.size), "rods": int(n_rods), "metal_sites": int(inside.sum()),
-                   "metal_ions": int(n_metal), "organic_ions": int(n_org), "background_ions": int(n_bg)},
+        "distortion": {"rotation_deg": dist["rot"], "scale": dist["scale"], "offset_nm": dist["offset"].tolist(),
+                       "tilt_deg": dist["tilt_deg"], "tilt_azimuth_deg": dist["tilt_az"], "tilt_x": float(tilt[0]),
+                       "tilt_y": float(tilt[1]), "lattice_shift_frac": dist["shift_frac"].tolist(),
+                       "site_phase": rods["phase"]},
+        "counts": counts,
         "species": [{"formula": s[0], "charge": s[1], "kind": s[2], "metal": s[3]} for s in species],
-        "site_s_nm": [round(float(v), 5) for v in zc],
+        "site_s_nm": [round(float(v), 5) for v in rods["zc"]],
         "rods": [{"x0": round(float(rod_xy[r, 0]), 5), "y0": round(float(rod_xy[r, 1]), 5),
                   "dxdz": round(float(tilt[0]), 7), "dydz": round(float(tilt[1]), 7),
                   "z_nm": [round(float(v), 4) for v in site_zr[r, inside[r]]],
-                  "seq": "".join(str(int(v)) for v in seq[r, inside[r]])} for r in range(n_rods)],
+                  "seq": "".join(str(int(v)) for v in seq[r, inside[r]])} for r in range(rod_xy.shape[0])],
         "config": {k2: (lat.to_dict() if k2 == "lattice" else list(v) if isinstance(v, tuple) else v)
                    for k2, v in ((f, getattr(cfg, f)) for f in cfg.__dataclass_fields__)},
     }
-    seq_out = np.where(inside, seq, -1).astype(np.int64)
-    return SimRun(ions=ions, lattice=lat, truth=truth, rod_xy_nm=rod_xy, rod_tilt=tilt, seq=seq_out,
-                  site_z_nm=site_zr, ion_rod=ion_rod, ion_site=ion_site, ion_metal=ion_metal,
-                  ion_species=ion_species, config=cfg)
 
 
 def _along_rod_class(pattern, lam, mean_runs, long_block_sites=8.0):

@@ -1072,6 +1072,65 @@ def _as_values(values) -> np.ndarray:
     return np.asarray(x, dtype=np.float64)
 
 
+def _check_agreement_inputs(values, mask, states, n_states):
+    """Validate the inputs of :func:`rod_agreement`.
+
+    Returns ``(x, mask, m, probs, states, n_states)``: the values (never copied), the bool mask,
+    the sites used (unmasked with a finite value), whether the values are probabilities, and the
+    signed states with their number of states (both None when ``states`` is None).
+    """
+    x = _as_values(values)
+    if x.ndim != 2:
+        raise InputError(f"values must be (n_rods, n_sites), got shape {x.shape}")
+    mask = np.asarray(mask, dtype=bool)
+    if mask.shape != x.shape:
+        raise InputError(f"mask shape {mask.shape} does not match values {x.shape}")
+    st, k = None, None
+    if states is not None:
+        st = _signed_states(np.asarray(states))
+        if st.shape != mask.shape:
+            raise InputError(f"states shape {st.shape} does not match mask {mask.shape}")
+        top = int(_masked_max(st, mask))
+        k = max(top, 0) + 1 if n_states is None else int(n_states)
+        if top >= k:
+            raise InputError(f"states hold state {top}, expected states below n_states={k}")
+    # sites used: unmasked with a finite value; x itself is never copied (masked sites are skipped)
+    probs, finite = _check_values(x, mask)
+    probs = bool(probs)
+    m = mask
+    if not finite:
+        m = np.empty(x.shape, dtype=bool)
+        _finite_mask(x, mask, m)
+    return x, mask, m, probs, st, k
+
+
+def _nonneighbour_comparison(x, m, nb, lags, zero, stat, n_null, rng):
+    """Lag-0 correlation over rod pairs that are not neighbours, and its resampling p-value.
+
+    Returns ``(corr, p_value)``, NaN where there are no such pairs or no finite statistic.
+    """
+    n_rods = x.shape[0]
+    corr_nn, p_nn = float("nan"), float("nan")
+    n_all = n_rods * (n_rods - 1) // 2
+    if len(nb) and n_all > len(nb) and np.isfinite(stat):
+        pool = _nonneighbour_pool(n_rods, nb, min(n_all - len(nb), max(4 * len(nb), 500), 2000), rng)
+        if len(pool):
+            ps, _ = _lag_sums(x, m, pool[:, 0], pool[:, 1], lags)
+            corr_nn = float(_corr_from_sums(ps[:, zero].sum(axis=0)))
+            nn_null = np.empty(min(int(n_null), 999) if n_null > 0 else 0)
+            picked = np.empty((len(lags), 3))
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                for r in range(len(nn_null)):
+                    pick = rng.integers(0, len(pool), size=len(nb))
+                    _pick_sums(ps, pick, picked)
+                    nn_null[r] = np.nanmax(_corr_from_sums(picked))
+            okn = np.isfinite(nn_null)
+            if okn.any():
+                p_nn = float((1 + np.sum(nn_null[okn] >= stat)) / (1 + okn.sum()))
+    return corr_nn, p_nn
+
+
 def rod_agreement(values, mask, neighbours, metal: int = 0, states=None, n_states: int | None = None,
                   max_lag: int = 3, n_null: int = 199, rng=None) -> RodAgreement:
     """Correlation of one metal's indicator between neighbouring rods, with a permutation null.
@@ -1112,27 +1171,7 @@ def rod_agreement(values, mask, neighbours, metal: int = 0, states=None, n_state
     RodAgreement
     """
     rng = np.random.default_rng(rng)
-    x = _as_values(values)
-    if x.ndim != 2:
-        raise InputError(f"values must be (n_rods, n_sites), got shape {x.shape}")
-    mask = np.asarray(mask, dtype=bool)
-    if mask.shape != x.shape:
-        raise InputError(f"mask shape {mask.shape} does not match values {x.shape}")
-    if states is not None:
-        st = _signed_states(np.asarray(states))
-        if st.shape != mask.shape:
-            raise InputError(f"states shape {st.shape} does not match mask {mask.shape}")
-        top = int(_masked_max(st, mask))
-        k = max(top, 0) + 1 if n_states is None else int(n_states)
-        if top >= k:
-            raise InputError(f"states hold state {top}, expected states below n_states={k}")
-    # sites used: unmasked with a finite value; x itself is never copied (masked sites are skipped)
-    probs, finite = _check_values(x, mask)
-    probs = bool(probs)
-    m = mask
-    if not finite:
-        m = np.empty(x.shape, dtype=bool)
-        _finite_mask(x, mask, m)
+    x, mask, m, probs, st, k = _check_agreement_inputs(values, mask, states, n_states)
     nb = np.asarray(neighbours, dtype=np.int64).reshape(-1, 2)
     n_rods, n_sites = x.shape
     if nb.size and (nb.min() < 0 or nb.max() >= n_rods):
@@ -1160,25 +1199,7 @@ def rod_agreement(values, mask, neighbours, metal: int = 0, states=None, n_state
     p_value = float((1 + np.sum(null[ok] >= stat)) / (1 + ok.sum())) if ok.any() else float("nan")
     null_mean = float(null[ok].mean()) if ok.any() else float("nan")
 
-    # non-neighbour comparison
-    corr_nn, p_nn = float("nan"), float("nan")
-    n_all = n_rods * (n_rods - 1) // 2
-    if len(nb) and n_all > len(nb) and np.isfinite(stat):
-        pool = _nonneighbour_pool(n_rods, nb, min(n_all - len(nb), max(4 * len(nb), 500), 2000), rng)
-        if len(pool):
-            ps, _ = _lag_sums(x, m, pool[:, 0], pool[:, 1], lags)
-            corr_nn = float(_corr_from_sums(ps[:, zero].sum(axis=0)))
-            nn_null = np.empty(min(int(n_null), 999) if n_null > 0 else 0)
-            picked = np.empty((len(lags), 3))
-            with warnings.catch_warnings():
-                warnings.simplefilter("ignore", RuntimeWarning)
-                for r in range(len(nn_null)):
-                    pick = rng.integers(0, len(pool), size=len(nb))
-                    _pick_sums(ps, pick, picked)
-                    nn_null[r] = np.nanmax(_corr_from_sums(picked))
-            okn = np.isfinite(nn_null)
-            if okn.any():
-                p_nn = float((1 + np.sum(nn_null[okn] >= stat)) / (1 + okn.sum()))
+    corr_nn, p_nn = _nonneighbour_comparison(x, m, nb, lags, zero, stat, n_null, rng)
 
     # Cohen's kappa of decoded states at lag 0
     if states is None:
@@ -1431,6 +1452,61 @@ def statistics_from_arrays(*, per_rod_transitions, per_rod_occupancy, metals, pi
     -------
     RunStatistics
     """
+    metals, tr, occ, pitch = _check_run_arrays(per_rod_transitions, per_rod_occupancy, metals, pitch_nm,
+                                               n_boot, max_lag)
+    k = len(metals)
+    n_rods = tr.shape[0]
+    n_boot = int(n_boot)
+    seed = random_state if isinstance(random_state, (int, np.integer)) or random_state is None else None
+    rng = np.random.default_rng(random_state)
+    notes = []
+    post, vit = _check_decoded_arrays(viterbi, posteriors, mask, n_rods, k)
+    m = vit >= 0
+
+    # point estimates
+    tr_sum = tr.sum(axis=0)
+    occ_sum = occ.sum(axis=0)
+    if transmat is not None:
+        p_fit = np.asarray(transmat, dtype=float)
+        if p_fit.shape != (k, k):
+            raise InputError(f"transmat must be ({k}, {k}), got shape {p_fit.shape}")
+    else:
+        p_fit = transition_matrix(tr_sum)
+    est = {key: float(v[0]) for key, v in _chain_block(tr_sum[None], occ_sum[None], metals, pitch, p_fit).items()}
+    comp = composition_from_occupancy(occ_sum)
+    least = int(np.argmin(comp))
+
+    # bootstrap over rods
+    w = rng.multinomial(n_rods, np.full(n_rods, 1.0 / n_rods), size=n_boot).astype(float)
+    tr_b = np.einsum("br,rij->bij", w, tr)
+    occ_b = w @ occ
+    reps = _chain_block(tr_b, occ_b, metals, pitch)
+
+    mk = _markov_test_summary(tr_sum, est, notes, lr_stat, lr_df, lr_pvalue, bic, bic_indep)
+    runs_pm = _runs_test_estimates(vit, k, metals, least, w, est, reps)
+
+    # run-length distribution of decoded runs (tabulated without listing the runs)
+    rld = _run_length_tables(*_run_histograms(vit, k), k, p_fit, comp, None)
+    run_lengths = {metals[s]: d for s, d in rld.items()}
+
+    rr = _rod_to_rod_estimates(post, vit, m, least, k, neighbours, rod_xy_nm, max_lag, n_null, n_boot,
+                               rng, est, reps, notes)
+
+    return RunStatistics(
+        metals=metals, pitch_nm=pitch, n_rods=int(n_rods), n_sites_used=int(np.count_nonzero(m)),
+        estimates=est, replicates={key: np.asarray(v, dtype=float) for key, v in reps.items()},
+        transmat=p_fit, composition=comp, occupancy=occ_sum, least_abundant=least,
+        markov_test=mk, run_lengths=run_lengths, runs_test_per_metal=runs_pm, rod_to_rod=rr,
+        n_boot=n_boot, random_state=int(seed) if seed is not None else None, notes=tuple(notes),
+    )
+
+
+def _check_run_arrays(per_rod_transitions, per_rod_occupancy, metals, pitch_nm, n_boot, max_lag):
+    """Validate the per-rod count arrays and scalar settings of :func:`statistics_from_arrays`.
+
+    Returns ``(metals, transitions, occupancy, pitch)`` with metals as a tuple of str and the
+    arrays as float.
+    """
     metals = tuple(str(mt) for mt in metals)
     k = len(metals)
     if k < 2:
@@ -1453,11 +1529,15 @@ def statistics_from_arrays(*, per_rod_transitions, per_rod_occupancy, metals, pi
         raise InputError(f"n_boot must be at least 10, got {n_boot}")
     if int(max_lag) < 0:
         raise InputError(f"max_lag must be >= 0 sites, got {max_lag}")
-    n_boot = int(n_boot)
-    seed = random_state if isinstance(random_state, (int, np.integer)) or random_state is None else None
-    rng = np.random.default_rng(random_state)
-    notes = []
+    return metals, tr, occ, pitch
 
+
+def _check_decoded_arrays(viterbi, posteriors, mask, n_rods, k):
+    """Validate the decoded states and posteriors; return ``(posteriors, states)``.
+
+    The states come back in a small signed dtype, -1 at masked sites (decoded from the
+    posteriors when ``viterbi`` is None); the posteriors are None when not given.
+    """
     post = None if posteriors is None else np.asarray(posteriors)
     if post is not None and post.dtype.kind not in "fiub":
         post = np.asarray(post, dtype=float)
@@ -1477,32 +1557,18 @@ def statistics_from_arrays(*, per_rod_transitions, per_rod_occupancy, metals, pi
         raise InputError(f"posteriors have {post.shape[1]} sites, viterbi {vit.shape[1]}")
     if mask is not None and mask.shape != vit.shape:
         raise InputError(f"mask shape {mask.shape} does not match viterbi {vit.shape}")
-    # decoded states in a small signed dtype, -1 at masked sites; m = the sites used
+    # decoded states in a small signed dtype, -1 at masked sites
     vit, top = _used_states(vit, mask, k, own=viterbi is None)
     if top >= k:
         raise InputError(f"viterbi holds state {top}, expected states 0..{k - 1}")
-    m = vit >= 0
+    return post, vit
 
-    # point estimates
-    tr_sum = tr.sum(axis=0)
-    occ_sum = occ.sum(axis=0)
-    if transmat is not None:
-        p_fit = np.asarray(transmat, dtype=float)
-        if p_fit.shape != (k, k):
-            raise InputError(f"transmat must be ({k}, {k}), got shape {p_fit.shape}")
-    else:
-        p_fit = transition_matrix(tr_sum)
-    est = {key: float(v[0]) for key, v in _chain_block(tr_sum[None], occ_sum[None], metals, pitch, p_fit).items()}
-    comp = composition_from_occupancy(occ_sum)
-    least = int(np.argmin(comp))
 
-    # bootstrap over rods
-    w = rng.multinomial(n_rods, np.full(n_rods, 1.0 / n_rods), size=n_boot).astype(float)
-    tr_b = np.einsum("br,rij->bij", w, tr)
-    occ_b = w @ occ
-    reps = _chain_block(tr_b, occ_b, metals, pitch)
+def _markov_test_summary(tr_sum, est, notes, lr_stat, lr_df, lr_pvalue, bic, bic_indep):
+    """Markov test summary: the decoder's likelihood-ratio test when given, G^2 on counts otherwise.
 
-    # Markov test
+    Adds the G^2 statistic to ``est`` and a note to ``notes`` when the decoder's test is missing.
+    """
     g2, g2_df, g2_p = g2_markov_test(tr_sum)
     mk = {
         "lr_stat": float(g2) if lr_stat is None else float(lr_stat),
@@ -1516,8 +1582,14 @@ def statistics_from_arrays(*, per_rod_transitions, per_rod_occupancy, metals, pi
     if lr_pvalue is None:
         notes.append("Markov test: no likelihood-ratio test from the decoder; G^2 on expected counts used")
     est["markov_test.g2"] = float(g2)
+    return mk
 
-    # runs test on decoded paths, per rod so the bootstrap can resample it
+
+def _runs_test_estimates(vit, k, metals, least, w, est, reps):
+    """Runs test on decoded paths, per rod so the bootstrap weights ``w`` can resample it.
+
+    Adds the least abundant metal's z and p to ``est`` and ``reps``; returns the per-metal table.
+    """
     r_rod, e_rod, v_rod = _runs_per_rod(vit, k)
     z, pz = _z_from_sums(r_rod.sum(0), e_rod.sum(0), v_rod.sum(0))
     runs_pm = {mt: {"z": float(z[s]), "p": float(pz[s]), "n_runs": float(r_rod[:, s].sum()),
@@ -1525,12 +1597,16 @@ def statistics_from_arrays(*, per_rod_transitions, per_rod_occupancy, metals, pi
     est["runs_test.z"], est["runs_test.p"] = float(z[least]), float(pz[least])
     zb, pb = _z_from_sums(w @ r_rod[:, least], w @ e_rod[:, least], w @ v_rod[:, least])
     reps["runs_test.z"], reps["runs_test.p"] = zb, pb
+    return runs_pm
 
-    # run-length distribution of decoded runs (tabulated without listing the runs)
-    rld = _run_length_tables(*_run_histograms(vit, k), k, p_fit, comp, None)
-    run_lengths = {metals[s]: d for s, d in rld.items()}
 
-    # rod-to-rod agreement
+def _rod_to_rod_estimates(post, vit, m, least, k, neighbours, rod_xy_nm, max_lag, n_null, n_boot,
+                          rng, est, reps, notes):
+    """Rod-to-rod agreement of the least abundant metal, with bootstrap replicates over pairs.
+
+    Fills ``est`` and ``reps`` and appends to ``notes``; returns the :class:`RodAgreement`, or
+    None when there are no neighbouring rod pairs.
+    """
     nb = None if neighbours is None else np.asarray(neighbours, dtype=np.int64).reshape(-1, 2)
     if nb is None and rod_xy_nm is not None:
         nb = neighbour_pairs(rod_xy_nm)
@@ -1548,38 +1624,36 @@ def statistics_from_arrays(*, per_rod_transitions, per_rod_occupancy, metals, pi
         est["rod_to_rod.statistic_corrected"] = rr.statistic_corrected
         for d, c in zip(rr.lags, rr.corr_lags):
             est[f"rod_to_rod.corr_lag.{int(d)}"] = float(c)
-        wp = rng.multinomial(rr.n_pairs, np.full(rr.n_pairs, 1.0 / rr.n_pairs), size=n_boot).astype(float)
-        bs = np.einsum("bp,plc->blc", wp, rr.pair_sums)  # (B, L, 5)
-        cl = _corr_from_sums(bs)  # (B, L)
-        cc = _corrected_from_sums(bs)
-        for li, d in enumerate(rr.lags):
-            reps[f"rod_to_rod.corr_lag.{int(d)}"] = cl[:, li]
-        reps["rod_to_rod.corr"] = cl[:, int(max_lag)]
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)
-            stat_b = np.nanmax(cl, axis=1)
-            best_b = np.argmax(np.where(np.isfinite(cl), cl, -np.inf), axis=1)
-        reps["rod_to_rod.statistic"] = stat_b
-        reps["rod_to_rod.corr_corrected"] = cc[:, int(max_lag)]
-        reps["rod_to_rod.statistic_corrected"] = np.where(np.isfinite(stat_b), cc[np.arange(n_boot), best_b], np.nan)
-        ok = np.isfinite(rr.null)
-        if ok.any():
-            nul = np.sort(rr.null[ok])
-            ge = nul.size - np.searchsorted(nul, stat_b, side="left")
-            reps["rod_to_rod.p_value"] = np.where(np.isfinite(stat_b), (1.0 + ge) / (1.0 + nul.size), np.nan)
-        reps["rod_to_rod.kappa"] = _kappa(np.einsum("bp,pij->bij", wp, rr.pair_confusion))
+        _rod_to_rod_replicates(rr, max_lag, n_boot, rng, reps)
     else:
         notes.append("rod-to-rod agreement: no neighbouring rod pairs")
     if post is None:
         notes.append("rod-to-rod agreement on decoded states (no posteriors given)")
+    return rr
 
-    return RunStatistics(
-        metals=metals, pitch_nm=pitch, n_rods=int(n_rods), n_sites_used=int(np.count_nonzero(m)),
-        estimates=est, replicates={key: np.asarray(v, dtype=float) for key, v in reps.items()},
-        transmat=p_fit, composition=comp, occupancy=occ_sum, least_abundant=least,
-        markov_test=mk, run_lengths=run_lengths, runs_test_per_metal=runs_pm, rod_to_rod=rr,
-        n_boot=n_boot, random_state=int(seed) if seed is not None else None, notes=tuple(notes),
-    )
+
+def _rod_to_rod_replicates(rr, max_lag, n_boot, rng, reps):
+    """Bootstrap replicates of the rod-to-rod statistics, resampling neighbour pairs into ``reps``."""
+    wp = rng.multinomial(rr.n_pairs, np.full(rr.n_pairs, 1.0 / rr.n_pairs), size=n_boot).astype(float)
+    bs = np.einsum("bp,plc->blc", wp, rr.pair_sums)  # (B, L, 5)
+    cl = _corr_from_sums(bs)  # (B, L)
+    cc = _corrected_from_sums(bs)
+    for li, d in enumerate(rr.lags):
+        reps[f"rod_to_rod.corr_lag.{int(d)}"] = cl[:, li]
+    reps["rod_to_rod.corr"] = cl[:, int(max_lag)]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        stat_b = np.nanmax(cl, axis=1)
+        best_b = np.argmax(np.where(np.isfinite(cl), cl, -np.inf), axis=1)
+    reps["rod_to_rod.statistic"] = stat_b
+    reps["rod_to_rod.corr_corrected"] = cc[:, int(max_lag)]
+    reps["rod_to_rod.statistic_corrected"] = np.where(np.isfinite(stat_b), cc[np.arange(n_boot), best_b], np.nan)
+    ok = np.isfinite(rr.null)
+    if ok.any():
+        nul = np.sort(rr.null[ok])
+        ge = nul.size - np.searchsorted(nul, stat_b, side="left")
+        reps["rod_to_rod.p_value"] = np.where(np.isfinite(stat_b), (1.0 + ge) / (1.0 + nul.size), np.nan)
+    reps["rod_to_rod.kappa"] = _kappa(np.einsum("bp,pij->bij", wp, rr.pair_confusion))
 
 
 def _argmax_states(post) -> np.ndarray:
