@@ -458,10 +458,32 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
         edge_margin_nm = DEFAULT_EDGE_MARGIN_FRAC * d_nn * reg.scale
     if not (math.isfinite(edge_margin_nm) and edge_margin_nm >= 0):
         raise InputError(f"edge_margin_nm must be >= 0, got {edge_margin_nm!r}")
-    pitch = lat.pitch_nm
+    gp, tt, zlo, zhi, site_z, phase, contrast = _plan_sites(x, y, z, reg, z_range_nm, site_phase_nm)
+    oz, ocen, orad = _outline(x, y, z, slab_nm)
+    cells, xy_ref = _candidate_rods(reg, oz, ocen, orad, zlo, zhi)
+    cells, xy_ref, inside = _rods_inside(reg, cells, xy_ref, site_z, gp, tt, (oz, ocen, orad),
+                                         edge_margin_nm, zlo, zhi)
+    cutoff_nm = float(cutoff_frac) * d_nn
+    locator, origin, table, code_offset, lut_offset, rod_key = _rod_lookup(lat, cells, site_z, cutoff_nm, n_grid)
+    for a in (cells, xy_ref, site_z, inside, table, code_offset, lut_offset, rod_key):
+        a.flags.writeable = False
+    return ColumnGeometry(
+        registration=reg, cutoff_nm=cutoff_nm, rod_cells=cells, rod_xy_nm=xy_ref, site_z_nm=site_z,
+        pitch_nm=float(lat.pitch_nm), mask=inside, edge_margin_nm=float(edge_margin_nm), outline_z_nm=oz,
+        outline_radius_nm=orad, outline_center_nm=ocen, site_phase_nm=float(phase),
+        site_phase_contrast=float(contrast), locator=locator, table_origin=origin,
+        rod_table=table, code_offset=code_offset, lut_offset=lut_offset, rod_key=rod_key,
+        frac_affine=reg.frac_map())
+
+
+def _plan_sites(x, y, z, reg, z_range_nm, site_phase_nm):
+    """Site-plane model, depth range and site depths along the rods of a registration.
+
+    Returns ``(gp, tt, zlo, zhi, site_z, phase, contrast)``.
+    """
     t = reg.tilt
     gp, tt = _plane_model(t, reg.scale)
-    spacing = pitch * math.sqrt(tt)
+    spacing = reg.lattice.pitch_nm * math.sqrt(tt)
     u = z + gp[0] * x + gp[1] * y
     if z_range_nm is None:
         zlo, zhi = float(z.min()), float(z.max())
@@ -480,13 +502,19 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
     k1 = math.floor((uhi - phase) / spacing + 0.5)
     site_u = phase + spacing * np.arange(k0, k1 + 1, dtype=float)
     site_z = site_u / tt
+    return gp, tt, zlo, zhi, site_z, phase, contrast
 
-    oz, ocen, orad = _outline(x, y, z, slab_nm)
+
+def _candidate_rods(reg, oz, ocen, orad, zlo, zhi):
+    """Every lattice rod whose axis comes within the largest outline radius.
+
+    Returns ``(cells, xy_ref)``: rod cells ``(i, j, basis)`` and axes at the reference depth.
+    """
+    lat = reg.lattice
     cell = max(lat.a_nm, lat.b_nm) * reg.scale
     if 2 * orad.max() < cell:
         raise InputError(f"specimen narrower than one cell: the metal ions span a diameter of at most "
                          f"{2 * orad.max():.3g} nm, the lattice cell is {cell:.3g} nm")
-    # candidate rods: every lattice rod whose axis comes within the largest outline radius
     C = lat.cell_matrix
     A = reg.transform
     zmid = 0.5 * (zlo + zhi)
@@ -502,7 +530,16 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
     frac = cells[:, :2] + lat.rods_frac[cells[:, 2]]
     xy_ref = reg.lattice_to_recon(frac @ C.T)
     near = np.hypot(*(xy_ref + reg.tilt * (zmid - reg.z_ref_nm) - c_mid).T) <= reach
-    cells, xy_ref = cells[near], xy_ref[near]
+    return cells[near], xy_ref[near]
+
+
+def _rods_inside(reg, cells, xy_ref, site_z, gp, tt, outline, edge_margin_nm, zlo, zhi):
+    """Keep the rods wholly inside the outline and mark their sites inside it.
+
+    Returns ``(cells, xy_ref, inside)`` with ``inside`` the (rods, sites) mask.
+    """
+    oz, ocen, orad = outline
+    t = reg.tilt
     # axis at each site depth vs outline; site k of a rod through xy0 (z = 0) is at
     # z = site_z[k] - t . xy0 / (1 + |t|^2)
     dz_rod = -((xy_ref - t * reg.z_ref_nm) @ gp) / tt
@@ -527,14 +564,21 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
         # kept rows moved up in place (no second mask-sized array); the view's base keeps the
         # few dropped rows' bytes
         cells, xy_ref, inside = cells[keep], xy_ref[keep], inside[:_compact_rows(inside, keep)]
-    # dense rod table
+    return cells, xy_ref, inside
+
+
+def _rod_lookup(lat, cells, site_z, cutoff_nm, n_grid):
+    """Dense rod table and the offset tables the counting kernels look rods up with.
+
+    Returns ``(locator, table_origin, table, code_offset, lut_offset, rod_key)``.
+    """
+    nb = lat.rods_per_cell
     i0 = int(cells[:, 0].min()) - _PAD
     j0 = int(cells[:, 1].min()) - _PAD
     ni = int(cells[:, 0].max()) + _PAD + 1 - i0
     nj = int(cells[:, 1].max()) + _PAD + 1 - j0
     table = np.full(ni * nj * nb, -1, dtype=np.int32)
     table[((cells[:, 0] - i0) * nj + (cells[:, 1] - j0)) * nb + cells[:, 2]] = np.arange(cells.shape[0])
-    cutoff_nm = float(cutoff_frac) * d_nn
     locator = _cached_locator(lat, cutoff_nm, n_grid)
     off = locator.code_cell[:, 0] * (nj * nb) + locator.code_cell[:, 1] * nb + locator.code_basis
     if cells.shape[0] * max(site_z.size, 1) * 16 >= 2 ** 31 or ni * nj * nb >= 2 ** 29:
@@ -548,15 +592,7 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
     lut_offset = np.where(lt >= 0, code_offset[np.maximum(lt, 0)],
                           np.where(lt == -1, _EXCL, _FB - (lt + 2))).astype(np.int32)
     rod_key = np.concatenate([np.full(size, -1, np.int32), np.where(table >= 0, table, -1).astype(np.int32)])
-    for a in (cells, xy_ref, site_z, inside, table, code_offset, lut_offset, rod_key):
-        a.flags.writeable = False
-    return ColumnGeometry(
-        registration=reg, cutoff_nm=cutoff_nm, rod_cells=cells, rod_xy_nm=xy_ref, site_z_nm=site_z,
-        pitch_nm=float(pitch), mask=inside, edge_margin_nm=float(edge_margin_nm), outline_z_nm=oz,
-        outline_radius_nm=orad, outline_center_nm=ocen, site_phase_nm=float(phase),
-        site_phase_contrast=float(contrast), locator=locator, table_origin=(i0, j0, ni, nj),
-        rod_table=table, code_offset=code_offset, lut_offset=lut_offset, rod_key=rod_key,
-        frac_affine=reg.frac_map())
+    return locator, (i0, j0, ni, nj), table, code_offset, lut_offset, rod_key
 
 
 @numba.njit(cache=True, nogil=True)

@@ -518,6 +518,154 @@ def _legend_layout(n_metals: int, width_in: float):
     return ncol, rows
 
 
+def _select_track_cells(columns, decoded, depth_nm, selection):
+    """Validate the decoding, pick the rods and return ``(ids, centre, sites, code)``."""
+    vit, post, mask, prior = _check_decoded(columns, decoded)
+    sites, inside_all = depth_window(columns, depth_nm)
+    observed_rods = (mask[:, sites] & inside_all).any(axis=1)
+    ids, centre = select_rods(columns, **selection, observed=observed_rods)
+    code = track_cells(columns, decoded, ids, sites, inside_all)
+    return ids, centre, sites, code
+
+
+def _track_boxes(r, a, b, half=0.4):
+    """Corner vertices (n, 4, 2) of boxes spanning ``a``..``b`` in depth on track rows ``r``."""
+    v = np.empty((r.size, 4, 2))
+    v[:, 0, 0] = v[:, 1, 0] = a
+    v[:, 2, 0] = v[:, 3, 0] = b
+    v[:, 0, 1] = v[:, 3, 1] = r - half
+    v[:, 1, 1] = v[:, 2, 1] = r + half
+    return v
+
+
+def _track_geometry(columns, code, ids, sites):
+    """Cell edges, per-track depth offsets and the merged drawn cells ``(row, x0, x1, val)``."""
+    # geometry: cell edges along depth (per rod offset), one row per track
+    edges = _site_edges(columns.site_z_nm, float(columns.pitch_nm))[sites.start:sites.stop + 1]
+    off = columns.site_z_offset_nm[ids]
+    row, first, stop, val = _merge_cells(code)
+    drawn = val != _OUTSIDE
+    row, first, stop, val = row[drawn], first[drawn], stop[drawn], val[drawn]
+    x0 = edges[first] + off[row]
+    x1 = edges[stop] + off[row]
+    return edges, off, (row, x0, x1, val)
+
+
+def _tracks_figure(size, n_tr, k_metals, title):
+    """Figure and axes sized for ``n_tr`` tracks; returns ``(fig, ax, font, track_in, ncol)``."""
+    # figure size: height from the number of tracks
+    font = _font_pt(size)
+    track_in = float(np.clip(4.2 / max(n_tr, 1), 0.075, 0.2))
+    width_guess = figure_width_in(size) if isinstance(size, str) else _size_mm(size)[0] / MM_PER_INCH
+    ncol, legend_rows = _legend_layout(k_metals, width_guess)
+    legend_rows += 0.6
+    height = n_tr * track_in + 1.0 * font / 7.0 + legend_rows * 0.16 * font / 7.0 + (0.2 if title else 0.0)
+    fig = _new_figure(*_figure_size(size, height))
+    ax = fig.add_subplot(1, 1, 1)
+    return fig, ax, font, track_in, ncol
+
+
+def _draw_track_outlines(ax, code, edges, off):
+    """Outline each track over its drawn extent; returns the depth range ``(dmin, dmax)``."""
+    from matplotlib.collections import PolyCollection
+
+    n_tr, n_win = code.shape
+    # track outlines over the drawn extent of each track
+    any_drawn = code != _OUTSIDE
+    lo_i = np.argmax(any_drawn, axis=1)
+    hi_i = n_win - np.argmax(any_drawn[:, ::-1], axis=1)
+    rows = np.arange(n_tr)
+    outlines = PolyCollection(_track_boxes(rows, edges[lo_i] + off, edges[hi_i] + off), facecolors="none",
+                              edgecolors=UNRANGED, linewidths=0.4, zorder=1)
+    outlines.set_gid("track-outlines")
+    ax.add_collection(outlines)
+    return float((edges[lo_i] + off).min()), float((edges[hi_i] + off).max())
+
+
+def _draw_track_cells(ax, cells_drawn):
+    """Draw the coloured cells and the hatched masked stretches as compound paths."""
+    from matplotlib.collections import PathCollection
+    from matplotlib.path import Path as MplPath
+
+    row, x0, x1, val = cells_drawn
+    n_lv = len(CONFIDENCE_LEVELS)
+    # coloured cells: one compound path per colour (metal x level), so even thousands of merged
+    # cells cost a handful of drawing operations in every backend
+    alphas = np.array([lv[1] for lv in CONFIDENCE_LEVELS])
+    paths, faces = [], []
+    for c in np.unique(val[val >= 0]):
+        sel = val == c
+        paths.append(MplPath.make_compound_path_from_polys(_track_boxes(row[sel], x0[sel], x1[sel])))
+        faces.append(_rgba(metal_colour(int(c) // n_lv), alphas[int(c) % n_lv]))
+    cells = PathCollection(paths, facecolors=faces or "none", edgecolors="none", linewidths=0,
+                           antialiaseds=False, zorder=2)
+    cells.set_gid("track-cells")
+    ax.add_collection(cells)
+
+    # masked stretches: light grey hatch
+    msk = val == _MASKED
+    mpaths = ([MplPath.make_compound_path_from_polys(_track_boxes(row[msk], x0[msk], x1[msk]))]
+              if msk.any() else [])
+    masked = PathCollection(mpaths, facecolors="none", edgecolors=UNRANGED, linewidths=0, hatch="////",
+                            zorder=1.5)
+    masked.set_gid("track-masked")
+    ax.add_collection(masked)
+
+
+def _style_track_axes(ax, ids, centre, n_tr, depth_range, font, track_in):
+    """Depth axis below and rod labels left; returns the room kept for the scale bar."""
+    from matplotlib.ticker import MaxNLocator
+
+    dmin, dmax = depth_range
+    ax.set_xlim(dmin, dmax)
+    extra = max(0.9, 0.17 / track_in)  # room for the scale bar, in track heights
+    ax.set_ylim(n_tr - 0.5 + extra, -0.6)
+    ax.set_xlabel("depth z (nm)", fontsize=font)
+    step = max(1, math.ceil(n_tr * font * 1.15 / 72.0 / (n_tr * track_in)))
+    ax.set_yticks(np.arange(n_tr))
+    labels = []
+    for i, r in enumerate(ids):
+        if i % step:
+            labels.append("")
+        else:
+            labels.append(f"rod {int(r)}" + (" (centre)" if centre is not None and r == centre else ""))
+    ax.set_yticklabels(labels, fontsize=font * (0.85 if step == 1 and track_in < 0.11 else 1.0))
+    ax.tick_params(axis="y", length=0, pad=2)
+    ax.tick_params(axis="x", labelsize=font, length=2.5, pad=1.5)
+    for side in ("left", "right", "top"):
+        ax.spines[side].set_visible(False)
+    ax.xaxis.set_major_locator(MaxNLocator(nbins=8, steps=[1, 2, 2.5, 5, 10]))
+    return extra
+
+
+def _add_site_axis(ax, columns, n_win, font):
+    """Secondary axis above giving the site index fitted to the site depths."""
+    from matplotlib.ticker import MaxNLocator
+
+    sz = columns.site_z_nm
+    kk = np.arange(sz.size)
+    slope, icpt = np.polyfit(kk, sz, 1) if sz.size > 1 else (float(columns.pitch_nm), float(sz[0]))
+    top = ax.secondary_xaxis("top", functions=(lambda z: (z - icpt) / slope, lambda s: icpt + s * slope))
+    top.xaxis.set_major_locator(MaxNLocator(nbins=8, integer=True, steps=[1, 2, 5, 10]))
+    if n_win <= 120:
+        from matplotlib.ticker import MultipleLocator
+
+        top.xaxis.set_minor_locator(MultipleLocator(1))
+    top.tick_params(labelsize=font * 0.9, length=2.5, pad=1, which="major")
+    top.tick_params(length=1.2, which="minor")
+    top.set_xlabel("site", fontsize=font * 0.9, labelpad=1.5)
+
+
+def _add_scale_bar(ax, depth_range, n_tr, extra, font):
+    """Scale bar under the last track, right-aligned."""
+    dmin, dmax = depth_range
+    bar = _nice_length(dmax - dmin)
+    yb = n_tr - 0.5 + 0.55 * extra
+    xb1 = dmax - 0.01 * (dmax - dmin)
+    ax.plot([xb1 - bar, xb1], [yb, yb], color=METAL_COLOURS[-1], linewidth=1.2, solid_capstyle="butt", zorder=3)
+    ax.text(xb1 - bar - 0.01 * (dmax - dmin), yb, f"{bar:g} nm", fontsize=font * 0.9, ha="right", va="center")
+
+
 def plot_tracks(columns, decoded, path=None, *, rods=None, region=None, neighbours_of=None, sample=None,
                 depth_nm=None, size="one-column", dpi=300, random_state=None, title=None):
     """Sequence tracks: rods as parallel tracks along depth, sites coloured by decoded metal.
@@ -555,124 +703,23 @@ def plot_tracks(columns, decoded, path=None, *, rods=None, region=None, neighbou
         Unknown rod ids (the message gives the range of ids), an empty depth window (the message
         gives the depth range of the sites), several ways of choosing rods, a bad size or suffix.
     """
-    from matplotlib.collections import PathCollection, PolyCollection
-    from matplotlib.path import Path as MplPath
-    from matplotlib.ticker import MaxNLocator
-
     dpi = _check_dpi(dpi)
-    vit, post, mask, prior = _check_decoded(columns, decoded)
-    sites, inside_all = depth_window(columns, depth_nm)
-    observed_rods = (mask[:, sites] & inside_all).any(axis=1)
-    ids, centre = select_rods(columns, rods=rods, region=region, neighbours_of=neighbours_of, sample=sample,
-                              random_state=random_state, observed=observed_rods)
-    code = track_cells(columns, decoded, ids, sites, inside_all)
+    selection = dict(rods=rods, region=region, neighbours_of=neighbours_of, sample=sample,
+                     random_state=random_state)
+    ids, centre, sites, code = _select_track_cells(columns, decoded, depth_nm, selection)
     n_tr, n_win = code.shape
-    k_metals = columns.n_metals
-    metals = tuple(columns.metals)
-    n_lv = len(CONFIDENCE_LEVELS)
+    edges, off, cells_drawn = _track_geometry(columns, code, ids, sites)
 
-    # geometry: cell edges along depth (per rod offset), one row per track
-    edges = _site_edges(columns.site_z_nm, float(columns.pitch_nm))[sites.start:sites.stop + 1]
-    off = columns.site_z_offset_nm[ids]
-    row, first, stop, val = _merge_cells(code)
-    drawn = val != _OUTSIDE
-    row, first, stop, val = row[drawn], first[drawn], stop[drawn], val[drawn]
-    x0 = edges[first] + off[row]
-    x1 = edges[stop] + off[row]
-    half = 0.4
-
-    def boxes(r, a, b):
-        v = np.empty((r.size, 4, 2))
-        v[:, 0, 0] = v[:, 1, 0] = a
-        v[:, 2, 0] = v[:, 3, 0] = b
-        v[:, 0, 1] = v[:, 3, 1] = r - half
-        v[:, 1, 1] = v[:, 2, 1] = r + half
-        return v
-
-    # figure size: height from the number of tracks
-    font = _font_pt(size)
-    track_in = float(np.clip(4.2 / max(n_tr, 1), 0.075, 0.2))
-    width_guess = figure_width_in(size) if isinstance(size, str) else _size_mm(size)[0] / MM_PER_INCH
-    ncol, legend_rows = _legend_layout(k_metals, width_guess)
-    legend_rows += 0.6
-    height = n_tr * track_in + 1.0 * font / 7.0 + legend_rows * 0.16 * font / 7.0 + (0.2 if title else 0.0)
-    fig = _new_figure(*_figure_size(size, height))
-    ax = fig.add_subplot(1, 1, 1)
-
-    # track outlines over the drawn extent of each track
-    any_drawn = code != _OUTSIDE
-    lo_i = np.argmax(any_drawn, axis=1)
-    hi_i = n_win - np.argmax(any_drawn[:, ::-1], axis=1)
-    rows = np.arange(n_tr)
-    outlines = PolyCollection(boxes(rows, edges[lo_i] + off, edges[hi_i] + off), facecolors="none",
-                              edgecolors=UNRANGED, linewidths=0.4, zorder=1)
-    outlines.set_gid("track-outlines")
-    ax.add_collection(outlines)
-
-    # coloured cells
-    # coloured cells: one compound path per colour (metal x level), so even thousands of merged
-    # cells cost a handful of drawing operations in every backend
-    alphas = np.array([lv[1] for lv in CONFIDENCE_LEVELS])
-    paths, faces = [], []
-    for c in np.unique(val[val >= 0]):
-        sel = val == c
-        paths.append(MplPath.make_compound_path_from_polys(boxes(row[sel], x0[sel], x1[sel])))
-        faces.append(_rgba(metal_colour(int(c) // n_lv), alphas[int(c) % n_lv]))
-    cells = PathCollection(paths, facecolors=faces or "none", edgecolors="none", linewidths=0,
-                           antialiaseds=False, zorder=2)
-    cells.set_gid("track-cells")
-    ax.add_collection(cells)
-
-    # masked stretches: light grey hatch
-    msk = val == _MASKED
-    mpaths = [MplPath.make_compound_path_from_polys(boxes(row[msk], x0[msk], x1[msk]))] if msk.any() else []
-    masked = PathCollection(mpaths, facecolors="none", edgecolors=UNRANGED, linewidths=0, hatch="////",
-                            zorder=1.5)
-    masked.set_gid("track-masked")
-    ax.add_collection(masked)
+    fig, ax, font, track_in, ncol = _tracks_figure(size, n_tr, columns.n_metals, title)
+    depth_range = _draw_track_outlines(ax, code, edges, off)
+    _draw_track_cells(ax, cells_drawn)
 
     # axes: depth below, site index above, rod labels left
-    dmin = float((edges[lo_i] + off).min())
-    dmax = float((edges[hi_i] + off).max())
-    ax.set_xlim(dmin, dmax)
-    extra = max(0.9, 0.17 / track_in)  # room for the scale bar, in track heights
-    ax.set_ylim(n_tr - 0.5 + extra, -0.6)
-    ax.set_xlabel("depth z (nm)", fontsize=font)
-    step = max(1, math.ceil(n_tr * font * 1.15 / 72.0 / (n_tr * track_in)))
-    ax.set_yticks(rows)
-    labels = []
-    for i, r in enumerate(ids):
-        if i % step:
-            labels.append("")
-        else:
-            labels.append(f"rod {int(r)}" + (" (centre)" if centre is not None and r == centre else ""))
-    ax.set_yticklabels(labels, fontsize=font * (0.85 if step == 1 and track_in < 0.11 else 1.0))
-    ax.tick_params(axis="y", length=0, pad=2)
-    ax.tick_params(axis="x", labelsize=font, length=2.5, pad=1.5)
-    for side in ("left", "right", "top"):
-        ax.spines[side].set_visible(False)
-    ax.xaxis.set_major_locator(MaxNLocator(nbins=8, steps=[1, 2, 2.5, 5, 10]))
+    extra = _style_track_axes(ax, ids, centre, n_tr, depth_range, font, track_in)
+    _add_site_axis(ax, columns, n_win, font)
+    _add_scale_bar(ax, depth_range, n_tr, extra, font)
 
-    sz = columns.site_z_nm
-    kk = np.arange(sz.size)
-    slope, icpt = np.polyfit(kk, sz, 1) if sz.size > 1 else (float(columns.pitch_nm), float(sz[0]))
-    top = ax.secondary_xaxis("top", functions=(lambda z: (z - icpt) / slope, lambda s: icpt + s * slope))
-    top.xaxis.set_major_locator(MaxNLocator(nbins=8, integer=True, steps=[1, 2, 5, 10]))
-    if n_win <= 120:
-        from matplotlib.ticker import MultipleLocator
-
-        top.xaxis.set_minor_locator(MultipleLocator(1))
-    top.tick_params(labelsize=font * 0.9, length=2.5, pad=1, which="major")
-    top.tick_params(length=1.2, which="minor")
-    top.set_xlabel("site", fontsize=font * 0.9, labelpad=1.5)
-
-    # scale bar under the last track, right-aligned
-    bar = _nice_length(dmax - dmin)
-    yb = n_tr - 0.5 + 0.55 * extra
-    xb1 = dmax - 0.01 * (dmax - dmin)
-    ax.plot([xb1 - bar, xb1], [yb, yb], color=METAL_COLOURS[-1], linewidth=1.2, solid_capstyle="butt", zorder=3)
-    ax.text(xb1 - bar - 0.01 * (dmax - dmin), yb, f"{bar:g} nm", fontsize=font * 0.9, ha="right", va="center")
-
+    metals = tuple(columns.metals)
     fig.legend(handles=_track_legend(metals, ncol), loc="outside lower center", ncols=ncol,
                fontsize=font * 0.9, frameon=False, handlelength=1.2, handleheight=0.8, columnspacing=0.9,
                handletextpad=0.4, borderaxespad=0.1, title="p = posterior of the decoded metal",

@@ -1181,37 +1181,16 @@ def auto_range(mass_to_charge, metals, species=None, *, ranges: RangeSet | None 
     m = getattr(mass_to_charge, "mass_to_charge", mass_to_charge)
     m = np.asarray(m)
     metals = _check_metals(metals)
-    for name, v, lo, hi in (("low_fraction", low_fraction, 0, 1), ("high_fraction", high_fraction, 0, 1),
-                            ("tolerance_fwhm", tolerance_fwhm, 0, 10), ("max_shift", max_shift, -1e-12, 0.1)):
-        if not lo < v < hi:
-            raise InputError(f"auto_range: {name} must be in ({max(lo, 0):g}, {hi:g}), got {v!r}")
-    if isinstance(calibration_degree, bool) or not isinstance(calibration_degree, int) or \
-            not 0 <= calibration_degree <= 3:
-        raise InputError(f"auto_range: calibration_degree must be 0, 1, 2 or 3, got {calibration_degree!r}")
+    _check_auto_range_args(low_fraction, high_fraction, tolerance_fwhm, max_shift, calibration_degree)
     search = find_peaks(m, resolving_power=resolving_power, range_da=range_da, min_counts=min_counts,
                         min_significance=min_significance)
     peaks = search.peaks
     rp = search.resolving_power if math.isfinite(search.resolving_power) else float(resolving_power)
-
-    if ranges is None:
-        metal_sp = tuple(s for el in metals for s in metal_species(el))
-        cand = tuple(dict.fromkeys(metal_sp + _parse_species(species)))
-    else:
-        if not isinstance(ranges, RangeSet):
-            raise InputError(f"auto_range: ranges must be a RangeSet, got {type(ranges).__name__}")
-        cand = ranges.species()
+    cand = _candidate_species(metals, species, ranges)
     lines = _lines(cand)
     label_of = lambda idx: ion_label(*cand[int(lines.sp[idx[np.argmax(lines.frac[idx])]])])  # noqa: E731
-
-    # ---- calibration and matching
-    cal = _identity()
-    if calibrate and len(peaks):
-        s = _coarse_scale(peaks, lines, max_shift)
-        cal = Calibration(np.array([s, 0.0]))
-        for _ in range(3):
-            cands, _ = _match(peaks, lines, cal, tolerance_fwhm, _floor(cal))
-            cal = _fit_calibration(peaks, lines, cands, calibration_degree, label_of)
-    cands, cal_pos = _match(peaks, lines, cal, tolerance_fwhm, _floor(cal))
+    cal, cands, cal_pos = _calibrate_and_match(peaks, lines, calibrate, max_shift, tolerance_fwhm,
+                                               calibration_degree, label_of)
 
     r0, beta = resolving_power_law(peaks, fallback=rp)
     fwhm_at = PeakShape(r0, beta).width_da
@@ -1221,9 +1200,75 @@ def auto_range(mass_to_charge, metals, species=None, *, ranges: RangeSet | None 
     else:
         rs, range_peak = ranges, np.full(len(ranges), -1, dtype=np.int64)
 
-    # ---- quantification with lines as points, then with the measured peak shape
     auto = ranges is None
     args = (m, search, lines, cal_pos, cand, metals, auto)
+    rs, range_peak, fit, shape, fwhm_at = _quantify_ranges(rs, range_peak, fwhm_at, r0, beta, peak_shape, args)
+    atoms = np.array([metal_atoms(f, metals) for f, _ in cand]).reshape(len(cand), len(metals))
+    amounts, cov = fit["amounts"], fit["cov"]
+    M, M_sig, x, x_sig = _composition(amounts, cov, atoms)
+    mu, bgc = fit["mu"], fit["bg"]
+    _require_metal_shares(metals, M, atoms, mu, len(rs),
+                          (cand, lines, cal_pos, peaks, tolerance_fwhm, fwhm_at))
+    rs, deconv = _share_ranges(rs, mu, bgc, cand, metals, auto)
+
+    matched_peaks = set(int(p) for p in range_peak if p >= 0)
+    unmatched = np.array([p for p in range(len(peaks)) if p not in matched_peaks
+                          and not _inside_any(peaks.position_da[p], rs)], dtype=np.int64)
+    nearest = tuple(_nearest_line(peaks.position_da[p], lines, cal_pos, cand) for p in unmatched)
+    return RangingResult(
+        metals=metals, ranges=rs, peaks=peaks, range_peak=np.asarray(range_peak, dtype=np.int64),
+        unmatched=unmatched, unmatched_nearest=nearest, calibration=cal, gross_counts=fit["gross"],
+        background_counts=bgc, background_sigma=fit["bg_sigma"], deconvolved=tuple(deconv), species=cand,
+        amounts=amounts, amounts_sigma=np.sqrt(np.maximum(np.diag(cov), 0)), species_metal_atoms=atoms,
+        metal_atoms=M, metal_atoms_sigma=M_sig, composition=x, composition_sigma=x_sig, resolving_power=rp,
+        peak_shape=shape, search=search, spectrum=histogram(m, range_da=(search.spectrum.edges_da[0], search.spectrum.edges_da[-1]),
+                                          resolving_power=rp))
+
+
+def _check_auto_range_args(low_fraction, high_fraction, tolerance_fwhm, max_shift, calibration_degree):
+    """Check the numeric options of :func:`auto_range` (raises InputError)."""
+    for name, v, lo, hi in (("low_fraction", low_fraction, 0, 1), ("high_fraction", high_fraction, 0, 1),
+                            ("tolerance_fwhm", tolerance_fwhm, 0, 10), ("max_shift", max_shift, -1e-12, 0.1)):
+        if not lo < v < hi:
+            raise InputError(f"auto_range: {name} must be in ({max(lo, 0):g}, {hi:g}), got {v!r}")
+    if isinstance(calibration_degree, bool) or not isinstance(calibration_degree, int) or \
+            not 0 <= calibration_degree <= 3:
+        raise InputError(f"auto_range: calibration_degree must be 0, 1, 2 or 3, got {calibration_degree!r}")
+
+
+def _candidate_species(metals, species, ranges):
+    """Species to predict lines for: the metals' and framework ions, or those the given ranges name."""
+    if ranges is None:
+        metal_sp = tuple(s for el in metals for s in metal_species(el))
+        return tuple(dict.fromkeys(metal_sp + _parse_species(species)))
+    if not isinstance(ranges, RangeSet):
+        raise InputError(f"auto_range: ranges must be a RangeSet, got {type(ranges).__name__}")
+    return ranges.species()
+
+
+def _calibrate_and_match(peaks, lines, calibrate, max_shift, tolerance_fwhm, calibration_degree, label_of):
+    """Fit the mass calibration (when asked) and match peaks to lines.
+
+    Returns ``(cal, cands, cal_pos)``.
+    """
+    cal = _identity()
+    if calibrate and len(peaks):
+        s = _coarse_scale(peaks, lines, max_shift)
+        cal = Calibration(np.array([s, 0.0]))
+        for _ in range(3):
+            cands, _ = _match(peaks, lines, cal, tolerance_fwhm, _floor(cal))
+            cal = _fit_calibration(peaks, lines, cands, calibration_degree, label_of)
+    cands, cal_pos = _match(peaks, lines, cal, tolerance_fwhm, _floor(cal))
+    return cal, cands, cal_pos
+
+
+def _quantify_ranges(rs, range_peak, fwhm_at, r0, beta, peak_shape, args):
+    """Fit the amounts with lines as points, then with the measured peak shape.
+
+    ``args`` is ``(m, search, lines, cal_pos, cand, metals, auto)``. Returns
+    ``(rs, range_peak, fit, shape, fwhm_at)``.
+    """
+    _, search, lines, cal_pos, cand, metals, auto = args
     rs, range_peak, fit = _fit_ranges(rs, range_peak, fwhm_at, None, *args)
     shape = _fit_shape(search, rs, fit, lines, cal_pos, r0, beta) if peak_shape else None
     if shape is not None:
@@ -1233,21 +1278,32 @@ def auto_range(mass_to_charge, metals, species=None, *, ranges: RangeSet | None 
         rs, range_peak, fit = _fit_ranges(rs, range_peak, fwhm_at, shape, *args)
     if not auto:
         _require_user_species(rs, fit["A_hard"], cand, cal_pos, lines, fit["A"])
-    atoms = np.array([metal_atoms(f, metals) for f, _ in cand]).reshape(len(cand), len(metals))
-    amounts, cov = fit["amounts"], fit["cov"]
-    M, M_sig, x, x_sig = _composition(amounts, cov, atoms)
+    return rs, range_peak, fit, shape, fwhm_at
+
+
+def _require_metal_shares(metals, M, atoms, mu, n_ranges, context):
+    """Raise InputError for a metal the fit gives no ions or no range mainly holds.
+
+    ``context`` is ``(cand, lines, cal_pos, peaks, tolerance_fwhm, fwhm_at)`` for the message.
+    """
+    cand, lines, cal_pos, peaks, tolerance_fwhm, fwhm_at = context
     for k, el in enumerate(metals):
         if not M[k] > 0:
             raise InputError(_no_metal_message(el, cand, lines, cal_pos, peaks, tolerance_fwhm, fwhm_at,
                                                "the fit gives it no ions (its peaks are explained by other species)"))
-
-    # ---- shares and labels
-    mu, bgc = fit["mu"], fit["bg"]
-    main_sp = [int(np.argmax(mu[j])) for j in range(len(rs))]
+    main_sp = [int(np.argmax(mu[j])) for j in range(n_ranges)]
     for k, el in enumerate(metals):
         if not any(atoms[s, k] > 0 for s in main_sp):
             raise InputError(_no_metal_message(el, cand, lines, cal_pos, peaks, tolerance_fwhm, fwhm_at,
                                                "no detected peak is mainly its ions"))
+
+
+def _share_ranges(rs, mu, bgc, cand, metals, auto):
+    """Label each range with its main species and its species shares.
+
+    Returns ``(rs, deconv)``: the relabelled RangeSet and the indices of ranges holding two or
+    more species of at least 1 % each.
+    """
     new_ranges, deconv = [], []
     for j, r in enumerate(rs):
         tot = mu[j].sum() + max(bgc[j], 0.0)
@@ -1264,20 +1320,7 @@ def auto_range(mass_to_charge, metals, species=None, *, ranges: RangeSet | None 
             keep.append(own)
         sh = tuple((cand[s][0], cand[s][1], round(float(share[s]), 6)) for s in keep)
         new_ranges.append(Range(r.low_da, r.high_da, main[0], main[1], sh))
-    rs = RangeSet(tuple(new_ranges), metals, rs.source)
-
-    matched_peaks = set(int(p) for p in range_peak if p >= 0)
-    unmatched = np.array([p for p in range(len(peaks)) if p not in matched_peaks
-                          and not _inside_any(peaks.position_da[p], rs)], dtype=np.int64)
-    nearest = tuple(_nearest_line(peaks.position_da[p], lines, cal_pos, cand) for p in unmatched)
-    return RangingResult(
-        metals=metals, ranges=rs, peaks=peaks, range_peak=np.asarray(range_peak, dtype=np.int64),
-        unmatched=unmatched, unmatched_nearest=nearest, calibration=cal, gross_counts=fit["gross"],
-        background_counts=bgc, background_sigma=fit["bg_sigma"], deconvolved=tuple(deconv), species=cand,
-        amounts=amounts, amounts_sigma=np.sqrt(np.maximum(np.diag(cov), 0)), species_metal_atoms=atoms,
-        metal_atoms=M, metal_atoms_sigma=M_sig, composition=x, composition_sigma=x_sig, resolving_power=rp,
-        peak_shape=shape, search=search, spectrum=histogram(m, range_da=(search.spectrum.edges_da[0], search.spectrum.edges_da[-1]),
-                                          resolving_power=rp))
+    return RangeSet(tuple(new_ranges), metals, rs.source), deconv
 
 
 def _fit_ranges(rs, range_peak, fwhm_at, shape, m, search, lines, cal_pos, cand, metals, auto):
