@@ -506,12 +506,10 @@ def export(
     depth: Annotated[Optional[str], deprecated_option("--depth", "--depth-window")] = None,
 ):
     """Export decoded tracks (tables, JSON, self-describing HDF5) or the tracks figure (SVG, PDF, PNG)."""
-    from .export import export_outdir, load_outdir, parse_depth, parse_rods
+    from .export import export_outdir, parse_depth
 
     _STATE["quiet"] = quiet
     depth_window = renamed(ctx, "--depth-window", depth_window, "--depth", depth)
-    window = parse_depth(depth_window)
-    of = load_outdir(outdir)
-    path = export_outdir(outdir, format, out=out, rods=parse_rods(rods, of.columns.n_rods),
-                         depth_nm=window, size=size, dpi=dpi, force=force)
+    path = export_outdir(outdir, format, out=out, rods=rods, depth_nm=parse_depth(depth_window), size=size,
+                         dpi=dpi, force=force)
     say(f"wrote {path}")

@@ -151,6 +151,10 @@ def export_outdir(outdir, fmt: str, out=None, rods=None, depth_nm=None, size: st
     fmt : {"csv", "json", "hdf5", "svg", "pdf", "png"}
     out : path, optional
         Default ``OUTDIR/exports/tracks.<ext>``.
+    rods : array of int, or str, optional
+        Rod ids, or their text as on the command line (``"3,5,10-12"``, see :func:`parse_rods`).
+    depth_nm : (float, float), optional
+        Depth window, nm.
     force : bool
         Replace an existing file that probeseq wrote; the analysis folder's own files are never
         replaced (see :mod:`probeseq.outputs`).
@@ -172,6 +176,8 @@ def export_outdir(outdir, fmt: str, out=None, rods=None, depth_nm=None, size: st
         raise InputError(f"--out {path}: a {fmt} export needs a name ending in .{ext}")
     check_outfile(path, force, [outdir])
     of = load_outdir(outdir)
+    if isinstance(rods, str):
+        rods = parse_rods(rods, of.columns.n_rods)
     sel = select_sites(of.columns, rods, depth_nm)
     with staged_file(path, force, [outdir]) as part:
         if fmt == "csv":

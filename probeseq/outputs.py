@@ -307,7 +307,10 @@ class _Lock:
         except ImportError:  # pragma: no cover - not on POSIX: no lock, the rest still holds
             return self
         while True:
-            fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+            try:
+                fd = os.open(self.path, os.O_RDWR | os.O_CREAT, 0o644)
+            except OSError as e:
+                raise InputError(f"{what}: cannot write in {self.path.parent} ({e.strerror})") from None
             try:
                 fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
             except OSError as e:

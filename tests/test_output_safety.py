@@ -322,3 +322,12 @@ def test_only_simulated_ion_files_carry_the_mark(tmp_path, small_run, suffix):
     assert is_probeseq_file(simulated)
     with pytest.raises(InputError, match="not written by probeseq"):
         check_outfile(converted, force=True)
+
+
+def test_a_lock_that_cannot_be_made_is_one_line_error(tmp_path):
+    """Where no lock file can be made beside --out (here its parent is a file), the user gets one line."""
+    blocker = tmp_path / "a_file"
+    blocker.write_text("x")
+    with pytest.raises(InputError, match="cannot write in"):
+        _Lock(blocker / "out").acquire("--out")
+    assert blocker.read_text() == "x"
