@@ -22,9 +22,9 @@ import matplotlib.pyplot as plt
 from IPython.display import Image, display
 
 import probeseq
-from probeseq.io import read_ions
-from probeseq.lattice import Lattice
-from probeseq.runinfo import read_run_folder
+from probeseq.io.readers import read_ions
+from probeseq.lattice.model import Lattice
+from probeseq.study.runinfo import read_run_folder
 
 here = Path.cwd()
 root = here if (here / "sample_data").exists() else here.parent
@@ -37,8 +37,9 @@ print(ions.summary()["n_ions"], "ions; z range", ions.summary()["z_range_nm"], "
 Peaks are found on a background-aware spectrum, matched to the predicted isotope lines of the metals
 (M+, M2+, oxide and hydroxide ions) and of linker fragments, and the mass scale is calibrated on the
 matched peaks. Every ion then gets a channel: a metal, `other` or `unranged`."""),
-    ("code", """from probeseq.ranging import auto_range, assign_channels
-from probeseq.ranging_plot import plot_ranging
+    ("code", """from probeseq.ranging.auto import auto_range
+from probeseq.ranging.channels import assign_channels
+from probeseq.ranging.plot import plot_ranging
 
 rr = auto_range(ions.mass_to_charge, run.metals)
 comp = rr.to_dict()["composition"]
@@ -51,8 +52,8 @@ display(Image("walkthrough_spectrum.png"))"""),
 The known rod packing is fitted to the projected density of metal ions (rotation, lateral scale,
 offset, rod tilt), the lateral spread of ions around the rod axes gives the expected crosstalk
 between rods, and every metal ion is binned into its rod and site."""),
-    ("code", """from probeseq.columns import build_columns
-from probeseq.columns_plot import plot_rod_density
+    ("code", """from probeseq.lattice.columns import build_columns
+from probeseq.lattice.plot import plot_rod_density
 
 assign = assign_channels(ions.mass_to_charge, rr.ranges, run.metals)
 w = assign.weights()
@@ -67,7 +68,7 @@ display(Image("walkthrough_density.png"))"""),
     ("md", """## 3. Decoding every rod with a hidden Markov model
 The model knows that a site may leave no ion (detection efficiency), that some counts come from
 neighbouring rods or the background, and that one transition matrix describes all rods."""),
-    ("code", """from probeseq.decode import fit_decoder
+    ("code", """from probeseq.decoding.decode import fit_decoder
 
 dec = fit_decoder(columns, n_starts=2, random_state=0)
 print(f"detection efficiency {dec.eta:.3f}, persistence {dec.persistence:.3f}")
@@ -76,8 +77,8 @@ print(f"independent sites: likelihood ratio {dec.lr_stat:.1f}, p = {dec.lr_pvalu
 print(f"{dec.uncertain.sum()} of {dec.mask.sum()} sites uncertain (best posterior < {dec.uncertain_below})")"""),
     ("md", """## 4. Statistics and classification
 Estimates come from the fitted model (expected transition counts), with intervals from a bootstrap over rods."""),
-    ("code", """from probeseq.stats import compute_statistics
-from probeseq.classify import classify
+    ("code", """from probeseq.statistics.summary import compute_statistics
+from probeseq.statistics.classify import classify
 
 st = compute_statistics(dec, columns, n_boot=50, random_state=0)
 cl = classify(st, dec.lr_pvalue)
@@ -87,7 +88,7 @@ for reason in cl.reasons:
     ("md", """## 5. Sequence tracks
 Rods as parallel tracks along depth, each site coloured by its decoded metal; lighter where the
 posterior is low, blank where no ion was detected."""),
-    ("code", """from probeseq.plotting import plot_tracks
+    ("code", """from probeseq.outputs.tracks import plot_tracks
 
 used = np.flatnonzero(columns.mask.sum(1) > 100)[:12]
 fig = plot_tracks(columns, dec, "walkthrough_tracks.png", rods=used, depth_nm=(5, 20), size="two-column", dpi=120)

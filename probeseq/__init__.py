@@ -8,8 +8,8 @@ defaults at the first use of a compiled kernel.
 
 from ._version import __version__
 from .exceptions import ConvergenceWarning, DataQualityWarning, InputError, ProbeseqError
-from .ions import IonList, IonMeta
-from .lattice import Lattice
+from .io.ions import IonList, IonMeta
+from .lattice.model import Lattice
 
 __all__ = [
     "__version__",

@@ -6,15 +6,8 @@ The CLI prints the message of a :class:`ProbeseqError` as one line and exits non
 Messages name what was wrong and where (file, line, parameter), what was expected and what came.
 """
 
-__all__ = [
-    "ProbeseqError",
-    "InputError",
-    "FitError",
-    "ProbeseqWarning",
-    "DataQualityWarning",
-    "ConvergenceWarning",
-]
 
+__all__ = ['ProbeseqError', 'InputError', 'FitError', 'ProbeseqWarning', 'DataQualityWarning', 'ConvergenceWarning']
 
 class ProbeseqError(Exception):
     """Base class of every error probeseq reports to a user."""

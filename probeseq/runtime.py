@@ -7,9 +7,9 @@ of the whole process:
 
 * threads of the compiled kernels (numba's ``prange`` loops): ``n_jobs``, or all cores when None;
 * the fused counting pass: at most ``n_jobs`` of its worker threads (its own default, two, when
-  None; see :func:`probeseq.counting.default_threads`);
-* worker processes of a batch (:func:`probeseq.batch.analyze_batch`) and of
-  :func:`probeseq.plan.plan_experiment` when they are not given a count: ``n_jobs`` (their own
+  None; see :func:`default_threads`);
+* worker processes of a batch (:func:`probeseq.study.batch.analyze_batch`) and of
+  :func:`probeseq.study.plan.plan_experiment` when they are not given a count: ``n_jobs`` (their own
   defaults when None), each worker then running its kernels on its share of ``n_jobs``.
 
 :func:`configure` also chooses numba's threading layer: the fork-safe ``'workqueue'`` unless the
@@ -36,16 +36,22 @@ from contextlib import contextmanager
 
 from .exceptions import InputError
 
-__all__ = ["configure", "ensure", "jobs", "kernel_threads", "pass_threads", "worker_count", "worker_jobs",
-           "single_threaded_blas", "preload", "Background", "background_checksum", "MAX_JOBS", "FORK_SAFE_LAYER"]
+__all__ = ['default_threads', 'configure', 'ensure', 'jobs', 'kernel_threads', 'pass_threads', 'worker_count', 'worker_jobs', 'single_threaded_blas', 'preload', 'Background', 'background_checksum', 'MAX_JOBS', 'FORK_SAFE_LAYER']
 
 #: largest accepted ``n_jobs``: more than the cores of any machine this runs on; a larger value is a typo
 MAX_JOBS = 1024
+
+
 #: numba's threading layer used unless the user chose one (fork-safe, needs no extra library)
 FORK_SAFE_LAYER = "workqueue"
 
+
 _STATE = {"configured": False, "n_jobs": None, "layer_set": False, "limited": False}
+
+
 _BLAS_CONTROLLER = []
+
+
 _PRELOADED = []
 
 
@@ -155,7 +161,6 @@ def pass_threads() -> int | None:
     n = _STATE["n_jobs"]
     if n is None:
         return None
-    from .counting import default_threads
 
     return max(1, min(n, default_threads()))
 
@@ -209,13 +214,20 @@ def _blas_controller():
 
 
 # ---------------------------------------------------------------------- start-up
-def preload() -> float:
+def preload(warm=None) -> float:
     """Import the libraries the count stage uses and start numba's compiled-code runtime,
     once per process; returns the seconds it took (0 after the first call).
 
-    This is library start-up, not data work: :func:`probeseq.pipeline.analyze_file` runs it
-    before its clock starts and records it as ``timings_s.startup``. It configures the runtime
-    defaults first (:func:`ensure`), so the threading layer is chosen before numba is imported.
+    This is library start-up, not data work: the pipeline (:func:`probeseq.pipeline.stages.start_up`)
+    runs it before its clock starts and records it as ``timings_s.startup``. It configures the
+    runtime defaults first (:func:`ensure`), so the threading layer is chosen before numba is
+    imported.
+
+    Parameters
+    ----------
+    warm : callable, optional
+        Called once, after numba's thread count is applied: the caller's own imports and first
+        compiled call (this module imports no stage, so data flow one way).
     """
     ensure()
     if _PRELOADED:
@@ -228,15 +240,13 @@ def preload() -> float:
     import scipy.spatial  # noqa: F401
     import scipy.special  # noqa: F401
 
-    from . import columns, ranging, registration  # noqa: F401
-    from .counting import ion_uniforms
-
     try:
         _blas_controller()
     except Exception:  # threadpoolctl missing or unable to inspect the libraries
         pass
     ensure()  # numba is imported now: apply the thread count
-    ion_uniforms(0, 0, 1)  # the first compiled call sets up numba's typing and target contexts
+    if warm is not None:
+        warm()
     _PRELOADED.append(True)
     return time.perf_counter() - t
 
@@ -308,3 +318,13 @@ class Background:
         if self.proc is not None and self.proc.is_alive():
             self.proc.terminate()
             self.proc.join()
+
+
+def default_threads() -> int:
+    """Worker threads of the counting pass: two when the process may run on two or more CPUs,
+    else one."""
+    try:
+        n = len(os.sched_getaffinity(0))
+    except (AttributeError, OSError):
+        n = os.cpu_count() or 1
+    return 2 if n >= 2 else 1

@@ -11,8 +11,8 @@ from pathlib import Path
 
 import numpy as np
 
-from probeseq.io import write_ions
-from probeseq.simulate import simulate_run
+from probeseq.io.readers import write_ions
+from probeseq.simulation.simulate import simulate_run
 
 HERE = Path(__file__).resolve().parent
 
@@ -53,7 +53,7 @@ def main():
         d = HERE / name
         d.mkdir(exist_ok=True)
         ions = run.ions
-        from probeseq.ions import IonList
+        from probeseq.io.ions import IonList
         slim = IonList(x=ions.x, y=ions.y, z=ions.z, mass_to_charge=ions.mass_to_charge)
         write_ions(slim, d / "ions.h5", dtype=np.float32)
         (d / "lattice.toml").write_text(run.lattice.to_toml())

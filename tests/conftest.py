@@ -15,6 +15,6 @@ def rng():
 @pytest.fixture(scope="session")
 def small_run():
     """A small simulated long-block run shared by several test modules."""
-    from probeseq.simulate import simulate_run
+    from probeseq.simulation.simulate import simulate_run
 
     return simulate_run(pattern="long-block", top_radius_nm=5.0, depth_nm=15.0, seed=7)

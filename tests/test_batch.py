@@ -1,4 +1,4 @@
-"""Batch analysis (probeseq.batch): every option of ``analyze`` reaches every run of a batch.
+"""Batch analysis (probeseq.study.batch): every option of ``analyze`` reaches every run of a batch.
 
 One batch of two tiny simulated runs (plus one broken run folder) is analysed once with every
 option that a batch used to drop; each test checks one option's trace in the results. The run
@@ -16,12 +16,13 @@ import h5py
 import numpy as np
 import pytest
 
-from probeseq.batch import BatchOutcome, analyze_batch, analyze_run, run_folders
-from probeseq.cli import main
+from probeseq.cli.main import main
 from probeseq.exceptions import InputError
-from probeseq.pipeline import AnalysisOptions
-from probeseq.ranging import Range, RangeSet, auto_range
-from probeseq.simulate import simulate_run
+from probeseq.pipeline.options import AnalysisOptions
+from probeseq.ranging.auto import auto_range
+from probeseq.ranging.ranges import Range, RangeSet
+from probeseq.simulation.simulate import simulate_run
+from probeseq.study.batch import BatchOutcome, analyze_batch, analyze_run, run_folders
 
 ROTATION_DEG, SCALE, OFFSET_NM = 17.0, 1.02, (0.3, -0.2)
 FAST = ["--n-boot", "20", "--n-starts", "1", "--seed", "5"]

@@ -1,4 +1,4 @@
-"""One definition per chain quantity (probeseq.chain), used by the decoder and the statistics alike.
+"""One definition per chain quantity (probeseq.decoding.chain), used by the decoder and the statistics alike.
 
 Closed forms of a two-state Markov chain P = [[1 - a, a], [b, 1 - b]]: stationary distribution
 (b, a) / (a + b), mean dwell (run) lengths 1/a and 1/b, second eigenvalue 1 - a - b -- any standard
@@ -12,11 +12,14 @@ import math
 import numpy as np
 import pytest
 
-from probeseq import chain, hmm
-from probeseq import stats as S
-from probeseq.decode import DecoderParams, decode, runs_table, sample_model
-from probeseq.data import RodColumns
-from probeseq.outputs import finite_or_none, to_jsonable
+from probeseq.decoding import chain, hmm
+from probeseq.decoding.chain import runs_table, stationary_distribution
+from probeseq.decoding.decode import decode, sample_model
+from probeseq.decoding.model import DecoderParams
+from probeseq.lattice.rodcolumns import RodColumns
+from probeseq.statistics.markov import persistence
+from probeseq.statistics.runs import decoded_runs
+from probeseq.utils.marks import finite_or_none, to_jsonable
 
 TWO_STATE = [(0.05, 0.10), (0.3, 0.2), (0.9, 0.6), (1e-4, 0.5)]
 
@@ -70,15 +73,17 @@ def test_batched_matches_single_and_reducible_chain_is_handled():
 
 def test_every_module_uses_the_one_definition():
     assert hmm.stationary_distribution is chain.stationary_distribution
-    assert S.stationary_distribution is chain.stationary_distribution
-    assert S.mean_run_length is chain.mean_run_lengths
-    assert S.independent_run_length is chain.independent_run_lengths
+    assert stationary_distribution is chain.stationary_distribution
+    from probeseq.statistics import summary
+
+    assert summary.mean_run_lengths is chain.mean_run_lengths
+    assert summary.independent_run_lengths is chain.independent_run_lengths
 
 
 def test_decoder_and_statistics_report_the_same_persistence():
     # a 3-state matrix on which (trace - 1) / (K - 1) and the composition-weighted definition differ
     a = np.array([[0.70, 0.20, 0.10], [0.05, 0.80, 0.15], [0.10, 0.10, 0.80]])
-    lam, lam_k = S.persistence(a)
+    lam, lam_k = persistence(a)
     params = DecoderParams(transmat=a, eta=0.5, extra_rate=[0.01, 0.01, 0.01])
     assert params.persistence == float(lam) == chain.persistence(a)
     np.testing.assert_array_equal(lam_k, chain.persistence_per_state(a))
@@ -114,7 +119,7 @@ def test_one_run_listing():
     table = runs_table(path, mask, post)
     for key, col in table.items():
         np.testing.assert_array_equal(col, listed[key])
-    runs = S.decoded_runs(path, mask)
+    runs = decoded_runs(path, mask)
     np.testing.assert_array_equal(runs.start, listed["first_site"])
     np.testing.assert_array_equal(runs.length, listed["length"])
     np.testing.assert_array_equal(runs.right_truncated, listed["right_truncated"])

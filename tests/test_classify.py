@@ -5,10 +5,11 @@ import json
 import numpy as np
 import pytest
 
-from probeseq import stats as S
-from probeseq.classify import LABELS, Classification, classify
 from probeseq.exceptions import InputError
-from probeseq.simulate import markov_sequences
+from probeseq.simulation.simulate import markov_sequences
+from probeseq.statistics.classify import LABELS, Classification, classify
+from probeseq.statistics.markov import transition_counts_from_paths
+from probeseq.statistics.summary import statistics_from_arrays
 
 
 def markov_chains(rng, n_rods, n_sites, f, lam):
@@ -31,8 +32,8 @@ def grid_pairs(n):
 
 
 def make_stats(seq, pairs=None, metals=("Co", "Zn"), n_boot=200, seed=0):
-    tr, occ = S.transition_counts_from_paths(seq, len(metals))
-    return S.statistics_from_arrays(per_rod_transitions=tr, per_rod_occupancy=occ, metals=metals,
+    tr, occ = transition_counts_from_paths(seq, len(metals))
+    return statistics_from_arrays(per_rod_transitions=tr, per_rod_occupancy=occ, metals=metals,
                                     pitch_nm=0.23, viterbi=seq, neighbours=pairs, n_boot=n_boot,
                                     random_state=seed, n_null=199)
 
@@ -128,8 +129,8 @@ def test_independent_rods_never_copied_with_weak_crosstalk_like_agreement():
         mixed[a] += 0.05 * post[b]
         mixed[b] += 0.05 * post[a]
     post2 = np.stack([1 - np.clip(mixed, 0, 1), np.clip(mixed, 0, 1)], axis=-1)
-    tr, occ = S.transition_counts_from_paths(seq, 2)
-    st = S.statistics_from_arrays(per_rod_transitions=tr, per_rod_occupancy=occ, metals=("Co", "Zn"),
+    tr, occ = transition_counts_from_paths(seq, 2)
+    st = statistics_from_arrays(per_rod_transitions=tr, per_rod_occupancy=occ, metals=("Co", "Zn"),
                                   pitch_nm=0.23, viterbi=seq, posteriors=post2, neighbours=pairs,
                                   n_boot=100, random_state=1, n_null=199)
     assert st.rod_to_rod.p_value < 0.01  # the agreement is real ...

@@ -3,11 +3,10 @@ import subprocess
 import sys
 import time
 
-import numpy as np
 import pytest
 
-from probeseq.cli import main
-from probeseq.io import read_ions
+from probeseq.cli.main import main
+from probeseq.io.readers import read_ions
 
 
 def run_cli(args, capsys):

@@ -6,8 +6,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from probeseq.cli import main
-from probeseq.simulate import simulate_run
+from probeseq.cli.main import main
+from probeseq.simulation.simulate import simulate_run
 
 
 @pytest.fixture(scope="module")

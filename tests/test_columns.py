@@ -8,10 +8,10 @@ import pytest
 from scipy.special import erf
 
 from probeseq import InputError, Lattice
-from probeseq.columns import (ColumnBinner, assign_rods, build_columns, plan_columns, register_lattice,
-                              rod_site_depths)
-from probeseq.data import RodColumns
-from probeseq.registration import RESOLVABLE_CROSSTALK, expected_crosstalk
+from probeseq.lattice.columns import ColumnBinner, assign_rods, build_columns
+from probeseq.lattice.geometry import plan_columns, rod_site_depths
+from probeseq.lattice.registration import RESOLVABLE_CROSSTALK, expected_crosstalk, register_lattice
+from probeseq.lattice.rodcolumns import RodColumns
 
 
 # ---------------------------------------------------------------------- generator
@@ -384,7 +384,7 @@ def test_error_bad_inputs(case):
 
 
 def test_figure(case, tmp_path):
-    from probeseq.columns_plot import plot_rod_density
+    from probeseq.lattice.plot import plot_rod_density
 
     name, lat, t, (x, y, z, *_), reg = case
     col = build_columns(x, y, z, np.ones((x.size, 1)), ("Co",), lat, registration=reg)
@@ -396,7 +396,7 @@ def test_figure(case, tmp_path):
 
 
 def test_compact_counts_only_when_exact():
-    from probeseq.columns import compact_counts
+    from probeseq.lattice.columns import compact_counts
 
     rng = np.random.default_rng(0)
     whole = rng.poisson(0.7, size=(30, 40, 2)).astype(float)
@@ -413,7 +413,7 @@ def test_params_read_only(tmp_path):
     import dataclasses
     import pickle
 
-    from probeseq.data import load_columns, save_columns
+    from probeseq.lattice.rodcolumns import load_columns, save_columns
 
     cols = RodColumns(counts=np.zeros((1, 2, 1)), mask=np.ones((1, 2), bool), metals=("Zn",),
                       rod_xy_nm=[[0.0, 0.0]], tilt=[0.0, 0.0], z_ref_nm=0.0, site_z_nm=[0.0, 1.0], pitch_nm=1.0,

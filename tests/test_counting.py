@@ -1,7 +1,7 @@
-"""The fused pass from ions to the count array (probeseq.counting) and the streamed analysis.
+"""The fused pass from ions to the count array (probeseq.lattice.counting) and the streamed analysis.
 
 The compiled kernel is checked against the numpy reference (ranging lookup, metal draw with the
-same uniform numbers, rod assignment and binning of probeseq.columns), for float32 and float64
+same uniform numbers, rod assignment and binning of probeseq.lattice), for float32 and float64
 input, several block sizes and thread counts, and with invalid rows.
 """
 
@@ -13,15 +13,18 @@ import numpy as np
 import pytest
 
 from probeseq import InputError
-from probeseq.columns import ColumnBinner, _inside_kernel, _maybe_inside_kernel, plan_columns
-from probeseq.counting import (CountPass, ion_uniforms, make_count_plan, tally_dict,
-                               zeroed_array)
 from probeseq.exceptions import DataQualityWarning
-from probeseq.io import IonSource, read_ion_sample, read_ions, sample_blocks, write_ions
-from probeseq.pipeline import (AnalysisOptions, analyze, analyze_file, detection_balance, draw_metal_ions)
-from probeseq.ranging import assign_channels, auto_range
-from probeseq.registration import register_lattice
-from probeseq.simulate import simulate_run
+from probeseq.io.readers import IonSource, read_ion_sample, read_ions, sample_blocks, write_ions
+from probeseq.lattice.columns import ColumnBinner
+from probeseq.lattice.counting import CountPass, make_count_plan, tally_dict, zeroed_array
+from probeseq.lattice.geometry import _inside_kernel, _maybe_inside_kernel, plan_columns
+from probeseq.lattice.registration import register_lattice
+from probeseq.pipeline.analysis import analyze, analyze_file
+from probeseq.pipeline.options import AnalysisOptions
+from probeseq.ranging.auto import auto_range
+from probeseq.ranging.channels import assign_channels, detection_balance, draw_metal_ions
+from probeseq.simulation.simulate import simulate_run
+from probeseq.utils.draws import ion_uniforms
 
 METALS = ("Co", "Zn")
 
@@ -167,9 +170,9 @@ def test_float32_counts_are_whole_and_a_saturated_bin_counts_again_in_float64(ru
     """The default count array is float32; should a bin reach FLOAT32_LIMIT (2**24 in use, where
     float32 stops counting exactly), the pass flags it and the pipeline counts again in float64
     with the same result (the limit is lowered here so a small run reaches it)."""
-    import probeseq.counting as counting
     from probeseq.exceptions import DataQualityWarning
-    from probeseq.pipeline import _run_pass
+    from probeseq.lattice import counting
+    from probeseq.pipeline.stages import _run_pass
 
     rr, thin, geom = fitted
     ions = as_dict(run.ions)
@@ -284,14 +287,15 @@ class _Stop(Exception):
 @pytest.fixture
 def counts_only(monkeypatch):
     """Run analyze / analyze_file only up to the count array: returns (timings, ranging, columns)."""
-    import probeseq.pipeline as pl
+    from probeseq.pipeline import analysis
+    from probeseq.pipeline.options import _Clock
 
     def fake_run(counts_stage, *args):
-        clock = pl._Clock(None)
+        clock = _Clock(None)
         rr, cols, n_metal = counts_stage(clock)
         raise _Stop(clock.timings, rr, cols, n_metal)
 
-    monkeypatch.setattr(pl, "_run", fake_run)
+    monkeypatch.setattr(analysis, "_run", fake_run)
 
     def call(fn, *a, **kw):
         with pytest.raises(_Stop) as e:
@@ -319,10 +323,10 @@ def test_file_and_memory_paths_agree_and_chunks_do_not_matter(tmp_path, run, cou
 def test_ranging_on_a_stride_of_the_sample_balances_on_the_same_ions(run, counts_only, monkeypatch):
     # with fewer ranging ions than sampled ions, the spectrum is ranged on every k-th sampled ion
     # and the detection balance must come from the channels of exactly those ions
-    import probeseq.pipeline as pl
+    from probeseq.pipeline import stages
 
     ions = run.ions
-    monkeypatch.setattr(pl, "RANGING_IONS", len(ions) // 3)
+    monkeypatch.setattr(stages, "RANGING_IONS", len(ions) // 3)
     _, rr, cols, _ = counts_only(analyze, ions, METALS, run.lattice, options=AnalysisOptions(seed=2))
     m = ions.mass_to_charge
     m_fit = m[::-(-m.size // (len(ions) // 3))]
@@ -380,7 +384,7 @@ def test_same_seed_same_results_file(tmp_path, run):
 
 def test_kernel_geometry_is_the_geometry_arrays(fitted):
     """The compiled pass reads the geometry by name, from the geometry's own tables (no copies)."""
-    from probeseq.columns import KernelGeometry
+    from probeseq.lattice.geometry import KernelGeometry
 
     _rr, _thin, geom = fitted
     kg = geom.kernel_geometry()
@@ -392,8 +396,8 @@ def test_kernel_geometry_is_the_geometry_arrays(fitted):
 
 
 def test_candidate_table_codes(fitted):
-    """The packed range table holds the codes of probeseq.ranging.LookupTable, defined there once."""
-    from probeseq.ranging import LookupTable
+    """The packed range table holds the codes of probeseq.ranging.channels.LookupTable, defined there once."""
+    from probeseq.ranging.channels import LookupTable
 
     rr, _thin, _geom = fitted
     lk = LookupTable.build(rr.ranges)

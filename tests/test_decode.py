@@ -6,18 +6,11 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from probeseq.data import RodColumns
-from probeseq.decode import (
-    DecoderParams,
-    decode,
-    emission_baseline,
-    emission_factors,
-    fit_decoder,
-    runs_table,
-    sample_model,
-    split_counts,
-)
+from probeseq.decoding.chain import runs_table
+from probeseq.decoding.decode import decode, fit_decoder, sample_model
+from probeseq.decoding.model import DecoderParams, emission_baseline, emission_factors, split_counts
 from probeseq.exceptions import ConvergenceWarning, DataQualityWarning, InputError
+from probeseq.lattice.rodcolumns import RodColumns
 
 hmm_base = pytest.importorskip("hmmlearn.base")  # source: hmmlearn 0.3.3
 
@@ -117,7 +110,7 @@ def test_fractional_counts_are_a_mixture_over_the_split_ion():
 def test_split_ion_expected_counts_by_enumeration():
     # E[y_j | x] (the M-step statistic) against explicit enumeration over state, detection
     # and split-ion channel, for arbitrary state posteriors
-    from probeseq.decode import _split_expected_counts, _split_terms
+    from probeseq.decoding.model import _split_expected_counts, _split_terms
 
     rng = np.random.default_rng(3)
     p = DecoderParams(transmat=np.full((3, 3), 1 / 3), eta=0.6, extra_rate=np.array([0.05, 0.2, 0.1]))

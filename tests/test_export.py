@@ -6,10 +6,11 @@ import numpy as np
 import pytest
 
 from probeseq import InputError
-from probeseq.cli import main
-from probeseq.export import export_outdir, load_outdir, parse_depth, parse_rods
-from probeseq.pipeline import AnalysisOptions, analyze, write_analysis
-from probeseq.simulate import simulate_run
+from probeseq.cli.main import main
+from probeseq.outputs.export import export_outdir, load_outdir, parse_depth, parse_rods
+from probeseq.pipeline.analysis import analyze, write_analysis
+from probeseq.pipeline.options import AnalysisOptions
+from probeseq.simulation.simulate import simulate_run
 
 
 @pytest.fixture(scope="module")

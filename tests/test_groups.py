@@ -7,9 +7,9 @@ import math
 import numpy as np
 import pytest
 
-from probeseq.data import RodColumns
+from probeseq.decoding.groups import analyze_groups, tile_groups
 from probeseq.exceptions import DataQualityWarning, InputError
-from probeseq.groups import analyze_groups, tile_groups
+from probeseq.lattice.rodcolumns import RodColumns
 
 
 def _markov(n_rods, n_sites, lam, comp, rng):

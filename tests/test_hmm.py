@@ -1,4 +1,4 @@
-"""Tests of the batched hidden-Markov engine (probeseq.hmm).
+"""Tests of the batched hidden-Markov engine (probeseq.decoding.hmm).
 
 Reference results come from (a) brute-force enumeration of every state path on tiny models
 (exact by construction) and (b) hmmlearn 0.3.3 with fixed parameters.
@@ -12,16 +12,16 @@ import pytest
 from scipy import stats
 from scipy.special import logsumexp
 
-from probeseq.exceptions import InputError
-from probeseq.hmm import (
+from probeseq.decoding.chain import stationary_distribution
+from probeseq.decoding.hmm import (
     forward_backward,
     forward_backward_scaled,
     run_em,
-    stationary_distribution,
     transition_q,
     update_transmat,
     viterbi,
 )
+from probeseq.exceptions import InputError
 
 hmm = pytest.importorskip("hmmlearn.hmm")  # source: hmmlearn 0.3.3
 

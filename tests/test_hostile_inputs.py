@@ -15,15 +15,15 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from probeseq.cli import main
+from probeseq.cli.main import main
 from probeseq.exceptions import DataQualityWarning, InputError
-from probeseq.io import IonSource, read_ions
-from probeseq.ions import MAX_ABS_POSITION_NM
-from probeseq.isotopes import MAX_FORMULA_ATOMS, isotope_pattern, parse_formula
-from probeseq.lattice import Lattice
-from probeseq.ranging import RangeSet
-from probeseq.runinfo import read_run_folder, safe_file_name
-from probeseq.tomlfile import MAX_TOML_BYTES
+from probeseq.io.ions import MAX_ABS_POSITION_NM
+from probeseq.io.readers import IonSource, read_ions
+from probeseq.lattice.model import Lattice
+from probeseq.ranging.isotopes import MAX_FORMULA_ATOMS, isotope_pattern, parse_formula
+from probeseq.ranging.ranges import RangeSet
+from probeseq.study.runinfo import read_run_folder, safe_file_name
+from probeseq.utils.tomlfile import MAX_TOML_BYTES
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_data" / "rodnet7-batch-150C"

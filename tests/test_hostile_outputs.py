@@ -20,12 +20,13 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from probeseq import InputError
-from probeseq.cli import main
-from probeseq.compare import compare_runs, load_runs, order_value
-from probeseq.data import load_columns
-from probeseq.export import load_outdir
-from probeseq.pipeline import AnalysisOptions, load_decoded, load_results, read_replicates
-from probeseq.simulate import SimConfig, simulate_run
+from probeseq.cli.main import main
+from probeseq.lattice.rodcolumns import load_columns
+from probeseq.outputs.export import load_outdir
+from probeseq.outputs.results import load_decoded, load_results, read_replicates
+from probeseq.pipeline.options import AnalysisOptions
+from probeseq.simulation.simulate import SimConfig, simulate_run
+from probeseq.study.compare import compare_runs, load_runs, order_value
 
 SAMPLE = Path(__file__).resolve().parent.parent / "sample_data" / "rodnet7-batch-150C"
 
@@ -400,9 +401,9 @@ def test_cli_analyze_refuses_bad_options(flags, fragment, tmp_path, capsys):
 
 
 def test_stage_entry_points_check_seed_and_scale(good_outdir, tmp_path, capsys):
-    from probeseq.columns import build_columns
-    from probeseq.decode import fit_decoder
-    from probeseq.lattice import Lattice
+    from probeseq.decoding.decode import fit_decoder
+    from probeseq.lattice.columns import build_columns
+    from probeseq.lattice.model import Lattice
 
     cols = load_columns(good_outdir / "columns.h5")
     with pytest.raises(InputError, match="--seed"):
@@ -438,7 +439,7 @@ def test_cli_simulate_refuses_before_any_work(flags, fragment, tmp_path, capsys)
 
 
 def test_simulation_too_large_for_memory_names_the_figure_and_options(monkeypatch):
-    import probeseq.validate as v
+    import probeseq.utils.validate as v
 
     cfg = SimConfig(top_radius_nm=40.0)
     need = cfg.expected_size()["bytes"]

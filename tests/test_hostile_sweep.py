@@ -8,7 +8,6 @@ The full sweep (all cases) is ``tests/benchmarks/sweep_hostile.py``.
 """
 
 import pytest
-
 from hostile_cases import Runner, pytest_subset, run_case
 from hostile_cases.base import make_base
 

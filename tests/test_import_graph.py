@@ -151,11 +151,12 @@ def test_tarjan_finds_a_planted_cycle_and_nothing_in_a_tree():
 
 def test_the_parser_sees_both_kinds_of_import(graph):
     mods, edges = graph
-    assert "probeseq.cli_stages" in mods and "probeseq.batch" in mods
-    # module level: cli_stages takes app from the shared module; function level: cli loads the stages
-    assert any(top for _, _, top in edges[("probeseq.cli_stages", "probeseq.cli_common")])
-    assert not any(top for _, _, top in edges[("probeseq.cli", "probeseq.cli_stages")])
-    assert any(top for _, _, top in edges[("probeseq", "probeseq.lattice")])
+    assert "probeseq.cli.stages" in mods and "probeseq.study.batch" in mods
+    # module level: the stage commands take app from the shared module; function level: the entry
+    # point loads the stage commands
+    assert any(top for _, _, top in edges[("probeseq.cli.stages", "probeseq.cli.common")])
+    assert not any(top for _, _, top in edges[("probeseq.cli.main", "probeseq.cli.stages")])
+    assert any(top for _, _, top in edges[("probeseq", "probeseq.lattice.model")])
 
 
 def test_no_import_cycle_at_module_level(graph):
@@ -185,13 +186,58 @@ def test_function_level_imports_are_listed(graph):
 
 def test_command_line_layer_depends_one_way(graph):
     mods, edges = graph
-    # nothing imports the entry point module, at any level (only python -m probeseq runs it)
-    into_cli = sorted(f"{a} ({f}:{ln})" for (a, b), where in edges.items() if b == "probeseq.cli"
-                      and a != "probeseq.__main__" for f, ln, _ in where)
-    assert into_cli == []
+    # nothing imports the entry point module, at any level, but the command-line package's face
+    # and ``python -m probeseq``
+    into_main = sorted(f"{a} ({f}:{ln})" for (a, b), where in edges.items() if b == "probeseq.cli.main"
+                       and a not in ("probeseq.__main__", "probeseq.cli") for f, ln, _ in where)
+    assert into_main == []
     # the library (batch included) never imports a command-line module
-    cli_modules = {"probeseq.cli", "probeseq.cli_stages", "probeseq.cli_common"}
+    cli_modules = {m for m in mods if m == "probeseq.cli" or m.startswith("probeseq.cli.")}
     library = set(mods) - cli_modules - {"probeseq.__main__"}
     up = sorted(f"{a} -> {b}" for (a, b) in edges if a in library and b in cli_modules)
     assert up == []
-    assert not any(b == "probeseq.cli" for (a, b) in edges if a == "probeseq.cli_common")
+    assert not any(b == "probeseq.cli.main" for (a, b) in edges if a == "probeseq.cli.common")
+
+
+#: The stages from the ground up. A module may import modules of its own subpackage and of any
+#: subpackage on a lower floor, never one above: data flow one way, and a newcomer reads the house
+#: from the bottom (the contributor guide's architecture table has the same order).
+FLOORS = [
+    {"exceptions", "_version", "runtime", "utils"},
+    {"io"},
+    {"ranging"},
+    {"lattice"},
+    {"decoding"},
+    {"statistics"},
+    {"outputs", "simulation"},
+    {"pipeline"},
+    {"study"},
+    {"cli"},
+    {"__main__"},
+]
+
+
+def _part(module: str) -> str:
+    parts = module.split(".")
+    return parts[1] if len(parts) > 1 else ""
+
+
+def test_every_part_of_the_package_has_a_floor(graph):
+    mods, _ = graph
+    placed = set().union(*FLOORS)
+    assert sorted({_part(m) for m in mods} - placed - {""}) == []
+
+
+def test_stages_import_only_downward(graph):
+    """No import, at any level (deferred ones too), reaches a subpackage on a higher floor or a
+    different subpackage on the same floor."""
+    floor = {name: i for i, names in enumerate(FLOORS) for name in names}
+    _, edges = graph
+    up = []
+    for (a, b), where in sorted(edges.items()):
+        pa, pb = _part(a), _part(b)
+        if a == "probeseq" or pa == pb:
+            continue  # the package's face lists its public names from wherever they live
+        if floor[pb] > floor[pa] or (floor[pb] == floor[pa] and pa != pb and floor[pa] != 0):
+            up += [f"{a} -> {b} ({f}:{ln})" for f, ln, _ in where]
+    assert up == [], "imports that run upward:\n" + "\n".join(up)

@@ -1,5 +1,4 @@
 import hashlib
-import warnings
 
 import h5py
 import numpy as np
@@ -7,7 +6,7 @@ import pytest
 
 from probeseq import InputError
 from probeseq.exceptions import DataQualityWarning
-from probeseq.io import iter_ion_chunks, read_ions, write_ions
+from probeseq.io.readers import iter_ion_chunks, read_ions, write_ions
 
 
 def write_text(path, text):

@@ -2,7 +2,7 @@ import numpy as np
 import pytest
 
 from probeseq import InputError, IonList
-from probeseq.ions import IonMeta
+from probeseq.io.ions import IonMeta
 
 
 def make(n=5):

@@ -5,9 +5,17 @@ import periodictable as pt
 import pytest
 
 from probeseq import InputError
-from probeseq.isotopes import (ELECTRON_MASS_DA, canonical_formula, element_isotopes, ion_label, isotope_pattern,
-                               metal_atoms, parse_formula, parse_ion)
-from probeseq.ranging import DEFAULT_FRAGMENTS, METAL_ION_TEMPLATES
+from probeseq.ranging.calibration import DEFAULT_FRAGMENTS, METAL_ION_TEMPLATES
+from probeseq.ranging.isotopes import (
+    ELECTRON_MASS_DA,
+    canonical_formula,
+    element_isotopes,
+    ion_label,
+    isotope_pattern,
+    metal_atoms,
+    parse_formula,
+    parse_ion,
+)
 
 METALS = ("Co", "Zn", "Ni", "Fe", "Cu", "Mn")
 

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from probeseq import InputError, Lattice
-from probeseq.registration import RodLocator, lattice_symmetry
+from probeseq.lattice.locator import RodLocator, lattice_symmetry
 
 
 # ---------------------------------------------------------------------- textbook geometry

@@ -1,7 +1,7 @@
 """One pipeline: the stage commands (range -> columns -> decode) give what 'analyze' gives.
 
-Both run the same library stages (:func:`probeseq.pipeline.range_file`,
-:func:`~probeseq.pipeline.count_file`, :func:`~probeseq.pipeline.decode_stage`), so with the same
+Both run the same library stages (:func:`probeseq.pipeline.stages.range_file`,
+:func:`~probeseq.pipeline.stages.count_file`, :func:`~probeseq.pipeline.stages.decode_stage`), so with the same
 seed and options the range file, the count array, the decoded paths and posteriors and the fitted
 parameters are equal, not merely close.
 """
@@ -12,11 +12,11 @@ import math
 import numpy as np
 import pytest
 
-from probeseq.cli import main
-from probeseq.data import load_columns
-from probeseq.pipeline import load_decoded
-from probeseq.ranging import RangeSet
-from probeseq.simulate import simulate_run
+from probeseq.cli.main import main
+from probeseq.lattice.rodcolumns import load_columns
+from probeseq.outputs.results import load_decoded
+from probeseq.ranging.ranges import RangeSet
+from probeseq.simulation.simulate import simulate_run
 
 SEED = "3"
 N_STARTS = "2"

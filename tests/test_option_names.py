@@ -7,10 +7,10 @@ from types import SimpleNamespace
 
 import pytest
 
-import probeseq.export
-import probeseq.plan
-from probeseq.cli import main
-from probeseq.cli_common import RENAMED_OPTIONS
+import probeseq.outputs.export
+import probeseq.study.plan
+from probeseq.cli.common import RENAMED_OPTIONS
+from probeseq.cli.main import main
 
 # (command, old name, new name, value given, where the value arrives, value expected there)
 SIMULATE = [
@@ -83,7 +83,7 @@ def plan_calls(monkeypatch):
         calls.append(kw)
         raise _Stop()
 
-    monkeypatch.setattr(probeseq.plan, "plan_experiment", fake)
+    monkeypatch.setattr(probeseq.study.plan, "plan_experiment", fake)
     monkeypatch.setenv("PROBESEQ_DEBUG", "1")  # let the sentinel through main()
     return calls
 
@@ -104,8 +104,8 @@ def test_plan_either_name_reaches_the_planner(old, new, value, key, want, use_ol
 @pytest.mark.parametrize("use_old", [False, True])
 def test_export_either_depth_name_reaches_the_exporter(use_old, monkeypatch, tmp_path, capsys):
     calls = []
-    monkeypatch.setattr(probeseq.export, "load_outdir", lambda d: SimpleNamespace(columns=SimpleNamespace(n_rods=9)))
-    monkeypatch.setattr(probeseq.export, "export_outdir", lambda d, fmt, **kw: calls.append(kw) or tmp_path / "x")
+    monkeypatch.setattr(probeseq.outputs.export, "load_outdir", lambda d: SimpleNamespace(columns=SimpleNamespace(n_rods=9)))
+    monkeypatch.setattr(probeseq.outputs.export, "export_outdir", lambda d, fmt, **kw: calls.append(kw) or tmp_path / "x")
     old, new, value, key, want = EXPORT[0]
     code = main(["export", str(tmp_path), "-q", old if use_old else new, value])
     err = capsys.readouterr().err
@@ -165,7 +165,7 @@ def test_giving_both_names_is_an_error(tmp_path, capsys):
 def test_root_help_lists_every_command_untruncated(capsys):
     import inspect
 
-    from probeseq.cli_common import app
+    from probeseq.cli.common import app
 
     assert main(["--help"]) == 0
     text = " ".join(capsys.readouterr().out.split())

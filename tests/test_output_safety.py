@@ -17,9 +17,18 @@ from pathlib import Path
 import pytest
 
 from probeseq import InputError
-from probeseq.cli import main
-from probeseq.outputs import (MANIFEST_NAME, _Lock, _side, check_outdir, check_outfile, is_probeseq_file,
-                              is_staging_name, read_manifest, staged_outdir)
+from probeseq.cli.main import main
+from probeseq.outputs.folder import (
+    MANIFEST_NAME,
+    _Lock,
+    _side,
+    check_outdir,
+    check_outfile,
+    is_probeseq_file,
+    is_staging_name,
+    read_manifest,
+    staged_outdir,
+)
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_data" / "rodnet7-batch-150C"
@@ -314,7 +323,7 @@ def test_a_swap_cut_between_its_two_renames_is_completed_or_undone(tmp_path, sta
 @pytest.mark.parametrize("suffix", [".csv", ".h5"])
 def test_only_simulated_ion_files_carry_the_mark(tmp_path, small_run, suffix):
     """A converted measurement must never become replaceable by --force; simulated data may."""
-    from probeseq.io import write_ions
+    from probeseq.io.readers import write_ions
 
     converted = write_ions(small_run.ions, tmp_path / f"converted{suffix}")
     simulated = Path(small_run.write(tmp_path / f"simulated{suffix}")["ions"])

@@ -4,8 +4,9 @@ import numpy as np
 import pytest
 
 from probeseq import InputError
-from probeseq.outputs import staged_outdir, to_jsonable, write_json
-from probeseq.runinfo import read_run_folder
+from probeseq.outputs.folder import staged_outdir, write_json
+from probeseq.study.runinfo import read_run_folder
+from probeseq.utils.marks import to_jsonable
 
 
 def test_staged_outdir_replaces_only_on_success(tmp_path):

@@ -1,6 +1,5 @@
 import csv
 import json
-import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -9,9 +8,11 @@ import numpy as np
 import pytest
 
 from probeseq import InputError
-from probeseq.cli import main
-from probeseq.pipeline import TRACKS_COLUMNS, AnalysisOptions, analyze, write_analysis
-from probeseq.simulate import simulate_run
+from probeseq.cli.main import main
+from probeseq.outputs.results import TRACKS_COLUMNS
+from probeseq.pipeline.analysis import analyze, write_analysis
+from probeseq.pipeline.options import AnalysisOptions
+from probeseq.simulation.simulate import simulate_run
 
 ROOT = Path(__file__).resolve().parents[1]
 CHECKER = ROOT.parent / "shared" / "examples" / "check_outputs.py"
@@ -119,8 +120,8 @@ def test_compare_two_runs_and_different_metals(tmp_path, capsys, block_result, b
     d = [x for x in diffs if x["statistic"] == "persistence"][0]
     assert float(d["p_value"]) < 0.05  # blocks vs random differ in persistence
     assert (tmp_path / "cmp" / "comparison.png").stat().st_size > 1000
-    from probeseq.compare import compare_runs, load_runs
     from probeseq.exceptions import DataQualityWarning
+    from probeseq.study.compare import compare_runs, load_runs
 
     recs = load_runs([tmp_path / "runs"])
     odd = recs[1].__class__(**{**recs[1].__dict__, "metals": ("Co", "Ni")})

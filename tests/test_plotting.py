@@ -10,15 +10,24 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from probeseq.data import RodColumns
-from probeseq.decode import DecoderParams, decode, sample_model
+from probeseq.decoding.decode import decode, sample_model
+from probeseq.decoding.model import DecoderParams
 from probeseq.exceptions import InputError
-from probeseq.palette import EMPTY, METAL_COLOURS, OTHER, UNRANGED, metal_colour
-from probeseq.pipeline import AnalysisOptions, analyze
-from probeseq.plotting import (CONFIDENCE_LEVELS, PRIOR_TOLERANCE, SIZE_PRESETS_MM, depth_window, parse_rod_ids,
-                               plot_group_variance, plot_rod_to_rod, plot_run_lengths, plot_tracks, save_figure,
-                               select_rods, track_cells)
-from probeseq.simulate import simulate_run
+from probeseq.lattice.rodcolumns import RodColumns
+from probeseq.outputs.figures import (
+    CONFIDENCE_LEVELS,
+    PRIOR_TOLERANCE,
+    SIZE_PRESETS_MM,
+    plot_group_variance,
+    plot_rod_to_rod,
+    plot_run_lengths,
+    save_figure,
+)
+from probeseq.outputs.tracks import depth_window, parse_rod_ids, plot_tracks, select_rods, track_cells
+from probeseq.pipeline.analysis import analyze
+from probeseq.pipeline.options import AnalysisOptions
+from probeseq.simulation.simulate import simulate_run
+from probeseq.utils.palette import EMPTY, METAL_COLOURS, OTHER, UNRANGED, metal_colour
 
 PALETTE_RGB = {tuple(round(int(h[i:i + 2], 16) / 255, 3) for i in (1, 3, 5))
                for h in METAL_COLOURS + (OTHER, UNRANGED, EMPTY)}
@@ -313,7 +322,7 @@ def test_rod_to_rod_figure(analysed):
 
 
 def test_group_variance_figure(analysed):
-    from probeseq.groups import analyze_groups
+    from probeseq.decoding.groups import analyze_groups
 
     g = analyze_groups(analysed.columns, random_state=0)
     fig = plot_group_variance(g)

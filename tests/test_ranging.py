@@ -4,10 +4,12 @@ import numpy as np
 import pytest
 
 from probeseq import InputError
-from probeseq.isotopes import isotope_pattern
-from probeseq.palette import OTHER, metal_colour
-from probeseq.ranging import (ChannelAssignment, Range, RangeSet, assign_channels, auto_range, channel_tables)
-from probeseq.simulate import simulate_run
+from probeseq.ranging.auto import auto_range
+from probeseq.ranging.channels import ChannelAssignment, assign_channels, channel_tables
+from probeseq.ranging.isotopes import isotope_pattern
+from probeseq.ranging.ranges import Range, RangeSet
+from probeseq.simulation.simulate import simulate_run
+from probeseq.utils.palette import OTHER, metal_colour
 
 SMALL = dict(top_radius_nm=6.0, depth_nm=30.0)  # ~77 000 ions, ~15 000 metal ions
 
@@ -374,7 +376,7 @@ def test_custom_species_list(cozn):
 def test_figure_written_with_channel_colours(tmp_path, cozn):
     from matplotlib.colors import to_hex
 
-    from probeseq.ranging_plot import plot_ranging
+    from probeseq.ranging.plot import plot_ranging
 
     _, res = cozn
     fig = plot_ranging(res, tmp_path / "spectrum")

@@ -10,9 +10,10 @@ import numpy as np
 import pytest
 
 from probeseq.exceptions import InputError
-from probeseq.pipeline import AnalysisOptions, analyze
-from probeseq.report import CAUTIONS, FIGURE_IDS, SECTION_IDS, report_html, write_report
-from probeseq.simulate import simulate_run
+from probeseq.outputs.report import CAUTIONS, FIGURE_IDS, SECTION_IDS, report_html, write_report
+from probeseq.pipeline.analysis import analyze
+from probeseq.pipeline.options import AnalysisOptions
+from probeseq.simulation.simulate import simulate_run
 
 
 @pytest.fixture(scope="module")
@@ -84,7 +85,7 @@ def test_figures_embedded(report):
 def test_statistics_table_holds_estimates_and_intervals(report, result):
     doc = report.read_text(encoding="utf-8")
     sec = _section(doc, "statistics")
-    from probeseq.report import _fmt
+    from probeseq.outputs.report import _fmt
 
     for name in ("composition.Co", "mean_run_length_sites.Zn", "persistence", "entropy_rate_bits"):
         est, lo, hi = result.statistics.interval(name)
@@ -98,7 +99,7 @@ def test_statistics_table_holds_estimates_and_intervals(report, result):
 def test_parameters_warnings_cautions_provenance(report, result, run):
     doc = report.read_text(encoding="utf-8")
     par = _section(doc, "parameters")
-    from probeseq.report import _fmt
+    from probeseq.outputs.report import _fmt
 
     assert _fmt(result.decoded.eta) in par
     reg = result.columns.params["registration"]
@@ -134,7 +135,7 @@ def test_figures_argument_replaces_adds_and_drops(result, tmp_path):
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
-    from probeseq.groups import analyze_groups
+    from probeseq.decoding.groups import analyze_groups
 
     extra = Figure(figsize=(4, 3))
     FigureCanvasAgg(extra)

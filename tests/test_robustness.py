@@ -5,19 +5,19 @@ import shutil
 import warnings
 from pathlib import Path
 
-import h5py
 import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from probeseq import InputError, Lattice
+from probeseq.cli.main import main
 from probeseq.exceptions import DataQualityWarning
-from probeseq.cli import main
-from probeseq.io import read_ions, write_ions
-from probeseq.ions import IonList
-from probeseq.pipeline import AnalysisOptions, analyze
-from probeseq.simulate import simulate_run
+from probeseq.io.ions import IonList
+from probeseq.io.readers import read_ions
+from probeseq.pipeline.analysis import analyze
+from probeseq.pipeline.options import AnalysisOptions
+from probeseq.simulation.simulate import simulate_run
 
 ROOT = Path(__file__).resolve().parents[1]
 SAMPLE = ROOT / "sample_data" / "rodnet7-batch-150C"
@@ -57,8 +57,8 @@ def test_text_reader_on_malformed_tables(tmp_path, rows, header):
 @FAST
 @given(st.text(max_size=300))
 def test_toml_readers_on_random_text(tmp_path, text):
-    from probeseq.ranging import RangeSet
-    from probeseq.runinfo import read_run_folder
+    from probeseq.ranging.ranges import RangeSet
+    from probeseq.study.runinfo import read_run_folder
 
     p = tmp_path / "l.toml"
     p.write_text(text)
@@ -179,7 +179,7 @@ def test_interrupt_keeps_previous_results(tmp_path, capsys, monkeypatch):
     out = tmp_path / "o"
     assert main(["analyze", str(SAMPLE), "--out", str(out), "--n-boot", "30", "-q"]) == 0
     before = (out / "results.json").read_bytes()
-    import probeseq.report as report
+    import probeseq.outputs.report as report
 
     def interrupted(*a, **k):
         raise KeyboardInterrupt

@@ -1,14 +1,14 @@
-"""The compiled rod-by-rod recursions against the batched numpy ones (probeseq.hmm), which are
+"""The compiled rod-by-rod recursions against the batched numpy ones (probeseq.decoding.hmm), which are
 themselves checked against hmmlearn and brute-force enumeration in test_decode / test_hmm."""
 
 import numpy as np
 import pytest
-
-from probeseq import rodchain
-from probeseq.decode import DecoderParams, decode, fit_decoder, sample_model
-from probeseq.exceptions import InputError
-
 from test_decode import make_columns
+
+from probeseq.decoding import rodchain
+from probeseq.decoding.decode import decode, fit_decoder, sample_model
+from probeseq.decoding.model import DecoderParams
+from probeseq.exceptions import InputError
 
 
 def _params(k, stay=0.9, eta=0.5, mu=0.3):

@@ -13,11 +13,11 @@ import numpy as np
 import pytest
 
 from probeseq import runtime
-from probeseq.batch import analyze_batch
-from probeseq.cli import main
+from probeseq.cli.main import main
 from probeseq.exceptions import InputError
-from probeseq.pipeline import AnalysisOptions
-from probeseq.simulate import simulate_run
+from probeseq.pipeline.options import AnalysisOptions
+from probeseq.simulation.simulate import simulate_run
+from probeseq.study.batch import analyze_batch
 
 N_MAX = int(numba.config.NUMBA_NUM_THREADS)
 
@@ -58,7 +58,7 @@ def test_configure_sets_the_kernel_threads_and_restores(restore_runtime):
 
 
 def test_thread_count_reaches_the_decoder(restore_runtime, monkeypatch):
-    from probeseq import rodchain
+    from probeseq.decoding import rodchain
 
     seen = []
     kernel = rodchain._fit_kernel
@@ -185,7 +185,7 @@ def test_the_fork_safe_layer_is_chosen_before_numba_starts_unless_the_user_chose
 
 
 def test_a_library_user_gets_the_fork_safe_layer_without_configuring():
-    code = ("import numpy as np\nimport numba\nfrom probeseq import rodchain\n"
+    code = ("import numpy as np\nimport numba\nfrom probeseq.decoding import rodchain\n"
             "c = np.ones((3, 5, 2), np.float32); m = np.ones((3, 5), bool)\n"
             "r, f, s = rodchain.spans(m)\n"
             "rodchain.fit_pass(c, m, r, f, s, 0.5, np.ones(2), np.full((2, 2), 0.5), np.full(2, 0.5))\n"

@@ -5,7 +5,7 @@ import periodictable as pt
 import pytest
 
 from probeseq import InputError
-from probeseq.simulate import SimConfig, ion_lines, simulate_run
+from probeseq.simulation.simulate import SimConfig, ion_lines, simulate_run
 
 
 @pytest.fixture(scope="module")

@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from probeseq import InputError
-from probeseq.spectrum import Background, default_bin_width, find_peaks, histogram, log_histogram
+from probeseq.ranging.spectrum import Background, default_bin_width, find_peaks, histogram, log_histogram
 
 FWHM_TO_SIGMA = 1 / 2.3548  # Gaussian FWHM = 2 sqrt(2 ln 2) sigma
 
@@ -92,7 +92,7 @@ def test_background_model_recovers_flat_time_of_flight_background(rng):
 
 
 def test_background_rate_is_poisson_mle_of_peak_free_counts():
-    from probeseq.spectrum import Spectrum
+    from probeseq.ranging.spectrum import Spectrum
 
     edges = np.linspace(1, 100, 991)
     counts = np.full(990, 3)
@@ -134,7 +134,7 @@ def test_peak_table_columns_are_json_ready(rng):
 
 
 def test_peak_shape_cdf_matches_monte_carlo(rng):
-    from probeseq.spectrum import PeakShape
+    from probeseq.ranging.spectrum import PeakShape
 
     # an exponentially modified Gaussian mixture, sampled directly
     sh = PeakShape(r0=600.0, mu=0.1, sigma=0.4, tail_fraction=0.5, tail_scale=1.5)
@@ -148,7 +148,7 @@ def test_peak_shape_cdf_matches_monte_carlo(rng):
 
 
 def test_fit_peak_shape_recovers_simulated_shape(rng):
-    from probeseq.spectrum import fit_peak_shape, resolving_power_law
+    from probeseq.ranging.spectrum import fit_peak_shape, resolving_power_law
 
     mrp, f_tail, tail = 600.0, 0.5, 1.5  # FWHM m/mrp; tail mean 1.5 m/mrp on half the ions
     centres = np.array([12.0, 16.0, 44.0, 58.933])

@@ -8,9 +8,21 @@ import numpy as np
 import pytest
 from scipy import stats as sps
 
-from probeseq import stats as S
+from probeseq.decoding.chain import mean_run_lengths, stationary_distribution
 from probeseq.exceptions import DataQualityWarning, InputError
-from probeseq.simulate import markov_sequences
+from probeseq.simulation.simulate import markov_sequences
+from probeseq.statistics import agreement as agreement_mod
+from probeseq.statistics.agreement import neighbour_pairs, rod_agreement
+from probeseq.statistics.markov import (
+    entropy_bits,
+    entropy_rate_bits,
+    g2_markov_test,
+    persistence,
+    transition_counts_from_paths,
+    transition_matrix,
+)
+from probeseq.statistics.runs import decoded_runs, run_length_distribution, runs_expectation, runs_test
+from probeseq.statistics.summary import compute_statistics, statistics_from_arrays
 
 
 # ---------------------------------------------------------------------- generators with known truth
@@ -49,7 +61,7 @@ def forward_backward_binary_flip(obs, transmat, flip):
     state flipped with probability ``flip`` (scaled forward-backward, Rabiner 1989 section V.A)."""
     r, t = obs.shape
     a = np.asarray(transmat, float)
-    mu = S.stationary_distribution(a)
+    mu = stationary_distribution(a)
     e = np.where(obs[:, :, None] == np.arange(2)[None, None, :], 1 - flip, flip)  # (r, t, 2)
     alpha = np.empty((r, t, 2))
     c = np.empty((r, t))
@@ -74,7 +86,7 @@ def forward_backward_binary_flip(obs, transmat, flip):
 def test_runs_moments_textbook_check_value():
     # source: docs/REFERENCES.md §4 (Wald & Wolfowitz 1940 moments):
     # n1 = n2 = 10 -> E = 11, Var = 4.73684
-    mean, var = S.runs_expectation(10, 10)
+    mean, var = runs_expectation(10, 10)
     assert mean == pytest.approx(11.0)
     assert var == pytest.approx(4.73684, abs=1e-5)
 
@@ -92,7 +104,7 @@ def test_runs_moments_match_exact_distribution(n1, n2):
     r = np.array(list(pmf))
     p = np.array(list(pmf.values()))
     assert p.sum() == pytest.approx(1.0)
-    mean, var = S.runs_expectation(n1, n2)
+    mean, var = runs_expectation(n1, n2)
     assert mean == pytest.approx((r * p).sum())
     assert var == pytest.approx((r * r * p).sum() - (r * p).sum() ** 2)
 
@@ -104,7 +116,7 @@ def test_runs_test_matches_statsmodels(rng, k, n):
     from statsmodels.sandbox.stats.runs import runstest_1samp
 
     seq = rng.integers(0, k, size=n)
-    res = S.runs_test(seq[None, :], k)
+    res = runs_test(seq[None, :], k)
     for s in range(k):
         x = (seq == s).astype(float)
         z_ref, p_ref = runstest_1samp(x, cutoff=0.5, correction=False)
@@ -118,14 +130,14 @@ def test_runs_test_combines_masked_stretches_as_separate_sequences(rng):
     mask[0, 25:30] = False  # rod 0 splits into two stretches
     mask[1, :10] = False
     garbage = np.where(mask, seq, 1 - seq)  # values at masked sites must not matter
-    res = S.runs_test(garbage, 2, mask=mask)
+    res = runs_test(garbage, 2, mask=mask)
     r_sum = e_sum = v_sum = 0.0
     for rod, parts in ((0, [slice(0, 25), slice(30, 60)]), (1, [slice(10, 60)]), (2, [slice(0, 60)])):
         for sl in parts:
             x = seq[rod, sl]
             n1 = int((x == 1).sum())
             runs = 1 + int(np.count_nonzero(np.diff(x)))
-            e, v = S.runs_expectation(n1, len(x) - n1)
+            e, v = runs_expectation(n1, len(x) - n1)
             r_sum, e_sum, v_sum = r_sum + runs, e_sum + e, v_sum + v
     assert res["n_runs"][1] == r_sum
     assert res["z"][1] == pytest.approx((r_sum - e_sum) / math.sqrt(v_sum))
@@ -133,11 +145,11 @@ def test_runs_test_combines_masked_stretches_as_separate_sequences(rng):
 
 def test_runs_test_calibrated_on_independent_sites_and_detects_blocks():
     rng = np.random.default_rng(2024)
-    p = np.array([S.runs_test(rng.integers(0, 2, size=(4, 80)), 2)["p"][0] for _ in range(300)])
+    p = np.array([runs_test(rng.integers(0, 2, size=(4, 80)), 2)["p"][0] for _ in range(300)])
     # two-sided normal test at 5 %: about 15 of 300 (binomial sd ~3.8)
     assert 3 <= (p < 0.05).sum() <= 30
     blocks = markov_chains(rng, 4, 80, [0.5, 0.5], 0.8)
-    res = S.runs_test(blocks, 2)
+    res = runs_test(blocks, 2)
     assert res["z"][0] < -5  # far fewer runs than random
 
 
@@ -146,7 +158,7 @@ def test_entropy_rate_two_state_check_value():
     # source: Cover & Thomas 2006 Thm 4.2.4, two-state closed form; check value from
     # docs/REFERENCES.md §4: alpha = 0.05, beta = 0.1 -> 0.347263 bits
     a = np.array([[0.95, 0.05], [0.10, 0.90]])
-    assert float(S.entropy_rate_bits(a)) == pytest.approx(0.347263, abs=1e-6)
+    assert float(entropy_rate_bits(a)) == pytest.approx(0.347263, abs=1e-6)
 
 
 def test_entropy_rate_two_state_closed_form(rng):
@@ -156,51 +168,51 @@ def test_entropy_rate_two_state_closed_form(rng):
 
     for al, be in rng.uniform(0.01, 0.99, size=(20, 2)):
         a = np.array([[1 - al, al], [be, 1 - be]])
-        assert float(S.entropy_rate_bits(a)) == pytest.approx((be * hb(al) + al * hb(be)) / (al + be), rel=1e-12)
+        assert float(entropy_rate_bits(a)) == pytest.approx((be * hb(al) + al * hb(be)) / (al + be), rel=1e-12)
 
 
 def test_entropy_of_independent_sites_equals_chain_with_identical_rows():
     # source: scipy 1.17 scipy.stats.entropy(p, base=2)
     f = np.array([0.2, 0.5, 0.3])
     a = np.tile(f, (3, 1))
-    assert float(S.entropy_bits(f)) == pytest.approx(sps.entropy(f, base=2))
-    assert float(S.entropy_rate_bits(a)) == pytest.approx(sps.entropy(f, base=2))
+    assert float(entropy_bits(f)) == pytest.approx(sps.entropy(f, base=2))
+    assert float(entropy_rate_bits(a)) == pytest.approx(sps.entropy(f, base=2))
 
 
 def test_casino_chain_stationary_and_run_lengths():
     # source: Durbin et al. 1998 p.54 occasionally dishonest casino (F->L 0.05, L->F 0.10); check values
     # from docs/REFERENCES.md §3: stationary (2/3, 1/3), mean runs 20 and 10
     a = np.array([[0.95, 0.05], [0.10, 0.90]])
-    np.testing.assert_allclose(S.stationary_distribution(a), [2 / 3, 1 / 3])
-    np.testing.assert_allclose(S.mean_run_length(a), [20.0, 10.0])
+    np.testing.assert_allclose(stationary_distribution(a), [2 / 3, 1 / 3])
+    np.testing.assert_allclose(mean_run_lengths(a), [20.0, 10.0])
 
 
 def test_persistence_two_state_is_one_minus_switch_probabilities(rng):
     for p01, p10 in rng.uniform(0.02, 0.98, size=(20, 2)):
         a = np.array([[1 - p01, p01], [p10, 1 - p10]])
-        lam, lam_k = S.persistence(a)
+        lam, lam_k = persistence(a)
         assert float(lam) == pytest.approx(1 - p01 - p10)
         np.testing.assert_allclose(lam_k, 1 - p01 - p10)
 
 
 @pytest.mark.parametrize("lam", [0.0, 0.3, 0.9])
 def test_persistence_and_run_length_of_simulator_chain(lam):
-    # source: probeseq.simulate docstring: P(stay in k) = f_k + lam (1 - f_k),
+    # source: probeseq.simulation.simulate docstring: P(stay in k) = f_k + lam (1 - f_k),
     # mean run length of k = 1 / ((1 - lam)(1 - f_k))
     f = np.array([0.5, 0.3, 0.2])
     a = true_transmat(f, lam)
-    got, per = S.persistence(a)
+    got, per = persistence(a)
     assert float(got) == pytest.approx(lam, abs=1e-12)
     np.testing.assert_allclose(per, lam, atol=1e-12)
-    np.testing.assert_allclose(S.mean_run_length(a), 1 / ((1 - lam) * (1 - f)))
-    np.testing.assert_allclose(S.stationary_distribution(a), f)
+    np.testing.assert_allclose(mean_run_lengths(a), 1 / ((1 - lam) * (1 - f)))
+    np.testing.assert_allclose(stationary_distribution(a), f)
 
 
 def test_g2_matches_scipy_log_likelihood_contingency(rng):
     # source: scipy 1.17 scipy.stats.chi2_contingency(lambda_="log-likelihood"); Anderson & Goodman
     # 1957 df = (K-1)^2 (docs/REFERENCES.md §4)
     t = rng.integers(5, 60, size=(3, 3)).astype(float)
-    g2, df, p = S.g2_markov_test(t)
+    g2, df, p = g2_markov_test(t)
     ref = sps.chi2_contingency(t, lambda_="log-likelihood", correction=False)
     assert float(g2) == pytest.approx(ref.statistic)
     assert df == ref.dof == 4
@@ -211,7 +223,7 @@ def test_transition_counts_from_paths_by_hand():
     paths = np.array([[0, 0, 1, 1, 0, 1], [1, 1, 1, 0, 0, 0]])
     mask = np.ones_like(paths, bool)
     mask[0, 3] = False  # breaks 1->1 and 1->0 around site 3
-    tr, occ = S.transition_counts_from_paths(paths, 2, mask)
+    tr, occ = transition_counts_from_paths(paths, 2, mask)
     np.testing.assert_array_equal(tr[0], [[1, 1], [0, 0]] + np.array([[0, 1], [0, 0]]))
     np.testing.assert_array_equal(tr[1], [[2, 0], [1, 2]])
     np.testing.assert_array_equal(occ, [[3, 2], [3, 3]])
@@ -222,7 +234,7 @@ def test_decoded_runs_mark_truncation_by_rod_ends_and_mask():
     paths = np.array([[0, 0, 1, 1, 1, 0, 0, 1], [1, 1, 1, 1, 1, 1, 1, 1]])
     mask = np.ones_like(paths, bool)
     mask[0, 6] = False
-    runs = S.decoded_runs(paths, mask)
+    runs = decoded_runs(paths, mask)
     np.testing.assert_array_equal(runs.rod, [0, 0, 0, 0, 1])
     np.testing.assert_array_equal(runs.state, [0, 1, 0, 1, 1])
     np.testing.assert_array_equal(runs.length, [2, 3, 1, 1, 8])
@@ -238,8 +250,8 @@ def test_run_lengths_of_independent_sites_follow_geometric_law():
     rng = np.random.default_rng(77)
     q = 0.3
     seq = (rng.random((1, 100_000)) < q).astype(int)
-    runs = S.decoded_runs(seq)
-    d = S.run_length_distribution(runs, 2, composition=[1 - q, q], max_length=12)[1]
+    runs = decoded_runs(seq)
+    d = run_length_distribution(runs, 2, composition=[1 - q, q], max_length=12)[1]
     ell = d["length"]
     np.testing.assert_allclose(d["pmf_independent"], sps.geom.pmf(ell, 1 - q))
     obs = d["n_complete"][:6]
@@ -256,8 +268,8 @@ def test_kaplan_meier_survival_corrects_truncation_bias():
     f, lam = [0.5, 0.5], 0.7
     a = true_transmat(f, lam)  # P_kk = 0.85, mean run 6.67
     seq = markov_chains(rng, 4000, 15, f, lam)
-    runs = S.decoded_runs(seq)
-    d = S.run_length_distribution(runs, 2, transmat=a, composition=f, max_length=15)[0]
+    runs = decoded_runs(seq)
+    d = run_length_distribution(runs, 2, transmat=a, composition=f, max_length=15)[0]
     # complete runs inside 15-site rods are strongly biased short
     assert d["mean_complete_sites"] < 0.7 * (1 / (1 - a[0, 0]))
     assert d["n_truncated"] > 0
@@ -268,8 +280,8 @@ def test_kaplan_meier_survival_corrects_truncation_bias():
 
 # ---------------------------------------------------------------------- unbiasedness and coverage
 def _stats_from_paths(seq, metals=("Co", "Zn"), **kw):
-    tr, occ = S.transition_counts_from_paths(seq, len(metals))
-    return S.statistics_from_arrays(per_rod_transitions=tr, per_rod_occupancy=occ, metals=metals,
+    tr, occ = transition_counts_from_paths(seq, len(metals))
+    return statistics_from_arrays(per_rod_transitions=tr, per_rod_occupancy=occ, metals=metals,
                                     pitch_nm=0.2, viterbi=seq, **kw)
 
 
@@ -282,7 +294,7 @@ def test_bootstrap_intervals_cover_truth_and_estimates_are_unbiased():
         "mean_run_length_sites.Zn": 1 / (1 - a[1, 1]),
         "mean_run_length_nm.Zn": 0.2 / (1 - a[1, 1]),
         "persistence": lam,
-        "entropy_rate_bits": float(S.entropy_rate_bits(a)),
+        "entropy_rate_bits": float(entropy_rate_bits(a)),
     }
     n_rep = 30
     est = {k: [] for k in truth}
@@ -320,14 +332,14 @@ def test_expected_counts_remove_decoding_noise_that_biases_path_counting():
         post, xi = forward_backward_binary_flip(obs, a, flip)
         decoded = SimpleNamespace(metals=("Co", "Zn"), pitch_nm=0.25, viterbi=np.argmax(post, axis=2),
                                   posteriors=post, per_rod_transitions=xi, per_rod_occupancy=post.sum(axis=1))
-        st = S.compute_statistics(decoded, n_boot=100, random_state=rep)
+        st = compute_statistics(decoded, n_boot=100, random_state=rep)
         e, lo, hi = st.interval("mean_run_length_sites.Zn")
         ests.append(e)
         cover += lo <= true_run <= hi
-        tr, _ = S.transition_counts_from_paths(obs, 2)
-        naive.append(float(S.mean_run_length(S.transition_matrix(tr.sum(0)))[1]))
-        tr, _ = S.transition_counts_from_paths(decoded.viterbi, 2)
-        on_path.append(float(S.mean_run_length(S.transition_matrix(tr.sum(0)))[1]))
+        tr, _ = transition_counts_from_paths(obs, 2)
+        naive.append(float(mean_run_lengths(transition_matrix(tr.sum(0)))[1]))
+        tr, _ = transition_counts_from_paths(decoded.viterbi, 2)
+        on_path.append(float(mean_run_lengths(transition_matrix(tr.sum(0)))[1]))
     assert cover >= 4
     assert abs(np.mean(ests) - true_run) < 0.06 * true_run
     assert np.mean(naive) < 0.6 * true_run  # the noisy observations break runs
@@ -341,14 +353,14 @@ def test_compute_statistics_output_keys_json_and_reproducible():
     mask = np.ones(seq.shape, bool)
     mask[:5, :30] = False
     vit = np.where(mask, seq, -1)
-    tr, occ = S.transition_counts_from_paths(vit, 2)
-    decoded = SimpleNamespace(transmat=S.transition_matrix(tr.sum(0)), metals=("Ni", "Zn"), viterbi=vit,
+    tr, occ = transition_counts_from_paths(vit, 2)
+    decoded = SimpleNamespace(transmat=transition_matrix(tr.sum(0)), metals=("Ni", "Zn"), viterbi=vit,
                               posteriors=np.eye(2)[seq] * mask[..., None], mask=mask,
                               per_rod_transitions=tr, per_rod_occupancy=occ, lr_stat=55.0, lr_df=1,
                               lr_pvalue=1e-13, bic=1.0, bic_indep=2.0)
     columns = SimpleNamespace(pitch_nm=0.23, neighbours=grid_pairs(5), rod_xy_nm=np.zeros((25, 2)))
-    st1 = S.compute_statistics(decoded, columns, n_boot=50, random_state=4, n_null=99)
-    st2 = S.compute_statistics(decoded, columns, n_boot=50, random_state=4, n_null=99)
+    st1 = compute_statistics(decoded, columns, n_boot=50, random_state=4, n_null=99)
+    st2 = compute_statistics(decoded, columns, n_boot=50, random_state=4, n_null=99)
     d = st1.to_dict()
     text = json.dumps(d, allow_nan=False, sort_keys=True)
     assert text == json.dumps(st2.to_dict(), allow_nan=False, sort_keys=True)
@@ -376,9 +388,9 @@ def test_missing_expected_counts_fall_back_to_path_counts_with_warning():
     seq = markov_chains(rng, 10, 80, [0.5, 0.5], 0.5)
     decoded = SimpleNamespace(metals=("Co", "Zn"), pitch_nm=0.2, viterbi=seq)
     with pytest.warns(DataQualityWarning, match="expected transition counts"):
-        st = S.compute_statistics(decoded, n_boot=20, random_state=0)
-    tr, _ = S.transition_counts_from_paths(seq, 2)
-    np.testing.assert_allclose(st.transmat, S.transition_matrix(tr.sum(0)))
+        st = compute_statistics(decoded, n_boot=20, random_state=0)
+    tr, _ = transition_counts_from_paths(seq, 2)
+    np.testing.assert_allclose(st.transmat, transition_matrix(tr.sum(0)))
     assert st.rod_to_rod is None
 
 
@@ -396,7 +408,7 @@ def test_bad_input_raises_input_error(bad, match):
                 metals=("Co", "Zn"), pitch_nm=0.2, viterbi=np.zeros((4, 10), int))
     args.update(bad)
     with pytest.raises(InputError, match=match):
-        S.statistics_from_arrays(**args)
+        statistics_from_arrays(**args)
 
 
 # ---------------------------------------------------------------------- rod-to-rod agreement
@@ -404,7 +416,7 @@ def test_circular_cross_sums_match_direct_shifts(rng):
     x = rng.random((6, 37))
     m = rng.random((6, 37)) < 0.8
     i, j = np.array([0, 2, 5]), np.array([1, 3, 4])
-    raw = S._circular_raw(x, m, i, j)
+    raw = agreement_mod._circular_raw(x, m, i, j)
     a = np.where(m, x, 0.0)
     for t in (0, 1, 9, 36):
         mj, aj = np.roll(m[j], -t, axis=1), np.roll(a[j], -t, axis=1)  # site s of i with (s+t) mod n of j
@@ -419,7 +431,7 @@ def test_agreement_correlation_equals_pearson_on_both_unmasked_sites(rng):
     mask[0, 10:20] = False
     mask[1, 50:55] = False
     garbage = np.where(mask, x, 1e6)
-    res = S.rod_agreement(garbage, mask, [[0, 1]], max_lag=2, n_null=49, rng=1)
+    res = rod_agreement(garbage, mask, [[0, 1]], max_lag=2, n_null=49, rng=1)
     both = mask[0] & mask[1]
     assert res.corr == pytest.approx(np.corrcoef(x[0, both], x[1, both])[0, 1])
     d = 2
@@ -435,7 +447,7 @@ def test_agreement_kappa_matches_sklearn(rng):
 
     seq = copied_rods(rng, 9, 60, [0.5, 0.3, 0.2], 0.4)
     pairs = grid_pairs(3)
-    res = S.rod_agreement((seq == 2).astype(float), np.ones(seq.shape, bool), pairs, states=seq,
+    res = rod_agreement((seq == 2).astype(float), np.ones(seq.shape, bool), pairs, states=seq,
                           n_states=3, n_null=19, rng=0)
     ref = cohen_kappa_score(seq[pairs[:, 0]].ravel(), seq[pairs[:, 1]].ravel())
     assert res.kappa == pytest.approx(ref)
@@ -445,7 +457,7 @@ def test_copied_rods_detected_with_expected_correlation():
     rng = np.random.default_rng(21)
     e = 0.1
     seq = copied_rods(rng, 36, 200, [0.7, 0.3], e)
-    res = S.rod_agreement((seq == 1).astype(float), np.ones(seq.shape, bool), grid_pairs(6),
+    res = rod_agreement((seq == 1).astype(float), np.ones(seq.shape, bool), grid_pairs(6),
                           n_null=199, rng=2)
     # two copies share the master at a site with probability (1 - e)^2 -> indicator correlation (1 - e)^2
     assert res.corr == pytest.approx((1 - e) ** 2, abs=0.04)
@@ -464,7 +476,7 @@ def test_correction_for_decoding_noise_recovers_true_copy_correlation():
     seq = copied_rods(rng, 36, 300, f, e)
     obs = np.where(rng.random(seq.shape) < flip, 1 - seq, seq)
     post, _ = forward_backward_binary_flip(obs, true_transmat(f, 0.0), flip)
-    res = S.rod_agreement(post[:, :, 1], np.ones(seq.shape, bool), grid_pairs(6), n_null=99, rng=4)
+    res = rod_agreement(post[:, :, 1], np.ones(seq.shape, bool), grid_pairs(6), n_null=99, rng=4)
     assert res.corr < 0.75 * (1 - e) ** 2
     assert res.corr_corrected == pytest.approx((1 - e) ** 2, abs=0.04)
     # the reliability of a posterior from one flipped observation, computed from its two values
@@ -474,7 +486,7 @@ def test_correction_for_decoding_noise_recovers_true_copy_correlation():
     mean = q * p1 + (1 - q) * p0
     var_p = q * p1 ** 2 + (1 - q) * p0 ** 2 - mean ** 2
     assert res.reliability == pytest.approx(var_p / (f[0] * f[1]), abs=0.03)
-    hard = S.rod_agreement((seq == 1).astype(float), np.ones(seq.shape, bool), grid_pairs(6), n_null=9, rng=4)
+    hard = rod_agreement((seq == 1).astype(float), np.ones(seq.shape, bool), grid_pairs(6), n_null=9, rng=4)
     assert hard.reliability == 1.0 and hard.corr_corrected == pytest.approx(hard.corr)
 
 
@@ -483,7 +495,7 @@ def test_independent_rods_give_uniform_p_values():
     pv = []
     for _ in range(40):
         seq = markov_chains(rng, 25, 100, [0.6, 0.4], 0.5)
-        pv.append(S.rod_agreement((seq == 1).astype(float), np.ones(seq.shape, bool), grid_pairs(5),
+        pv.append(rod_agreement((seq == 1).astype(float), np.ones(seq.shape, bool), grid_pairs(5),
                                   n_null=99, rng=rng).p_value)
     pv = np.array(pv)
     # about 4 of 40 below 0.1 under a calibrated null (binomial sd 1.9); 12 or more has P < 1e-3
@@ -500,7 +512,7 @@ def test_copy_with_depth_offset_found_at_its_lag():
         x[r, 2:] = x[r - 1, :-2]
         x[r, :2] = rng.integers(0, 2, 2)
     pairs = np.array([(r, r + 1) for r in range(15)])
-    res = S.rod_agreement(x, np.ones(x.shape, bool), pairs, max_lag=3, n_null=99, rng=3)
+    res = rod_agreement(x, np.ones(x.shape, bool), pairs, max_lag=3, n_null=99, rng=3)
     assert res.best_lag == 2
     assert res.statistic > 0.95
     assert abs(res.corr) < 0.5
@@ -509,6 +521,6 @@ def test_copy_with_depth_offset_found_at_its_lag():
 
 def test_neighbour_pairs_of_square_grid():
     xy = np.stack(np.meshgrid(np.arange(4.0), np.arange(4.0), indexing="ij"), axis=-1).reshape(-1, 2) * 1.5
-    got = {tuple(p) for p in S.neighbour_pairs(xy).tolist()}
+    got = {tuple(p) for p in neighbour_pairs(xy).tolist()}
     want = {tuple(p) for p in grid_pairs(4).tolist()}
     assert got == want

@@ -10,9 +10,15 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from probeseq import stats as S
 from probeseq.exceptions import InputError
-from probeseq.simulate import markov_sequences
+from probeseq.simulation.simulate import markov_sequences
+from probeseq.statistics import agreement as agreement_mod
+from probeseq.statistics import runs as runs_mod
+from probeseq.statistics import summary as summary_mod
+from probeseq.statistics.agreement import rod_agreement
+from probeseq.statistics.markov import transition_counts_from_paths, transition_matrix
+from probeseq.statistics.runs import decoded_runs, run_length_distribution, runs_expectation
+from probeseq.statistics.summary import compute_statistics, statistics_from_arrays
 
 RTOL = 1e-12
 
@@ -72,7 +78,7 @@ def ref_runs_per_rod(paths, k, mask=None):
         n1 = np.bincount(sid, weights=b[v].astype(float), minlength=n_seg)
         ch = (b[:, :-1] != b[:, 1:])[both]
         r = 1.0 + np.bincount(pair_seg, weights=ch.astype(float), minlength=n_seg)
-        mean, var = S.runs_expectation(n1, n_tot - n1)
+        mean, var = runs_expectation(n1, n_tot - n1)
         for o, val in zip(out, (r, mean, var)):
             o[:, s] = np.bincount(seg_rod, weights=val, minlength=n_rods)
     return out
@@ -108,7 +114,7 @@ def ref_lag_sums(x, m, i, j, lags, probabilities=False):
 
 def ref_shift_null(x, m, i, j, lags, n_null, tmin, rng):
     """All pairs' centred circular sums for every shift at once, then gathered per replicate."""
-    cen = S._centred(S._circular_raw(np.where(m, np.asarray(x, float), 0.0), m, i, j))
+    cen = agreement_mod._centred(agreement_mod._circular_raw(np.where(m, np.asarray(x, float), 0.0), m, i, j))
     p, n, _ = cen.shape
     flat = cen.reshape(p * n, 3)
     base = (np.arange(p) * n)[None, :, None]
@@ -119,7 +125,7 @@ def ref_shift_null(x, m, i, j, lags, n_null, tmin, rng):
         shift = rng.integers(tmin, n - tmin + 1, size=(c1 - c0, p, 1))
         cs = flat[base + (shift + lags[None, None, :]) % n].sum(axis=1)
         with np.errstate(all="ignore"):
-            null[c0:c1] = np.nanmax(S._corr_from_sums(cs), axis=1)
+            null[c0:c1] = np.nanmax(agreement_mod._corr_from_sums(cs), axis=1)
     return null
 
 
@@ -146,7 +152,7 @@ def decoded(rng, n_rods, n_sites, k=2, noise=0.2, dtype=np.float32, holes=True):
     post = post.astype(dtype)
     vit = np.where(mask, path, -1).astype(np.int8)
     occ = (post.astype(float) * mask[..., None]).sum(1)
-    tr, _ = S.transition_counts_from_paths(vit, k)
+    tr, _ = transition_counts_from_paths(vit, k)
     return dict(per_rod_transitions=tr, per_rod_occupancy=occ, viterbi=vit, posteriors=post, mask=mask)
 
 
@@ -170,16 +176,16 @@ def test_path_kernels_match_numpy_for_any_integer_dtype(rng, dtype):
     path = markov_sequences(rng, 30, 50, np.array([0.5, 0.3, 0.2]), 0.5).astype(dtype)
     mask = rng.random(path.shape) > 0.15
     mask[3] = False
-    tr, occ = S.transition_counts_from_paths(path, 3, mask)
+    tr, occ = transition_counts_from_paths(path, 3, mask)
     ref_tr, ref_occ = ref_transition_counts(path, 3, mask)
     np.testing.assert_array_equal(tr, ref_tr)
     np.testing.assert_array_equal(occ, ref_occ)
-    runs = S.decoded_runs(path, mask)
+    runs = decoded_runs(path, mask)
     for name, want in ref_decoded_runs(path, mask).items():
         got = getattr(runs, name)
         assert got.dtype == want.dtype, name
         np.testing.assert_array_equal(got, want, err_msg=name)
-    for got, want in zip(S._runs_per_rod(path, 3, mask), ref_runs_per_rod(path, 3, mask)):
+    for got, want in zip(runs_mod._runs_per_rod(path, 3, mask), ref_runs_per_rod(path, 3, mask)):
         np.testing.assert_allclose(got, want, rtol=RTOL, atol=0)
 
 
@@ -187,8 +193,8 @@ def test_run_length_tables_from_paths_equal_tables_from_listed_runs(rng):
     path = markov_sequences(rng, 40, 90, np.array([0.6, 0.4]), 0.8)
     vit = np.where(rng.random(path.shape) > 0.05, path, -1).astype(np.int8)
     tm, comp = np.array([[0.9, 0.1], [0.2, 0.8]]), np.array([0.6, 0.4])
-    via_runs = S.run_length_distribution(S.decoded_runs(vit), 2, transmat=tm, composition=comp)
-    direct = S._run_length_tables(*S._run_histograms(vit, 2), 2, tm, comp, None)
+    via_runs = run_length_distribution(decoded_runs(vit), 2, transmat=tm, composition=comp)
+    direct = runs_mod._run_length_tables(*runs_mod._run_histograms(vit, 2), 2, tm, comp, None)
     for k in (0, 1):
         for key, want in via_runs[k].items():
             np.testing.assert_array_equal(direct[k][key], want, err_msg=key)
@@ -198,12 +204,12 @@ def test_used_states_and_argmax_do_not_depend_on_the_block_size(rng, monkeypatch
     post = rng.random((23, 17, 3)).astype(np.float32)
     mask = rng.random((23, 17)) > 0.2
     vit = rng.integers(-1, 3, size=(23, 17)).astype(np.int16)
-    full_arg = S._argmax_states(post)
-    full_used = S._used_states(vit, mask, 3)
-    monkeypatch.setattr(S, "_BLOCK_BYTES", 8 * 17 * 2)  # two rods per block
-    np.testing.assert_array_equal(S._argmax_states(post), full_arg)
+    full_arg = summary_mod._argmax_states(post)
+    full_used = summary_mod._used_states(vit, mask, 3)
+    monkeypatch.setattr(agreement_mod, "_BLOCK_BYTES", 8 * 17 * 2)  # two rods per block
+    np.testing.assert_array_equal(summary_mod._argmax_states(post), full_arg)
     np.testing.assert_array_equal(full_arg, np.argmax(post, axis=2))
-    used, top = S._used_states(vit, mask, 3)
+    used, top = summary_mod._used_states(vit, mask, 3)
     assert used.dtype == np.int8 and top == full_used[1]
     np.testing.assert_array_equal(used, full_used[0])
     np.testing.assert_array_equal(used, np.where(mask & (vit >= 0), vit, -1))
@@ -217,7 +223,7 @@ def test_lag_sums_match_numpy(rng, n_sites):
     i, j = np.array([0, 1, 2, 5, 7, 3]), np.array([1, 4, 3, 6, 11, 3])
     lags = np.arange(-6, 7)
     for probs in (True, False):
-        got, cnt = S._lag_sums(x, m, i, j, lags, probabilities=probs)
+        got, cnt = agreement_mod._lag_sums(x, m, i, j, lags, probabilities=probs)
         want, want_cnt = ref_lag_sums(x, m, i, j, lags, probabilities=probs)
         np.testing.assert_array_equal(cnt, want_cnt)
         np.testing.assert_allclose(got, want, rtol=RTOL, atol=1e-13)
@@ -225,7 +231,7 @@ def test_lag_sums_match_numpy(rng, n_sites):
 
 def test_pairwise_plan_covers_every_value_once():
     for n in (1, 7, 8, 128, 129, 1000, 2497):
-        plan = S._pairwise_plan(n)
+        plan = agreement_mod._pairwise_plan(n)
         pieces = plan[plan[:, 0] >= 0]
         assert pieces[0, 0] == 0 and np.all(pieces[1:, 0] == np.cumsum(pieces[:-1, 1]))
         assert pieces[:, 1].sum() == n and pieces[:, 1].max() <= 128
@@ -242,12 +248,12 @@ def test_blocked_shift_null_matches_all_pairs_at_once(rng, monkeypatch):
     lags = np.arange(-3, 4)
     want = ref_shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5))
     assert int(4e6 // (len(nb) * 21)) < 199
-    got = S._shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5))
+    got = agreement_mod._shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5))
     np.testing.assert_allclose(got, want, rtol=RTOL, atol=0)
     # the smallest blocks (8 pairs, a partial last block) give the same answer
-    monkeypatch.setattr(S, "_BLOCK_BYTES", 1)
-    assert S._pair_block_size(n_sites) == 8 and len(nb) % 8
-    np.testing.assert_allclose(S._shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5)), got,
+    monkeypatch.setattr(agreement_mod, "_BLOCK_BYTES", 1)
+    assert agreement_mod._pair_block_size(n_sites) == 8 and len(nb) % 8
+    np.testing.assert_allclose(agreement_mod._shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5)), got,
                                rtol=RTOL, atol=0)
 
 
@@ -256,8 +262,8 @@ def test_agreement_on_strided_float32_values_equals_float64_copy(rng):
     mask = rng.random((16, 80)) > 0.1
     states = np.where(mask, np.argmax(post, axis=2), -1).astype(np.int8)
     nb = grid_pairs(4)
-    a = S.rod_agreement(post[:, :, 1], mask, nb, states=states, n_states=2, n_null=19, rng=3)
-    b = S.rod_agreement(post[:, :, 1].astype(np.float64), mask, nb, states=states.astype(np.int64), n_states=2,
+    a = rod_agreement(post[:, :, 1], mask, nb, states=states, n_states=2, n_null=19, rng=3)
+    b = rod_agreement(post[:, :, 1].astype(np.float64), mask, nb, states=states.astype(np.int64), n_states=2,
                         n_null=19, rng=3)
     for name in ("corr_lags", "null", "pair_sums", "pair_confusion", "corr_corrected_lags"):
         np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
@@ -268,11 +274,11 @@ def test_agreement_bad_input_raises_input_error(rng):
     x = rng.random((4, 30))
     m = np.ones(x.shape, bool)
     with pytest.raises(InputError, match="values must be"):
-        S.rod_agreement(x[0], m[0], [[0, 1]])
+        rod_agreement(x[0], m[0], [[0, 1]])
     with pytest.raises(InputError, match="mask shape"):
-        S.rod_agreement(x, m[:, :20], [[0, 1]])
+        rod_agreement(x, m[:, :20], [[0, 1]])
     with pytest.raises(InputError, match="states hold state 2"):
-        S.rod_agreement(x, m, [[0, 1]], states=np.full((4, 30), 2), n_states=2, n_null=0)
+        rod_agreement(x, m, [[0, 1]], states=np.full((4, 30), 2), n_states=2, n_null=0)
 
 
 # ---------------------------------------------------------------------- the whole statistics
@@ -281,13 +287,13 @@ def test_float32_posteriors_and_small_int_paths_give_the_float64_int64_answer(rn
     nb = grid_pairs(6)
     kw = dict(metals=("Co", "Zn"), pitch_nm=0.2, neighbours=nb, n_boot=30, n_null=39, random_state=9)
     d32 = dict(d, posteriors=d["posteriors"].astype(np.float32))
-    st32 = S.statistics_from_arrays(**kw, **d32)
+    st32 = statistics_from_arrays(**kw, **d32)
     # float32 posteriors and int8 paths are read as they are, summed in float64: exactly the
     # answer for their float64 / int64 copies
     wide = dict(d32, posteriors=d32["posteriors"].astype(np.float64), viterbi=d["viterbi"].astype(np.int64))
-    assert_same_statistics(st32, S.statistics_from_arrays(**kw, **wide), rtol=0)
+    assert_same_statistics(st32, statistics_from_arrays(**kw, **wide), rtol=0)
     # against the posteriors before rounding to float32: equal within the rounding (~6e-8)
-    st64 = S.statistics_from_arrays(**kw, **d)
+    st64 = statistics_from_arrays(**kw, **d)
     for key, v in st64.estimates.items():
         assert st32.estimates[key] == pytest.approx(v, rel=1e-5, abs=1e-7, nan_ok=True), key
 
@@ -297,13 +303,13 @@ def test_statistics_without_viterbi_or_posteriors_match_explicit_inputs(rng):
     kw = dict(metals=("Co", "Zn", "Ni"), pitch_nm=0.2, neighbours=grid_pairs(5), n_boot=20, n_null=9,
               random_state=2)
     vit_from_post = np.where(d["mask"], np.argmax(d["posteriors"], axis=2), -1)
-    a = S.statistics_from_arrays(**kw, **dict(d, viterbi=None))
-    b = S.statistics_from_arrays(**kw, **dict(d, viterbi=vit_from_post))
+    a = statistics_from_arrays(**kw, **dict(d, viterbi=None))
+    b = statistics_from_arrays(**kw, **dict(d, viterbi=vit_from_post))
     assert_same_statistics(a, b, rtol=0)
     # without posteriors the agreement uses the decoded indicator of the least abundant metal
-    c = S.statistics_from_arrays(**kw, **dict(d, posteriors=None))
+    c = statistics_from_arrays(**kw, **dict(d, posteriors=None))
     least = c.least_abundant
-    rr = S.rod_agreement((d["viterbi"] == least).astype(float), d["viterbi"] >= 0, grid_pairs(5), metal=least,
+    rr = rod_agreement((d["viterbi"] == least).astype(float), d["viterbi"] >= 0, grid_pairs(5), metal=least,
                          states=d["viterbi"], n_states=3, n_null=9, rng=np.random.default_rng(2))
     assert c.rod_to_rod.corr_lags.tolist() == rr.corr_lags.tolist()
 
@@ -312,9 +318,9 @@ def test_compute_statistics_counts_int8_paths_from_float32_posteriors(rng):
     d = decoded(rng, 20, 60)
     res = SimpleNamespace(metals=("Co", "Zn"), pitch_nm=0.2, posteriors=d["posteriors"], mask=d["mask"])
     with pytest.warns(Warning, match="expected transition counts"):
-        st = S.compute_statistics(res, n_boot=10, random_state=0)
+        st = compute_statistics(res, n_boot=10, random_state=0)
     tr, _ = ref_transition_counts(np.argmax(d["posteriors"], axis=2), 2, d["mask"])
-    np.testing.assert_allclose(st.transmat, S.transition_matrix(tr.sum(0)))
+    np.testing.assert_allclose(st.transmat, transition_matrix(tr.sum(0)))
 
 
 def test_viterbi_state_out_of_range_at_a_used_site_is_an_input_error(rng):
@@ -324,11 +330,11 @@ def test_viterbi_state_out_of_range_at_a_used_site_is_an_input_error(rng):
     vit[tuple(masked[0])] = 7  # ignored: the site is masked
     kw = dict(metals=("Co", "Zn"), pitch_nm=0.2, n_boot=10, n_null=0, mask=d["mask"],
               per_rod_transitions=d["per_rod_transitions"], per_rod_occupancy=d["per_rod_occupancy"])
-    S.statistics_from_arrays(viterbi=vit, **kw)
+    statistics_from_arrays(viterbi=vit, **kw)
     used = np.argwhere(d["mask"])
     vit[tuple(used[0])] = 5
     with pytest.raises(InputError, match="viterbi holds state 5"):
-        S.statistics_from_arrays(viterbi=vit, **kw)
+        statistics_from_arrays(viterbi=vit, **kw)
 
 
 def test_agreement_skips_non_finite_values_as_masked_sites(rng):
@@ -336,8 +342,8 @@ def test_agreement_skips_non_finite_values_as_masked_sites(rng):
     mask = rng.random(x.shape) > 0.1
     bad = rng.random(x.shape) < 0.05
     nb = grid_pairs(3)
-    with_nan = S.rod_agreement(np.where(bad, np.nan, x), mask, nb, n_null=19, rng=1)
-    masked = S.rod_agreement(x, mask & ~bad, nb, n_null=19, rng=1)
+    with_nan = rod_agreement(np.where(bad, np.nan, x), mask, nb, n_null=19, rng=1)
+    masked = rod_agreement(x, mask & ~bad, nb, n_null=19, rng=1)
     for name in ("corr_lags", "corr_corrected_lags", "null", "pair_sums"):
         np.testing.assert_array_equal(getattr(with_nan, name), getattr(masked, name), err_msg=name)
     assert with_nan.n_sites_compared == masked.n_sites_compared

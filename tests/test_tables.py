@@ -4,7 +4,7 @@ import numpy as np
 import pytest
 
 from probeseq.exceptions import InputError
-from probeseq.tables import format_block, write_csv
+from probeseq.outputs.tables import format_block, write_csv
 
 
 def _printf(table, columns, fmt):

@@ -24,7 +24,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import os
 import shutil
 import subprocess
 import sys
@@ -83,8 +82,7 @@ print(time.perf_counter() - t)
 
 
 def make_files(tmp: Path, sizes):
-    from probeseq.io import write_ions
-    from probeseq.simulate import simulate_run
+    from probeseq.simulation.simulate import simulate_run
 
     t = time.perf_counter()
     run = simulate_run(pattern="long-block", top_radius_nm=30, half_angle_deg=10, depth_nm=150, tilt_deg=0.3,

@@ -47,8 +47,9 @@ def suite(n):
 
 
 def one(case):
-    from probeseq.pipeline import AnalysisOptions, analyze
-    from probeseq.simulate import simulate_run
+    from probeseq.pipeline.analysis import analyze
+    from probeseq.pipeline.options import AnalysisOptions
+    from probeseq.simulation.simulate import simulate_run
 
     run = simulate_run(**case)
     t = time.perf_counter()
@@ -69,9 +70,10 @@ def one(case):
 
 
 def big_run():
-    from probeseq.io import write_ions
-    from probeseq.pipeline import AnalysisOptions, analyze_file
-    from probeseq.simulate import simulate_run
+    from probeseq.io.readers import write_ions
+    from probeseq.pipeline.analysis import analyze_file
+    from probeseq.pipeline.options import AnalysisOptions
+    from probeseq.simulation.simulate import simulate_run
 
     run = simulate_run(pattern="long-block", top_radius_nm=30, half_angle_deg=10, depth_nm=150, seed=900999)
     n = len(run.ions)

@@ -20,10 +20,12 @@ import tracemalloc
 import numpy as np
 from scipy.spatial import cKDTree
 
-from probeseq.columns import ColumnBinner, assign_rods, plan_columns, register_lattice
-from probeseq.lattice import Lattice
-from probeseq.registration import RodLocator
-from probeseq.simulate import simulate_run
+from probeseq.lattice.columns import ColumnBinner, assign_rods
+from probeseq.lattice.geometry import plan_columns
+from probeseq.lattice.locator import RodLocator
+from probeseq.lattice.model import Lattice
+from probeseq.lattice.registration import register_lattice
+from probeseq.simulation.simulate import simulate_run
 
 QUICK = "--quick" in sys.argv
 results = []
@@ -107,7 +109,7 @@ def accuracy_case(packing, a, sigma, seed):
                 tilt_deg=math.degrees(math.atan(t_true)), contrast=geom.site_phase_contrast)
 
 
-print("== registration and assignment accuracy on simulated runs (probeseq.simulate) ==")
+print("== registration and assignment accuracy on simulated runs (probeseq.simulation.simulate) ==")
 cases = [("honeycomb", 2.6), ("square", 1.2)]
 sigmas = (0.15,) if QUICK else (0.10, 0.15)
 seeds = (1,) if QUICK else (1, 2)
@@ -220,10 +222,10 @@ for label, use_w in (("weights (n, 2) float32", True), ("channel index int8", Fa
            "< 200 + counts", peak < 200 * 2 ** 20 + binner._counts.nbytes, "MiB")
     assert abs(binner.counts.sum() - st["n_binned"]) < 1e-6 * n_done
 
-# the compiled pass of the analysis (probeseq.counting): same chunks, every ion a metal ion of its
+# the compiled pass of the analysis (probeseq.lattice.counting): same chunks, every ion a metal ion of its
 # channel (mass-to-charge set inside a pure range of that metal), same binning as ColumnBinner
-from probeseq.counting import CountPass, make_count_plan  # noqa: E402
-from probeseq.ranging import Range, RangeSet  # noqa: E402
+from probeseq.lattice.counting import CountPass, make_count_plan  # noqa: E402
+from probeseq.ranging.ranges import Range, RangeSet  # noqa: E402
 
 rs = RangeSet((Range(58.5, 59.5, "Co", 1), Range(63.5, 64.5, "Zn", 1)))
 plan = make_count_plan(rs, ("Co", "Zn"), [1.0, 1.0], geom, 0)
@@ -238,7 +240,7 @@ for threads in (1, 2):
             cp.add(i * chunk, cx, cy, cz, mz_pool[i % len(pool)])
         cp.result()
         t_fused = time.perf_counter() - t0
-    print(f"  fused pass (probeseq.counting, {threads} thread(s)): {n_done:.2e} ions in {t_fused:.2f} s = "
+    print(f"  fused pass (probeseq.lattice.counting, {threads} thread(s)): {n_done:.2e} ions in {t_fused:.2f} s = "
           f"{n_done / t_fused / 1e6:.0f} M ions/s, {t_fused / t_bare:.1f}x the bare pass")
     report(f"fused pass rate, {threads} thread(s)", f"{n_done / t_fused / 1e6:.1f}", ">= 20", n_done / t_fused / 1e6 >= 20,
            "M/s")

@@ -20,10 +20,11 @@ import warnings
 import numpy as np
 from scipy.special import gammaln
 
-from probeseq import chain
-from probeseq.data import RodColumns
-from probeseq.decode import DecoderParams, decode, fit_decoder
-from probeseq.hmm import forward_backward, forward_backward_scaled, viterbi
+from probeseq.decoding import chain
+from probeseq.decoding.decode import decode, fit_decoder
+from probeseq.decoding.hmm import forward_backward, forward_backward_scaled, viterbi
+from probeseq.decoding.model import DecoderParams
+from probeseq.lattice.rodcolumns import RodColumns
 
 
 def persistent(lam, comp):
@@ -210,7 +211,7 @@ def speed(n_rods, n_sites, quick):
                                     overwrite_emission=True)
         return r.loglik.sum() + base_ll, r
 
-    from probeseq import rodchain
+    from probeseq.decoding import rodchain
 
     mask_all = np.ones(counts.shape[:2], bool)
     rods, first, span = rodchain.spans(mask_all)

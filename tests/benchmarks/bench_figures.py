@@ -22,9 +22,11 @@ import numpy as np
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
-from probeseq.data import RodColumns  # noqa: E402
-from probeseq.decode import DecoderParams, decode, sample_model  # noqa: E402
-from probeseq.plotting import plot_tracks, save_figure  # noqa: E402
+from probeseq.decoding.decode import decode, sample_model
+from probeseq.decoding.model import DecoderParams  # noqa: E402
+from probeseq.lattice.rodcolumns import RodColumns  # noqa: E402
+from probeseq.outputs.figures import save_figure
+from probeseq.outputs.tracks import plot_tracks  # noqa: E402
 
 TRACKS_TARGET_S = 5.0
 REPORT_TARGET_S = 10.0
@@ -58,7 +60,7 @@ def naive_tracks_pdf(cols, dec, path):
     from matplotlib.collections import PolyCollection
     from matplotlib.figure import Figure
 
-    from probeseq.palette import metal_colour
+    from probeseq.utils.palette import metal_colour
 
     fig = Figure(figsize=(7.0, 6.0))
     FigureCanvasAgg(fig)
@@ -93,10 +95,11 @@ def main():
             ok &= t < TRACKS_TARGET_S
             print(f"  tracks -> {ext}: {t:.2f} s (median of 3), {size_kb:.0f} kB, {t / base:.2f}x baseline  {flag}")
 
-        from probeseq.io import read_ions
-        from probeseq.lattice import Lattice
-        from probeseq.pipeline import AnalysisOptions, analyze
-        from probeseq.report import write_report
+        from probeseq.io.readers import read_ions
+        from probeseq.lattice.model import Lattice
+        from probeseq.outputs.report import write_report
+        from probeseq.pipeline.analysis import analyze
+        from probeseq.pipeline.options import AnalysisOptions
 
         sample = ROOT / "sample_data" / "rodnet7-batch-150C"
         ions = read_ions(sample / "ions.h5")

@@ -13,7 +13,7 @@ import time
 
 import numpy as np
 
-from probeseq.counting import zeroed_array
+from probeseq.lattice.counting import zeroed_array
 
 TARGET_S = 0.05
 

@@ -12,7 +12,6 @@ Files are made at run time from a simulated run tiled to size and deleted afterw
 from __future__ import annotations
 
 import argparse
-import os
 import subprocess
 import sys
 import tempfile
@@ -22,9 +21,9 @@ from pathlib import Path
 import h5py
 import numpy as np
 
-from probeseq.io import read_ions, write_ions
-from probeseq.ions import IonList
-from probeseq.simulate import simulate_run
+from probeseq.io.ions import IonList
+from probeseq.io.readers import read_ions, write_ions
+from probeseq.simulation.simulate import simulate_run
 
 
 def make_ions(n: int, dtype=np.float32) -> IonList:
@@ -93,7 +92,7 @@ def main():
         t_bare = best_of(lambda: bare_read(p))
         t_read = best_of(lambda: read_ions(p, checksum=False))
         t0 = time.perf_counter()
-        from probeseq.io import file_sha256
+        from probeseq.io.formats import file_sha256
         file_sha256(p)
         t_sha = time.perf_counter() - t0
         n_read, peak = streamed_peak_mb(p, 4_000_000)

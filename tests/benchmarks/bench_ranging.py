@@ -17,9 +17,10 @@ import time
 
 import numpy as np
 
-from probeseq.isotopes import isotope_pattern
-from probeseq.ranging import assign_channels, auto_range
-from probeseq.simulate import SimConfig, simulate_run
+from probeseq.ranging.auto import auto_range
+from probeseq.ranging.channels import assign_channels
+from probeseq.ranging.isotopes import isotope_pattern
+from probeseq.simulation.simulate import SimConfig, simulate_run
 
 CASES = [  # metals, composition, seed
     (("Co", "Zn"), (0.55, 0.45), 1),

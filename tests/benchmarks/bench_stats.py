@@ -4,11 +4,11 @@ Run from the repository root:  python tests/benchmarks/bench_stats.py [--rods 20
                                    [--float64] [--profile]
 
 The decoded run is made here at run time, in memory (nothing is written): K = 2 metals, Markov
-paths from :func:`probeseq.simulate.markov_sequences` (composition 0.7/0.3, persistence 0.8),
+paths from :func:`probeseq.simulation.simulate.markov_sequences` (composition 0.7/0.3, persistence 0.8),
 posteriors near one-hot with noise (float32, as the decoder writes them; ``--float64`` for
 float64), int8 Viterbi paths, a mask with 0-60 masked sites at each rod end, transition counts and
 occupancy counted from them, and rod positions on a honeycomb grid, so that
-:func:`probeseq.stats.neighbour_pairs` finds 3 neighbours per inner rod (~1.5 pairs per rod).
+:func:`probeseq.statistics.agreement.neighbour_pairs` finds 3 neighbours per inner rod (~1.5 pairs per rod).
 
 Figures printed:
 
@@ -34,8 +34,10 @@ import tracemalloc
 
 import numpy as np
 
-from probeseq import stats as S
-from probeseq.simulate import markov_sequences
+from probeseq.simulation.simulate import markov_sequences
+from probeseq.statistics.agreement import neighbour_pairs
+from probeseq.statistics.markov import transition_counts_from_paths
+from probeseq.statistics.summary import statistics_from_arrays
 
 TARGET_S = 20.0
 TARGET_MB = 500.0
@@ -73,7 +75,7 @@ def make_run(n_rods, n_sites, seed=1, dtype=np.float32):
         occ[sl] = (post[sl].astype(np.float64) * mask[sl, :, None]).sum(axis=1)
     vit = np.where(mask, path, -1).astype(np.int8)
     del path
-    tr, _ = S.transition_counts_from_paths(vit, 2)
+    tr, _ = transition_counts_from_paths(vit, 2)
     return dict(per_rod_transitions=tr, per_rod_occupancy=occ, viterbi=vit, posteriors=post, mask=mask,
                 rod_xy_nm=honeycomb(n_rods))
 
@@ -108,12 +110,12 @@ def main():
 
     t = time.perf_counter()
     small = make_run(60, 200, seed=2, dtype=np.float64 if args.float64 else np.float32)
-    S.statistics_from_arrays(**kw, n_boot=10, n_null=9, **small)
+    statistics_from_arrays(**kw, n_boot=10, n_null=9, **small)
     print(f"compile / warm-up on 60 x 200: {time.perf_counter() - t:.1f} s")
 
     t = time.perf_counter()
     run = make_run(args.rods, args.sites, seed=args.seed, dtype=np.float64 if args.float64 else np.float32)
-    n_pairs = len(S.neighbour_pairs(run["rod_xy_nm"]))
+    n_pairs = len(neighbour_pairs(run["rod_xy_nm"]))
     in_mb = sum(v.nbytes for v in run.values()) / 2**20
     print(f"input: {args.rods} rods x {args.sites} sites x K=2, posteriors {run['posteriors'].dtype}, "
           f"viterbi {run['viterbi'].dtype}, {n_pairs} neighbour pairs "
@@ -136,7 +138,7 @@ def main():
         prof = cProfile.Profile()
         prof.enable()
     t = time.perf_counter()
-    st = S.statistics_from_arrays(**kw, **run)
+    st = statistics_from_arrays(**kw, **run)
     el = time.perf_counter() - t
     if prof is not None:
         prof.disable()

@@ -63,7 +63,7 @@ def _serve():
     os.dup2(devnull, 1)
     os.environ.pop("PROBESEQ_DEBUG", None)
     os.environ.setdefault("MPLBACKEND", "Agg")
-    from probeseq.cli import main
+    from probeseq.cli.main import main
 
     home = os.getcwd()
     proto.write(json.dumps({"ready": True}) + "\n")

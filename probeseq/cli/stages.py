@@ -1,0 +1,544 @@
+"""CLI commands of the pipeline stages (ranging, columns, decoding, analysis), joined to ``app``.
+
+``app`` and the shared helpers come from :mod:`probeseq.cli.common`; this module never imports
+:mod:`probeseq.cli`, which loads it when a command runs (one-way dependency, no import cycle).
+
+Each command is a thin wrapper: parse, call one library function, write, summarise.
+"""
+
+from __future__ import annotations
+
+import shlex
+import sys
+import time
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+
+from ..exceptions import InputError
+from ..utils.marks import figure_metadata
+from .common import _STATE, app, deprecated_option, renamed, say, split_list
+
+# ---------------------------------------------------------------------- shared options
+LengthUnit = Annotated[Optional[str], typer.Option(help="nm | angstrom: unit of the positions in the ion file.")]
+
+
+PosDataset = Annotated[Optional[str], typer.Option(help="HDF5 path of an N x 3 position dataset (other layouts).")]
+
+
+MassDataset = Annotated[Optional[str], typer.Option(help="HDF5 path of the mass-to-charge dataset (other layouts).")]
+
+
+Strict = Annotated[bool, typer.Option(help="Treat NaN/inf or non-positive mass-to-charge rows as an error.")]
+
+
+Metals = Annotated[Optional[str], typer.Option(help="Comma-separated metal symbols, e.g. Co,Zn.")]
+
+
+LatticeOpt = Annotated[Optional[str], typer.Option(help="Lattice TOML file, or a preset: honeycomb | triangular | square.")]
+
+
+AOpt = Annotated[Optional[float], typer.Option("--a", help="Cell edge a, nm (with a preset).")]
+
+
+RepeatOpt = Annotated[Optional[float], typer.Option(help="Repeat along the rod, nm (with a preset).")]
+
+
+SitesOpt = Annotated[int, typer.Option(help="Metal sites per repeat (with a preset).")]
+
+
+RangesOpt = Annotated[Optional[Path], typer.Option(help="Range file (TOML) to use instead of automatic ranging.")]
+
+
+Quiet = Annotated[bool, typer.Option("--quiet", "-q", help="Print nothing but errors.")]
+
+
+Verbose = Annotated[bool, typer.Option("--verbose", "-v", help="Print more detail.")]
+
+
+Force = Annotated[bool, typer.Option(help="Replace an existing output that probeseq wrote (only once the new one is "
+                                            "complete; files probeseq did not write are never replaced).")]
+
+
+ForceFile = Annotated[bool, typer.Option(help="Replace an existing output file that probeseq wrote.")]
+
+
+def _command_line() -> str:
+    return "probeseq " + " ".join(shlex.quote(a) for a in sys.argv[1:])
+
+
+def _lattice_inputs(spec) -> list:
+    """The lattice file named by ``--lattice``, if it is a file (not a preset)."""
+    return [Path(spec)] if spec is not None and str(spec).lower().endswith(".toml") else []
+
+
+def _parse_offset(text: Optional[str]):
+    if text is None:
+        return None
+    try:
+        vals = [float(v) for v in split_list(text, "--offset-nm")]
+    except ValueError:
+        raise InputError(f"--offset-nm: '{text}' is not two numbers 'x,y' (nm)") from None
+    if len(vals) != 2:
+        raise InputError(f"--offset-nm takes two numbers 'x,y' in nm, got {len(vals)}")
+    return tuple(vals)
+
+
+def _lattice(spec, a, repeat, sites_per_repeat):
+    from ..lattice.model import Lattice
+
+    if spec is None:
+        raise InputError("--lattice is required (a lattice TOML file or a preset name)")
+    return Lattice.from_spec(spec, a=a, repeat=repeat, sites_per_repeat=sites_per_repeat)
+
+
+def _metals(text):
+    mets = split_list(text, "--metals")
+    if len(mets) < 2:
+        raise InputError("--metals needs at least two metals, e.g. --metals Co,Zn")
+    return tuple(mets)
+
+
+class _Reporter:
+    """Progress on standard error (unless quiet); ``log.txt`` keeps its own copy (:func:`probeseq.study.batch.analyze_run`).
+
+    Each stage prints one line when it starts; on a terminal a ticker keeps the line's elapsed
+    time running while the stage works, so a long step never looks frozen.
+    """
+
+    def __init__(self, quiet: bool, verbose: bool):
+        import threading
+
+        self.quiet, self.verbose = quiet, verbose
+        self.t0 = time.perf_counter()
+        self._tty = (not quiet) and sys.stderr.isatty()
+        self._current = None
+        self._lock = threading.Lock()
+        self._stop = threading.Event()
+        self._thread = None
+
+    def _tick(self):
+        while not self._stop.wait(0.5):
+            with self._lock:
+                if self._current is None:
+                    continue
+                line, start = self._current
+                sys.stderr.write(f"\r{line} ({time.perf_counter() - start:.0f} s)")
+                sys.stderr.flush()
+
+    def __call__(self, stage: str, message: str):
+        line = f"[{time.perf_counter() - self.t0:7.1f} s] {stage}: {message}"
+        if self.quiet:
+            return
+        with self._lock:
+            if self._tty:
+                if self._current is not None:
+                    sys.stderr.write("\n")
+                sys.stderr.write(line)
+                self._current = (line, time.perf_counter())
+                if self._thread is None:
+                    import threading
+
+                    self._thread = threading.Thread(target=self._tick, daemon=True)
+                    self._thread.start()
+            else:
+                sys.stderr.write(line + "\n")
+            sys.stderr.flush()
+
+    def done(self):
+        """End the ticker (call before printing the summary)."""
+        self._stop.set()
+        with self._lock:
+            if self._tty and self._current is not None:
+                sys.stderr.write("\n")
+                sys.stderr.flush()
+            self._current = None
+
+
+# ---------------------------------------------------------------------- range
+@app.command("range")
+def range_cmd(
+    ions: Annotated[Path, typer.Argument(help="Ion file (.csv, .tsv, .txt, .h5).")],
+    metals: Metals = None,
+    species: Annotated[Optional[str], typer.Option(help="Comma-separated framework ions to predict instead of the "
+                                                        "defaults, e.g. CO,H2O,C++ (one + per charge).")] = None,
+    out: Annotated[Path, typer.Option(help="Range file (TOML) to write.")] = Path("ranges.toml"),
+    figure: Annotated[Optional[Path], typer.Option(help="Spectrum figure to write (.png or .svg).")] = None,
+    ranges: RangesOpt = None,
+    length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
+    strict: Strict = False, force: ForceFile = False, quiet: Quiet = False,
+):
+    """Range the mass spectrum: find peaks, match ions, calibrate, and write an editable range file."""
+    from ..outputs.folder import check_outfile, staged_file
+    from ..pipeline.stages import range_file
+    from ..ranging.ranges import RangeSet
+
+    _STATE["quiet"] = quiet
+    inputs = [ions, ranges]
+    check_outfile(out, force, inputs)
+    figures = _figure_pair(figure)
+    for f in figures:
+        check_outfile(f, force, inputs + [out], what="--figure")
+    mets = _metals(metals)
+    given = RangeSet.from_toml(ranges) if ranges is not None else None
+    # the ranging of 'analyze': the same sample of the file, ranged by the same call
+    rr, _ = range_file(ions, mets, species=split_list(species, "--species") or None, ranges=given,
+                       length_unit=length_unit, position_dataset=position_dataset, mass_dataset=mass_dataset,
+                       strict=strict)
+    with staged_file(out, force, inputs) as part:
+        rr.to_toml(part)
+    say(f"wrote {out}: {len(rr.ranges)} ranges")
+    d = rr.to_dict()
+    comp = d.get("composition", {})
+    for m in mets:
+        c = comp.get(m, {})
+        if c:
+            say(f"  {m:3s} {100 * c['fraction']:6.2f} % +- {100 * c['fraction_err']:.2f} % (atomic, of metal atoms)")
+    if len(rr.unmatched):
+        say(f"  {len(rr.unmatched)} strong peaks unmatched (left unranged): " + "; ".join(rr.unmatched_nearest[:6]))
+    if figures:
+        import matplotlib.pyplot as plt
+
+        from ..ranging.plot import plot_ranging
+
+        fig = plot_ranging(rr)
+        try:
+            for f in figures:
+                with staged_file(f, force, inputs + [out], what="--figure") as part:
+                    fig.savefig(part, dpi=150, format=f.suffix[1:], metadata=figure_metadata(f))
+        finally:
+            plt.close(fig)
+        say(f"wrote {' and '.join(map(str, figures))}")
+
+
+def _figure_pair(figure) -> list:
+    """``--figure X.png`` (or ``.svg``, or no suffix) writes ``X.png`` and ``X.svg``."""
+    if figure is None:
+        return []
+    p = Path(figure)
+    if p.suffix.lower() not in ("", ".png", ".svg"):
+        raise InputError(f"--figure {p}: expected a .png or .svg name (both are written)")
+    stem = p.with_suffix("") if p.suffix else p
+    return [stem.with_name(stem.name + ".png"), stem.with_name(stem.name + ".svg")]
+
+
+# ---------------------------------------------------------------------- columns
+@app.command()
+def columns(
+    ions: Annotated[Path, typer.Argument(help="Ion file (.csv, .tsv, .txt, .h5).")],
+    metals: Metals = None,
+    lattice: LatticeOpt = None, a: AOpt = None, repeat: RepeatOpt = None, sites_per_repeat: SitesOpt = 3,
+    ranges: RangesOpt = None,
+    out: Annotated[Path, typer.Option(help="Output folder.")] = Path("columns_out"),
+    rotation_deg: Annotated[Optional[float], typer.Option(help="Fix the lattice rotation, degrees.")] = None,
+    scale: Annotated[Optional[float], typer.Option(help="Fix the lateral scale (reconstruction / crystal).")] = None,
+    offset_nm: Annotated[Optional[str], typer.Option(help="Fix the lattice offset 'x,y', nm.")] = None,
+    seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
+    length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
+    strict: Strict = False, force: Force = False, quiet: Quiet = False,
+):
+    """Register the rod lattice and cut the rods into sites: writes columns.h5, registration.json, a figure."""
+    from ..lattice.rodcolumns import save_columns
+    from ..outputs.folder import check_outdir, staged_outdir, write_json
+    from ..pipeline.analysis import write_density_figure
+    from ..pipeline.options import AnalysisOptions
+    from ..pipeline.stages import count_file
+    from ..ranging.ranges import RangeSet
+
+    _STATE["quiet"] = quiet
+    inputs = [ions, ranges, *_lattice_inputs(lattice)]
+    check_outdir(out, force, inputs)
+    mets = _metals(metals)
+    lat = _lattice(lattice, a, repeat, sites_per_repeat)
+    opts = AnalysisOptions(seed=seed, rotation_deg=rotation_deg, scale=scale, offset_nm=_parse_offset(offset_nm))
+    given = RangeSet.from_toml(ranges) if ranges is not None else None
+    # the count stage of 'analyze': sample, ranging, detection balance, registration, fused pass
+    counted = count_file(ions, mets, lat, ranges=given, options=opts, length_unit=length_unit,
+                         position_dataset=position_dataset, mass_dataset=mass_dataset, strict=strict)
+    cols, rr = counted.columns, counted.ranging
+    with staged_outdir(out, force=force, inputs=inputs, command=_command_line()) as st:
+        save_columns(cols, st / "columns.h5")
+        write_json(st / "registration.json", {"resolvable": cols.resolvable, "crosstalk": cols.crosstalk,
+                                              "n_rods": cols.n_rods, "n_sites": cols.n_sites, **cols.params})
+        rr.to_toml(st / "ranges.toml")
+        write_density_figure(counted.figure_ions, rr, cols, st / "density.png")
+    reg = cols.params.get("registration", {})
+    say(f"wrote {out}: {cols.n_rods} rods x {cols.n_sites} sites ({int(cols.mask.sum())} used)")
+    if reg:
+        say(f"  rotation {reg.get('rotation_deg', float('nan')):.2f} deg, scale {reg.get('scale', float('nan')):.4f}, "
+            f"lateral spread {reg.get('sigma_xy_nm', float('nan')):.3f} nm")
+    say(f"  expected crosstalk {cols.crosstalk:.3f}: single rods {'resolvable' if cols.resolvable else 'NOT resolvable'}")
+
+
+# ---------------------------------------------------------------------- decode
+@app.command()
+def decode(
+    columns_dir: Annotated[Path, typer.Argument(help="Folder written by 'probeseq columns'.")],
+    out: Annotated[Path, typer.Option(help="Output folder.")] = Path("decode_out"),
+    n_starts: Annotated[int, typer.Option(help="EM starts.")] = 4,
+    seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
+    force: Force = False, quiet: Quiet = False,
+):
+    """Fit the hidden Markov model to every rod and decode the metal sequences."""
+    from ..lattice.rodcolumns import load_columns
+    from ..outputs.folder import check_outdir, staged_outdir, write_json
+    from ..pipeline.options import AnalysisOptions
+    from ..pipeline.stages import decode_stage
+
+    _STATE["quiet"] = quiet
+    opts = AnalysisOptions(seed=seed, n_starts=n_starts)
+    check_outdir(out, force, [columns_dir])
+    cols = load_columns(Path(columns_dir) / "columns.h5")
+    # the decoding stage of 'analyze' (and its groups-of-rods analysis when rods are not resolvable)
+    dec, groups = decode_stage(cols, opts)
+    with staged_outdir(out, force=force, inputs=[columns_dir], command=_command_line()) as st:
+        write_json(st / "decoding.json", {"decoding": dec.to_dict(),
+                                          "groups": None if groups is None else groups.to_dict()})
+        _write_decoded_tables(st, cols, dec)
+    say(f"wrote {out}: {cols.n_rods} rods decoded; log-likelihood {dec.loglik:.1f}, "
+        f"detection efficiency {dec.eta:.3f}, persistence {dec.persistence:.3f}")
+    say(f"  independent sites: likelihood-ratio {dec.lr_stat:.1f} (df {dec.lr_df}), p = {dec.lr_pvalue:.3g}; "
+        f"BIC {dec.bic:.1f} vs {dec.bic_indep:.1f}")
+
+
+def _write_decoded_tables(folder, cols, dec):
+    """``tracks.csv``, ``runs.csv`` and ``decoded.h5`` (paths, posteriors, flags), as 'analyze' writes them."""
+    from ..outputs.results import RUNS_COLUMNS, RUNS_FORMATS, _write_table, runs_table, save_decoded, write_tracks
+
+    write_tracks(folder / "tracks.csv", cols, dec)
+    _write_table(folder / "runs.csv", runs_table(cols, dec), RUNS_COLUMNS, RUNS_FORMATS)
+    save_decoded(dec, folder / "decoded.h5")
+
+
+# ---------------------------------------------------------------------- analyze
+SitesOrRunOpt = Annotated[Optional[int], typer.Option("--sites-per-repeat", help="Metal sites per repeat (with a "
+                                                                                 "preset; default 3).")]
+
+
+@app.command()
+def analyze(
+    ions: Annotated[Path, typer.Argument(help="Ion file (.csv, .tsv, .txt, .h5), a run folder holding the "
+                                              "ion file and run.toml, or a batch folder of run folders.")],
+    metals: Metals = None,
+    lattice: LatticeOpt = None, a: AOpt = None, repeat: RepeatOpt = None, sites_per_repeat: SitesOrRunOpt = None,
+    out: Annotated[Optional[Path], typer.Option(help="Output folder (default: analysis_<name>); for a batch, "
+                                                     "the folder of the runs' output folders.")] = None,
+    ranges: RangesOpt = None,
+    seed: Annotated[int, typer.Option(help="Random seed; the same seed gives the same results.")] = 0,
+    long_block_sites: Annotated[float, typer.Option(help="Mean run length (sites) of the least abundant metal at "
+                                                         "or over which runs are long blocks.")] = 8.0,
+    alpha: Annotated[float, typer.Option(help="Significance level of the tests.")] = 0.01,
+    copy_threshold: Annotated[float, typer.Option(help="Neighbouring-rod correlation at or over which "
+                                                       "(if significant) rods are copied.")] = 0.3,
+    n_boot: Annotated[int, typer.Option(help="Bootstrap resamples over rods.")] = 200,
+    n_starts: Annotated[int, typer.Option(help="EM starts of the decoder.")] = 4,
+    rotation_deg: Annotated[Optional[float], typer.Option(help="Fix the lattice rotation, degrees.")] = None,
+    scale: Annotated[Optional[float], typer.Option(help="Fix the lateral scale (reconstruction / crystal).")] = None,
+    offset_nm: Annotated[Optional[str], typer.Option(help="Fix the lattice offset 'x,y', nm.")] = None,
+    length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
+    allow_outside: Annotated[bool, typer.Option(help="Let a run folder's run.toml name files outside the run "
+                                                     "folder (refused by default).")] = False,
+    strict: Strict = False, force: Force = False, quiet: Quiet = False, verbose: Verbose = False,
+):
+    """Run the whole analysis: ranging, columns, decoding, statistics and classification; also for a batch.
+
+    IONS may be an ion file, a run folder (the ion file plus run.toml), or a batch folder: a
+    folder of run folders, each analysed into OUT/<run folder name> (two runs at a time) with the
+    same options, which take precedence over each run.toml. A batch prints one line per run and
+    exits with 1 if any run failed; the others are still written.
+    """
+    from ..pipeline.options import AnalysisOptions
+    from ..study.batch import analyze_run, run_folders, summary_lines
+    from ..study.runinfo import safe_file_name
+
+    _STATE["quiet"] = quiet
+    # options first: a bad value is one error before any work, not one failure per run of a batch
+    opts = AnalysisOptions(seed=seed, n_starts=n_starts, n_boot=n_boot, long_block_sites=long_block_sites,
+                           alpha=alpha, copy_threshold=copy_threshold, rotation_deg=rotation_deg, scale=scale,
+                           offset_nm=_parse_offset(offset_nm))
+    mets = _metals(metals) if metals is not None else None
+    common = dict(options=opts, metals=mets, lattice=lattice, a=a, repeat=repeat, sites_per_repeat=sites_per_repeat,
+                  ranges=ranges, length_unit=length_unit, position_dataset=position_dataset,
+                  mass_dataset=mass_dataset, strict=strict, allow_outside=allow_outside, force=force,
+                  command_line=_command_line())
+    src = Path(ions)
+    if src.is_dir() and not (src / "run.toml").exists() and run_folders(src):
+        batch_out = Path(out) if out is not None else Path(f"analysis_{safe_file_name(src.resolve().name)}")
+        return _batch(src, batch_out, common, verbose)
+    rep = _Reporter(quiet, verbose)
+    try:
+        ra = analyze_run(src, out, progress=rep, **common)
+    finally:
+        rep.done()
+    for line in summary_lines(ra.result, verbose=verbose):
+        say(line)
+
+
+def _batch(src: Path, out: Path, common: dict, verbose: bool):
+    """Analyse a batch folder with :func:`probeseq.study.batch.analyze_batch`; one summary line per run."""
+    from ..study.batch import analyze_batch
+
+    def start(n_runs, n_workers):
+        say(f"analysing {n_runs} run folders of {src} with {n_workers} processes into {out}")
+
+    def show(o):
+        if o.ok:
+            say(f"  {o.run:32s} {o.label} (confidence {o.confidence:.2f})")
+        else:
+            say(f"  {o.run:32s} failed: {o.error}")
+        if verbose:
+            for r in o.reasons:
+                say(f"  {'':32s}   - {r}")
+            for w in o.warnings:
+                say(f"  {'':32s}   warning: {w}")
+
+    outcomes = analyze_batch(src, out, progress=show, started=start, **common)
+    failed = [o for o in outcomes if not o.ok]
+    if failed:
+        where = "" if _STATE["quiet"] else "; reasons above"
+        rest = "no run was written" if len(failed) == len(outcomes) else f"the others were written to {out}"
+        raise InputError(f"{len(failed)} of {len(outcomes)} runs failed ({', '.join(o.run for o in failed[:5])}"
+                         f"{', ...' if len(failed) > 5 else ''}{where}); {rest}")
+
+
+# ---------------------------------------------------------------------- compare
+@app.command()
+def compare(
+    outdirs: Annotated[list[Path], typer.Argument(help="Analysis output folders, or folders holding them.")],
+    by: Annotated[str, typer.Option(help="Metadata field ([sample] of run.toml) to order the runs by.")] =
+        "synthesis_temperature_c",
+    out: Annotated[Path, typer.Option(help="Output folder for comparison.csv, comparison.json and the figure.")] =
+        Path("comparison"),
+    seed: Annotated[int, typer.Option(help="Random seed of the difference tests.")] = 0,
+    force: Force = False, quiet: Quiet = False,
+):
+    """Compare analysed runs: statistics with intervals ordered by a metadata field, and difference tests."""
+    from ..outputs.folder import check_outdir, staged_outdir, write_json
+    from ..outputs.results import _write_table
+    from ..study.compare import compare_runs, load_runs, plot_comparison
+
+    _STATE["quiet"] = quiet
+    check_outdir(out, force, outdirs)
+    records = load_runs(outdirs)
+    inputs = [*outdirs, *(r.folder for r in records)]
+    check_outdir(out, force, inputs)
+    comp = compare_runs(records, order_by=by, random_state=seed)
+    rows = comp.table_rows()
+    cols = ("run", "order_value", "label", "statistic", "estimate", "low", "high")
+    table = {c: [r[c] if r[c] is not None else "" for r in rows] for c in cols}
+    with staged_outdir(out, force=force, inputs=inputs, command=_command_line()) as st:
+        _write_table(st / "comparison.csv", table, cols)
+        dcols = ("run_a", "run_b", "statistic", "difference", "low", "high", "p_value")
+        _write_table(st / "differences.csv", {c: [d[c] if d[c] is not None else "" for d in comp.differences]
+                                              for c in dcols}, dcols)
+        write_json(st / "comparison.json", comp.to_dict())
+        plot_comparison(comp, st / "comparison.png")
+        plot_comparison(comp, st / "comparison.svg")
+    say(f"{'run':28s} {by:>12s} {'label':>18s}  key statistics (estimate [95 % interval])")
+    show = [s for s in comp.statistics if s.startswith("mean_run_length_sites.") or s == "persistence"]
+    for rec in comp.runs:
+        parts = []
+        for s in show:
+            iv = rec.intervals.get(s) or {}
+            e, lo, hi = iv.get("estimate"), iv.get("low"), iv.get("high")
+            if e is not None:
+                parts.append(f"{s.replace('mean_run_length_sites.', 'run ')} {e:.2f} [{lo or float('nan'):.2f}-"
+                             f"{hi or float('nan'):.2f}]")
+        say(f"{rec.name[:28]:28s} {str(rec.metadata.get(by, '-')):>12s} {rec.label:>18s}  " + "; ".join(parts))
+    sig = [d for d in comp.differences if d["p_value"] is not None and d["p_value"] == d["p_value"]
+           and d["p_value"] < 0.01 and (d["statistic"] in show)]
+    for d in sig:
+        say(f"  {d['run_a']} vs {d['run_b']}: {d['statistic']} differs by {d['difference']:.3g} "
+            f"(95 % interval {d['low']:.3g} to {d['high']:.3g}, bootstrap p = {d['p_value']:.3g})")
+    for n in comp.notes:
+        say(f"note: {n}")
+    say(f"wrote {out}/comparison.csv, differences.csv, comparison.json, comparison.png/.svg")
+
+
+# ---------------------------------------------------------------------- plan
+@app.command()
+def plan(
+    ctx: typer.Context,
+    metals: Metals = None,
+    lattice: LatticeOpt = None, a: AOpt = None, repeat: RepeatOpt = None, sites_per_repeat: SitesOpt = 3,
+    detection_efficiency: Annotated[float, typer.Option(help="Detection efficiency of the instrument, "
+                                                             "(0, 1].")] = 0.5,
+    lateral_blur: Annotated[float, typer.Option(help="Lateral blur (spread of positions across the rods), "
+                                                     "nm.")] = 0.15,
+    runs_per_pattern: Annotated[int, typer.Option(help="Simulated runs per arrangement.")] = 4,
+    runs_per_persistence: Annotated[int, typer.Option(help="Simulated runs per persistence of the scan.")] = 3,
+    tip_radius: Annotated[float, typer.Option(help="Needle tip (top) radius of the simulated runs, nm.")] = 5.0,
+    depth: Annotated[float, typer.Option(help="Depth of the simulated runs, nm.")] = 25.0,
+    out: Annotated[Optional[Path], typer.Option(help="Write the plan as JSON here.")] = None,
+    seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
+    force: ForceFile = False, quiet: Quiet = False,
+    efficiency: Annotated[Optional[float], deprecated_option("--efficiency", "--detection-efficiency")] = None,
+    lateral_resolution: Annotated[Optional[float], deprecated_option("--lateral-resolution", "--lateral-blur")] = None,
+    radius: Annotated[Optional[float], deprecated_option("--radius", "--tip-radius")] = None,
+):
+    """Before acquiring: simulate runs under your conditions and report what the analysis can tell apart."""
+    from ..outputs.folder import check_outfile, staged_file, write_json
+    from ..study.plan import plan_experiment
+
+    _STATE["quiet"] = quiet
+    detection_efficiency = renamed(ctx, "--detection-efficiency", detection_efficiency, "--efficiency", efficiency)
+    lateral_blur = renamed(ctx, "--lateral-blur", lateral_blur, "--lateral-resolution", lateral_resolution)
+    tip_radius = renamed(ctx, "--tip-radius", tip_radius, "--radius", radius)
+    inputs = _lattice_inputs(lattice)
+    if out is not None:
+        check_outfile(out, force, inputs)
+    mets = _metals(metals)
+    lat = _lattice(lattice, a, repeat, sites_per_repeat)
+
+    def prog(i, n):
+        if not quiet:
+            sys.stderr.write(f"\rsimulated and analysed {i}/{n} runs")
+            sys.stderr.flush()
+            if i == n:
+                sys.stderr.write("\n")
+
+    res = plan_experiment(mets, lat, efficiency=detection_efficiency, lateral_resolution_nm=lateral_blur,
+                          n_per_pattern=runs_per_pattern, n_per_persistence=runs_per_persistence,
+                          top_radius_nm=tip_radius, depth_nm=depth, seed=seed, progress=prog)
+    say(f"expected confusion (rows: true arrangement, columns: label given), {res.n_runs} simulated runs")
+    say(f"{'':18s}" + "".join(f"{lab[:12]:>13s}" for lab in res.labels))
+    for i, p in enumerate(res.patterns):
+        say(f"{p:18s}" + "".join(f"{v:13d}" for v in res.confusion[i]))
+    say(f"labels right: {100 * res.accuracy:.0f} %")
+    for lam, r in zip(res.persistences, res.detection_rate):
+        say(f"persistence {lam:.2f}: told from random in {100 * r:.0f} % of runs")
+    if res.smallest_detectable_persistence is None:
+        say(f"no persistence in the scan is told from random in {100 * res.power:.0f} % of runs")
+    else:
+        say(f"smallest persistence told from random in >= {100 * res.power:.0f} % of runs: "
+            f"{res.smallest_detectable_persistence:.2f}")
+    if out is not None:
+        with staged_file(out, force, inputs) as part:
+            write_json(part, res.to_dict(), mark=True)
+        say(f"wrote {out}")
+
+
+# ---------------------------------------------------------------------- export
+@app.command()
+def export(
+    ctx: typer.Context,
+    outdir: Annotated[Path, typer.Argument(help="An 'analyze' output folder.")],
+    format: Annotated[str, typer.Option("--format", help="csv | json | hdf5 | svg | pdf | png")] = "csv",
+    rods: Annotated[Optional[str], typer.Option(help="Rod ids, e.g. 3,5,10-12 (default all).")] = None,
+    depth_window: Annotated[Optional[str], typer.Option(help="Depth window 'A:B' in nm, either side may be "
+                                                             "left empty (default all).")] = None,
+    out: Annotated[Optional[Path], typer.Option(help="File to write (default OUTDIR/exports/tracks.<ext>).")] = None,
+    size: Annotated[str, typer.Option(help="Figure width preset: one-column | two-column.")] = "two-column",
+    dpi: Annotated[int, typer.Option(help="Resolution of PNG figures.")] = 300,
+    force: ForceFile = False, quiet: Quiet = False,
+    depth: Annotated[Optional[str], deprecated_option("--depth", "--depth-window")] = None,
+):
+    """Export decoded tracks (tables, JSON, self-describing HDF5) or the tracks figure (SVG, PDF, PNG)."""
+    from ..outputs.export import export_outdir, parse_depth
+
+    _STATE["quiet"] = quiet
+    depth_window = renamed(ctx, "--depth-window", depth_window, "--depth", depth)
+    path = export_outdir(outdir, format, out=out, rods=rods, depth_nm=parse_depth(depth_window), size=size,
+                         dpi=dpi, force=force)
+    say(f"wrote {path}")

@@ -1,0 +1,553 @@
+"""Fitting and running the decoder: :func:`fit_decoder`, :func:`decode`, :class:`DecodeResult`.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+
+from ..exceptions import ConvergenceWarning, DataQualityWarning, InputError
+from ..lattice.rodcolumns import RodColumns
+from ..utils.marks import finite_or_none
+from ..utils.validate import check_seed
+from .chain import runs_table
+from .hmm import run_em, viterbi
+from .model import (
+    _BLOCK_RODS,
+    LOW_COUNT_MIN,
+    LOW_COUNT_SHARE,
+    SCREEN_ITER,
+    SCREEN_SEGMENT,
+    SCREEN_SITES,
+    UNCERTAIN_BELOW,
+    DecoderParams,
+    _compiled_step,
+    _decode_compiled,
+    _emission_tm,
+    _hmm_estep,
+    _hmm_step,
+    _indep_step,
+    _initial_params,
+    _prepare,
+    _Prepared,
+    _rod_data,
+    _screen_data,
+    _subset,
+)
+
+__all__ = ['DecodeResult', 'fit_decoder', 'decode', 'sample_model']
+
+@dataclass(frozen=True)
+class DecodeResult:
+    """Fitted rod model, decoded sequences and model comparison.
+
+    Attributes
+    ----------
+    metals : tuple of str
+        Metal symbols in channel (state) order.
+    transmat : (K, K) ndarray of float
+        Transition matrix.
+    stationary : (K,) ndarray of float
+        Stationary distribution = composition.
+    persistence : float
+        :func:`probeseq.decoding.chain.persistence` of ``transmat`` (``1 - p01 - p10`` for two metals),
+        dimensionless; the statistics' ``persistence`` of the same matrix.
+    eta : float
+        Detection efficiency of a site's own ion.
+    extra_rate : (K,) ndarray of float, counts per site
+        Mean extra counts per site per channel (the identified quantity).
+    crosstalk : float, counts per site
+        Composition-proportional part of the extras (largest value leaving background >= 0).
+    background : (K,) ndarray of float, counts per site
+        Remaining extras per channel.
+    extra_fraction : float
+        Share of the counts that are extras: ``sum(mu) / (eta + sum(mu))``.
+    loglik : float
+        Log-likelihood of the hidden-Markov model (natural log).
+    n_iter : int
+        EM iterations on all rods (0 when parameters were given).
+    converged : bool
+    n_params : int
+        ``K (K - 1) + 1 + K`` free parameters.
+    loglik_indep, n_params_indep : float, int
+        The independent-sites model (nan when not fitted).
+    lr_stat, lr_df, lr_pvalue : float, int, float
+        Likelihood ratio ``2 (loglik - loglik_indep)``, df ``(K - 1)^2``, chi-square p-value.
+    bic, bic_indep : float
+        ``-2 loglik + n_params ln(n_obs)``.
+    n_obs : int
+        Observed (unmasked) sites.
+    viterbi : (n_rods, n_sites) ndarray of int
+        Most probable metal index per site, -1 at masked sites.
+    posteriors : (n_rods, n_sites, K) ndarray of float
+        Posterior metal probabilities, 0 at masked sites.
+    mask : (n_rods, n_sites) ndarray of bool
+    uncertain : (n_rods, n_sites) ndarray of bool
+        Observed sites whose largest posterior is below ``uncertain_below``.
+    uncertain_below : float
+    per_rod_transitions : (n_rods, K, K) ndarray of float
+        Expected transition counts between consecutive observed sites, per rod.
+    per_rod_occupancy : (n_rods, K) ndarray of float
+        Expected number of observed sites in each metal, per rod.
+    runs : dict of str -> (n_runs,) ndarray
+        ``rod, first_site, last_site, length, metal`` (int) and ``mean_posterior`` (float) of
+        every run of equal metal in the Viterbi paths, broken at masked sites.
+    start_logliks : (n_starts,) ndarray of float
+        Log-likelihood of every start after screening (on the screening subset).
+    loglik_history : (n_evaluated,) ndarray of float
+        Log-likelihood at every EM iteration on all rods.
+    warnings : list of str
+    """
+
+    metals: tuple
+    transmat: np.ndarray
+    stationary: np.ndarray
+    persistence: float
+    eta: float
+    extra_rate: np.ndarray
+    crosstalk: float
+    background: np.ndarray
+    extra_fraction: float
+    loglik: float
+    n_iter: int
+    converged: bool
+    n_params: int
+    loglik_indep: float
+    n_params_indep: int
+    lr_stat: float
+    lr_df: int
+    lr_pvalue: float
+    bic: float
+    bic_indep: float
+    n_obs: int
+    viterbi: np.ndarray
+    posteriors: np.ndarray
+    mask: np.ndarray
+    uncertain: np.ndarray
+    uncertain_below: float
+    per_rod_transitions: np.ndarray
+    per_rod_occupancy: np.ndarray
+    runs: dict
+    start_logliks: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    loglik_history: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    warnings: list = field(default_factory=list)
+
+    @property
+    def params(self) -> DecoderParams:
+        """The parameters as a :class:`DecoderParams` (to decode other columns with them)."""
+        return DecoderParams(transmat=self.transmat, eta=self.eta, extra_rate=self.extra_rate)
+
+    def to_dict(self) -> dict:
+        """JSON-serialisable summary (no per-site arrays; NaN and infinities become None).
+
+        ``mean_decoded_run_length_sites`` is the mean length, in sites, of the runs on the Viterbi
+        paths (runs cut by a rod end or the mask included, so it is shorter than the fitted chain's
+        ``1 / (1 - A_kk)``, which the statistics report as ``mean_run_length_sites``).
+        """
+        num = finite_or_none
+        obs = self.mask
+        lengths = self.runs["length"]
+        metal = self.runs["metal"]
+        mean_run = {
+            m: (num(lengths[metal == i].mean()) if np.any(metal == i) else None)
+            for i, m in enumerate(self.metals)
+        }
+        return {
+            "metals": list(self.metals),
+            "model": "tied-emission hidden Markov model (see probeseq.decoding)",
+            "transmat": self.transmat.tolist(),
+            "stationary": self.stationary.tolist(),
+            "persistence": num(self.persistence),
+            "eta": num(self.eta),
+            "extra_rate_per_site": self.extra_rate.tolist(),
+            "crosstalk_per_site": num(self.crosstalk),
+            "background_per_site": self.background.tolist(),
+            "extra_fraction": num(self.extra_fraction),
+            "loglik": num(self.loglik),
+            "n_iter": int(self.n_iter),
+            "converged": bool(self.converged),
+            "n_params": int(self.n_params),
+            "loglik_indep": num(self.loglik_indep),
+            "n_params_indep": int(self.n_params_indep),
+            "lr_stat": num(self.lr_stat),
+            "lr_df": int(self.lr_df),
+            "lr_pvalue": num(self.lr_pvalue),
+            "bic": num(self.bic),
+            "bic_indep": num(self.bic_indep),
+            "n_rods": int(obs.shape[0]),
+            "n_sites": int(obs.shape[1]),
+            "n_obs": int(self.n_obs),
+            "uncertain_below": num(self.uncertain_below),
+            "n_uncertain": int(self.uncertain.sum()),
+            "fraction_uncertain": num(self.uncertain.sum() / max(self.n_obs, 1)),
+            "n_runs": int(lengths.size),
+            "mean_decoded_run_length_sites": mean_run,
+            "start_logliks": [num(v) for v in self.start_logliks],
+            "warnings": list(self.warnings),
+        }
+
+
+def _check_columns(columns) -> list:
+    if not isinstance(columns, RodColumns):
+        raise InputError(f"columns must be a probeseq.lattice.rodcolumns.RodColumns, got {type(columns).__name__}")
+    c, m = columns.counts, columns.mask
+    if c.shape[2] < 2:
+        raise InputError(f"columns.counts: decoding needs at least two metal channels, got {c.shape[2]}")
+    if not m.any():
+        raise InputError(f"columns.mask: all {m.size} sites are masked; nothing to decode")
+    if not (np.isfinite(c).all() and c.min() >= 0):
+        cm = c[m]
+        if not np.all(np.isfinite(cm)):
+            raise InputError("columns.counts: found non-finite values at unmasked sites")
+        if np.any(cm < 0):
+            raise InputError("columns.counts: found negative counts at unmasked sites")
+        c = np.where(m[:, :, None], c, 0.0)
+    per_metal = np.zeros(c.shape[2])
+    for b0 in range(0, c.shape[0], _BLOCK_RODS):  # blocks of rods: no count-sized temporaries
+        mb = m[b0:b0 + _BLOCK_RODS].reshape(-1)
+        per_metal += mb.astype(float) @ c[b0:b0 + _BLOCK_RODS].reshape(-1, c.shape[2])
+    have = [columns.metals[i] for i in np.flatnonzero(per_metal > 0)]
+    if len(have) < 2:
+        raise InputError(
+            f"columns.counts: need counts in at least two metal channels, found counts only in {have}"
+        )
+    notes = []
+    total = per_metal.sum()
+    for i, name in enumerate(columns.metals):
+        share = per_metal[i] / total
+        if per_metal[i] < LOW_COUNT_MIN or share < LOW_COUNT_SHARE:
+            msg = (
+                f"metal {name} has almost no counts ({per_metal[i]:.1f}, {100 * share:.2f} % of metal counts;"
+                f" expected >= {LOW_COUNT_MIN:g} and >= {100 * LOW_COUNT_SHARE:g} %): the counts cannot"
+                f" support it as a state; its transition row and composition are poorly determined"
+            )
+            notes.append(msg)
+    return notes
+
+
+#: most EM starts and iterations a fit accepts (more gains nothing and only makes a run hang)
+MAX_STARTS = 1_000
+
+
+MAX_ITER = 100_000
+
+
+def _check_options(n_starts, max_iter, tol, uncertain_below):
+    if not isinstance(n_starts, (int, np.integer)) or isinstance(n_starts, bool) or not 1 <= n_starts <= MAX_STARTS:
+        raise InputError(f"n_starts (--n-starts) must be an integer in [1, {MAX_STARTS}], got {n_starts!r}")
+    if not isinstance(max_iter, (int, np.integer)) or isinstance(max_iter, bool) or not 1 <= max_iter <= MAX_ITER:
+        raise InputError(f"max_iter must be an integer in [1, {MAX_ITER}], got {max_iter!r}")
+    if not (isinstance(tol, (int, float)) and math.isfinite(tol) and tol > 0):
+        raise InputError(f"tol must be a positive number (log-likelihood per site), got {tol!r}")
+    _check_uncertain(uncertain_below)
+
+
+ENGINES = ("compiled", "numpy")
+
+
+def _check_engine(engine):
+    if engine not in ENGINES:
+        raise InputError(f"engine must be one of {', '.join(ENGINES)}, got {engine!r}")
+
+
+def _check_uncertain(uncertain_below):
+    if not (isinstance(uncertain_below, (int, float)) and 0 < uncertain_below <= 1):
+        raise InputError(f"uncertain_below must be a probability in (0, 1], got {uncertain_below!r}")
+
+
+def _decode_prepared(columns: RodColumns, prep: _Prepared, params: DecoderParams, uncertain_below: float):
+    """Posteriors, Viterbi, per-rod statistics and runs for given parameters."""
+    n_rods, n_sites, k = columns.counts.shape
+    loglik, fb, _ = _hmm_estep(prep, params, final=True)
+    log_emis, _ = _emission_tm(prep, params)
+    np.log(log_emis, out=log_emis)
+    _, path_al = viterbi(log_emis, params.transmat, params.stationary, lengths=prep.span, time_major=True)
+    del log_emis
+
+    mask = columns.mask
+    length = prep.x.shape[0]
+    if len(prep.rods) == n_rods and not prep.first.any() and length == n_sites:
+        post = fb.posteriors  # (R, T, K) view of the time-major array
+        path = path_al
+    else:
+        t = np.arange(length)
+        inside = t[None, :] < prep.span[:, None]
+        rod_idx = np.broadcast_to(prep.rods[:, None], inside.shape)[inside]
+        site_idx = (prep.first[:, None] + t[None, :])[inside]
+        post = np.zeros((n_rods, n_sites, k))
+        post[rod_idx, site_idx] = fb.posteriors[inside]
+        path = np.full((n_rods, n_sites), -1, dtype=np.int64)
+        path[rod_idx, site_idx] = path_al[inside]
+    if not mask.all():
+        post[~mask] = 0.0
+        path[~mask] = -1
+    per_rod_xi = np.zeros((n_rods, k, k))
+    per_rod_xi[prep.rods] = fb.xi
+    occupancy = np.einsum("rtk->rk", post)
+    best = post[:, :, 0].copy()
+    for i in range(1, k):
+        np.maximum(best, post[:, :, i], out=best)
+    uncertain = mask & (best < uncertain_below)
+    runs = runs_table(path, mask, post)
+    return loglik, path, post, uncertain, per_rod_xi, occupancy, runs
+
+
+def _n_params(k: int) -> tuple[int, int]:
+    return k * (k - 1) + 1 + k, (k - 1) + 1 + k
+
+
+def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n_iter, converged,
+                  loglik_indep, start_logliks, history, notes) -> DecodeResult:
+    path, post, uncertain, per_rod_xi, occupancy, runs = decoded
+    k = params.n_metals
+    n_par, n_par_ind = _n_params(k)
+    df = (k - 1) ** 2
+    log_n = math.log(max(n_obs, 1))
+    if np.isfinite(loglik_indep):
+        lr = 2.0 * (loglik - loglik_indep)
+        if lr < -1e-6 * max(1.0, abs(loglik)):
+            notes.append(
+                f"the independent-sites fit has a higher log-likelihood than the Markov fit by {-lr / 2:.3g};"
+                " the Markov fit may sit in a local optimum (try more starts)"
+            )
+        lr = max(lr, 0.0)
+        pval = float(stats.chi2.sf(lr, df))
+        bic_ind = -2.0 * loglik_indep + n_par_ind * log_n
+    else:
+        lr, pval, bic_ind = float("nan"), float("nan"), float("nan")
+    mu = params.extra_rate
+    return DecodeResult(
+        metals=tuple(columns.metals),
+        transmat=params.transmat.copy(),
+        stationary=params.stationary,
+        persistence=params.persistence,
+        eta=params.eta,
+        extra_rate=mu.copy(),
+        crosstalk=params.crosstalk,
+        background=params.background,
+        extra_fraction=float(mu.sum() / (params.eta + mu.sum())),
+        loglik=float(loglik),
+        n_iter=int(n_iter),
+        converged=bool(converged),
+        n_params=n_par,
+        loglik_indep=float(loglik_indep),
+        n_params_indep=n_par_ind,
+        lr_stat=float(lr),
+        lr_df=df,
+        lr_pvalue=pval,
+        bic=float(-2.0 * loglik + n_par * log_n),
+        bic_indep=float(bic_ind),
+        n_obs=int(n_obs),
+        viterbi=path,
+        posteriors=post,
+        mask=columns.mask.copy(),
+        uncertain=uncertain,
+        uncertain_below=float(uncertain_below),
+        per_rod_transitions=per_rod_xi,
+        per_rod_occupancy=occupancy,
+        runs=runs,
+        start_logliks=np.asarray(start_logliks, dtype=float),
+        loglik_history=np.asarray(history, dtype=float),
+        warnings=list(notes),
+    )
+
+
+def decode(columns: RodColumns, params: DecoderParams, uncertain_below: float = UNCERTAIN_BELOW,
+           engine: str = "compiled") -> DecodeResult:
+    """Decode every rod with given (fixed) parameters; no fitting.
+
+    Parameters
+    ----------
+    columns : RodColumns
+        Counts per rod, site and metal channel.
+    params : DecoderParams
+        Model parameters, e.g. the true ones of a simulation or a fit to another run.
+    uncertain_below : float
+        Sites whose largest posterior is below this level are flagged uncertain.
+    engine : {"compiled", "numpy"}
+        See :func:`fit_decoder`.
+
+    Returns
+    -------
+    DecodeResult
+        With ``n_iter = 0`` and the independent-sites fields set to nan.
+    """
+    notes = _check_columns(columns)
+    _check_uncertain(uncertain_below)
+    _check_engine(engine)
+    if not isinstance(params, DecoderParams):
+        raise InputError(f"params must be a DecoderParams, got {type(params).__name__}")
+    if params.n_metals != columns.n_metals:
+        raise InputError(f"params describe {params.n_metals} metals, columns have {columns.n_metals}")
+    for msg in notes:
+        warnings.warn(msg, DataQualityWarning, stacklevel=2)
+    if engine == "compiled":
+        prep = _rod_data(columns.counts, columns.mask)
+        loglik, *decoded = _decode_compiled(columns, prep, params, uncertain_below)
+    else:
+        prep = _prepare(columns.counts, columns.mask)
+        loglik, *decoded = _decode_prepared(columns, prep, params, uncertain_below)
+    return _build_result(
+        columns, params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below, n_iter=0,
+        converged=True, loglik_indep=float("nan"), start_logliks=[], history=[loglik], notes=notes,
+    )
+
+
+def _note_unconverged(trace, what: str, outcome: str, max_iter: int, tol: float, notes: list):
+    """Warn (to the caller of :func:`fit_decoder`) and note that an EM fit stopped unconverged."""
+    if trace.converged:
+        return
+    msg = (f"{what} did not converge in max_iter={max_iter} iterations: last change in"
+           f" log-likelihood {trace.last_change:.4g} (tolerance {tol:.4g}); {outcome}")
+    notes.append(msg)
+    warnings.warn(msg, ConvergenceWarning, stacklevel=3)
+
+
+def fit_decoder(
+    columns: RodColumns,
+    n_starts: int = 4,
+    max_iter: int = 200,
+    tol: float = 1e-6,
+    random_state=None,
+    uncertain_below: float = UNCERTAIN_BELOW,
+    engine: str = "compiled",
+) -> DecodeResult:
+    """Fit the rod model to all rods by EM, then decode every rod.
+
+    Parameters
+    ----------
+    columns : RodColumns
+        Counts per rod, site and metal channel, with the mask of used sites.
+    n_starts : int
+        Number of EM starts (the first from moment estimates, the others random); each runs
+        ``SCREEN_ITER`` iterations on a subset of at most ``SCREEN_SITES`` observed sites and
+        the best continues on all rods.
+    max_iter : int
+        Iteration limit of the EM on all rods (and of each independent-sites fit).
+    tol : float, log-likelihood per observed site
+        Convergence when the log-likelihood changes by less than ``tol * n_obs``.
+    random_state : None, int or numpy.random.Generator
+        Seed of the random starts and of the screening subset.
+    uncertain_below : float
+        Sites whose largest posterior is below this level are flagged uncertain.
+    engine : {"compiled", "numpy"}
+        ``"compiled"`` (default) runs the recursions rod by rod in compiled code on all cores
+        (:mod:`probeseq.decoding.rodchain`), with memory of a few rods' length beyond the counts and the
+        results, and gives float32 posteriors and int8 paths; ``"numpy"`` runs the batched
+        numpy recursions of :mod:`probeseq.decoding.hmm` on all rods at once (several float64 arrays of
+        the count array's size; float64 posteriors, int64 paths). Both fit the same model and
+        agree to rounding.
+
+    Returns
+    -------
+    DecodeResult
+
+    Raises
+    ------
+    InputError
+        Fewer than two metals with counts, all sites masked, negative or non-finite counts,
+        bad options.
+
+    Warns
+    -----
+    DataQualityWarning
+        A metal has almost no counts.
+    ConvergenceWarning
+        A fit reached ``max_iter``; the message gives the last change in log-likelihood and the
+        best fit found is still returned.
+    """
+    notes = _check_columns(columns)
+    _check_options(n_starts, max_iter, tol, uncertain_below)
+    _check_engine(engine)
+    check_seed(random_state)
+    for msg in notes:
+        warnings.warn(msg, DataQualityWarning, stacklevel=2)
+    rng = np.random.default_rng(random_state)
+    k = columns.n_metals
+    compiled = engine == "compiled"
+    if compiled:
+        prep = _rod_data(columns.counts, columns.mask)
+        screen = _screen_data(prep, SCREEN_SITES, SCREEN_SEGMENT, rng)
+        make_step = _compiled_step
+    else:
+        prep = _prepare(columns.counts, columns.mask)
+        screen = _subset(prep, columns.counts, columns.mask, SCREEN_SITES, SCREEN_SEGMENT, rng)
+        make_step = _hmm_step
+    tol_abs = tol * prep.n_obs
+
+    # screening of the starts
+    screen_step = make_step(screen)
+    starts = []
+    for i in range(n_starts):
+        p0 = _initial_params(screen, rng, k, random=i > 0)
+        tr = run_em(screen_step, p0, max_iter=min(SCREEN_ITER, max_iter), tol=tol * screen.n_obs)
+        starts.append(tr)
+    start_ll = [tr.loglik for tr in starts]
+    best = starts[int(np.argmax(start_ll))]
+
+    trace = run_em(make_step(prep), best.params, max_iter=max_iter, tol=tol_abs)
+    params = trace.params
+    _note_unconverged(trace, "hidden-Markov fit", "returning the best fit", max_iter, tol_abs, notes)
+
+    # independent-sites model, from the Markov fit and from the moment start
+    ind_step = _indep_step(prep)
+    p_mom = _initial_params(prep, rng, k, random=False)
+    ind_traces = [
+        run_em(ind_step, (params.stationary, params.eta, params.extra_rate), max_iter=max_iter, tol=tol_abs),
+        run_em(ind_step, (p_mom.stationary, p_mom.eta, p_mom.extra_rate), max_iter=max_iter, tol=tol_abs),
+    ]
+    ind = max(ind_traces, key=lambda tr: tr.loglik)
+    _note_unconverged(ind, "independent-sites fit", "using the best fit", max_iter, tol_abs, notes)
+
+    if not columns.resolvable:
+        notes.append(
+            "columns report single rods as not resolvable: per-rod sequences mix neighbouring rods;"
+            " see probeseq.decoding.groups.analyze_groups"
+        )
+    decode_fn = _decode_compiled if compiled else _decode_prepared
+    loglik, *decoded = decode_fn(columns, prep, params, uncertain_below)
+    return _build_result(
+        columns, params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below,
+        n_iter=trace.n_iter, converged=trace.converged, loglik_indep=ind.loglik,
+        start_logliks=start_ll, history=trace.history, notes=notes,
+    )
+
+
+def sample_model(params: DecoderParams, n_rods: int, n_sites: int, random_state=None):
+    """Draw rods from the model itself (for parametric bootstrap and checks).
+
+    Parameters
+    ----------
+    params : DecoderParams
+    n_rods, n_sites : int
+    random_state : None, int or numpy.random.Generator
+
+    Returns
+    -------
+    counts : (n_rods, n_sites, K) ndarray of float
+        Own ion (probability ``eta``) plus Poisson(``extra_rate``) extras per channel.
+    states : (n_rods, n_sites) ndarray of int
+        The metal of every site; the chain starts stationary.
+    """
+    if n_rods < 1 or n_sites < 1:
+        raise InputError(f"n_rods and n_sites must be >= 1, got {n_rods}, {n_sites}")
+    rng = np.random.default_rng(random_state)
+    k = params.n_metals
+    cum = np.cumsum(params.transmat, axis=1)
+    cum[:, -1] = 1.0
+    states = np.empty((n_rods, n_sites), dtype=np.int64)
+    f_cum = np.cumsum(params.stationary)
+    f_cum[-1] = 1.0
+    states[:, 0] = np.searchsorted(f_cum, rng.random(n_rods), side="right")
+    u = rng.random((n_rods, n_sites))
+    for t in range(1, n_sites):
+        states[:, t] = (u[:, t, None] >= cum[states[:, t - 1]]).sum(axis=1)
+    counts = rng.poisson(params.extra_rate, size=(n_rods, n_sites, k)).astype(float)
+    det = rng.random((n_rods, n_sites)) < params.eta
+    r, t = np.nonzero(det)
+    counts[r, t, states[r, t]] += 1.0
+    return counts, states

@@ -1,0 +1,344 @@
+"""The whole analysis, stage by stage: ranging -> columns -> decoding -> statistics -> classification.
+
+:func:`analyze` runs the stages in order on an ion list and returns an :class:`AnalysisResult`;
+:func:`write_analysis` writes its output folder (``results.json``, ``tracks.csv``, ``runs.csv`` and
+the intermediate files). Each stage is a pure library call; this module only joins them, times
+them and reports progress through an optional callback.
+
+The stages are public so the stage commands run exactly what ``analyze`` runs:
+:func:`range_file` (ranging on the run's sample), :func:`count_file` / :func:`count_ions`
+(ranging, registration and the fused counting pass, giving a :class:`CountResult`) and
+:func:`decode_stage` (the rod model, and groups of rods when single rods are not resolvable).
+"""
+
+from __future__ import annotations
+
+import sys
+import threading
+import time
+import warnings
+from dataclasses import replace
+from pathlib import Path
+from typing import Callable
+
+from .. import runtime
+from .._version import __version__
+from ..exceptions import DataQualityWarning
+from ..io.ions import IonList
+from ..lattice.model import Lattice
+from ..lattice.rodcolumns import RodColumns
+from ..outputs.results import RUNS_COLUMNS, RUNS_FORMATS, _write_replicates, _write_table, save_decoded, write_tracks
+from .options import AnalysisOptions, AnalysisResult, Progress, _check_ions, _Clock
+from .stages import (
+    PASS_CHUNK,
+    SAMPLE_IONS,
+    STREAM_ABOVE_IONS,
+    _check_metals,
+    _check_pass_sizes,
+    _count_ions,
+    _count_stream,
+    _decode_stage,
+    _whole_ions,
+    start_up,
+)
+
+__all__ = ['analyze', 'analyze_file', 'write_analysis', 'write_density_figure']
+
+def analyze(ions: IonList, metals, lattice: Lattice, *, ranges=None, options: AnalysisOptions | None = None,
+            progress: Progress = None, provenance: dict | None = None) -> AnalysisResult:
+    """Run the whole pipeline on an ion list held in memory.
+
+    Parameters
+    ----------
+    ions : IonList
+    metals : sequence of str
+        Metal symbols, in channel order.
+    lattice : Lattice
+    ranges : RangeSet, optional
+        Ranges to use (e.g. an edited file) instead of automatic ranging.
+    options : AnalysisOptions, optional
+    progress : callable(stage, message), optional
+        Called as each stage starts.
+    provenance : dict, optional
+        Recorded in the results (command line, input checksum...).
+
+    Returns
+    -------
+    AnalysisResult
+
+    Notes
+    -----
+    The stages are :func:`count_ions` (ranging and registration fitted on a bounded sample of
+    :data:`SAMPLE_IONS` ions taken as :data:`SAMPLE_BLOCKS` contiguous blocks spread evenly over
+    the run, then one fused pass of :mod:`probeseq.lattice.counting` that ranges, draws, assigns and
+    counts every ion), :func:`decode_stage`, then statistics and classification. This is the
+    same procedure as :func:`analyze_file`, so both give the same count array for the same ions.
+
+    See Also
+    --------
+    analyze_file : the same from a file, streamed in chunks.
+    """
+    opts = options or AnalysisOptions()
+    metals = _check_metals(metals)
+    _check_ions(ions)
+    start_up()
+    return _analyze_ions(ions, metals, lattice, opts, ranges, progress, provenance, SAMPLE_IONS)
+
+
+def _analyze_ions(ions, metals, lattice, opts, ranges, progress, provenance, sample_ions) -> AnalysisResult:
+    """:func:`analyze` with checked arguments and a given sample size."""
+
+    def counts_stage(clock):
+        return _count_ions(ions, metals, lattice, opts, ranges, clock, sample_ions)
+
+    return _run(counts_stage, metals, lattice, opts, progress, provenance, ions.meta)
+
+
+def _run(counts_stage, metals, lattice, opts, progress, provenance, meta) -> AnalysisResult:
+    """The stages after the count array, shared by the in-memory and the streamed analysis;
+    ``counts_stage(clock)`` returns the :class:`CountResult`."""
+    from ..statistics.classify import classify
+    from ..statistics.summary import compute_statistics
+
+    clock = _Clock(progress)
+    with warnings.catch_warnings(record=True) as wlist:
+        warnings.simplefilter("always")
+        t_counts = time.perf_counter()
+        counted = counts_stage(clock)
+        clock.timings["to_counts"] = round(time.perf_counter() - t_counts, 4)
+        cols = counted.columns
+        dec, groups = _decode_stage(cols, opts, clock)
+        with clock.stage("statistics", f"statistics with {opts.n_boot} bootstrap resamples over rods"):
+            st = compute_statistics(dec, cols, n_boot=opts.n_boot, random_state=opts.seed)
+        with clock.stage("classification", "classifying the arrangement"):
+            cl = classify(st, dec.lr_pvalue, long_block_sites=opts.long_block_sites, alpha=opts.alpha,
+                          copy_threshold=opts.copy_threshold)
+        caught = [str(w.message).splitlines()[0] for w in wlist]
+    warn = list(dict.fromkeys(caught + list(getattr(dec, "warnings", []))))
+    if not cols.resolvable:
+        warn.insert(0, f"single rods are not resolvable (expected crosstalk {cols.crosstalk:.2f}); "
+                       "per-rod sequences are unreliable, see the groups-of-rods analysis")
+    clock.timings["total"] = round(time.perf_counter() - clock.t0, 4)
+    prov = {"tool": "probeseq", "version": __version__, "python": sys.version.split()[0],
+            "options": opts.to_dict(), "metals": list(metals),
+            "lattice": lattice.to_dict(), "lattice_source": lattice.name, "seed": opts.seed,
+            "input": {"source": meta.source, "sha256": meta.sha256}}
+    prov.update(provenance or {})
+    return AnalysisResult(metals=metals, lattice=lattice, options=opts, ions_summary=counted.ions_summary,
+                          ranging=counted.ranging, n_metal_ions=counted.n_metal_ions, columns=cols, decoded=dec,
+                          groups=groups, statistics=st, classification=cl, timings_s=clock.timings,
+                          warnings=tuple(warn), provenance=prov, figure_ions=counted.figure_ions)
+
+
+def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: AnalysisOptions | None = None,
+                 progress: Progress = None, provenance: dict | None = None, length_unit=None,
+                 position_dataset=None, mass_dataset=None, strict: bool = False,
+                 stream_above: int = STREAM_ABOVE_IONS, chunk_size: int = PASS_CHUNK,
+                 sample_ions: int = SAMPLE_IONS) -> AnalysisResult:
+    """Run the whole pipeline on an ion file; HDF5 files are streamed with bounded memory.
+
+    The stages are those of the library: the count stage :func:`count_file` (ranging,
+    registration and the fused counting pass), :func:`decode_stage`, then statistics and
+    classification. Text files (and HDF5 files of at most ``stream_above`` ions, 0 by default) are
+    read whole and analysed as by :func:`analyze` (with a sample of at most ``sample_ions`` ions,
+    taken by the same rule as from a streamed file). An HDF5 file is read in two steps, so peak
+    memory is the count array plus a sample and two chunks:
+
+    1. a sample of at most ``sample_ions`` ions, read as :data:`SAMPLE_BLOCKS` contiguous blocks
+       spread evenly over the file (each a thin depth slice of the whole cross-section), on which
+       the spectrum is ranged (:data:`RANGING_IONS` of them) and the lattice registered;
+    2. one pass over the file in chunks of at most ``chunk_size`` ions through the fused kernel of
+       :class:`probeseq.lattice.counting.CountPass` (validity, range lookup, metal draw, rod and site,
+       count) on two threads. Plain layouts are read as zero-copy views of the page cache
+       (:meth:`probeseq.io.readers.IonSource.mapped`), others through HDF5 with the next chunk read while
+       the kernel runs.
+
+    With the default ``sample_ions`` the result equals ``analyze(read_ions(path))`` (the same
+    sample, fits and draws) when no row is dropped, whatever ``chunk_size``.
+
+    The file's SHA-256 (provenance) is computed in a lowest-priority thread started once the
+    count array is finished, which runs alongside the later stages. ``timings_s.read_to_counts``
+    is the wall time from the first read to the finished count array; the checksum is not needed
+    for the counts and is waited for at the end (``timings_s.checksum_wait``).
+    ``timings_s.startup`` is the library start-up before the clock (imports, numba's runtime).
+    """
+    from ..io.formats import ion_file_kind
+
+    t_start = start_up()
+    opts = options or AnalysisOptions()
+    metals = _check_metals(metals)
+    kind = ion_file_kind(path)
+    _check_pass_sizes(chunk_size, sample_ions)
+    t0 = time.perf_counter()
+    ions = _whole_ions(path, kind, stream_above, progress, length_unit, position_dataset, mass_dataset, strict)
+    if ions is not None:
+        t_read = time.perf_counter() - t0
+        res = _analyze_ions(ions, metals, lattice, opts, ranges, progress, provenance, sample_ions)
+        res.timings_s["startup"] = round(t_start, 4)
+        res.timings_s["read"] = round(t_read, 4)
+        res.timings_s["read_to_counts"] = round(t_read + res.timings_s["to_counts"], 4)
+        res.timings_s["total"] = round(time.perf_counter() - t0, 4)
+        return res
+    res, t_wait = _analyze_stream(path, metals, lattice, opts, ranges, progress, provenance, t0,
+                                  dict(length_unit=length_unit, position_dataset=position_dataset,
+                                       mass_dataset=mass_dataset, strict=strict, chunk_size=chunk_size,
+                                       sample_ions=sample_ions))
+    res.timings_s["startup"] = round(t_start, 4)
+    res.timings_s["checksum_wait"] = round(t_wait, 4)
+    res.timings_s["total"] = round(time.perf_counter() - t0, 4)
+    return res
+
+
+def _analyze_stream(path, metals, lattice, opts, ranges, progress, provenance, t0, read_args):
+    """:func:`analyze_file` on a streamed HDF5 file; returns (result, seconds waited for the checksum).
+
+    The checksum thread starts once the count array is finished (``after_pass``): hashing during
+    the pass slowed the pass (both read the file through memory maps of the page cache):
+    read_to_counts at 1e8 ions had a median of 1.90 s against 1.65 s with the checksum after it,
+    in 8 alternating runs each.
+    """
+    from ..io.formats import file_sha256_mapped
+    from ..io.ions import IonMeta
+
+    sha = {}
+    hasher = threading.Thread(target=runtime.background_checksum, args=(file_sha256_mapped, path, sha), daemon=True,
+                              name="probeseq-sha256")
+
+    def counts_stage(clock):
+        def after_pass():
+            clock.timings["read_to_counts"] = round(time.perf_counter() - t0, 4)
+            hasher.start()
+
+        return _count_stream(path, metals, lattice, opts, ranges, clock, after_pass=after_pass, **read_args)
+
+    meta = IonMeta(str(path), "", read_args["length_unit"] or "nm")
+    try:
+        res = _run(counts_stage, metals, lattice, opts, progress, provenance, meta)
+    finally:
+        t_wait = time.perf_counter()
+        if hasher.ident is not None:
+            hasher.join()
+        t_wait = time.perf_counter() - t_wait
+    if isinstance(sha.get("hex"), BaseException):
+        raise sha["hex"]
+    res.provenance["input"] = {"source": str(path), "sha256": sha["hex"]}
+    return replace(res, ions_summary={**res.ions_summary, "sha256": sha["hex"]}), t_wait
+
+
+def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> dict:
+    """Save the figures of an analysis in ``folder`` (vector and PNG) and return them by name.
+
+    Files: ``tracks.svg/.pdf/.png`` (rods nearest the centre), ``spectrum.png/.svg``,
+    ``density.png``, ``run_lengths.svg/.png``, ``rod_to_rod.svg/.png``, ``groups.svg/.png`` (when
+    rods are not resolvable). A figure that cannot be drawn is skipped with a warning.
+    """
+    from ..outputs.figures import plot_group_variance, plot_rod_to_rod, plot_run_lengths, save_figure
+    from ..outputs.tracks import plot_tracks
+
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    figs = {}
+
+    def attempt(name, make, exts):
+        try:
+            fig = make()
+        except Exception as e:  # a figure must never cost the results
+            warnings.warn(f"figure '{name}' not drawn: {e}", DataQualityWarning, stacklevel=2)
+            figs[name] = None
+            return
+        if fig is None:
+            return
+        for ext in exts:
+            save_figure(fig, folder / f"{name}.{ext}")
+        figs[name] = fig
+
+    if progress:
+        progress("figures", "drawing the figures (tracks, run lengths, rod-to-rod, spectrum, density)")
+    attempt("tracks", lambda: plot_tracks(result.columns, result.decoded, size="two-column"), ("svg", "pdf", "png"))
+    attempt("run_lengths", lambda: plot_run_lengths(result.statistics), ("svg", "png"))
+    if result.statistics.rod_to_rod is not None:
+        attempt("rod_to_rod", lambda: plot_rod_to_rod(result.statistics,
+                                                     copy_threshold=result.options.copy_threshold), ("svg", "png"))
+    if result.groups is not None:
+        attempt("groups", lambda: plot_group_variance(result.groups), ("svg", "png"))
+
+    def spectrum():
+        from ..ranging.plot import plot_ranging
+
+        return plot_ranging(result.ranging, folder / "spectrum")
+
+    attempt("spectrum", spectrum, ())
+    if result.figure_ions is not None:
+        attempt("density", lambda: write_density_figure(result.figure_ions, result.ranging, result.columns,
+                                                        folder / "density.png"), ())
+    return figs
+
+
+def write_density_figure(ions: IonList, ranging, columns: RodColumns, path):
+    """Draw the metal-ion density across the rods with the registered lattice (``density.png``).
+
+    Parameters
+    ----------
+    ions : IonList
+        The ions to draw (:attr:`CountResult.figure_ions`); those in ranges holding a metal of
+        ``columns.metals`` are drawn, positions in nm.
+    ranging : RangingResult
+    columns : RodColumns
+    path : str or Path
+        PNG file to write.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from ..lattice.plot import plot_rod_density
+    from ..ranging.channels import assign_channels
+
+    sel = assign_channels(ions.mass_to_charge, ranging.ranges, columns.metals).weights().sum(1) > 0
+    return plot_rod_density(ions.x[sel], ions.y[sel], ions.z[sel], columns, path)
+
+
+def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: Callable | None = None,
+                   report: bool = True, progress: Progress = None, inputs=()) -> Path:
+    """Write an analysis output folder (staged: complete or not at all).
+
+    Files: ``results.json``, ``tracks.csv``, ``runs.csv``, ``ranges.toml``, ``columns.h5``,
+    ``decoded.h5``, ``bootstrap.h5``, ``probeseq-manifest.json``; with ``report``, ``figures/`` and
+    ``report.html``. ``extra`` (called with the staging folder) may add more. ``inputs`` (paths)
+    are the analysis's inputs, which the output folder may neither be nor contain; an existing
+    folder is replaced only with ``force`` and only when it holds nothing but probeseq's outputs
+    (see :mod:`probeseq.outputs`).
+    """
+    from ..outputs.folder import staged_outdir, write_json
+
+    command = result.provenance.get("command_line")
+    with staged_outdir(outdir, force=force, inputs=inputs, command=command) as st:
+        write_json(st / "results.json", result.to_dict())
+        tracks = runtime.Background(write_tracks, st / "tracks.csv", result.columns, result.decoded)
+        try:
+            _write_rest(result, st, report, progress, extra)
+            tracks.join("tracks.csv")
+        finally:
+            tracks.kill()
+    return Path(outdir)
+
+
+def _write_rest(result, st, report, progress, extra):
+    """Everything of an output folder but tracks.csv (written meanwhile in a child process)."""
+    from ..lattice.rodcolumns import save_columns
+
+    _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS, RUNS_FORMATS)
+    result.ranging.ranges.to_toml(st / "ranges.toml")
+    save_columns(result.columns, st / "columns.h5")
+    _write_replicates(result.statistics, st / "bootstrap.h5")
+    save_decoded(result.decoded, st / "decoded.h5")
+    if report:
+        from ..outputs.report import write_report
+
+        figs = write_figures(result, st / "figures", progress)
+        if progress:
+            progress("report", "writing report.html")
+        write_report(result, st / "report.html", ions=result.figure_ions,
+                     figures={k: v for k, v in figs.items() if v is not None and k != "density"})
+    if extra is not None:
+        extra(st)

@@ -1,0 +1,231 @@
+"""The options of an analysis and its typed result (the content of results.json).
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Callable, Optional
+
+import numpy as np
+
+from ..exceptions import InputError
+from ..io.ions import IonList
+from ..lattice.model import Lattice
+from ..lattice.rodcolumns import RodColumns
+from ..outputs.results import RESULTS_SCHEMA_VERSION, runs_table, tracks_table
+
+if TYPE_CHECKING:  # type names only: these modules are heavy to import
+    from ..decoding.decode import DecodeResult
+    from ..decoding.groups import GroupResult
+    from ..ranging.auto import RangingResult
+    from ..statistics.classify import Classification
+    from ..statistics.summary import RunStatistics
+
+__all__ = ['AnalysisOptions', 'AnalysisResult']
+
+#: largest accepted --n-boot and --n-starts (each resample or start costs a pass over every rod)
+MAX_BOOT = 100_000
+
+
+Progress = Optional[Callable[[str, str], None]]
+
+
+@dataclass(frozen=True)
+class AnalysisOptions:
+    """Every setting of an analysis (recorded in the provenance).
+
+    Attributes
+    ----------
+    seed : int
+        Seed of every random choice (EM starts, bootstraps, nulls), in [0, 2**63); the same seed
+        gives the same results.
+    n_starts : int
+        EM starts of the decoder, 1 to :data:`probeseq.decoding.decode.MAX_STARTS`.
+    n_boot : int
+        Bootstrap resamples over rods, 20 to :data:`MAX_BOOT`.
+    long_block_sites : float, sites
+        Mean run length of the least abundant metal at or above which runs are long blocks (> 1).
+    alpha : float
+        Significance level of the tests, in (0, 0.5].
+    copy_threshold : float
+        Neighbouring-rod correlation at or above which (when significant) rods count as copied,
+        in (0, 1).
+    rotation_deg, scale, offset_nm
+        Registration overrides (None = fit): degrees, reconstruction / crystal length (in
+        [0.2, 5], see :data:`probeseq.utils.validate.SCALE_RANGE`), nm.
+    uncertain_below : float
+        Sites whose best posterior is below this are flagged uncertain.
+    """
+
+    seed: int = 0
+    n_starts: int = 4
+    n_boot: int = 200
+    long_block_sites: float = 8.0
+    alpha: float = 0.01
+    copy_threshold: float = 0.3
+    rotation_deg: Optional[float] = None
+    scale: Optional[float] = None
+    offset_nm: Optional[tuple] = None
+    uncertain_below: float = 0.8
+    species: Optional[tuple] = None
+
+    def __post_init__(self):
+        from ..utils.validate import check_number, check_scale, check_seed
+
+        check_seed(self.seed)
+        if self.seed is not None and not isinstance(self.seed, (int, np.integer)):
+            raise InputError(f"--seed must be an integer from 0 to 2**63 - 1, got {type(self.seed).__name__}")
+        from ..decoding.decode import MAX_STARTS  # here: the decoder's module is heavy to import
+
+        check_number(self.n_starts, "--n-starts", 1, MAX_STARTS, integer=True)
+        check_number(self.n_boot, "--n-boot", 20, MAX_BOOT, integer=True)
+        check_number(self.long_block_sites, "--long-block-sites", 1, lo_open=True)
+        check_number(self.alpha, "--alpha", 0, 0.5, lo_open=True)
+        check_number(self.copy_threshold, "--copy-threshold", 0, 1, lo_open=True, hi_open=True)
+        check_number(self.uncertain_below, "--uncertain-below", 0.5, 1)
+        check_number(self.rotation_deg, "--rotation-deg", -360, 360, allow_none=True)
+        check_scale(self.scale)
+        if self.offset_nm is not None:
+            off = tuple(self.offset_nm) if isinstance(self.offset_nm, (tuple, list, np.ndarray)) else (self.offset_nm,)
+            if len(off) != 2:
+                raise InputError(f"--offset-nm takes two numbers 'x,y' in nm, got {len(off)}")
+            for v in off:
+                check_number(v, "--offset-nm")
+
+    def to_dict(self) -> dict:
+        return {k: (list(v) if isinstance(v, tuple) else v) for k, v in self.__dict__.items()}
+
+
+@dataclass(frozen=True)
+class AnalysisResult:
+    """Everything :func:`analyze` found, stage by stage.
+
+    Attributes
+    ----------
+    metals : tuple of str
+        Metal symbols, in channel order.
+    lattice : Lattice
+    options : AnalysisOptions
+    ions_summary : dict
+        The ``ions`` section of ``results.json`` (rows, extents in nm, mass-to-charge range in Da).
+    ranging : RangingResult
+        The ranged mass spectrum.
+    n_metal_ions : int
+        Ions of the run in a range holding a metal.
+    columns : RodColumns
+        Counts (n_rods, n_sites, n_metals) with their geometry.
+    decoded : DecodeResult
+        Fitted rod model, Viterbi paths (n_rods, n_sites) and posteriors (n_rods, n_sites, n_metals).
+    groups : GroupResult or None
+        The groups-of-rods analysis when single rods are not resolvable, else None.
+    statistics : RunStatistics
+    classification : Classification
+    timings_s : dict of str -> float
+        Wall time of each stage, s.
+    warnings : tuple of str
+    provenance : dict
+        Tool, version, options, inputs and seed (the ``provenance`` section of ``results.json``).
+    figure_ions : IonList or None
+        Ions kept for the figures, if any.
+    """
+
+    metals: tuple
+    lattice: Lattice
+    options: AnalysisOptions
+    ions_summary: dict
+    ranging: RangingResult
+    n_metal_ions: int
+    columns: RodColumns
+    decoded: DecodeResult
+    groups: Optional[GroupResult]
+    statistics: RunStatistics
+    classification: Classification
+    timings_s: dict
+    warnings: tuple
+    provenance: dict = field(default_factory=dict)
+    figure_ions: Optional[IonList] = field(default=None, repr=False, compare=False)
+
+    # ------------------------------------------------------------------ tables
+    def tracks_table(self) -> dict:
+        """One row per decoded (unmasked) site: the columns of ``tracks.csv`` as 1-D arrays."""
+        return tracks_table(self.columns, self.decoded)
+
+    def runs_table(self) -> dict:
+        """Runs of equal metal along each rod's Viterbi path (``runs.csv``)."""
+        return runs_table(self.columns, self.decoded)
+
+    # ------------------------------------------------------------------ results.json
+    def to_dict(self) -> dict:
+        """The ``results.json`` layout (schema version :data:`RESULTS_SCHEMA_VERSION`)."""
+        st = self.statistics.to_dict()
+        cls = self.classification.to_dict()
+        rd = self.ranging.to_dict()
+        rcomp = rd.get("composition", {})
+        # composition: the spectrum's (background-subtracted, overlaps deconvolved, all metal ions);
+        # the rod model's site occupancy is kept beside it (statistics.composition)
+        comp, comp_iv = {}, {}
+        for m in self.metals:
+            c = rcomp.get(m) or {}
+            f, sd = c.get("fraction"), c.get("fraction_err")
+            if f is None:
+                f = st["composition"][m]
+                comp_iv[m] = st["intervals"].get(f"composition.{m}")
+            else:
+                comp_iv[m] = {"estimate": f, "low": f - 1.96 * (sd or 0.0), "high": f + 1.96 * (sd or 0.0)}
+            comp[m] = f
+        col = self.columns
+        dec = self.decoded.to_dict()
+        return {
+            "schema_version": RESULTS_SCHEMA_VERSION,
+            "provenance": self.provenance,
+            "classification": cls,
+            "composition": comp,
+            "composition_interval": comp_iv,
+            "composition_source": "mass spectrum: atomic fractions of metal atoms, background subtracted, "
+                                  "overlaps deconvolved (95 % interval from counting and background errors)",
+            "composition_sites_model": {m: st["composition"][m] for m in self.metals},
+            "statistics": st,
+            "columns": {"n_rods": int(col.n_rods), "n_sites": int(col.n_sites),
+                        "n_sites_used": int(col.mask.sum()), "pitch_nm": col.pitch_nm,
+                        "resolvable": bool(col.resolvable), "crosstalk": float(col.crosstalk),
+                        "n_metal_ions": int(self.n_metal_ions),
+                        "metal_atoms_in_rods": float(col.counts.sum()),
+                        "registration": col.params},
+            "decoding": dec,
+            "groups": None if self.groups is None else self.groups.to_dict(),
+            "ranging": self.ranging.to_dict(),
+            "ions": self.ions_summary,
+            "warnings": list(self.warnings),
+            "timings_s": self.timings_s,
+        }
+
+
+class _Clock:
+    def __init__(self, progress: Progress):
+        self.t0 = time.perf_counter()
+        self.timings = {}
+        self.progress = progress
+
+    def stage(self, name: str, message: str):
+        if self.progress is not None:
+            self.progress(name, message)
+        return _Timed(self, name)
+
+
+class _Timed:
+    def __init__(self, clock, name):
+        self.clock, self.name = clock, name
+
+    def __enter__(self):
+        self.t = time.perf_counter()
+        return self
+
+    def __exit__(self, *exc):
+        self.clock.timings[self.name] = round(time.perf_counter() - self.t, 4)
+        return False
+
+
+def _check_ions(ions):
+    if not isinstance(ions, IonList) or len(ions) == 0:
+        raise InputError("no ions to analyse")

@@ -1,0 +1,156 @@
+"""Figure of the mass spectrum with its ranges.
+
+The spectrum is drawn as counts per bin on a log axis; every range is shaded in the colour of
+its channel (``probeseq.utils.palette``: a metal's colour, or ``OTHER`` for non-metal species) and its
+peak labelled with the ion; peaks no prediction explains are marked ``?``. matplotlib is imported
+here only, and figures are drawn on the Agg canvas (no display needed).
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+import numpy as np
+
+from ..utils.palette import OTHER, metal_colour
+
+__all__ = ['plot_ranging', 'plot_spectrum', 'save_figure', 'mathtext_ion']
+
+def mathtext_ion(formula: str, charge: int) -> str:
+    """Ion label for matplotlib mathtext: ``('C2H2', 1) -> '$\\mathrm{C_{2}H_{2}}^{+}$'``."""
+    body = re.sub(r"(\d+)", r"_{\1}", formula)
+    sup = "+" if charge == 1 else f"{charge}+"
+    return f"$\\mathrm{{{body}}}^{{{sup}}}$"
+
+
+def _range_label(r, min_share=0.05):
+    parts = [(f, z) for (f, z), p in r.species_shares() if p >= min_share] or [(r.formula, r.charge)]
+    return "/".join(mathtext_ion(f, z) for f, z in parts)
+
+
+def plot_spectrum(spectrum, ranges=None, metals=(), *, label_at=None, unmatched_da=(), path=None,
+                  xlim_da=None, max_labels: int = 40, title: str | None = None):
+    """Draw a spectrum with shaded, labelled ranges.
+
+    Parameters
+    ----------
+    spectrum : probeseq.ranging.spectrum.Spectrum
+        Usually uniform bins (:func:`probeseq.ranging.spectrum.histogram`).
+    ranges : probeseq.ranging.ranges.RangeSet, optional
+    metals : sequence of str
+        Metal channel order (sets the colours).
+    label_at : (n_ranges,) array of float, Da, optional
+        Where to put each range's label (default the range's highest bin).
+    unmatched_da : sequence of float, Da
+        Positions of peaks left unranged, marked '?'.
+    path : str or Path, optional
+        Save as ``<stem>.png`` and ``<stem>.svg``.
+    xlim_da : (float, float), optional
+    max_labels : int
+        Label at most this many ranges (those with the most counts).
+    title : str, optional
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+    from matplotlib.patches import Patch
+
+    metals = tuple(metals)
+    fig = Figure(figsize=(12, 4.8), layout="constrained")
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot(1, 1, 1)
+    e, c = spectrum.edges_da, spectrum.counts
+    ax.stairs(c, e, color="black", linewidth=0.6)
+    ax.set_yscale("log")
+    top = max(float(c.max()), 1.0)
+    ax.set_ylim(0.5, top * 8)
+    ax.set_xlim(*(xlim_da if xlim_da is not None else (float(e[0]), float(e[-1]))))
+    width = float(np.median(np.diff(e)))
+    ax.set_xlabel("mass-to-charge (Da)")
+    ax.set_ylabel(f"counts per {width:.3g} Da bin")
+    handles = []
+    if ranges is not None and len(ranges):
+        from .channels import channel_tables
+
+        channel = channel_tables(ranges, metals)[2] if metals else np.full(len(ranges) + 1, 0, dtype=np.int8)
+        cum = np.concatenate([[0], np.cumsum(c)])
+        totals = []
+        for j, r in enumerate(ranges):
+            col = metal_colour(int(channel[j])) if channel[j] < len(metals) else OTHER
+            ax.axvspan(r.low_da, r.high_da, color=col, alpha=0.35, linewidth=0)
+            i0, i1 = np.searchsorted(e, [r.low_da, r.high_da])
+            totals.append(cum[min(i1, c.size)] - cum[min(i0, c.size)])
+        x0, x1 = ax.get_xlim()
+        min_gap = 0.007 * (x1 - x0)  # labels closer than this would overprint: keep the stronger
+        placed = []
+        for j in np.argsort(totals)[::-1]:
+            if len(placed) >= max_labels:
+                break
+            r = ranges[int(j)]
+            i0, i1 = np.searchsorted(e, [r.low_da, r.high_da])
+            i0, i1 = max(i0 - 1, 0), max(min(i1, c.size), i0)
+            seg = c[i0:i1]
+            if label_at is not None and np.isfinite(label_at[j]):
+                x = float(label_at[j])
+            else:
+                x = float(spectrum.centres_da[i0 + int(np.argmax(seg))]) if seg.size else 0.5 * (r.low_da + r.high_da)
+            if not x0 <= x <= x1 or any(abs(x - p) < min_gap for p in placed):
+                continue
+            placed.append(x)
+            y = max(float(seg.max()) if seg.size else 1.0, 1.0) * 1.4
+            ax.text(x, y, _range_label(r), rotation=90, ha="center", va="bottom", fontsize=7, clip_on=True)
+        for k, el in enumerate(metals):
+            handles.append(Patch(color=metal_colour(k), alpha=0.5, label=el))
+        handles.append(Patch(color=OTHER, alpha=0.5, label="other"))
+    if len(unmatched_da):
+        x = np.asarray(unmatched_da, dtype=float)
+        i = np.clip(np.searchsorted(e, x) - 1, 0, c.size - 1)
+        y = np.maximum(c[i], 1) * 1.4
+        ax.plot(x, y, "v", color="black", markersize=4, label="unmatched peak")
+        for xi, yi in zip(x, y):
+            ax.text(xi, yi * 1.3, "?", ha="center", va="bottom", fontsize=8, clip_on=True)
+        handles.append(ax.lines[-1])
+    if handles:
+        ax.legend(handles=handles, loc="upper right", fontsize=8, frameon=False)
+    if title:
+        ax.set_title(title)
+    if path is not None:
+        save_figure(fig, path)
+    return fig
+
+
+def plot_ranging(result, path=None, *, xlim_da=None, max_labels: int = 40, title: str | None = None):
+    """Spectrum figure of an :func:`probeseq.ranging.auto.auto_range` result.
+
+    Parameters
+    ----------
+    result : probeseq.ranging.auto.RangingResult
+    path : str or Path, optional
+        Save as ``<stem>.png`` and ``<stem>.svg``.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    pos = result.peaks.position_da
+    label_at = np.array([pos[p] if p >= 0 else np.nan for p in result.range_peak], dtype=float)
+    return plot_spectrum(result.spectrum, result.ranges, result.metals, label_at=label_at,
+                         unmatched_da=pos[result.unmatched], path=path, xlim_da=xlim_da,
+                         max_labels=max_labels, title=title)
+
+
+def save_figure(fig, path) -> list:
+    """Save ``fig`` as PNG (150 dpi) and SVG next to each other; return the two paths."""
+    p = Path(path)
+    stem = p.with_suffix("") if p.suffix.lower() in (".png", ".svg") else p
+    stem.parent.mkdir(parents=True, exist_ok=True)
+    out = [stem.with_name(stem.name + ".png"), stem.with_name(stem.name + ".svg")]
+    from ..utils.marks import figure_metadata
+
+    fig.savefig(out[0], dpi=150, metadata=figure_metadata(out[0]))
+    fig.savefig(out[1], metadata=figure_metadata(out[1]))
+    return [str(o) for o in out]

@@ -1,0 +1,478 @@
+"""Analysis of one run, and of a batch of runs, into output folders: the library behind ``analyze``.
+
+:func:`analyze_run` analyses one ion file or one run folder (ion file + ``run.toml``) and writes
+its output folder; :func:`analyze_batch` does the same for every run folder of a folder, in
+worker processes, through :func:`analyze_run` itself, so a run of a batch and a single run are
+analysed alike. Options given by the caller take precedence over what ``run.toml`` says.
+
+Examples
+--------
+>>> from probeseq.study.batch import analyze_batch                       # doctest: +SKIP
+>>> from probeseq.pipeline import AnalysisOptions                   # doctest: +SKIP
+>>> outcomes = analyze_batch("runs", "analysis_runs", options=AnalysisOptions(n_boot=100))  # doctest: +SKIP
+>>> [(o.run, o.label if o.ok else o.error) for o in outcomes]       # doctest: +SKIP
+"""
+
+from __future__ import annotations
+
+import os
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Callable, Optional
+
+from ..exceptions import InputError, ProbeseqError
+
+__all__ = ['RunSource', 'RunAnalysis', 'BatchOutcome', 'resolve_run', 'analyze_run', 'analyze_batch', 'run_folders', 'summary_lines', 'DEFAULT_WORKERS']
+
+#: worker processes of a batch unless told otherwise (each run uses up to two threads)
+DEFAULT_WORKERS = 2
+
+
+# ---------------------------------------------------------------------- one run
+@dataclass(frozen=True)
+class RunSource:
+    """Everything an analysis reads, resolved from the caller's options and ``run.toml``.
+
+    Attributes
+    ----------
+    ions : Path
+        The ion file.
+    metals : tuple of str
+    lattice : Lattice
+    ranges : Path or None
+        Range file to use instead of automatic ranging.
+    name : str
+        The run's name (``[sample] name``, else the folder's or file's name); free text.
+    safe_name : str
+        ``name`` made safe as a file-name component.
+    sample : dict
+        ``[sample]`` of ``run.toml`` plus ``detection_efficiency_given`` (empty for an ion file).
+    inputs : tuple of Path
+        Every file or folder read; an output may neither be nor contain one of them.
+    """
+
+    ions: Path
+    metals: tuple
+    lattice: object
+    ranges: Optional[Path]
+    name: str
+    safe_name: str
+    sample: dict = field(default_factory=dict)
+    inputs: tuple = ()
+
+
+def _metal_tuple(metals):
+    """Metal symbols from a sequence or a comma-separated text; None when not given."""
+    if metals is None or (not isinstance(metals, str) and len(metals) == 0):
+        return None
+    items = [m.strip() for m in metals.split(",")] if isinstance(metals, str) else [str(m) for m in metals]
+    if len(items) < 2 or not all(items):
+        raise InputError(f"--metals needs at least two metals, e.g. Co,Zn; got {','.join(items)!r:.80}")
+    return tuple(items)
+
+
+def _lattice_file(spec) -> list:
+    """The lattice file named by a lattice spec, if it is a file (not a preset or a Lattice)."""
+    from ..lattice.model import PRESETS, Lattice
+
+    if spec is None or isinstance(spec, Lattice) or str(spec).lower() in PRESETS:
+        return []
+    return [Path(spec)]
+
+
+def _build_lattice(spec, a, repeat, sites_per_repeat, where: str):
+    """A Lattice from a preset (with its cell) or a file; cell options with a file are an error."""
+    from ..lattice.model import PRESETS, Lattice
+
+    if isinstance(spec, Lattice):
+        return spec
+    if str(spec).lower() not in PRESETS and (a is not None or repeat is not None or sites_per_repeat is not None):
+        raise InputError(f"--a, --repeat and --sites-per-repeat go with a lattice preset, but {where} is the "
+                         f"lattice file '{spec}' (give the cell in that file)")
+    return Lattice.from_spec(spec, a=a, repeat=repeat, sites_per_repeat=3 if sites_per_repeat is None else
+                             sites_per_repeat)
+
+
+def resolve_run(source, *, metals=None, lattice=None, a: float | None = None, repeat: float | None = None,
+                sites_per_repeat: int | None = None, ranges=None, allow_outside: bool = False) -> RunSource:
+    """What one analysis reads: an ion file with the given options, or a run folder completed by them.
+
+    Parameters
+    ----------
+    source : str or Path
+        An ion file, or a run folder holding ``run.toml``.
+    metals : sequence of str, optional
+        Metal symbols; override ``[run] metals``. Required for an ion file.
+    lattice : str, Path or Lattice, optional
+        A preset name, a lattice TOML file or a Lattice; overrides ``[run] lattice``. Required
+        for an ion file.
+    a, repeat : float, optional, nm
+        Cell edge and repeat along the rod of a preset lattice; override the values in
+        ``run.toml`` when the lattice is its preset.
+    sites_per_repeat : int, optional
+        Metal sites per repeat of a preset lattice (default 3, or the value in ``run.toml``).
+    ranges : str or Path, optional
+        Range file; overrides ``[run] ranges``.
+    allow_outside : bool
+        Let ``run.toml`` name files outside the run folder (see :func:`probeseq.study.runinfo.read_run_folder`).
+
+    Returns
+    -------
+    RunSource
+
+    Raises
+    ------
+    InputError
+        A missing or malformed input, or a required option not given.
+    """
+    from .runinfo import read_run_folder, safe_file_name
+
+    src = Path(source)
+    metals = _metal_tuple(metals)
+    inputs = [src]
+    if ranges is not None:
+        inputs.append(Path(ranges))
+    inputs += _lattice_file(lattice)
+    if src.is_dir():
+        desc = read_run_folder(src, allow_outside=allow_outside)
+        inputs += [desc.folder / "run.toml", desc.ions]
+        if desc.ranges is not None:
+            inputs.append(desc.ranges)
+        if lattice is None:
+            inputs += _lattice_file(desc.lattice)
+            largs = dict(desc.lattice_args)
+            for key, value in (("a", a), ("repeat", repeat), ("sites_per_repeat", sites_per_repeat)):
+                if value is not None:
+                    largs[key] = value
+            lat = _build_lattice(desc.lattice, largs.get("a"), largs.get("repeat"), largs.get("sites_per_repeat"),
+                                 f"[run] lattice of {desc.folder / 'run.toml'}")
+        else:
+            lat = _build_lattice(lattice, a, repeat, sites_per_repeat, "--lattice")
+        sample = dict(desc.sample)
+        sample["detection_efficiency_given"] = desc.detection_efficiency
+        return RunSource(ions=desc.ions, metals=metals or desc.metals, lattice=lat,
+                         ranges=Path(ranges) if ranges is not None else desc.ranges, name=desc.name,
+                         safe_name=desc.safe_name, sample=sample, inputs=tuple(inputs))
+    if metals is None:
+        raise InputError("--metals is required (or give a run folder with run.toml)")
+    if lattice is None:
+        raise InputError("--lattice is required (a lattice TOML file or a preset name)")
+    lat = _build_lattice(lattice, a, repeat, sites_per_repeat, "--lattice")
+    return RunSource(ions=src, metals=metals, lattice=lat, ranges=None if ranges is None else Path(ranges),
+                     name=src.stem, safe_name=safe_file_name(src.stem), sample={}, inputs=tuple(inputs))
+
+
+class _RunLog:
+    """Progress callback that keeps every line for ``log.txt`` and passes each on to ``forward``."""
+
+    def __init__(self, forward: Optional[Callable[[str, str], None]] = None):
+        self.t0 = time.perf_counter()
+        self.lines = []
+        self.forward = forward
+
+    def __call__(self, stage: str, message: str):
+        self.lines.append(f"[{time.perf_counter() - self.t0:7.1f} s] {stage}: {message}")
+        if self.forward is not None:
+            self.forward(stage, message)
+
+
+@dataclass(frozen=True)
+class RunAnalysis:
+    """One analysed run.
+
+    Attributes
+    ----------
+    result : AnalysisResult
+    outdir : Path
+        The output folder written.
+    source : RunSource
+        What was read.
+    """
+
+    result: object
+    outdir: Path
+    source: RunSource
+
+
+def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a: float | None = None,
+                repeat: float | None = None, sites_per_repeat: int | None = None, ranges=None,
+                length_unit: str | None = None, position_dataset: str | None = None,
+                mass_dataset: str | None = None, strict: bool = False, allow_outside: bool = False,
+                force: bool = False, progress: Optional[Callable[[str, str], None]] = None,
+                command_line: str | None = None) -> RunAnalysis:
+    """Analyse one ion file or run folder and write its output folder (complete or not at all).
+
+    The output folder is checked before any work (:func:`probeseq.outputs.folder.check_outdir`: it may
+    neither be nor contain an input, and replaces an earlier probeseq output only with
+    ``force``). It holds what :func:`probeseq.pipeline.analysis.write_analysis` writes plus ``log.txt``
+    (the progress lines and the summary of :func:`summary_lines`).
+
+    Parameters
+    ----------
+    source : str or Path
+        An ion file or a run folder (see :func:`resolve_run`).
+    out : str or Path, optional
+        Output folder (default ``analysis_<run name>`` in the working folder).
+    options : AnalysisOptions, optional
+        Settings of the analysis (default :class:`probeseq.pipeline.options.AnalysisOptions`).
+    metals, lattice, a, repeat, sites_per_repeat, ranges, allow_outside
+        See :func:`resolve_run`; they take precedence over ``run.toml``.
+    length_unit : {"nm", "angstrom"}, optional
+        Unit of the positions in the ion file (default: from the file, else nm).
+    position_dataset, mass_dataset : str, optional
+        HDF5 paths of the position (N x 3) and mass-to-charge datasets of other layouts.
+    strict : bool
+        NaN/inf or non-positive mass-to-charge rows are an error instead of being dropped.
+    force : bool
+        Replace an earlier probeseq output folder.
+    progress : callable, optional
+        ``progress(stage, message)`` as each stage starts.
+    command_line : str, optional
+        The command that asked for this analysis (recorded in the provenance and the manifest).
+
+    Returns
+    -------
+    RunAnalysis
+
+    Raises
+    ------
+    ProbeseqError
+        Bad inputs or options (one line), or a failed fit.
+    """
+    from ..outputs.folder import check_outdir
+    from ..pipeline.analysis import analyze_file, write_analysis
+    from ..pipeline.options import AnalysisOptions
+    from ..ranging.ranges import RangeSet
+
+    run = resolve_run(source, metals=metals, lattice=lattice, a=a, repeat=repeat, sites_per_repeat=sites_per_repeat,
+                      ranges=ranges, allow_outside=allow_outside)
+    outdir = Path(out) if out is not None else Path(f"analysis_{run.safe_name}")
+    check_outdir(outdir, force, run.inputs)
+    log = _RunLog(progress)
+    rs = RangeSet.from_toml(run.ranges) if run.ranges is not None else None
+    prov = {"command_line": command_line, "sample": run.sample, "run_name": run.name,
+            "ranges_file": None if run.ranges is None else str(run.ranges)}
+    res = analyze_file(run.ions, run.metals, run.lattice, ranges=rs, options=options or AnalysisOptions(),
+                       progress=log, provenance=prov, length_unit=length_unit, position_dataset=position_dataset,
+                       mass_dataset=mass_dataset, strict=strict)
+
+    def extra(folder):
+        (folder / "log.txt").write_text("\n".join(log.lines + [""] + summary_lines(res)) + "\n", encoding="utf-8")
+
+    log("writing", f"{outdir}")
+    write_analysis(res, outdir, force=force, extra=extra, progress=log, inputs=list(run.inputs))
+    return RunAnalysis(result=res, outdir=outdir, source=run)
+
+
+def summary_lines(res, verbose: bool = False) -> list:
+    """The text summary of an analysis (printed by ``analyze`` and kept in ``log.txt``).
+
+    Parameters
+    ----------
+    res : AnalysisResult
+    verbose : bool
+        Add the classification's reasons, the registration and the decoder's fit.
+
+    Returns
+    -------
+    list of str
+        Lines without line ends; fractions are of metal atoms, run lengths in sites.
+    """
+    c = res.classification
+    st = res.statistics
+    lines = [f"verdict: {c.label} (along rods: {c.along_rod}; rod to rod: {c.rod_to_rod}; "
+             f"confidence {c.confidence:.2f})"]
+    d = res.to_dict()
+    lines.append(f"{'metal':6s} {'fraction':>18s} {'mean run (sites)':>24s} {'x independent':>14s}")
+    for m in res.metals:
+        iv = d["composition_interval"][m] or {}
+        f, flo, fhi = d["composition"][m], iv.get("low", float("nan")), iv.get("high", float("nan"))
+        r, rlo, rhi = st.interval(f"mean_run_length_sites.{m}")
+        ratio = st.estimates.get(f"run_length_ratio.{m}", float("nan"))
+        lines.append(f"{m:6s} {f:8.3f} [{flo:.3f}-{fhi:.3f}] {r:10.2f} [{rlo:.2f}-{rhi:.2f}] {ratio:14.2f}")
+    col = res.columns
+    lines.append(f"rods {col.n_rods}, sites used {int(col.mask.sum())}, detection efficiency "
+                 f"{res.decoded.eta:.3f}, persistence {st.estimates.get('persistence', float('nan')):.3f}")
+    for w in res.warnings:
+        lines.append(f"warning: {w}")
+    if verbose:
+        lines.append("reasons:")
+        lines.extend(f"  - {r}" for r in c.reasons)
+        reg = col.params.get("registration", {})
+        if reg:
+            lines.append(f"registration: rotation {reg.get('rotation_deg', float('nan')):.3f} +- "
+                         f"{reg.get('rotation_deg_err', float('nan')):.3f} deg, scale {reg.get('scale', float('nan')):.4f}"
+                         f" +- {reg.get('scale_err', float('nan')):.4f}, tilt {reg.get('tilt_deg', float('nan')):.3f} deg, "
+                         f"lateral spread {reg.get('sigma_xy_nm', float('nan')):.3f} nm, crosstalk {col.crosstalk:.3f}")
+        dec = res.decoded
+        lines.append(f"decoder: log-likelihood {dec.loglik:.1f}, {dec.n_iter} EM iterations "
+                     f"({'converged' if dec.converged else 'NOT converged'}), LR {dec.lr_stat:.1f} "
+                     f"(df {dec.lr_df}), BIC {dec.bic:.1f} vs {dec.bic_indep:.1f} independent")
+    lines.append("timings (s): " + ", ".join(f"{k} {v:.2f}" for k, v in res.timings_s.items()))
+    return lines
+
+
+# ---------------------------------------------------------------------- a batch of runs
+def run_folders(folder) -> list:
+    """The run folders (sub-folders holding ``run.toml``) of ``folder``, sorted by name."""
+    from .runinfo import DESCRIPTION_NAME
+
+    return sorted(p for p in Path(folder).iterdir() if p.is_dir() and (p / DESCRIPTION_NAME).is_file())
+
+
+@dataclass(frozen=True)
+class BatchOutcome:
+    """How one run of a batch went.
+
+    Attributes
+    ----------
+    run : str
+        The run folder's name (also the name of its output folder).
+    outdir : Path
+        Its output folder (written only when ``ok``).
+    ok : bool
+    label : str or None
+        The arrangement found (when ``ok``).
+    confidence : float or None
+        Confidence of the label, in [0, 1] (when ``ok``).
+    reasons : tuple of str
+        Why the label was given (when ``ok``).
+    warnings : tuple of str
+        Data-quality and other warnings, one line each.
+    error : str or None
+        Why the run failed, one line (when not ``ok``).
+    seconds : float, s
+        Wall time of the run.
+    """
+
+    run: str
+    outdir: Path
+    ok: bool
+    label: Optional[str] = None
+    confidence: Optional[float] = None
+    reasons: tuple = ()
+    warnings: tuple = ()
+    error: Optional[str] = None
+    seconds: float = 0.0
+
+
+def _one_line(text: str) -> str:
+    return " ".join(str(text).split())
+
+
+def _batch_job(job: tuple) -> BatchOutcome:
+    """Analyse one run folder of a batch (in a worker process); never raises but on an interrupt."""
+    sub, outdir, kwargs = job
+    t0 = time.perf_counter()
+    caught = []
+    try:
+        with warnings.catch_warnings(record=True) as wlist:
+            warnings.simplefilter("always")
+            try:
+                ra = analyze_run(sub, outdir, **kwargs)
+            finally:
+                caught = [_one_line(str(w.message).splitlines()[0]) if str(w.message) else w.category.__name__
+                          for w in wlist]
+    except ProbeseqError as e:
+        return BatchOutcome(run=sub.name, outdir=outdir, ok=False, error=_one_line(e),
+                            warnings=tuple(dict.fromkeys(caught)), seconds=time.perf_counter() - t0)
+    except MemoryError:
+        return BatchOutcome(run=sub.name, outdir=outdir, ok=False, error="out of memory",
+                            warnings=tuple(dict.fromkeys(caught)), seconds=time.perf_counter() - t0)
+    except Exception as e:  # one run's unexpected failure must not stop the others
+        return BatchOutcome(run=sub.name, outdir=outdir, ok=False,
+                            error=f"internal error ({type(e).__name__}: {_one_line(e)})",
+                            warnings=tuple(dict.fromkeys(caught)), seconds=time.perf_counter() - t0)
+    c = ra.result.classification
+    return BatchOutcome(run=sub.name, outdir=outdir, ok=True, label=c.label, confidence=float(c.confidence),
+                        reasons=tuple(c.reasons), warnings=tuple(dict.fromkeys(caught + list(ra.result.warnings))),
+                        seconds=time.perf_counter() - t0)
+
+
+def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: float | None = None,
+                  repeat: float | None = None, sites_per_repeat: int | None = None, ranges=None,
+                  length_unit: str | None = None, position_dataset: str | None = None,
+                  mass_dataset: str | None = None, strict: bool = False, allow_outside: bool = False,
+                  force: bool = False, workers: int | None = None,
+                  progress: Optional[Callable[[BatchOutcome], None]] = None,
+                  started: Optional[Callable[[int, int], None]] = None, command_line: str | None = None) -> list:
+    """Analyse every run folder of ``folder`` into ``out/<run folder name>``, in worker processes.
+
+    Each run goes through :func:`analyze_run` with the same options, which take precedence over
+    each ``run.toml``. A run that fails is recorded with its one-line reason and the others go
+    on. ``out`` is checked before any work (it may neither be nor contain the batch folder or a
+    run folder) and is made only when the first run's results are complete. The options (and a
+    lattice or range file given) are checked once, before any run starts.
+
+    Parameters
+    ----------
+    folder : str or Path
+        Folder whose sub-folders holding ``run.toml`` are the runs.
+    out : str or Path
+        Output folder of the batch.
+    options, metals, lattice, a, repeat, sites_per_repeat, ranges, length_unit, position_dataset, mass_dataset, strict, allow_outside, force, command_line
+        As for :func:`analyze_run`, for every run.
+    workers : int, optional
+        Worker processes (at most the number of processors and of runs). Default: ``n_jobs`` of
+        :func:`probeseq.runtime.configure` (the command line's ``--jobs``) when set, else
+        :data:`DEFAULT_WORKERS`; each worker's compiled kernels then use its share of ``n_jobs``.
+    progress : callable, optional
+        Called with each :class:`BatchOutcome`, in the order of the runs, as results come in.
+    started : callable, optional
+        Called as ``started(n_runs, n_workers)`` once the checks have passed, before the first run.
+
+    Returns
+    -------
+    list of BatchOutcome
+        One per run folder, sorted by folder name.
+
+    Raises
+    ------
+    InputError
+        No run folder, an unusable ``out``, or a bad option (before any run starts).
+    """
+    from concurrent.futures import ProcessPoolExecutor
+
+    from .. import runtime
+    from ..lattice.model import Lattice
+    from ..outputs.folder import check_outdir
+    from ..pipeline.options import AnalysisOptions
+    from ..ranging.ranges import RangeSet
+
+    src = Path(folder)
+    if not src.is_dir():
+        raise InputError(f"batch folder not found: {src}")
+    subs = run_folders(src)
+    if not subs:
+        raise InputError(f"{src}: holds no run folder (a sub-folder with run.toml)")
+    out = Path(out)
+    check_outdir(out, force, [src, *subs, *([Path(ranges)] if ranges is not None else []), *_lattice_file(lattice)])
+    # one error before any work, not one failure per run
+    metals = _metal_tuple(metals)
+    if lattice is not None:
+        _build_lattice(lattice, a, repeat, sites_per_repeat, "--lattice")
+    if ranges is not None:
+        RangeSet.from_toml(ranges)
+    workers = runtime.worker_count(workers, DEFAULT_WORKERS)
+    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+        raise InputError(f"workers must be a positive integer, got {workers!r}")
+    kwargs = dict(options=options or AnalysisOptions(), metals=metals,
+                  lattice=lattice if isinstance(lattice, (Lattice, type(None))) else str(lattice), a=a,
+                  repeat=repeat, sites_per_repeat=sites_per_repeat, ranges=ranges, length_unit=length_unit,
+                  position_dataset=position_dataset, mass_dataset=mass_dataset, strict=strict,
+                  allow_outside=allow_outside, force=force, command_line=command_line)
+    jobs = [(sub, out / sub.name, kwargs) for sub in subs]
+    n = max(1, min(workers, os.cpu_count() or 1, len(jobs)))
+    if started is not None:
+        started(len(jobs), n)
+    outcomes = []
+    runtime.ensure()  # the fork-safe threading layer, before the workers start
+    with ProcessPoolExecutor(max_workers=n, initializer=runtime.configure,
+                             initargs=(runtime.worker_jobs(n),)) as ex:
+        for outcome in ex.map(_batch_job, jobs):
+            outcomes.append(outcome)
+            if progress is not None:
+                progress(outcome)
+    return outcomes

@@ -1,0 +1,5 @@
+"""Shared foundations of every stage: checks of values and files (:mod:`.validate`),
+bounded TOML reading (:mod:`.tomlfile`), how probeseq marks what it wrote and makes numbers
+JSON-safe (:mod:`.marks`), counter-based random numbers per ion (:mod:`.draws`) and the one
+colour palette (:mod:`.palette`). Nothing here imports a stage.
+"""

@@ -1,0 +1,84 @@
+"""How probeseq marks what it wrote, and turns numbers into JSON-safe values.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from .._version import __version__
+
+__all__ = ['MARK', 'figure_metadata', 'to_jsonable']
+
+#: the text every single output file carries (a comment, an attribute or metadata), so that
+#: ``--force`` can tell probeseq's files from the user's
+MARK = f"written by probeseq {__version__}"
+
+
+MARK_BYTES = b"written by probeseq"
+
+
+def figure_metadata(path) -> dict:
+    """Matplotlib ``savefig`` metadata that carries probeseq's mark for the format of ``path``."""
+    suffix = Path(path).suffix.lower()
+    if suffix == ".png":
+        return {"Software": MARK}
+    if suffix == ".svg":
+        return {"Creator": MARK, "Date": None}
+    if suffix == ".pdf":
+        return {"Creator": MARK, "CreationDate": None}
+    return {}
+
+
+# ---------------------------------------------------------------------- JSON
+def finite_or_none(value):
+    """A number as a Python float, or None when it is NaN or infinite (JSON has no NaN).
+
+    The one NaN-to-None rule of probeseq's JSON outputs; :func:`to_jsonable` applies it to every
+    float it meets.
+
+    Parameters
+    ----------
+    value : float, int or numpy scalar
+        Any number, in whatever unit it carries (the unit is unchanged).
+
+    Returns
+    -------
+    float or None
+    """
+    v = float(value)
+    return v if np.isfinite(v) else None
+
+
+def to_jsonable(obj):
+    """Convert numpy scalars/arrays, paths and tuples, recursively, to plain JSON types.
+
+    Non-finite floats become ``None`` (JSON has no NaN, see :func:`finite_or_none`); integers and
+    booleans stay integers and booleans, other objects are returned unchanged.
+
+    Parameters
+    ----------
+    obj : object
+        Nested dicts, lists and tuples of numbers, numpy scalars or arrays, paths and text.
+
+    Returns
+    -------
+    object
+        The same structure made of dict, list, str, int, float, bool and None.
+    """
+    if isinstance(obj, dict):
+        return {str(k): to_jsonable(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [to_jsonable(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return to_jsonable(obj.tolist())
+    if isinstance(obj, (np.bool_, bool)):
+        return bool(obj)
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (np.floating, float)):
+        return finite_or_none(obj)
+    if isinstance(obj, Path):
+        return str(obj)
+    return obj
