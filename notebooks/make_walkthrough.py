@@ -50,7 +50,7 @@ plot_ranging(rr, "walkthrough_spectrum")  # writes walkthrough_spectrum.png and 
 display(Image("walkthrough_spectrum.png"))"""),
     ("md", """## 2. Registering the rod lattice and cutting the rods into sites
 The known rod packing is fitted to the projected density of metal ions (rotation, lateral scale,
-offset, rod tilt), the lateral spread of ions around the rod axes gives the expected crosstalk
+offset, rod tilt), the lateral spread of ions around the rod axes gives the expected misassigned fraction (share of a rod's ions nearer another rod)
 between rods, and every metal ion is binned into its rod and site."""),
     ("code", """from probeseq.lattice.columns import build_columns
 from probeseq.lattice.plot import plot_rod_density
@@ -62,7 +62,7 @@ columns = build_columns(ions.x[metal], ions.y[metal], ions.z[metal], w[metal], r
 reg = columns.params["registration"]
 print(f"rotation {reg['rotation_deg']:.2f} deg, scale {reg['scale']:.4f}, lateral spread {reg['sigma_xy_nm']:.3f} nm")
 print(f"{columns.n_rods} rods x {columns.n_sites} sites, {int(columns.mask.sum())} used; "
-      f"crosstalk {columns.crosstalk:.3f}, resolvable: {columns.resolvable}")
+      f"misassigned fraction {columns.misassigned_fraction:.3f}, resolvable: {columns.resolvable}")
 plot_rod_density(ions.x[metal], ions.y[metal], ions.z[metal], columns, "walkthrough_density.png")
 display(Image("walkthrough_density.png"))"""),
     ("md", """## 3. Decoding every rod with a hidden Markov model

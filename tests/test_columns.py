@@ -10,7 +10,7 @@ from scipy.special import erf
 from probeseq import InputError, Lattice
 from probeseq.lattice.columns import ColumnBinner, assign_rods, build_columns
 from probeseq.lattice.geometry import plan_columns, rod_site_depths
-from probeseq.lattice.registration import RESOLVABLE_CROSSTALK, expected_crosstalk, register_lattice
+from probeseq.lattice.registration import RESOLVABLE_MISASSIGNED, expected_misassigned_fraction, register_lattice
 from probeseq.lattice.rodcolumns import RodColumns
 
 
@@ -105,7 +105,7 @@ def test_registration_recovers_distortion(case):
     assert (reg.tilt_err > 0).all()
     assert reg.sigma_xy_nm == pytest.approx(t["sigma"], rel=0.06)
     assert reg.quality > 0.7 and reg.peak_ratio > 20
-    assert reg.resolvable and reg.crosstalk < RESOLVABLE_CROSSTALK
+    assert reg.resolvable and reg.misassigned_fraction < RESOLVABLE_MISASSIGNED
     d = json.loads(json.dumps(reg.to_dict()))
     assert d["rotation_period_deg"] == period and d["fixed"] == []
 
@@ -139,9 +139,9 @@ def test_crosstalk_square_matches_analytic():
     # half-width a/2 is erf(a / (2 sqrt(2) sigma))^2 (textbook Gaussian integral, recalled from memory)
     for sigma in (0.2, 0.35, 0.5):
         exact = 1 - erf(1.2 / (2 * math.sqrt(2) * sigma)) ** 2
-        assert expected_crosstalk(SQUARE, sigma) == pytest.approx(exact, rel=1e-5, abs=1e-9)
-    assert expected_crosstalk(SQUARE, 0.0) == 0.0
-    assert math.isnan(expected_crosstalk(SQUARE, float("nan")))
+        assert expected_misassigned_fraction(SQUARE, sigma) == pytest.approx(exact, rel=1e-5, abs=1e-9)
+    assert expected_misassigned_fraction(SQUARE, 0.0) == 0.0
+    assert math.isnan(expected_misassigned_fraction(SQUARE, float("nan")))
 
 
 def _crosstalk_monte_carlo(lat, sigma, n, seed):
@@ -172,7 +172,7 @@ def test_crosstalk_matches_monte_carlo(lat):
         n = 40_000
         mc = _crosstalk_monte_carlo(lat, sigma, n, seed=5)
         se = math.sqrt(mc * (1 - mc) / (n * lat.rods_per_cell))
-        assert expected_crosstalk(lat, sigma) == pytest.approx(mc, abs=4 * se + 1e-4)
+        assert expected_misassigned_fraction(lat, sigma) == pytest.approx(mc, abs=4 * se + 1e-4)
 
 
 def test_crosstalk_honeycomb_small_sigma_limit():
@@ -180,7 +180,7 @@ def test_crosstalk_honeycomb_small_sigma_limit():
     # (half-plane tails of the three Voronoi edges; the corners add a little less than their overlap)
     sigma, d = 0.2, HONEY.nearest_rod_distance_nm
     tail = 0.5 * (1 - erf(d / (2 * sigma) / math.sqrt(2)))
-    xt = expected_crosstalk(HONEY, sigma)
+    xt = expected_misassigned_fraction(HONEY, sigma)
     assert 2.6 * tail < xt < 3.0 * tail + 1e-6
 
 
@@ -188,7 +188,7 @@ def test_blurred_data_not_resolvable():
     x, y, z, *_ = make_sample(HONEY, seed=3, rotation_deg=10, scale=1.0, offset=(0, 0), tilt=(0, 0),
                               sigma=0.42, depth=15)
     reg = register_lattice(x, y, z, HONEY, rotation_deg=10, scale=1.0, offset_nm=(0, 0), tilt=(0, 0))
-    assert reg.sigma_xy_nm > 0.3 and reg.crosstalk > RESOLVABLE_CROSSTALK and not reg.resolvable
+    assert reg.sigma_xy_nm > 0.3 and reg.misassigned_fraction > RESOLVABLE_MISASSIGNED and not reg.resolvable
 
 
 def test_registration_with_background_and_subsample():

@@ -57,7 +57,7 @@ class TiedReference(hmm_base.BaseHMM):
         return out
 
 
-TRUE_2 = DecoderParams.from_components(_persistent(0.7, [0.6, 0.4]), eta=0.5, crosstalk=0.05, background=0.01)
+TRUE_2 = DecoderParams.from_components(_persistent(0.7, [0.6, 0.4]), eta=0.5, crosstalk_rate=0.05, background=0.01)
 
 
 @pytest.fixture(scope="module")
@@ -228,7 +228,7 @@ def test_markov_vs_independent_sites():
     assert res.lr_df == 1 and res.lr_pvalue < 1e-6 and res.bic < res.bic_indep
     assert res.lr_stat == pytest.approx(2 * (res.loglik - res.loglik_indep))
     # independent sites (every row equal to the composition): no evidence of memory
-    indep = DecoderParams.from_components(_persistent(0.0, [0.6, 0.4]), eta=0.6, crosstalk=0.05, background=0.01)
+    indep = DecoderParams.from_components(_persistent(0.0, [0.6, 0.4]), eta=0.6, crosstalk_rate=0.05, background=0.01)
     counts, _ = sample_model(indep, 60, 150, random_state=5)
     res = fit_decoder(make_columns(counts), n_starts=2, random_state=1)
     assert res.lr_pvalue > 0.01 and res.bic_indep < res.bic
@@ -236,7 +236,7 @@ def test_markov_vs_independent_sites():
 
 
 def test_three_metals_and_reproducibility():
-    p = DecoderParams.from_components(_persistent(0.8, [0.5, 0.3, 0.2]), eta=0.8, crosstalk=0.1, background=0.02)
+    p = DecoderParams.from_components(_persistent(0.8, [0.5, 0.3, 0.2]), eta=0.8, crosstalk_rate=0.1, background=0.02)
     counts, states = sample_model(p, 80, 120, random_state=6)
     cols = make_columns(counts)
     a = fit_decoder(cols, n_starts=3, random_state=42)
@@ -296,12 +296,12 @@ def test_decode_with_given_params():
 
 
 def test_params_split_and_roundtrip():
-    p = DecoderParams.from_components(_persistent(0.5, [0.7, 0.3]), eta=0.4, crosstalk=0.1, background=[0.0, 0.02])
+    p = DecoderParams.from_components(_persistent(0.5, [0.7, 0.3]), eta=0.4, crosstalk_rate=0.1, background=[0.0, 0.02])
     np.testing.assert_allclose(p.extra_rate, [0.07, 0.05])
     assert p.persistence == pytest.approx(0.5)
-    assert p.crosstalk == pytest.approx(0.1)  # background 0 in one channel: the split is exact
+    assert p.crosstalk_rate == pytest.approx(0.1)  # background 0 in one channel: the split is exact
     np.testing.assert_allclose(p.background, [0.0, 0.02], atol=1e-12)
-    np.testing.assert_allclose(p.extra_rate, p.crosstalk * p.stationary + p.background)
+    np.testing.assert_allclose(p.extra_rate, p.crosstalk_rate * p.stationary + p.background)
 
 
 # ------------------------------------------------------------------------------------------

@@ -20,9 +20,28 @@ def test_round_trip_csv_tsv_hdf5(tmp_path, small_run):
         p = write_ions(ions, tmp_path / name, float_format="%.8g")
         back = read_ions(p)
         assert back.n_ions == ions.n_ions
-        for c in ("x", "y", "z", "mass_to_charge", "pulse", "voltage"):
+        for c in ("x", "y", "z", "mass_to_charge", "pulse_number", "dc_voltage_v"):
             np.testing.assert_allclose(getattr(back, c), getattr(ions, c), rtol=1e-7, atol=1e-6)
         assert back.meta.sha256 == hashlib.sha256(p.read_bytes()).hexdigest()
+
+
+def test_files_with_the_older_optional_column_names_still_read(tmp_path):
+    # before the optional columns said what they hold they were named pulse and voltage
+    p = write_text(tmp_path / "old.csv", "x,y,z,mass_to_charge,Pulse,voltage\n1,2,3,5.5,17,4000\n1,2,4,7,18,4001\n")
+    ions = read_ions(p)
+    np.testing.assert_array_equal(ions.pulse_number, [17, 18])
+    np.testing.assert_array_equal(ions.dc_voltage_v, [4000, 4001])
+    import h5py
+
+    h = tmp_path / "old.h5"
+    with h5py.File(h, "w") as f:
+        g = f.create_group("ions")
+        for c, v in (("x", [1.0, 1]), ("y", [2.0, 2]), ("z", [3.0, 4]), ("mass_to_charge", [5.5, 7]),
+                     ("pulse", [17.0, 18]), ("voltage", [4000.0, 4001])):
+            g.create_dataset(c, data=np.array(v))
+    back = read_ions(h)
+    np.testing.assert_array_equal(back.pulse_number, [17, 18])
+    np.testing.assert_array_equal(back.dc_voltage_v, [4000, 4001])
 
 
 def test_comments_header_case_and_angstrom(tmp_path):

@@ -79,7 +79,7 @@ def test_count_array_equal(stages_and_analyze):
     assert np.array_equal(a.counts, b.counts)
     for name in ("mask", "rod_xy_nm", "tilt", "site_z_nm", "site_z_offset_nm", "neighbours"):
         assert np.array_equal(getattr(a, name), getattr(b, name)), name
-    assert (a.resolvable, a.crosstalk, a.pitch_nm, a.z_ref_nm) == (b.resolvable, b.crosstalk, b.pitch_nm, b.z_ref_nm)
+    assert (a.resolvable, a.misassigned_fraction, a.pitch_nm, a.z_ref_nm) == (b.resolvable, b.misassigned_fraction, b.pitch_nm, b.z_ref_nm)
     # registration, column plan, ion tallies and the detection balance of the pass
     assert_same(a.params, b.params, "params")
     reg = json.loads((d / "cols" / "registration.json").read_text())

@@ -119,7 +119,7 @@ def test_parameters_warnings_cautions_provenance(report, result, run):
 
 def test_text_is_escaped_and_warnings_listed(result):
     bait = "<script>alert('x')</script> & more"
-    cols = dataclasses.replace(result.columns, resolvable=False, crosstalk=0.4)
+    cols = dataclasses.replace(result.columns, resolvable=False, misassigned_fraction=0.4)
     bad = dataclasses.replace(result, warnings=(bait,), columns=cols,
                               provenance={**result.provenance, "command_line": "probeseq <b>x</b>"})
     doc = report_html(bad, figures={k: None for k in FIGURE_IDS})

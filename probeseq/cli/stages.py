@@ -259,7 +259,7 @@ def columns(
     cols, rr = counted.columns, counted.ranging
     with staged_outdir(out, force=force, inputs=inputs, command=_command_line()) as st:
         save_columns(cols, st / "columns.h5")
-        write_json(st / "registration.json", {"resolvable": cols.resolvable, "crosstalk": cols.crosstalk,
+        write_json(st / "registration.json", {"resolvable": cols.resolvable, "misassigned_fraction": cols.misassigned_fraction,
                                               "n_rods": cols.n_rods, "n_sites": cols.n_sites, **cols.params})
         rr.to_toml(st / "ranges.toml")
         write_density_figure(counted.figure_ions, rr, cols, st / "density.png")
@@ -268,7 +268,7 @@ def columns(
     if reg:
         say(f"  rotation {reg.get('rotation_deg', float('nan')):.2f} deg, scale {reg.get('scale', float('nan')):.4f}, "
             f"lateral spread {reg.get('sigma_xy_nm', float('nan')):.3f} nm")
-    say(f"  expected crosstalk {cols.crosstalk:.3f}: single rods {'resolvable' if cols.resolvable else 'NOT resolvable'}")
+    say(f"  misassigned fraction {cols.misassigned_fraction:.3f} (a rod's ions expected nearer another rod): single rods {'resolvable' if cols.resolvable else 'NOT resolvable'}")
 
 
 # ---------------------------------------------------------------------- decode

@@ -60,7 +60,7 @@ class DecodeResult:
         Detection efficiency of a site's own ion.
     extra_rate : (K,) ndarray of float, counts per site
         Mean extra counts per site per channel (the identified quantity).
-    crosstalk : float, counts per site
+    crosstalk_rate : float, counts per site
         Composition-proportional part of the extras (largest value leaving background >= 0).
     background : (K,) ndarray of float, counts per site
         Remaining extras per channel.
@@ -109,7 +109,7 @@ class DecodeResult:
     persistence: float
     eta: float
     extra_rate: np.ndarray
-    crosstalk: float
+    crosstalk_rate: float
     background: np.ndarray
     extra_fraction: float
     loglik: float
@@ -164,7 +164,7 @@ class DecodeResult:
             "persistence": num(self.persistence),
             "eta": num(self.eta),
             "extra_rate_per_site": self.extra_rate.tolist(),
-            "crosstalk_per_site": num(self.crosstalk),
+            "crosstalk_rate_per_site": num(self.crosstalk_rate),
             "background_per_site": self.background.tolist(),
             "extra_fraction": num(self.extra_fraction),
             "loglik": num(self.loglik),
@@ -327,7 +327,7 @@ def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n
         persistence=params.persistence,
         eta=params.eta,
         extra_rate=mu.copy(),
-        crosstalk=params.crosstalk,
+        crosstalk_rate=params.crosstalk_rate,
         background=params.background,
         extra_fraction=float(mu.sum() / (params.eta + mu.sum())),
         loglik=float(loglik),

@@ -169,21 +169,21 @@ class DecoderParams:
         object.__setattr__(self, "extra_rate", mu)
 
     @classmethod
-    def from_components(cls, transmat, eta, crosstalk, background) -> "DecoderParams":
+    def from_components(cls, transmat, eta, crosstalk_rate, background) -> "DecoderParams":
         """Build from a crosstalk rate and per-channel background: ``mu = c f + b``.
 
         Parameters
         ----------
         transmat : (K, K) ndarray of float
         eta : float
-        crosstalk : float, counts per site
+        crosstalk_rate : float, counts per site
             Extra counts per site whose composition is the stationary composition ``f``.
         background : float or (K,) ndarray of float, counts per site
             Extra counts per site in each channel; values <= 0 are raised to ``MIN_RATE``.
         """
         f = stationary_distribution(np.asarray(transmat, dtype=float))
         b = np.broadcast_to(np.asarray(background, dtype=float), f.shape)
-        mu = np.maximum(float(crosstalk) * f + b, MIN_RATE)
+        mu = np.maximum(float(crosstalk_rate) * f + b, MIN_RATE)
         return cls(transmat=transmat, eta=eta, extra_rate=mu)
 
     @property
@@ -206,7 +206,7 @@ class DecoderParams:
         return persistence(self.transmat)
 
     @property
-    def crosstalk(self) -> float:
+    def crosstalk_rate(self) -> float:
         """Largest ``c`` with ``mu - c f >= 0``, counts per site (see module docstring)."""
         f = self.stationary
         ok = f > 1e-12
@@ -214,8 +214,8 @@ class DecoderParams:
 
     @property
     def background(self) -> np.ndarray:
-        """``mu - crosstalk * f``, counts per site per channel (>= 0, at least one is 0)."""
-        return np.clip(self.extra_rate - self.crosstalk * self.stationary, 0.0, None)
+        """``mu - crosstalk_rate * f``, counts per site per channel (>= 0, at least one is 0)."""
+        return np.clip(self.extra_rate - self.crosstalk_rate * self.stationary, 0.0, None)
 
     def to_dict(self) -> dict:
         return {
@@ -224,7 +224,7 @@ class DecoderParams:
             "extra_rate": self.extra_rate.tolist(),
             "stationary": self.stationary.tolist(),
             "persistence": self.persistence,
-            "crosstalk": self.crosstalk,
+            "crosstalk_rate": self.crosstalk_rate,
             "background": self.background.tolist(),
         }
 

@@ -2,11 +2,11 @@
 
 Text (``.csv``; ``.tsv`` and ``.txt`` tab-separated): lines starting with ``#`` are comments, then
 one header row, then one ion per row. Required columns ``x, y, z, mass_to_charge``; optional
-``multiplicity, pulse, voltage``; other columns are ignored. Header names are matched without
+``multiplicity, pulse_number, dc_voltage_v`` (older files' ``pulse``, ``voltage`` are read too); other columns are ignored. Header names are matched without
 regard to case or surrounding spaces.
 
 HDF5 (``.h5``, ``.hdf5``): group ``/ions`` with 1-D datasets ``x, y, z, mass_to_charge`` (float32
-or float64, equal length; optional ``multiplicity, pulse, voltage``) and the attribute
+or float64, equal length; optional ``multiplicity, pulse_number, dc_voltage_v``) and the attribute
 ``length_unit`` (``"nm"`` or ``"angstrom"``; nm when absent). Any other layout is read with
 ``position_dataset`` (an N x 3 dataset) and ``mass_dataset``. Reading is chunked: see
 :func:`iter_ion_chunks` for streaming files larger than memory, and :class:`IonSource` for block

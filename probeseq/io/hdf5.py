@@ -11,7 +11,9 @@ import numpy as np
 from ..exceptions import InputError
 from ..utils.tomlfile import clean_text
 from .formats import ALL_COLUMNS, _check_unit
-from .ions import REQUIRED_COLUMNS
+from .ions import LEGACY_COLUMNS, REQUIRED_COLUMNS
+
+_LEGACY_OF = {new: old for old, new in LEGACY_COLUMNS.items()}
 
 
 # ---------------------------------------------------------------------- hdf5
@@ -165,9 +167,13 @@ def _h5_layout(f, p: Path, position_dataset, mass_dataset):
         raise InputError(f"{p}: no group '/ions' (found: {_names(f)}); for another layout give "
                          "--position-dataset and --mass-dataset")
     present = {}
+    stored = {c: c for c in ALL_COLUMNS}  # the dataset name in the file (older files: legacy names)
     for c in ALL_COLUMNS:
         try:
             present[c] = g.get(c, getlink=True) is not None
+            old = _LEGACY_OF.get(c)
+            if not present[c] and old is not None and g.get(old, getlink=True) is not None:
+                present[c], stored[c] = True, old
         except (KeyError, ValueError, OSError, RuntimeError, TypeError):
             present[c] = True  # _h5_dataset names the problem
     missing = [c for c in REQUIRED_COLUMNS if not present[c]]
@@ -179,9 +185,9 @@ def _h5_layout(f, p: Path, position_dataset, mass_dataset):
     for c in ALL_COLUMNS:
         if not present[c]:
             continue
-        d = _h5_dataset(f, f"/ions/{c}", p)
+        d = _h5_dataset(f, f"/ions/{stored[c]}", p)
         if d.ndim != 1:
-            raise InputError(f"{p}: /ions/{c} must be a 1-D dataset, has shape {d.shape}")
+            raise InputError(f"{p}: /ions/{stored[c]} must be a 1-D dataset, has shape {d.shape}")
         if n is None:
             n, first = d.shape[0], c
         elif d.shape[0] != n:

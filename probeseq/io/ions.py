@@ -16,7 +16,7 @@ import numpy as np
 
 from ..exceptions import InputError
 
-__all__ = ['IonList', 'IonMeta', 'LENGTH_UNITS', 'MAX_ABS_POSITION_NM', 'OPTIONAL_COLUMNS', 'REQUIRED_COLUMNS', 'check_position_extent', 'valid_rows']
+__all__ = ['IonList', 'IonMeta', 'LENGTH_UNITS', 'MAX_ABS_POSITION_NM', 'OPTIONAL_COLUMNS', 'LEGACY_COLUMNS', 'REQUIRED_COLUMNS', 'check_position_extent', 'valid_rows']
 
 #: factor that converts a length in the named unit to nm
 LENGTH_UNITS = {"nm": 1.0, "angstrom": 0.1}
@@ -25,7 +25,10 @@ LENGTH_UNITS = {"nm": 1.0, "angstrom": 0.1}
 REQUIRED_COLUMNS = ("x", "y", "z", "mass_to_charge")
 
 
-OPTIONAL_COLUMNS = ("multiplicity", "pulse", "voltage")
+OPTIONAL_COLUMNS = ("multiplicity", "pulse_number", "dc_voltage_v")
+
+#: column names of ion files written before the optional columns said what they hold; still read
+LEGACY_COLUMNS = {"pulse": "pulse_number", "voltage": "dc_voltage_v"}
 
 
 #: largest magnitude of a position read from a file, nm (100 micrometres: an atom-probe
@@ -177,8 +180,9 @@ class IonList:
         Reconstructed positions; ``z`` is depth, increasing into the specimen.
     mass_to_charge : (n_ions,) ndarray of float, Da
         Mass-to-charge state ratio of each ion; must be finite and positive.
-    multiplicity, pulse, voltage : (n_ions,) ndarray or None
-        Optional per-ion columns (multiple-hit count, pulse number, voltage in V).
+    multiplicity, pulse_number, dc_voltage_v : (n_ions,) ndarray or None
+        Optional per-ion columns: ions detected on the same pulse, the number of the evaporation
+        pulse that detected the ion, and the standing (DC) specimen voltage at detection, V.
     meta : IonMeta
         Provenance.
 
@@ -194,8 +198,8 @@ class IonList:
     z: np.ndarray
     mass_to_charge: np.ndarray
     multiplicity: Optional[np.ndarray] = None
-    pulse: Optional[np.ndarray] = None
-    voltage: Optional[np.ndarray] = None
+    pulse_number: Optional[np.ndarray] = None
+    dc_voltage_v: Optional[np.ndarray] = None
     meta: IonMeta = field(default_factory=IonMeta)
 
     def __post_init__(self):
@@ -250,8 +254,8 @@ class IonList:
         z,
         mass_to_charge,
         multiplicity=None,
-        pulse=None,
-        voltage=None,
+        pulse_number=None,
+        dc_voltage_v=None,
         meta: IonMeta | None = None,
         strict: bool = False,
         where: str = "ion list",
@@ -275,7 +279,7 @@ class IonList:
         """
         meta = meta or IonMeta()
         cols = {"x": x, "y": y, "z": z, "mass_to_charge": mass_to_charge,
-                "multiplicity": multiplicity, "pulse": pulse, "voltage": voltage}
+                "multiplicity": multiplicity, "pulse_number": pulse_number, "dc_voltage_v": dc_voltage_v}
         cols = {k: (None if v is None else np.asarray(v)) for k, v in cols.items()}
         for k, v in cols.items():
             if v is not None and v.ndim != 1:

@@ -498,7 +498,7 @@ def write_ions(ions: IonList, path, fmt: str | None = None, compression: str | N
                             kw["compression"] = compression
                     d = g.create_dataset(c, data=a if dtype is None else a.astype(dtype), **kw)
                     d.attrs["unit"] = {"x": "nm", "y": "nm", "z": "nm", "mass_to_charge": "Da",
-                                       "voltage": "V"}.get(c, "1")
+                                       "dc_voltage_v": "V"}.get(c, "1")
         else:
             import pandas as pd
 

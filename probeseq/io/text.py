@@ -12,7 +12,7 @@ import numpy as np
 from ..exceptions import InputError
 from ..utils.tomlfile import clean_text
 from .formats import ALL_COLUMNS, TEXT_SUFFIXES
-from .ions import REQUIRED_COLUMNS, IonList
+from .ions import LEGACY_COLUMNS, REQUIRED_COLUMNS, IonList
 
 # ---------------------------------------------------------------------- text
 #: longest header line of a text ion file, bytes
@@ -174,6 +174,7 @@ def _read_text(p: Path, length_unit: str, strict: bool) -> IonList:
 
     sep = TEXT_SUFFIXES[p.suffix.lower()]
     header_line, names = _text_layout(p, sep)
+    names = [LEGACY_COLUMNS.get(n, n) for n in names]
     wanted = _resolve_columns(p, names, sep)
     usecols = [names.index(c) for c in wanted]
     # fast path (measured: comment handling and usecols each cost pandas' C parser about 2x);

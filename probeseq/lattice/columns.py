@@ -348,7 +348,7 @@ def columns_from_counts(geometry: ColumnGeometry, counts, metals, ion_stats: dic
     return RodColumns(counts=counts, mask=g.mask, metals=metals, rod_xy_nm=g.rod_xy_nm.copy(),
                       tilt=reg.tilt.copy(), z_ref_nm=reg.z_ref_nm, site_z_nm=g.site_z_nm.copy(),
                       pitch_nm=g.pitch_nm, neighbours=rod_neighbours(g), resolvable=bool(reg.resolvable),
-                      crosstalk=float(reg.crosstalk) if math.isfinite(reg.crosstalk) else 1.0,
+                      misassigned_fraction=float(reg.misassigned_fraction) if math.isfinite(reg.misassigned_fraction) else 1.0,
                       params=params, site_z_offset_nm=offset)
 
 

@@ -95,7 +95,7 @@ def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, tit
     ax.set_ylabel("y at z_ref (nm)")
     rot = reg.get("rotation_deg")
     sub = (f"rotation {rot:.2f} deg, scale {scale:.4f}, sigma {reg.get('sigma_xy_nm') or float('nan'):.3f} nm, "
-           f"crosstalk {columns.crosstalk:.3f}" if rot is not None else "")
+           f"misassigned {columns.misassigned_fraction:.3f}" if rot is not None else "")
     head = title or "Metal density with fitted rod axes"
     ax.set_title(f"{head}\n{sub}" if sub else head, fontsize=9)
     ax.legend(loc="upper right", fontsize=7, framealpha=0.8)

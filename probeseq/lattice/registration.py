@@ -32,7 +32,7 @@ Method (coarse to fine)
    then on all of it. Uncertainties are the least-squares standard errors.
 6. **Resolution.** ``sigma_xy_nm`` is the maximum-likelihood spread of a 2-D Gaussian (plus a
    uniform background) fitted to the ion distances from their rod within half the nearest rod
-   distance. The expected crosstalk is the share of a Gaussian cloud of
+   distance. The expected misassigned fraction is the share of a Gaussian cloud of
    that spread around a rod that lands nearer another rod, i.e. outside the rod's Voronoi cell.
 
 Cost: the fit is bounded whatever the number of ions: at most ``max_fit_ions`` enter, the phase
@@ -74,7 +74,7 @@ from .fourier import (
 from .locator import _cached_locator, _cell_boundaries, _gn_pass, _locator_arrays, _rot, lattice_symmetry
 from .model import Lattice
 
-__all__ = ['Registration', 'register_lattice', 'expected_crosstalk', 'MIN_METAL_IONS', 'MIN_PEAK_RATIO', 'RESOLVABLE_CROSSTALK']
+__all__ = ['Registration', 'register_lattice', 'expected_misassigned_fraction', 'MIN_METAL_IONS', 'MIN_PEAK_RATIO', 'RESOLVABLE_MISASSIGNED']
 
 #: fewest metal ions :func:`register_lattice` accepts (below this the Fourier peaks of a small
 #: specimen do not rise reliably above shot noise; project choice, checked on simulated runs)
@@ -87,11 +87,11 @@ MIN_METAL_IONS = 2000
 MIN_PEAK_RATIO = 5.0
 
 
-#: single rods count as resolvable when the expected crosstalk is below this. At 0.2 a rod's own
+#: single rods count as resolvable when the expected misassigned fraction is below this. At 0.2 a rod's own
 #: ions are still >= 80 % of its counts, so the composition contrast between a rod and a
 #: differing neighbour keeps >= 1 - 2 * 0.2 = 60 % of its true value; beyond it the neighbours'
 #: signal takes over quickly (project choice).
-RESOLVABLE_CROSSTALK = 0.2
+RESOLVABLE_MISASSIGNED = 0.2
 
 
 #: lattice-frame distance, as a fraction of the nearest rod distance, inside which ions enter the
@@ -135,10 +135,10 @@ class Registration:
         Standard errors.
     sigma_xy_nm, sigma_xy_nm_err : float, nm
         Lateral spread of metal ions around their rod axis (reconstruction frame) and its error.
-    crosstalk : float
+    misassigned_fraction : float
         Expected share of a rod's ions that land nearer another rod.
     resolvable : bool
-        ``crosstalk < RESOLVABLE_CROSSTALK``.
+        ``misassigned_fraction < RESOLVABLE_MISASSIGNED``.
     quality : float
         Registration quality: (share of ions within a quarter of the nearest rod distance of a rod
         axis minus that share for a uniform density) / (1 minus the uniform share); 1 means every
@@ -169,7 +169,7 @@ class Registration:
     tilt_err: np.ndarray = field(default_factory=lambda: np.zeros(2))
     sigma_xy_nm: float = float("nan")
     sigma_xy_nm_err: float = float("nan")
-    crosstalk: float = float("nan")
+    misassigned_fraction: float = float("nan")
     resolvable: bool = False
     quality: float = float("nan")
     peak_ratio: float = float("nan")
@@ -248,8 +248,8 @@ class Registration:
             "tilt_azimuth_deg": float(math.degrees(math.atan2(self.tilt[1], self.tilt[0])) % 360.0),
             "z_ref_nm": float(self.z_ref_nm),
             "sigma_xy_nm": _f(self.sigma_xy_nm), "sigma_xy_nm_err": _f(self.sigma_xy_nm_err),
-            "crosstalk": _f(self.crosstalk), "resolvable": bool(self.resolvable),
-            "resolvable_threshold": RESOLVABLE_CROSSTALK,
+            "misassigned_fraction": _f(self.misassigned_fraction), "resolvable": bool(self.resolvable),
+            "resolvable_threshold": RESOLVABLE_MISASSIGNED,
             "quality": _f(self.quality), "peak_ratio": _f(self.peak_ratio),
             "background_fraction": _f(self.background_fraction),
             "symmetry_order": int(self.symmetry_order),
@@ -348,7 +348,7 @@ def _fit_sigma(d, rmax):
     return s, err, fb
 
 
-def expected_crosstalk(lattice: Lattice, sigma_nm: float, n_angles: int = 4096) -> float:
+def expected_misassigned_fraction(lattice: Lattice, sigma_nm: float, n_angles: int = 4096) -> float:
     """Expected share of a rod's ions that land nearer another rod (outside its Voronoi cell).
 
     For an isotropic 2-D Gaussian of spread ``sigma_nm`` centred on a rod, the share beyond a
@@ -503,14 +503,14 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
     within = float((ok & (dist < q_r)).sum()) / xf.size
     u0 = lattice.rod_density_per_nm2 * math.pi * q_r ** 2
     quality = (within - u0) / (1 - u0)
-    crosstalk = expected_crosstalk(lattice, sig_lat) if math.isfinite(sig_lat) else float("nan")
+    misassigned = expected_misassigned_fraction(lattice, sig_lat) if math.isfinite(sig_lat) else float("nan")
     err = np.sqrt(np.maximum(np.diag(cov), 0.0))
     return Registration(
         lattice=lattice, rotation_deg=float(theta), scale=float(p[5]), offset_nm=off, tilt=p[2:4].copy(),
         z_ref_nm=float(z_ref_nm), rotation_deg_err=float(math.degrees(err[4])), scale_err=float(err[5]),
         offset_nm_err=err[0:2], tilt_err=err[2:4], sigma_xy_nm=float(sig_lat * p[5]),
-        sigma_xy_nm_err=float(sig_err * p[5]), crosstalk=float(crosstalk),
-        resolvable=bool(crosstalk < RESOLVABLE_CROSSTALK), quality=float(quality), peak_ratio=float(peak_ratio),
+        sigma_xy_nm_err=float(sig_err * p[5]), misassigned_fraction=float(misassigned),
+        resolvable=bool(misassigned < RESOLVABLE_MISASSIGNED), quality=float(quality), peak_ratio=float(peak_ratio),
         background_fraction=float(bg), symmetry_order=int(order), n_ions=int(n_ions), n_fit=int(n_fit),
         fixed=fixed)
 

@@ -72,8 +72,8 @@ class RodColumns:
     neighbours : (n_pairs, 2) ndarray of int
         Index pairs (i < j) of rods that are nearest neighbours in the packing.
     resolvable : bool
-        Whether single rods are resolvable (expected crosstalk below the documented threshold).
-    crosstalk : float
+        Whether single rods are resolvable (expected misassigned fraction below the documented threshold).
+    misassigned_fraction : float
         Expected fraction of a rod's ions assigned to another rod.
     params : mapping
         Fitted registration parameters and quality figures, JSON-serialisable; stored as a
@@ -94,7 +94,7 @@ class RodColumns:
     pitch_nm: float
     neighbours: np.ndarray = field(default_factory=lambda: np.zeros((0, 2), dtype=np.int64))
     resolvable: bool = True
-    crosstalk: float = 0.0
+    misassigned_fraction: float = 0.0
     params: dict = field(default_factory=dict)
     site_z_offset_nm: np.ndarray | None = None
 
@@ -190,7 +190,7 @@ def save_columns(columns: RodColumns, path) -> None:
         g.attrs["z_ref_nm"] = columns.z_ref_nm
         g.attrs["pitch_nm"] = columns.pitch_nm
         g.attrs["resolvable"] = bool(columns.resolvable)
-        g.attrs["crosstalk"] = float(columns.crosstalk)
+        g.attrs["misassigned_fraction"] = float(columns.misassigned_fraction)
         g.attrs["params_json"] = json.dumps(to_jsonable(columns.params), sort_keys=True)
         for name, data, unit in (("counts", columns.counts, "metal atoms per site"),
                                  ("mask", columns.mask.astype(np.uint8), "1 = site used"),
@@ -260,7 +260,9 @@ def load_columns(path) -> RodColumns:
                              f"metal atom, so more than {MAX_COUNT_PER_SITE:.0e} means a damaged or hand-edited file")
         pitch = h5_attr_number(g, "pitch_nm", p, 0, lo_open=True)
         z_ref = h5_attr_number(g, "z_ref_nm", p)
-        crosstalk = h5_attr_number(g, "crosstalk", p, 0, 1)
+        # files written before the rename carry the fraction as "crosstalk"
+        misassigned = h5_attr_number(g, "misassigned_fraction" if "misassigned_fraction" in g.attrs else "crosstalk",
+                                     p, 0, 1)
         resolvable = g.attrs.get("resolvable")
         if not isinstance(resolvable, (bool, np.bool_)) and not (
                 isinstance(resolvable, (int, np.integer)) and int(resolvable) in (0, 1)):
@@ -271,6 +273,6 @@ def load_columns(path) -> RodColumns:
     try:
         return RodColumns(counts=counts, mask=mask, metals=tuple(metals), rod_xy_nm=rod_xy, tilt=tilt, z_ref_nm=z_ref,
                           site_z_nm=site_z, pitch_nm=pitch, neighbours=neighbours, resolvable=bool(resolvable),
-                          crosstalk=crosstalk, params=params, site_z_offset_nm=offsets)
+                          misassigned_fraction=misassigned, params=params, site_z_offset_nm=offsets)
     except InputError as e:
         raise InputError(f"{p}: {e}") from None

@@ -379,7 +379,7 @@ def _verdict(result) -> str:
            f"<div><b>metals</b>{_esc(', '.join(result.metals))}</div>",
            "</div>"]
     if not col.resolvable:
-        out.append(f'<p class="alert">{_esc(f"Single rods are not resolvable (expected crosstalk {col.crosstalk:.2f}): ")}'
+        out.append(f'<p class="alert">{_esc(f"Single rods are not resolvable (misassigned fraction {col.misassigned_fraction:.2f}: share of the ions of a rod expected nearer another rod): ")}'
                    f'{_esc("per-rod sequences mix neighbouring rods; rely on the groups-of-rods analysis.")}</p>')
     if cl.reasons:
         out.append("<h3>Why</h3><ul class=\"reasons\">")
@@ -479,7 +479,7 @@ def _parameters(result) -> str:
     metals = result.metals
     out = ['<section id="parameters"><h2>Fitted parameters</h2>', "<h3>Decoder (hidden Markov model of each rod)</h3>"]
     rows = [("detection efficiency eta (own ion of a site detected)", _fmt(dec.eta), ""),
-            ("crosstalk (composition-proportional extra counts)", _fmt(dec.crosstalk), "counts/site"),
+            ("crosstalk rate (composition-proportional extra counts)", _fmt(dec.crosstalk_rate), "counts/site"),
             ("background per channel", _vec(dec.background), "counts/site, " + ", ".join(metals)),
             ("extra-count rate per channel", _vec(dec.extra_rate), "counts/site, " + ", ".join(metals)),
             ("share of counts that are extras", _fmt(dec.extra_fraction), ""),
@@ -509,7 +509,7 @@ def _parameters(result) -> str:
             ("tilt (dx/dz, dy/dz)", _pair_pm(reg.get("tilt", col.tilt), reg.get("tilt_err")), ""),
             ("tilt angle, azimuth", f"{_fmt(reg.get('tilt_deg'))}, {_fmt(reg.get('tilt_azimuth_deg'))}", "deg"),
             ("lateral blur sigma", _pm(reg.get("sigma_xy_nm"), reg.get("sigma_xy_nm_err")), "nm"),
-            ("expected crosstalk between rods", _fmt(col.crosstalk), "fraction of a rod's ions"),
+            ("misassigned fraction (a rod's ions expected nearer another rod)", _fmt(col.misassigned_fraction), "fraction of a rod's ions"),
             ("single rods resolvable", "yes" if col.resolvable else "no",
              f"threshold {_fmt(reg.get('resolvable_threshold'))}" if reg.get("resolvable_threshold") is not None else ""),
             ("registration quality / peak ratio", f"{_fmt(reg.get('quality'))} / {_fmt(reg.get('peak_ratio'))}", ""),
@@ -547,7 +547,7 @@ def _collect_warnings(result, extra) -> list:
     out = list(dict.fromkeys(str(w) for w in (result.warnings or ())))
     col, dec = result.columns, result.decoded
     if not col.resolvable and not any("resolvable" in w for w in out):
-        out.insert(0, f"single rods are not resolvable (expected crosstalk {col.crosstalk:.2f}); per-rod sequences "
+        out.insert(0, f"single rods are not resolvable (misassigned fraction {col.misassigned_fraction:.2f}: share of a rod's ions expected nearer another rod); per-rod sequences "
                       "are unreliable, see the groups-of-rods analysis")
     n_obs = max(int(getattr(dec, "n_obs", 0) or col.mask.sum()), 1)
     share = float(np.asarray(dec.uncertain).sum()) / n_obs

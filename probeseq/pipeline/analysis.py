@@ -116,7 +116,7 @@ def _run(counts_stage, metals, lattice, opts, progress, provenance, meta) -> Ana
         caught = [str(w.message).splitlines()[0] for w in wlist]
     warn = list(dict.fromkeys(caught + list(getattr(dec, "warnings", []))))
     if not cols.resolvable:
-        warn.insert(0, f"single rods are not resolvable (expected crosstalk {cols.crosstalk:.2f}); "
+        warn.insert(0, f"single rods are not resolvable (misassigned fraction {cols.misassigned_fraction:.2f}: share of a rod's ions expected nearer another rod); "
                        "per-rod sequences are unreliable, see the groups-of-rods analysis")
     clock.timings["total"] = round(time.perf_counter() - clock.t0, 4)
     prov = {"tool": "probeseq", "version": __version__, "python": sys.version.split()[0],

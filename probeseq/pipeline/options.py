@@ -188,7 +188,7 @@ class AnalysisResult:
             "statistics": st,
             "columns": {"n_rods": int(col.n_rods), "n_sites": int(col.n_sites),
                         "n_sites_used": int(col.mask.sum()), "pitch_nm": col.pitch_nm,
-                        "resolvable": bool(col.resolvable), "crosstalk": float(col.crosstalk),
+                        "resolvable": bool(col.resolvable), "misassigned_fraction": float(col.misassigned_fraction),
                         "n_metal_ions": int(self.n_metal_ions),
                         "metal_atoms_in_rods": float(col.counts.sum()),
                         "registration": col.params},

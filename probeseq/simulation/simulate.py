@@ -581,8 +581,8 @@ def _evaporate(cfg, rng, x, y, z, m, per_ion):
     per_ion = tuple(a[order] for a in per_ion)
     pulse = np.cumsum(rng.geometric(0.01, z.size)).astype(np.float64)
     voltage = 3000.0 + 3000.0 * np.clip(z / cfg.depth_nm, 0, 1) + rng.normal(0, 5, z.size)
-    ions = IonList(x=x, y=y, z=z, mass_to_charge=m, multiplicity=np.ones(z.size), pulse=pulse,
-                   voltage=voltage, meta=IonMeta(source="simulated"))
+    ions = IonList(x=x, y=y, z=z, mass_to_charge=m, multiplicity=np.ones(z.size), pulse_number=pulse,
+                   dc_voltage_v=voltage, meta=IonMeta(source="simulated"))
     return ions, per_ion
 
 

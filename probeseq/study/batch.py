@@ -305,7 +305,7 @@ def summary_lines(res, verbose: bool = False) -> list:
             lines.append(f"registration: rotation {reg.get('rotation_deg', float('nan')):.3f} +- "
                          f"{reg.get('rotation_deg_err', float('nan')):.3f} deg, scale {reg.get('scale', float('nan')):.4f}"
                          f" +- {reg.get('scale_err', float('nan')):.4f}, tilt {reg.get('tilt_deg', float('nan')):.3f} deg, "
-                         f"lateral spread {reg.get('sigma_xy_nm', float('nan')):.3f} nm, crosstalk {col.crosstalk:.3f}")
+                         f"lateral spread {reg.get('sigma_xy_nm', float('nan')):.3f} nm, misassigned fraction {col.misassigned_fraction:.3f}")
         dec = res.decoded
         lines.append(f"decoder: log-likelihood {dec.loglik:.1f}, {dec.n_iter} EM iterations "
                      f"({'converged' if dec.converged else 'NOT converged'}), LR {dec.lr_stat:.1f} "

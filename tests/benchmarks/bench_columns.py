@@ -104,7 +104,7 @@ def accuracy_case(packing, a, sigma, seed):
     return dict(n=int(m.sum()), rot=rot_err, scale=scale_err, off=off_err, tilt=tilt_err, acc=acc,
                 acc_best=acc_best, acc_all=acc_all, acc_all_best=acc_all_best, recall=recall,
                 precision=precision, whole=len(whole), found=found, t_reg=t_reg, sigma_fit=reg.sigma_xy_nm,
-                crosstalk=reg.crosstalk, quality=reg.quality, site_dz=site_dz, axis_in=len(axis_in),
+                misassigned=reg.misassigned_fraction, quality=reg.quality, site_dz=site_dz, axis_in=len(axis_in),
                 found_axis=found_axis,
                 tilt_deg=math.degrees(math.atan(t_true)), contrast=geom.site_phase_contrast)
 
@@ -118,7 +118,7 @@ for packing, a in cases:
         for seed in seeds:
             r = accuracy_case(packing, a, sigma, seed)
             print(f" {packing} a={a} sigma_xy={sigma} seed={seed}: {r['n']} metal ions, fit sigma "
-                  f"{r['sigma_fit']:.3f} nm, crosstalk {r['crosstalk']:.4f}, quality {r['quality']:.3f}, "
+                  f"{r['sigma_fit']:.3f} nm, misassigned fraction {r['misassigned']:.4f}, quality {r['quality']:.3f}, "
                   f"registration+plan {r['t_reg']:.2f} s; true tilt {r['tilt_deg']:.2f} deg; "
                   f"site phase contrast {r['contrast']:.2f}")
             report("metal ions", f"{r['n']}", ">= 1e5", r["n"] >= 1e5)

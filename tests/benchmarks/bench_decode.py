@@ -68,7 +68,7 @@ def generate(n_rods, n_sites, *, eta, lam, comp, crosstalk=0.05, background=0.01
     src = np.clip(ix + step[:, 0], 0, side - 1) * side + np.clip(iy + step[:, 1], 0, side - 1)
     src = np.where(src < n_rods, src, r)
     np.add.at(counts, (r, t, s[src, t]), 1.0)
-    truth = DecoderParams.from_components(persistent(lam, comp), eta=eta, crosstalk=crosstalk, background=background)
+    truth = DecoderParams.from_components(persistent(lam, comp), eta=eta, crosstalk_rate=crosstalk, background=background)
     return counts, s, truth, realised
 
 
