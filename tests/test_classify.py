@@ -7,7 +7,7 @@ import pytest
 
 from probeseq.exceptions import InputError
 from probeseq.simulation.simulate import markov_sequences
-from probeseq.statistics.classify import LABELS, Classification, classify
+from probeseq.statistics.classify import LABELS, Classification, calibrated_confidence, classify
 from probeseq.statistics.markov import transition_counts_from_paths
 from probeseq.statistics.summary import statistics_from_arrays
 
@@ -64,8 +64,10 @@ def runs():
 def test_each_along_rod_branch(runs, truth, along, rod):
     c = classify(runs[truth])
     assert (c.label, c.along_rod, c.rod_to_rod) == (truth, along, rod)
-    assert 0.9 <= c.confidence <= 1.0
-    assert c.label_shares[truth] == pytest.approx(c.confidence)
+    assert 0.9 <= c.bootstrap_share <= 1.0
+    assert c.label_shares[truth] == pytest.approx(c.bootstrap_share)
+    # the confidence is the calibrated probability of that share being right
+    assert c.confidence == pytest.approx(calibrated_confidence(c.bootstrap_share)) and c.confidence >= 0.8
     assert sum(c.label_shares.values()) == pytest.approx(1.0)
 
 
@@ -100,7 +102,8 @@ def test_long_block_threshold_moves_the_boundary(runs):
     # exactly at the estimate the rule says long-block (>=), and about half the resamples disagree
     at = classify(st, long_block_sites=run_len)
     assert at.along_rod == "long-block"
-    assert 0.2 < at.confidence < 0.8
+    assert 0.2 < at.bootstrap_share < 0.8
+    assert at.confidence <= calibrated_confidence(0.8)
     # short repeats become long blocks under a low threshold
     assert classify(runs["short-repeat"], long_block_sites=2).along_rod == "long-block"
 

@@ -92,7 +92,9 @@ def test_plan_small(tmp_path, capsys):
     assert code == 0, capsys.readouterr().err
     plan = json.loads(out.read_text())
     conf = np.array(plan["confusion"])
-    assert conf.shape == (4, 5) and conf.sum() == 4
+    # one run of each of the five simulated arrangements, six possible labels (undetermined too)
+    assert conf.shape == (5, 6) and conf.sum() == 5
+    assert "interspersed" in plan["labels"] and "interspersed" in plan["patterns"]
     assert len(plan["persistence_scan"]["persistence"]) == len(plan["persistence_scan"]["share_not_random"])
     code = main(["plan", "--metals", "Co,Zn", "--lattice", "square", "--a", "1.2", "--repeat", "0.7",
                  "--detection-efficiency", "1.5"])

@@ -27,12 +27,20 @@ def simulate(
     ctx: typer.Context,
     out: Annotated[Path, typer.Argument(help="Ion file to write (.csv, .tsv, .h5); the truth (.truth.json) "
                                              "and lattice (.lattice.toml) are written beside it.")],
-    pattern: Annotated[str, typer.Option(help="random | short-repeat | long-block | copied")] = "random",
+    pattern: Annotated[str, typer.Option(help="random | short-repeat | long-block | interspersed | per-metal | "
+                                              "copied")] = "random",
     metals: Annotated[str, typer.Option(help="Comma-separated metal symbols.")] = "Co,Zn",
     composition: Annotated[Optional[str], typer.Option(help="Comma-separated site fractions (default equal).")] = None,
     persistence: Annotated[Optional[float], typer.Option(help="Markov persistence lam in [0, 1) "
                                                                "(default 0.5 short-repeat, 0.9 long-block, 0 otherwise).")] = None,
     copy_error: Annotated[float, typer.Option(help="Per-site copy error of the copied pattern.")] = 0.05,
+    interspersed_metal: Annotated[Optional[str], typer.Option(help="The metal inserted as isolated units "
+                                                                   "(interspersed; default the least abundant).")] = None,
+    avoidance: Annotated[float, typer.Option(help="How strongly an interspersed metal avoids itself, in [0, 1]: "
+                                                  "it follows itself with probability f (1 - avoidance).")] = 0.9,
+    metal_patterns: Annotated[Optional[str], typer.Option(help="per-metal: one of random, short-repeat, "
+                                                               "long-block, interspersed per metal, comma-separated "
+                                                               "in --metals order.")] = None,
     lattice: Annotated[str, typer.Option(help="Lattice preset: honeycomb | triangular | square, or a lattice "
                                               "TOML file.")] = "honeycomb",
     a: Annotated[float, typer.Option("--a", help="Cell edge a, nm (with a preset).")] = 2.6,
@@ -79,8 +87,10 @@ def simulate(
     ion_file_kind_check(out)
     for what, p in SimRun.output_paths(out).items():
         check_outfile(p, force, inputs, what="OUT" if what == "ions" else f"OUT ({what} file)")
+    mpat = None if metal_patterns is None else tuple(split_list(metal_patterns, "--metal-patterns"))
     cfg = SimConfig(pattern=pattern, metals=mets, composition=comp, persistence=persistence,
-                    copy_error=copy_error, packing=str(lattice).lower() if preset else "honeycomb",
+                    copy_error=copy_error, interspersed_metal=interspersed_metal, avoidance=avoidance,
+                    metal_patterns=mpat, packing=str(lattice).lower() if preset else "honeycomb",
                     lattice=given_lattice, a_nm=a, repeat_nm=repeat, sites_per_repeat=sites_per_repeat,
                     top_radius_nm=tip_radius, half_angle_deg=half_angle, depth_nm=depth, eta=detection_efficiency,
                     sigma_xy_nm=lateral_blur, sigma_z_nm=depth_blur, mrp=mrp, seed=seed)

@@ -86,6 +86,13 @@ CAUTIONS = (
 )
 
 
+_CONFIDENCE_MEANING = (
+    "The confidence is the probability that the label is right, calibrated on simulated runs of every "
+    "arrangement: {share:.0f} % of bootstrap resamples over rods gave the same label, and on simulated runs "
+    "labels with that agreement were right this often. It holds for data like the simulations (the model's "
+    "assumptions, similar sizes and efficiencies); it says nothing about artefacts the model leaves out.")
+
+
 _LABEL_MEANING = {
     "random": "no memory along the rods: the metal at a site does not depend on the metal next to it "
               "(the independent-sites model is not rejected).",
@@ -93,6 +100,8 @@ _LABEL_MEANING = {
                     "shorter than {lb:g} sites on average.",
     "long-block": "the metals form long blocks along the rods: runs of the least abundant metal average "
                   "{lb:g} sites or more.",
+    "interspersed": "the least abundant metal sits as isolated units (or very short stretches) between runs of "
+                    "the others: it follows itself significantly less often than independent sites would.",
     "rod-to-rod-copied": "neighbouring rods carry the same sequence, more than crosstalk between rods explains.",
     "undetermined": "the data do not support a class (too few rods, sites or sites of the least abundant metal, "
                     "or no usable test result); no guess is made.",
@@ -372,12 +381,26 @@ def _verdict(result) -> str:
            f'<p class="label">{_esc(cl.label)}</p>',
            f'<p class="meaning">{_esc(meaning)}</p>',
            '<div class="facts">',
-           f"<div><b>confidence</b>{_esc(f'{100 * float(cl.confidence):.0f} %')} of bootstrap resamples</div>",
+           f"<div><b>confidence</b>{_esc(f'{100 * float(cl.confidence):.0f} %')}</div>",
            f"<div><b>along the rods</b>{_esc(cl.along_rod)}</div>",
            f"<div><b>rod to rod</b>{_esc(cl.rod_to_rod)}</div>",
            f"<div><b>data</b>{_esc(f'{col.n_rods} rods x {col.n_sites} sites, {int(col.mask.sum())} used')}</div>",
            f"<div><b>metals</b>{_esc(', '.join(result.metals))}</div>",
-           "</div>"]
+           "</div>",
+           f'<p class="meaning">{_esc(_CONFIDENCE_MEANING.format(share=100 * float(getattr(cl, "bootstrap_share", 0.0))))}</p>']
+    per_metal = getattr(cl, "per_metal", None) or {}
+    if per_metal:
+        out.append("<h3>Each metal along the rods</h3><table><tr><th>metal</th><th>arrangement</th>"
+                   "<th>next to itself</th><th>independent sites</th><th>self-persistence</th></tr>")
+        for mt, d in per_metal.items():
+            def pc(x):
+                return "n/a" if x is None or not math.isfinite(float(x)) else f"{100 * float(x):.1f} %"
+            lam = d.get("self_persistence")
+            out.append(f"<tr><td>{_esc(mt)}</td><td>{_esc(d.get('class', ''))}</td><td>{_esc(pc(d.get('self_neighbour')))} "
+                       f"({_esc(pc(d.get('self_neighbour_low')))}-{_esc(pc(d.get('self_neighbour_high')))})</td>"
+                       f"<td>{_esc(pc(d.get('independent')))}</td>"
+                       f"<td>{_esc('n/a' if lam is None or not math.isfinite(float(lam)) else f'{float(lam):.2f}')}</td></tr>")
+        out.append("</table>")
     if not col.resolvable:
         out.append(f'<p class="alert">{_esc(f"Single rods are not resolvable (misassigned fraction {col.misassigned_fraction:.2f}: share of the ions of a rod expected nearer another rod): ")}'
                    f'{_esc("per-rod sequences mix neighbouring rods; rely on the groups-of-rods analysis.")}</p>')

@@ -10,9 +10,13 @@ Everything it makes is invented. The model, stage by stage:
 2. **Sequence** of K metals with composition f per rod:
    ``random`` independent sites; ``short-repeat`` / ``long-block`` a Markov chain with persistence
    lam, ``P(stay in k) = f_k + lam (1 - f_k)`` (mean run length of k is ``1/((1 - lam)(1 - f_k))``),
-   defaults lam = 0.5 and 0.9; ``copied`` one master sequence (persistence ``persistence``, default 0)
+   defaults lam = 0.5 and 0.9; ``interspersed`` one metal (``interspersed_metal``, the least
+   abundant by default) inserted as isolated units, following itself with probability
+   ``f_m (1 - avoidance)``; ``per-metal`` (three metals or more) one arrangement per metal
+   (``metal_patterns``); ``copied`` one master sequence (persistence ``persistence``, default 0)
    that every rod repeats at the same depth, each site replaced by an independent draw with
-   probability ``copy_error``.
+   probability ``copy_error``. The chains of ``interspersed`` and ``per-metal`` are in
+   :mod:`probeseq.simulation.chains`.
 3. **Specimen**: a needle (cone frustum) of top radius ``top_radius_nm``, half-angle
    ``half_angle_deg`` and depth ``depth_nm``; only sites inside it can be detected.
 4. **Detection**: each site yields one ion with probability ``eta``; a metal leaves as M+, M2+ or
@@ -41,15 +45,18 @@ from pathlib import Path
 
 import numpy as np
 
+from ..decoding.chain import mean_run_lengths, persistence_per_state
+from ..decoding.chain import persistence as chain_persistence
 from ..exceptions import InputError
 from ..io.ions import IonList, IonMeta
 from ..lattice.model import PRESETS, Lattice
+from .chains import METAL_PATTERNS, chain_sequences, interspersed_transmat, per_metal_transmat
 from ..utils.tomlfile import short_repr
 from ..utils.validate import check_memory, check_number, check_scale, check_seed
 
 __all__ = ['SimConfig', 'SimRun', 'simulate_run', 'markov_sequences', 'PATTERNS', 'DEFAULT_PERSISTENCE']
 
-PATTERNS = ("random", "short-repeat", "long-block", "copied")
+PATTERNS = ("random", "short-repeat", "long-block", "interspersed", "per-metal", "copied")
 
 
 #: most ions a simulated run may hold (a bound on the work and memory of one run)
@@ -71,6 +78,10 @@ BYTES_PER_GRID_SITE = 100
 
 
 DEFAULT_PERSISTENCE = {"random": 0.0, "short-repeat": 0.5, "long-block": 0.9, "copied": 0.0}
+
+#: smallest mean run length of the least abundant metal that the truth (and the classifier's
+#: default) calls a long block, sites
+LONG_BLOCK_SITES = 8.0
 
 
 # Linker-fragment ions of an organic framework and their relative rates (invented for the
@@ -112,6 +123,9 @@ class SimConfig:
     composition: tuple | None = None
     persistence: float | None = None
     copy_error: float = 0.05
+    interspersed_metal: str | None = None
+    avoidance: float = 0.9
+    metal_patterns: tuple | None = None
     packing: str = "honeycomb"
     a_nm: float = 2.6
     repeat_nm: float = 0.68
@@ -140,6 +154,7 @@ class SimConfig:
     def __post_init__(self):
         if self.pattern not in PATTERNS:
             raise InputError(f"--pattern must be one of {', '.join(PATTERNS)}, got '{self.pattern}'")
+        self._check_chain_fields()
         if self.lattice is not None and not isinstance(self.lattice, Lattice):
             raise InputError(f"lattice must be a Lattice, got {type(self.lattice).__name__}")
         if self.packing not in PRESETS:
@@ -254,7 +269,41 @@ class SimConfig:
 
     @property
     def persistence_value(self) -> float:
+        """The persistence of the run's chain (of the master chain for ``copied``)."""
+        if self.pattern in ("interspersed", "per-metal"):
+            return float(chain_persistence(self.transmat))
         return DEFAULT_PERSISTENCE[self.pattern] if self.persistence is None else float(self.persistence)
+
+    @property
+    def transmat(self) -> np.ndarray:
+        """Transition matrix of the run's chain (of the master chain for ``copied``), (K, K)."""
+        f = self.composition_array
+        k = f.size
+        if self.pattern == "interspersed":
+            m = int(np.argmin(f)) if self.interspersed_metal is None else list(self.metals).index(self.interspersed_metal)
+            return interspersed_transmat(f, m, self.avoidance)
+        if self.pattern == "per-metal":
+            return per_metal_transmat(f, self.metal_patterns, self.avoidance)
+        lam = self.persistence_value
+        return lam * np.eye(k) + (1.0 - lam) * np.tile(f, (k, 1))
+
+    def _check_chain_fields(self):
+        """The fields of the interspersed and per-metal chains (the chain itself is built once here,
+        so a combination no chain can meet is refused before any work)."""
+        check_number(self.avoidance, "--avoidance", 0.0, 1.0)
+        if self.interspersed_metal is not None and self.interspersed_metal not in tuple(self.metals):
+            raise InputError(f"--interspersed-metal '{self.interspersed_metal}' is not one of --metals "
+                             f"{', '.join(map(str, self.metals))}")
+        if self.pattern == "per-metal":
+            mp = self.metal_patterns
+            if mp is None or isinstance(mp, str) or not isinstance(mp, (tuple, list)):
+                raise InputError("--pattern per-metal needs --metal-patterns, one of "
+                                 f"{', '.join(METAL_PATTERNS)} per metal (e.g. long-block,random,interspersed)")
+            bad = [x for x in mp if x not in METAL_PATTERNS]
+            if bad:
+                raise InputError(f"--metal-patterns: '{bad[0]}' is not one of {', '.join(METAL_PATTERNS)}")
+        elif self.metal_patterns is not None:
+            raise InputError("--metal-patterns is given but --pattern is not per-metal")
 
 
 @dataclass(frozen=True)
@@ -360,6 +409,8 @@ def markov_sequences(rng, n_rods, n_sites, f, lam):
 def simulate_sequences(cfg: SimConfig, n_rods: int, n_sites: int, rng) -> np.ndarray:
     """True site sequences (n_rods, n_sites) of metal indices for the configured pattern."""
     f = cfg.composition_array
+    if cfg.pattern in ("interspersed", "per-metal"):
+        return chain_sequences(rng, n_rods, n_sites, cfg.transmat, f)
     lam = cfg.persistence_value
     if cfg.pattern in ("random", "short-repeat", "long-block"):
         return markov_sequences(rng, n_rods, n_sites, f, lam)
@@ -592,8 +643,10 @@ def _build_truth(cfg, lat, seq, inside, rods, dist, species, counts):
     rod_xy, site_zr, tilt = rods["rod_xy"], rods["site_zr"], dist["tilt"]
     f = cfg.composition_array
     lam = cfg.persistence_value
-    # along a rod every pattern (copied included: its master chain) has mean run 1/((1-lam)(1-f_k))
-    mean_run_model = {el: 1.0 / ((1 - lam) * (1 - f[i])) for i, el in enumerate(cfg.metals)}
+    # along a rod every pattern (copied included: its master chain) has mean run 1/(1 - P_kk)
+    # (1/((1-lam)(1-f_k)) for a persistence chain)
+    tm = cfg.transmat
+    mean_run_model = {el: float(v) for el, v in zip(cfg.metals, mean_run_lengths(tm))}
     site_counts = np.array([(seq[inside] == i).sum() for i in range(k)], float)
     emp_runs = _empirical_mean_runs(seq, inside, k)
     # the realised chain: 1 / (1 - P_kk) from the transition counts of the true sequences (unbiased by
@@ -607,8 +660,10 @@ def _build_truth(cfg, lat, seq, inside, rods, dist, species, counts):
         "about": "Synthetic run from probeseq's forward simulator. rods[]: axis x = x0 + dxdz*z, "
                  "y = y0 + dydz*z (reconstruction frame, nm); seq: digit i means metals[i], '.' outside the specimen.",
         "pattern": cfg.pattern,
-        "label": "rod-to-rod-copied" if cfg.pattern == "copied" else cfg.pattern,
-        "along_rod": _along_rod_class(cfg.pattern, lam, mean_run_model),
+        "label": "rod-to-rod-copied" if cfg.pattern == "copied" else along_rod_class(tm, f),
+        "along_rod": along_rod_class(tm, f),
+        "per_metal": {el: c for el, c in zip(cfg.metals, metal_classes(tm, f))},
+        "transmat": tm.tolist(),
         "rod_to_rod": "copied" if cfg.pattern == "copied" else "independent",
         "metals": list(cfg.metals),
         "composition": {el: float(f[i]) for i, el in enumerate(cfg.metals)},
@@ -639,13 +694,32 @@ def _build_truth(cfg, lat, seq, inside, rods, dist, species, counts):
     }
 
 
-def _along_rod_class(pattern, lam, mean_runs, long_block_sites=8.0):
-    """The along-rod class of the truth; for copied rods, that of their master chain."""
-    if pattern != "copied":
-        return pattern
-    if lam == 0:
+def metal_classes(transmat, f, long_block_sites: float = LONG_BLOCK_SITES) -> list:
+    """The true arrangement of each metal of a chain: ``interspersed`` when it follows itself less
+    often than independent sites would (self-persistence < 0), ``random`` when as often, else
+    ``long-block`` or ``short-repeat`` by its mean run length (the classifier's per-metal rule)."""
+    lam_k = persistence_per_state(transmat, f)
+    runs = mean_run_lengths(transmat)
+    out = []
+    for lk, r in zip(lam_k, runs):
+        if abs(lk) < 1e-9:
+            out.append("random")
+        elif lk < 0:
+            out.append("interspersed")
+        else:
+            out.append("long-block" if r >= long_block_sites else "short-repeat")
+    return out
+
+
+def along_rod_class(transmat, f, long_block_sites: float = LONG_BLOCK_SITES) -> str:
+    """The along-rod class of a true chain (for copied rods, that of their master chain): ``random``
+    for independent sites, else the class of the least abundant metal, with ``random`` for it read
+    as ``short-repeat`` (the sites are not independent, but that metal has no runs of its own)."""
+    classes = metal_classes(transmat, f, long_block_sites)
+    if all(c == "random" for c in classes):
         return "random"
-    return "long-block" if min(mean_runs.values()) >= long_block_sites else "short-repeat"
+    c = classes[int(np.argmin(f))]
+    return "short-repeat" if c == "random" else c
 
 
 def _uniform_in_needle(rng, n, cfg):

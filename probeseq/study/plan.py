@@ -38,11 +38,11 @@ SEED_SPACE = 2 ** 63 - 2 ** 20
 MAX_PLAN_IONS = 3e8
 
 
-LABELS = ("random", "short-repeat", "long-block", "rod-to-rod-copied", "undetermined")
+LABELS = ("random", "short-repeat", "long-block", "interspersed", "rod-to-rod-copied", "undetermined")
 
 
 PATTERN_LABEL = {"random": "random", "short-repeat": "short-repeat", "long-block": "long-block",
-                 "copied": "rod-to-rod-copied"}
+                 "copied": "rod-to-rod-copied", "interspersed": "interspersed"}
 
 
 @dataclass(frozen=True)
@@ -153,7 +153,7 @@ def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_r
                 lattice=lattice, top_radius_nm=top_radius_nm, depth_nm=depth_nm, copy_error=copy_error)
     jobs, kinds = [], []
     s = (int(seed) * 100_003) % SEED_SPACE  # seeds of the simulated runs stay below 2**63
-    patterns = ("random", "short-repeat", "long-block", "copied")
+    patterns = ("random", "short-repeat", "long-block", "copied", "interspersed")
     for pat in patterns:
         lam = {"short-repeat": short_repeat_persistence, "long-block": long_block_persistence}.get(pat)
         for i in range(n_per_pattern):
