@@ -185,3 +185,37 @@ def test_analysis_of_a_simulated_interspersed_run_labels_it():
     assert res.classification.label == "interspersed"
     out = res.to_dict()["classification"]
     assert out["per_metal"]["Zn"]["class"] == "interspersed" and 0 <= out["confidence"] <= 1
+
+
+@pytest.mark.parametrize("args,msg", [
+    (["--pattern", "interspersed", "--avoidance", "2"], "--avoidance must be in [0, 1]"),
+    (["--pattern", "per-metal", "--metals", "Co,Ni,Zn", "--metal-patterns", "random,blocks,random"],
+     "'blocks' is not one of"),
+    (["--pattern", "per-metal", "--metals", "Co,Ni,Zn", "--metal-patterns", "random,random"], "one pattern per metal"),
+    (["--pattern", "per-metal", "--metals", "Co,Ni,Zn", "--composition", "0.6,0.3,0.1",
+      "--metal-patterns", "random,long-block,interspersed"], "cannot be combined"),
+    (["--pattern", "interspersed", "--interspersed-metal", "Fe"], "not one of --metals"),
+])
+def test_bad_arrangement_options_are_one_line_errors(tmp_path, capsys, args, msg):
+    from probeseq.cli import main
+
+    code = main(["simulate", str(tmp_path / "r.h5"), *args])
+    err = capsys.readouterr().err.strip()
+    assert code == 1 and msg in err and len(err.splitlines()) == 1
+    assert not (tmp_path / "r.h5").exists()
+
+
+def test_terminal_summary_names_each_metal(tmp_path, capsys):
+    from probeseq.cli import main
+
+    p = tmp_path / "r.h5"
+    assert main(["simulate", str(p), "--pattern", "per-metal", "--metals", "Co,Ni,Zn", "--composition",
+                 "0.5,0.3,0.2", "--metal-patterns", "long-block,random,interspersed", "--depth", "20",
+                 "--tip-radius", "5", "--seed", "4", "-q"]) == 0
+    code = main(["analyze", str(p), "--metals", "Co,Ni,Zn", "--lattice", str(tmp_path / "r.lattice.toml"),
+                 "--out", str(tmp_path / "out"), "--seed", "1"])
+    out = capsys.readouterr().out
+    assert code == 0
+    assert "each metal along the rods: Co long-block, Ni random, Zn interspersed" in out
+    res = json.loads((tmp_path / "out" / "results.json").read_text())
+    assert res["classification"]["label"] == "interspersed"

@@ -292,6 +292,9 @@ def summary_lines(res, verbose: bool = False) -> list:
         r, rlo, rhi = st.interval(f"mean_run_length_sites.{m}")
         ratio = st.estimates.get(f"run_length_ratio.{m}", float("nan"))
         lines.append(f"{m:6s} {f:8.3f} [{flo:.3f}-{fhi:.3f}] {r:10.2f} [{rlo:.2f}-{rhi:.2f}] {ratio:14.2f}")
+    per_metal = getattr(c, "per_metal", None) or {}
+    if per_metal:
+        lines.append("each metal along the rods: " + ", ".join(f"{m} {d['class']}" for m, d in per_metal.items()))
     col = res.columns
     lines.append(f"rods {col.n_rods}, sites used {int(col.mask.sum())}, detection efficiency "
                  f"{res.decoded.eta:.3f}, persistence {st.estimates.get('persistence', float('nan')):.3f}")
