@@ -210,8 +210,8 @@ def test_terminal_summary_names_each_metal(tmp_path, capsys):
 
     p = tmp_path / "r.h5"
     assert main(["simulate", str(p), "--pattern", "per-metal", "--metals", "Co,Ni,Zn", "--composition",
-                 "0.5,0.3,0.2", "--metal-patterns", "long-block,random,interspersed", "--depth", "20",
-                 "--tip-radius", "5", "--seed", "4", "-q"]) == 0
+                 "0.5,0.3,0.2", "--metal-patterns", "long-block,random,interspersed", "--depth", "16",
+                 "--tip-radius", "4.5", "--seed", "4", "-q"]) == 0
     code = main(["analyze", str(p), "--metals", "Co,Ni,Zn", "--lattice", str(tmp_path / "r.lattice.toml"),
                  "--out", str(tmp_path / "out"), "--seed", "1"])
     out = capsys.readouterr().out

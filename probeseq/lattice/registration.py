@@ -219,6 +219,29 @@ class Registration:
         return (M[0, 0] * x + M[0, 1] * y + e[0] * z + c[0],
                 M[1, 0] * x + M[1, 1] * y + e[1] * z + c[1])
 
+    def axis_distance_nm(self, x, y, z) -> np.ndarray:
+        """Distance of each point to the nearest rod axis, nm (lattice frame; ``inf`` where the
+        point cannot be placed).
+
+        Parameters
+        ----------
+        x, y, z : (n,) array of float, nm
+            Reconstruction-frame positions.
+
+        Returns
+        -------
+        (n,) ndarray of float, nm
+        """
+        f1, f2 = self.to_frac(x, y, z)
+        locator = _cached_locator(self.lattice, self.lattice.nearest_rod_distance_nm, 64)
+        ci, cj, code = locator.locate(f1, f2)
+        ok = code >= 0
+        d = np.full(f1.size, np.inf)
+        rf = locator.rod_frac(ci[ok], cj[ok], code[ok])
+        df = np.column_stack([f1[ok], f2[ok]]) - rf
+        d[ok] = np.sqrt(((df @ self.lattice.cell_matrix.T) ** 2).sum(1))
+        return d
+
     def lattice_to_recon(self, q_nm, z_nm=None) -> np.ndarray:
         """Reconstruction-frame position of lattice-frame points ``q_nm`` (n, 2) at depth ``z_nm``."""
         q = np.asarray(q_nm, float).reshape(-1, 2)

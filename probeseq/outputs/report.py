@@ -38,7 +38,7 @@ SECTION_IDS = ("verdict", "statistics", "figures", "parameters", "warnings", "ca
 
 #: figure name -> element id of its <figure>
 FIGURE_IDS = {"tracks": "fig-tracks", "spectrum": "fig-spectrum", "density": "fig-density",
-              "run_lengths": "fig-run-lengths", "rod_to_rod": "fig-rod-to-rod", "groups": "fig-groups"}
+              "run_lengths": "fig-run-lengths", "rod_to_rod": "fig-rod-to-rod", "groups": "fig-groups", "overlaps": "fig-overlaps"}
 
 
 #: a warning is added when more than this share of decoded sites is uncertain
@@ -335,6 +335,17 @@ def _standard_figures(result, ions, skip, dpi):
     add("spectrum", "Mass spectrum with ranges",
         "Counts per mass-to-charge bin (log scale); shaded bands are the ranges, coloured by metal channel "
         "(grey: other species); '?' marks peaks no species explains.", spectrum)
+
+    def overlaps():
+        from ..ranging.plot import plot_overlaps
+
+        return plot_overlaps(ranging) if getattr(ranging, "overlap_refinement", None) else None
+
+    add("overlaps", "Overlapped metal and fragment lines",
+        "The spectrum near each range where a metal line and a fragment line coincide (log scale; the range "
+        "shaded), with the fitted ions of each species in it. Their split was refitted from the ions' "
+        "mass-to-charge and their distance to the rod axes (metal ions sit on the axes, fragments between): "
+        "the metal share from space is given beside the share the spectrum alone would give.", overlaps)
 
     def density():
         if ions is None:

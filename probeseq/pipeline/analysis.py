@@ -230,7 +230,8 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> 
 
     Files: ``tracks.svg/.pdf/.png`` (rods nearest the centre), ``spectrum.png/.svg``,
     ``density.png``, ``run_lengths.svg/.png``, ``rod_to_rod.svg/.png``, ``groups.svg/.png`` (when
-    rods are not resolvable). A figure that cannot be drawn is skipped with a warning.
+    rods are not resolvable), ``overlaps.png/.svg`` (when overlapped metal and fragment lines were
+    refitted with the ions' distance to the rod axes). A figure that cannot be drawn is skipped with a warning.
     """
     from ..outputs.figures import plot_group_variance, plot_rod_to_rod, plot_run_lengths, save_figure
     from ..outputs.tracks import plot_tracks
@@ -268,6 +269,13 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> 
         return plot_ranging(result.ranging, folder / "spectrum")
 
     attempt("spectrum", spectrum, ())
+
+    def overlaps():
+        from ..ranging.plot import plot_overlaps
+
+        return plot_overlaps(result.ranging, folder / "overlaps")
+
+    attempt("overlaps", overlaps, ())
     if result.figure_ions is not None:
         attempt("density", lambda: write_density_figure(result.figure_ions, result.ranging, result.columns,
                                                         folder / "density.png"), ())
@@ -328,7 +336,7 @@ def _write_rest(result, st, report, progress, extra):
     from ..lattice.rodcolumns import save_columns
 
     _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS, RUNS_FORMATS)
-    result.ranging.ranges.to_toml(st / "ranges.toml")
+    result.ranging.to_toml(st / "ranges.toml")
     save_columns(result.columns, st / "columns.h5")
     _write_replicates(result.statistics, st / "bootstrap.h5")
     save_decoded(result.decoded, st / "decoded.h5")

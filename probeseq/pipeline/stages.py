@@ -217,8 +217,30 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
             x, y, z = sample.x[sel], sample.y[sel], sample.z[sel]
             reg = register_lattice(x, y, z, lattice, rotation_deg=opts.rotation_deg, scale=opts.scale,
                                    offset_nm=opts.offset_nm, random_state=opts.seed)
+            # overlapped metal and fragment lines: refit their shares with the distance to the rod axes
+            rr2 = _refine_overlaps(rr, sample, stride, reg)
+            if rr2 is not rr:
+                rr = rr2
+                ca = assign_channels(m, rr.ranges, metals)
+                ca_fit = ca if stride == 1 else replace(ca, range_index=ca.range_index[::stride],
+                                                        channel=ca.channel[::stride])
+                thin = detection_balance(rr, ca_fit)
             geom = plan_columns(x, y, z, reg, random_state=opts.seed)
     return rr, thin, geom
+
+
+def _refine_overlaps(rr, sample: IonList, stride: int, reg):
+    """The ranging result refitted where metal and fragment lines overlap, from the ranged ions'
+    mass-to-charge and distance to the rod axes (:func:`probeseq.ranging.spatial.refine_overlaps`)."""
+    from ..ranging.channels import assign_channels
+    from ..ranging.spatial import refine_overlaps
+
+    if not rr.overlap_candidates:
+        return rr
+    m = sample.mass_to_charge[::stride]
+    ri = assign_channels(m, rr.ranges, rr.metals).range_index
+    d = reg.axis_distance_nm(sample.x[::stride], sample.y[::stride], sample.z[::stride])
+    return refine_overlaps(rr, ri, d, reg.lattice.nearest_rod_distance_nm)
 
 
 def _ranging_stride(n: int) -> int:

@@ -95,6 +95,7 @@ from .calibration import (
 )
 from .channels import ChannelAssignment, _check_metals, _lookup_for, assign_channels
 from .isotopes import ion_label, metal_atoms, parse_formula
+from .amounts import _composition, _design, _probe_rows, _solve_amounts
 from .ranges import Range, RangeSet
 from .spectrum import (
     DEFAULT_RESOLVING_POWER,
@@ -117,113 +118,6 @@ _MIN_EXPLAINED = 0.2
 
 
 # ============================================================================ quantification
-def _design(ranges_lo, ranges_hi, lines: _Lines, cal_pos, n_species, shape: PeakShape | None = None):
-    """A[j, s]: expected share of species s's ions in range j.
-
-    Without a peak shape, the isotope fraction of the lines whose calibrated position falls in
-    the range; with one, each line's ions are spread by the shape, so tails outside a window and
-    tails of neighbours inside it are counted.
-    """
-    A = np.zeros((ranges_lo.size, n_species))
-    if ranges_lo.size == 0:
-        return A
-    if shape is None:
-        k = np.searchsorted(ranges_lo, cal_pos, side="right") - 1
-        inside = (k >= 0) & (cal_pos < ranges_hi[np.maximum(k, 0)])
-        np.add.at(A, (k[inside], lines.sp[inside]), lines.frac[inside])
-        return A
-    cap = shape.fraction(cal_pos[:, None], ranges_lo[None, :], ranges_hi[None, :])  # (n_lines, n_ranges)
-    cap *= lines.frac[:, None]
-    onehot = np.zeros((cal_pos.size, n_species))
-    onehot[np.arange(cal_pos.size), lines.sp] = 1.0
-    return cap.T @ onehot
-
-
-def _probe_rows(ranges_lo, ranges_hi, lines: _Lines, cal_pos, active, fwhm_at, min_frac=0.02):
-    """Windows at predicted lines of active species that fall outside every range.
-
-    Returns (lo, hi) arrays of merged windows, clipped to the gaps between ranges.
-    """
-    sel = active[lines.sp] & (lines.frac >= min_frac)
-    pos = cal_pos[sel]
-    if ranges_lo.size:
-        k = np.searchsorted(ranges_lo, pos, side="right") - 1
-        inside = (k >= 0) & (pos < ranges_hi[np.maximum(k, 0)])
-        pos = pos[~inside]
-    if pos.size == 0:
-        return np.zeros(0), np.zeros(0)
-    w = fwhm_at(pos)
-    lo, hi = pos - w, pos + w
-    if ranges_lo.size:  # clip to the gap between the neighbouring ranges
-        k = np.searchsorted(ranges_lo, pos, side="right") - 1
-        prev_hi = np.where(k >= 0, ranges_hi[np.maximum(k, 0)], -np.inf)
-        nxt = np.minimum(k + 1, ranges_lo.size - 1)
-        next_lo = np.where(k + 1 < ranges_lo.size, ranges_lo[nxt], np.inf)
-        lo, hi = np.maximum(lo, prev_hi), np.minimum(hi, next_lo)
-    ok = (hi - lo) >= 0.5 * w
-    lo, hi = lo[ok], hi[ok]
-    order = np.argsort(lo)
-    lo, hi = lo[order], hi[order]
-    out_lo, out_hi = [], []
-    for a, b in zip(lo, hi):
-        if out_hi and a <= out_hi[-1]:
-            out_hi[-1] = max(out_hi[-1], b)
-        else:
-            out_lo.append(a)
-            out_hi.append(b)
-    return np.asarray(out_lo), np.asarray(out_hi)
-
-
-def _solve_amounts(A, gross, bg, bg_sigma, n_iter: int = 10, k_robust: float = 4.0):
-    """Weighted NNLS for c = gross - bg = A @ n, re-weighted by the fitted Poisson variance.
-
-    Rows whose residual exceeds ``k_robust`` standard deviations (an unknown ion on a minor
-    isotope line, say) have their variance inflated by ``(r / k_robust)**2``, a redescending
-    M-estimator, so that they cannot drag the amounts.
-
-    Returns amounts (n_species,), covariance (n_species, n_species), model counts (n_rows,).
-    """
-    from scipy.optimize import nnls
-
-    c = gross - bg
-    n_sp = A.shape[1]
-    x = np.zeros(n_sp)
-    model = np.maximum(c, 0.0)
-    inflate = np.ones(c.size)
-    for _ in range(n_iter):
-        var = (np.maximum(model + bg, 1.0) + bg_sigma ** 2) * inflate
-        sw = 1.0 / np.sqrt(var)
-        x_new, _ = nnls(A * sw[:, None], c * sw, maxiter=50 * max(n_sp, 1))
-        model = A @ x_new
-        r = (c - model) / np.sqrt(np.maximum(model + bg, 1.0) + bg_sigma ** 2)
-        inflate = np.maximum((np.abs(r) / k_robust) ** 2, 1.0)
-        if np.allclose(x_new, x, rtol=1e-7, atol=1e-9):
-            x = x_new
-            break
-        x = x_new
-    var = (np.maximum(model + bg, 1.0) + bg_sigma ** 2) * inflate
-    cov = np.zeros((n_sp, n_sp))
-    act = x > 0
-    if act.any():
-        Aw = A[:, act] / np.sqrt(var)[:, None]
-        cov[np.ix_(act, act)] = np.linalg.pinv(Aw.T @ Aw)
-    return x, cov, model
-
-
-def _composition(amounts, cov, atoms):
-    """Metal atoms, atomic fractions and their standard errors."""
-    M = atoms.T @ amounts
-    covM = atoms.T @ cov @ atoms
-    S = M.sum()
-    if S <= 0:
-        k = M.size
-        return M, np.sqrt(np.maximum(np.diag(covM), 0)), np.full(k, np.nan), np.full(k, np.nan)
-    x = M / S
-    J = (np.eye(M.size) - x[:, None]) / S  # dx_i/dM_j = (delta_ij - x_i) / S
-    covx = J @ covM @ J.T
-    return M, np.sqrt(np.maximum(np.diag(covM), 0)), x, np.sqrt(np.maximum(np.diag(covx), 0))
-
-
 # ============================================================================ result
 @dataclass(frozen=True)
 class RangingResult:
@@ -266,6 +160,16 @@ class RangingResult:
         Grid spectrum, background model and peak bins.
     spectrum : Spectrum
         Uniform-bin spectrum for figures.
+    fit_rows : tuple or None
+        ``(A, gross, background, background_sigma)`` of the amounts fit: the design (rows: the
+        ranges, then windows at predicted lines outside them; columns: species) and the counts it
+        was fitted to, for a refit with more evidence (:func:`probeseq.ranging.spatial.refine_overlaps`).
+    composition_spectrum : (n_metals,) ndarray of float or None
+        The composition from the mass spectrum alone, before overlapped ranges were refitted with
+        the ions' distance to the rod axes (None when nothing was refitted).
+    overlap_refinement : tuple of dict
+        What the refit from the ions' distance to the rod axes changed, one dict per overlapped
+        range (empty when there was none).
     """
 
     metals: tuple
@@ -291,10 +195,23 @@ class RangingResult:
     peak_shape: PeakShape | None
     search: PeakSearch
     spectrum: Spectrum
+    fit_rows: tuple | None = None
+    overlap_refinement: tuple = ()
+    composition_spectrum: np.ndarray | None = None
 
     def composition_dict(self) -> dict:
         """``{metal: (fraction, sigma)}``."""
         return {m: (float(x), float(s)) for m, x, s in zip(self.metals, self.composition, self.composition_sigma)}
+
+    @property
+    def overlap_candidates(self) -> bool:
+        """True when some range may hold both a metal species and a non-metal one (its design has
+        lines of both), so that space can help split it."""
+        if self.fit_rows is None or not len(self.ranges):
+            return False
+        A = self.fit_rows[0][:len(self.ranges)]
+        is_metal = np.asarray(self.species_metal_atoms).sum(axis=1) > 0
+        return bool(((A[:, is_metal] >= 0.02).any(1) & (A[:, ~is_metal] >= 0.02).any(1)).any())
 
     def range_notes(self) -> list:
         """One comment per range for the range file."""
@@ -304,6 +221,12 @@ class RangingResult:
             at = f"peak at {self.peaks.position_da[p]:.3f} Da, " if p >= 0 else ""
             notes.append(f"{at}{self.gross_counts[j]:.0f} ions, background {self.background_counts[j]:.1f}"
                          + (" (deconvolved)" if j in self.deconvolved else ""))
+        for d in self.overlap_refinement:
+            j = next((i for i, r in enumerate(self.ranges) if abs(r.low_da - d["low_da"]) < 1e-9), None)
+            if j is not None and d["used"]:
+                notes[j] += (f"; shares refitted from mass-to-charge and the ions' distance to the rod axes (metal "
+                             f"share {d['metal_share_space']:.3f} +- {d['metal_share_space_err']:.3f} from space, "
+                             f"{d['metal_share_spectrum']:.3f} from the spectrum alone)")
         return notes
 
     def to_toml(self, path=None) -> str:
@@ -345,6 +268,9 @@ class RangingResult:
                         for (f, z), a, s in zip(self.species, self.amounts, self.amounts_sigma)],
             "unmatched_peaks": un,
             "n_peaks": len(self.peaks),
+            "overlap_refinement": [dict(r) for r in self.overlap_refinement],
+            "composition_spectrum_only": (None if self.composition_spectrum is None else
+                                          {m: float(v) for m, v in zip(self.metals, self.composition_spectrum)}),
         }
 
 
@@ -447,7 +373,7 @@ def auto_range(mass_to_charge, metals, species=None, *, ranges: RangeSet | None 
         amounts=amounts, amounts_sigma=np.sqrt(np.maximum(np.diag(cov), 0)), species_metal_atoms=atoms,
         metal_atoms=M, metal_atoms_sigma=M_sig, composition=x, composition_sigma=x_sig, resolving_power=rp,
         peak_shape=shape, search=search, spectrum=histogram(m, range_da=(search.spectrum.edges_da[0], search.spectrum.edges_da[-1]),
-                                          resolving_power=rp))
+                                          resolving_power=rp), fit_rows=fit["rows"])
 
 
 def _check_auto_range_args(low_fraction, high_fraction, tolerance_fwhm, max_shift, calibration_degree):
@@ -775,7 +701,7 @@ def _quantify(m, rs: RangeSet, search: PeakSearch, lines: _Lines, cal_pos, cand,
         cov[np.ix_(use, use)] = cv
     mu = A * amounts[None, :]
     return {"gross": gross, "bg": bg, "bg_sigma": bg_sig, "A": A, "A_hard": A_hard, "amounts": amounts,
-            "cov": cov, "mu": mu}
+            "cov": cov, "mu": mu, "rows": (A_all,) + rows}
 
 
 def _require_user_species(rs: RangeSet, A, cand, cal_pos, lines, A_shape=None):

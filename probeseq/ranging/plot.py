@@ -143,6 +143,65 @@ def plot_ranging(result, path=None, *, xlim_da=None, max_labels: int = 40, title
                          max_labels=max_labels, title=title)
 
 
+def plot_overlaps(result, path=None, *, max_panels: int = 6):
+    """The spectrum near each range refitted with the ions' distance to the rod axes, with the
+    fitted components (ions of each species in the range) and the metal share from space against
+    the spectrum alone.
+
+    Parameters
+    ----------
+    result : probeseq.ranging.auto.RangingResult
+    path : str or Path, optional
+        Save as ``<stem>.png`` and ``<stem>.svg``.
+    max_panels : int
+        Most ranges drawn (the ones with most ions).
+
+    Returns
+    -------
+    matplotlib.figure.Figure or None
+        None when no range was refitted.
+    """
+    import math
+
+    import matplotlib.pyplot as plt
+
+    from .isotopes import ion_label
+
+    ref = sorted((d for d in result.overlap_refinement if d.get("used")), key=lambda d: -d["ions"])[:max_panels]
+    if not ref or result.fit_rows is None:
+        return None
+    A = result.fit_rows[0][:len(result.ranges)]
+    n = len(ref)
+    ncol = min(3, n)
+    nrow = math.ceil(n / ncol)
+    fig, axes = plt.subplots(nrow, ncol, figsize=(2.6 * ncol, 2.2 * nrow), squeeze=False)
+    sp = result.spectrum
+    c, counts = sp.centres_da, sp.counts
+    lows = result.ranges.lows_da
+    for ax, d in zip(axes.flat, ref):
+        lo, hi = d["low_da"], d["high_da"]
+        pad = max(0.6, hi - lo)
+        sel = (c >= lo - pad) & (c <= hi + pad)
+        ax.step(c[sel], np.maximum(counts[sel], 0.5), where="mid", color="0.25", linewidth=0.7)
+        ax.axvspan(lo, hi, color="0.85", zorder=0)
+        j = int(np.argmin(np.abs(lows - lo)))
+        mu = A[j] * result.amounts
+        order = [s for s in np.argsort(mu)[::-1] if mu[s] > 0.01 * max(mu.sum(), 1e-12)][:4]
+        lines = [f"{ion_label(*result.species[s])}: {mu[s]:.0f} ions" for s in order]
+        lines.append(f"metal share {d['metal_share_space']:.2f} \u00b1 {d['metal_share_space_err']:.2f} (space)")
+        lines.append(f"spectrum alone {d['metal_share_spectrum']:.2f}")
+        ax.text(0.02, 0.98, "\n".join(lines), transform=ax.transAxes, va="top", fontsize=6)
+        ax.set_yscale("log")
+        ax.set_xlabel("mass-to-charge (Da)", fontsize=7)
+        ax.tick_params(labelsize=6)
+    for ax in list(axes.flat)[n:]:
+        ax.set_visible(False)
+    fig.tight_layout()
+    if path is not None:
+        save_figure(fig, path)
+    return fig
+
+
 def save_figure(fig, path) -> list:
     """Save ``fig`` as PNG (150 dpi) and SVG next to each other; return the two paths."""
     p = Path(path)

@@ -50,11 +50,13 @@ from ..decoding.chain import persistence as chain_persistence
 from ..exceptions import InputError
 from ..io.ions import IonList, IonMeta
 from ..lattice.model import PRESETS, Lattice
+from .emission import (FRAGMENT_SETS, _draw_mass_to_charge, _emit_metal_ions, _emit_organic_ions,
+                       _species_lines, _uniform_in_needle, ion_lines)
 from .chains import METAL_PATTERNS, chain_sequences, interspersed_transmat, per_metal_transmat
 from ..utils.tomlfile import short_repr
 from ..utils.validate import check_memory, check_number, check_scale, check_seed
 
-__all__ = ['SimConfig', 'SimRun', 'simulate_run', 'markov_sequences', 'PATTERNS', 'DEFAULT_PERSISTENCE']
+__all__ = ['SimConfig', 'SimRun', 'simulate_run', 'markov_sequences', 'ion_lines', 'PATTERNS', 'DEFAULT_PERSISTENCE']
 
 PATTERNS = ("random", "short-repeat", "long-block", "interspersed", "per-metal", "copied")
 
@@ -82,14 +84,6 @@ DEFAULT_PERSISTENCE = {"random": 0.0, "short-repeat": 0.5, "long-block": 0.9, "c
 #: smallest mean run length of the least abundant metal that the truth (and the classifier's
 #: default) calls a long block, sites
 LONG_BLOCK_SITES = 8.0
-
-
-# Linker-fragment ions of an organic framework and their relative rates (invented for the
-# simulator; the species are the usual small fragments of hydrocarbon/carboxylate linkers).
-ORGANIC_SPECIES = (
-    ("H", 1, 0.20), ("H2", 1, 0.08), ("C", 1, 0.12), ("C", 2, 0.08), ("O", 1, 0.10),
-    ("OH", 1, 0.06), ("H2O", 1, 0.08), ("CO", 1, 0.12), ("C2H2", 1, 0.06), ("CO2", 1, 0.10),
-)
 
 
 def _check_metal_symbol(symbol) -> None:
@@ -136,6 +130,7 @@ class SimConfig:
     depth_nm: float = 40.0
     eta: float = 0.5
     branching: tuple = (0.35, 0.55, 0.10)
+    fragments: str = "default"
     mrp: float = 600.0
     tail_fraction: float = 0.5
     tail_scale: float = 1.5
@@ -210,8 +205,11 @@ class SimConfig:
             b = np.asarray(self.branching, float)
         except (TypeError, ValueError):
             b = np.full(0, np.nan)
-        if b.shape != (3,) or not np.isfinite(b).all() or (b < 0).any() or b.sum() <= 0:
-            raise InputError(f"branching needs 3 non-negative fractions (M+, M2+, MO+), got {self.branching}")
+        if b.shape not in ((3,), (4,)) or not np.isfinite(b).all() or (b < 0).any() or b.sum() <= 0:
+            raise InputError(f"branching needs 3 or 4 non-negative fractions (M+, M2+, MO+[, M3+]), got "
+                             f"{short_repr(self.branching, 60)}")
+        if self.fragments not in FRAGMENT_SETS:
+            raise InputError(f"--fragments must be one of {', '.join(FRAGMENT_SETS)}, got {short_repr(self.fragments, 40)}")
         lat = self.lattice if self.lattice is not None else Lattice.from_preset(
             self.packing, self.a_nm, self.repeat_nm, self.sites_per_repeat)
         if self.depth_nm < lat.pitch_nm:
@@ -350,41 +348,6 @@ class SimRun:
         paths["truth"].write_text(json.dumps({**self.truth, "written_by": MARK}, indent=1, sort_keys=True))
         paths["lattice"].write_text(f"# {MARK}: the true lattice of a simulated run\n" + self.lattice.to_toml())
         return {k: str(v) for k, v in paths.items()}
-
-
-# ---------------------------------------------------------------------- isotope patterns
-def _formula_atoms(formula: str) -> list:
-    import periodictable as pt
-
-    f = pt.formula(formula)
-    return [(el, n) for el, n in f.atoms.items()]
-
-
-def ion_lines(formula: str, charge: int, min_abundance: float = 1e-5):
-    """Isotope lines of an ion: (m/z in Da, fraction), neutral isotope masses / charge.
-
-    Isotope masses and abundances from ``periodictable`` (AME2020 masses, CIAAW-2021 abundances).
-    """
-    masses = np.array([0.0])
-    probs = np.array([1.0])
-    for el, n in _formula_atoms(formula):
-        iso = [(i.mass, i.abundance / 100.0) for i in el if i.abundance > 0]
-        if not iso:
-            raise InputError(f"element {el} has no natural isotopes")
-        im = np.array([m for m, _ in iso])
-        ip = np.array([p for _, p in iso])
-        ip = ip / ip.sum()
-        for _ in range(int(n)):
-            masses = (masses[:, None] + im[None, :]).ravel()
-            probs = (probs[:, None] * ip[None, :]).ravel()
-            # merge lines that coincide to 1e-4 Da and prune negligible ones
-            key = np.round(masses, 4)
-            uk, inv = np.unique(key, return_inverse=True)
-            p2 = np.bincount(inv, probs)
-            m2 = np.bincount(inv, probs * masses) / p2
-            keep = p2 >= min_abundance
-            masses, probs = m2[keep], p2[keep] / p2[keep].sum()
-    return masses / charge, probs
 
 
 # ---------------------------------------------------------------------- sequences
@@ -567,61 +530,6 @@ def _place_rods(cfg, lat, dist, rng):
             "n_sites": n_sites, "phase": phase}
 
 
-def _species_lines(cfg):
-    """Ion species (formula, charge, kind, metal index) and their isotope lines: metals, then linker."""
-    species = []
-    lines = []
-    for mi, el in enumerate(cfg.metals):
-        for formula, charge in ((el, 1), (el, 2), (el + "O", 1)):
-            species.append((formula, charge, "metal", mi))
-            lines.append(ion_lines(formula, charge))
-    for formula, charge, _ in ORGANIC_SPECIES:
-        species.append((formula, charge, "organic", -1))
-        lines.append(ion_lines(formula, charge))
-    return species, lines
-
-
-def _emit_metal_ions(cfg, rng, seq, inside, axis, site_zr, R):
-    """Detected metal ions: rod and site indices, metal, blurred positions and species index."""
-    detected = inside & (rng.random(inside.shape) < cfg.eta)
-    r_idx, s_idx = np.nonzero(detected)
-    n_metal = r_idx.size
-    metal = seq[r_idx, s_idx].astype(np.int64)
-    ang = 2 * math.pi * s_idx / cfg.sites_per_repeat + rng.uniform(0, 2 * math.pi)
-    helix = cfg.helix_radius_nm * np.column_stack([np.cos(ang), np.sin(ang)]) @ R.T
-    zm = site_zr[r_idx, s_idx] + (rng.normal(0, cfg.sigma_z_nm, n_metal) if cfg.sigma_z_nm else 0.0)
-    xym = axis[r_idx, s_idx] + helix + rng.normal(0, cfg.sigma_xy_nm, (n_metal, 2))
-    branching = np.asarray(cfg.branching, float) / np.sum(cfg.branching)
-    which = np.minimum(np.searchsorted(np.cumsum(branching), rng.random(n_metal), side="right"), 2)
-    sp_metal = metal * 3 + which
-    return r_idx, s_idx, metal, xym, zm, sp_metal
-
-
-def _emit_organic_ions(cfg, rng, inside, k, tilt):
-    """Linker-fragment ions, uniform through the needle volume: species index and positions."""
-    n_org = int(rng.poisson(cfg.organic_per_site * inside.sum() / max(cfg.eta, 1e-9) * cfg.eta))
-    rates = np.array([w for _, _, w in ORGANIC_SPECIES])
-    sp_org = 3 * k + np.minimum(np.searchsorted(np.cumsum(rates / rates.sum()), rng.random(n_org), side="right"),
-                                len(ORGANIC_SPECIES) - 1)
-    xyo, zo = _uniform_in_needle(rng, n_org, cfg)
-    xyo = xyo + tilt[None, :] * zo[:, None]
-    return sp_org, xyo, zo
-
-
-def _draw_mass_to_charge(cfg, rng, sp_all, lines):
-    """Mass-to-charge of the signal ions: an isotope line, a Gaussian peak and a thermal tail."""
-    mz = np.empty(sp_all.size)
-    for si, (mzs, ps) in enumerate(lines):
-        sel = np.flatnonzero(sp_all == si)
-        if sel.size:
-            mz[sel] = mzs[np.minimum(np.searchsorted(np.cumsum(ps), rng.random(sel.size), side="right"), len(ps) - 1)]
-    width = mz / cfg.mrp / 2.3548
-    mz = mz + rng.normal(0, 1, mz.size) * width
-    tailed = rng.random(mz.size) < cfg.tail_fraction
-    mz[tailed] += rng.exponential(1.0, tailed.sum()) * cfg.tail_scale * mz[tailed] / cfg.mrp
-    return mz
-
-
 def _evaporate(cfg, rng, x, y, z, m, per_ion):
     """Order the ions by depth with a little jitter; add pulse numbers and a voltage ramp.
 
@@ -720,22 +628,3 @@ def along_rod_class(transmat, f, long_block_sites: float = LONG_BLOCK_SITES) -> 
         return "random"
     c = classes[int(np.argmin(f))]
     return "short-repeat" if c == "random" else c
-
-
-def _uniform_in_needle(rng, n, cfg):
-    """n points uniform in the cone frustum (axis on z, reconstruction frame)."""
-    if n == 0:
-        return np.zeros((0, 2)), np.zeros(0)
-    ta = math.tan(math.radians(cfg.half_angle_deg))
-    r0, d = cfg.top_radius_nm, cfg.depth_nm
-    # depth density proportional to r(z)^2: sample by rejection
-    rmax2 = (r0 + d * ta) ** 2
-    z = np.empty(0)
-    while z.size < n:
-        cand = rng.uniform(0, d, 2 * (n - z.size) + 16)
-        acc = rng.random(cand.size) < (r0 + cand * ta) ** 2 / rmax2
-        z = np.concatenate([z, cand[acc]])
-    z = z[:n]
-    r = (r0 + z * ta) * np.sqrt(rng.random(n))
-    a = rng.uniform(0, 2 * math.pi, n)
-    return np.column_stack([r * np.cos(a), r * np.sin(a)]), z

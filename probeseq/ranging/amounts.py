@@ -1,0 +1,122 @@
+"""The amounts fit of ranging: the design matrix of ranges against species (isotope lines spread by
+the peak shape), windows at predicted lines outside the ranges, the weighted non-negative least
+squares of the counts, and the metal composition with its standard errors.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .calibration import _Lines
+from .spectrum import PeakShape
+
+__all__: list = []
+
+
+def _design(ranges_lo, ranges_hi, lines: _Lines, cal_pos, n_species, shape: PeakShape | None = None):
+    """A[j, s]: expected share of species s's ions in range j.
+
+    Without a peak shape, the isotope fraction of the lines whose calibrated position falls in
+    the range; with one, each line's ions are spread by the shape, so tails outside a window and
+    tails of neighbours inside it are counted.
+    """
+    A = np.zeros((ranges_lo.size, n_species))
+    if ranges_lo.size == 0:
+        return A
+    if shape is None:
+        k = np.searchsorted(ranges_lo, cal_pos, side="right") - 1
+        inside = (k >= 0) & (cal_pos < ranges_hi[np.maximum(k, 0)])
+        np.add.at(A, (k[inside], lines.sp[inside]), lines.frac[inside])
+        return A
+    cap = shape.fraction(cal_pos[:, None], ranges_lo[None, :], ranges_hi[None, :])  # (n_lines, n_ranges)
+    cap *= lines.frac[:, None]
+    onehot = np.zeros((cal_pos.size, n_species))
+    onehot[np.arange(cal_pos.size), lines.sp] = 1.0
+    return cap.T @ onehot
+
+
+def _probe_rows(ranges_lo, ranges_hi, lines: _Lines, cal_pos, active, fwhm_at, min_frac=0.02):
+    """Windows at predicted lines of active species that fall outside every range.
+
+    Returns (lo, hi) arrays of merged windows, clipped to the gaps between ranges.
+    """
+    sel = active[lines.sp] & (lines.frac >= min_frac)
+    pos = cal_pos[sel]
+    if ranges_lo.size:
+        k = np.searchsorted(ranges_lo, pos, side="right") - 1
+        inside = (k >= 0) & (pos < ranges_hi[np.maximum(k, 0)])
+        pos = pos[~inside]
+    if pos.size == 0:
+        return np.zeros(0), np.zeros(0)
+    w = fwhm_at(pos)
+    lo, hi = pos - w, pos + w
+    if ranges_lo.size:  # clip to the gap between the neighbouring ranges
+        k = np.searchsorted(ranges_lo, pos, side="right") - 1
+        prev_hi = np.where(k >= 0, ranges_hi[np.maximum(k, 0)], -np.inf)
+        nxt = np.minimum(k + 1, ranges_lo.size - 1)
+        next_lo = np.where(k + 1 < ranges_lo.size, ranges_lo[nxt], np.inf)
+        lo, hi = np.maximum(lo, prev_hi), np.minimum(hi, next_lo)
+    ok = (hi - lo) >= 0.5 * w
+    lo, hi = lo[ok], hi[ok]
+    order = np.argsort(lo)
+    lo, hi = lo[order], hi[order]
+    out_lo, out_hi = [], []
+    for a, b in zip(lo, hi):
+        if out_hi and a <= out_hi[-1]:
+            out_hi[-1] = max(out_hi[-1], b)
+        else:
+            out_lo.append(a)
+            out_hi.append(b)
+    return np.asarray(out_lo), np.asarray(out_hi)
+
+
+def _solve_amounts(A, gross, bg, bg_sigma, n_iter: int = 10, k_robust: float = 4.0):
+    """Weighted NNLS for c = gross - bg = A @ n, re-weighted by the fitted Poisson variance.
+
+    Rows whose residual exceeds ``k_robust`` standard deviations (an unknown ion on a minor
+    isotope line, say) have their variance inflated by ``(r / k_robust)**2``, a redescending
+    M-estimator, so that they cannot drag the amounts.
+
+    Returns amounts (n_species,), covariance (n_species, n_species), model counts (n_rows,).
+    """
+    from scipy.optimize import nnls
+
+    c = gross - bg
+    n_sp = A.shape[1]
+    x = np.zeros(n_sp)
+    model = np.maximum(c, 0.0)
+    inflate = np.ones(c.size)
+    for _ in range(n_iter):
+        var = (np.maximum(model + bg, 1.0) + bg_sigma ** 2) * inflate
+        sw = 1.0 / np.sqrt(var)
+        x_new, _ = nnls(A * sw[:, None], c * sw, maxiter=50 * max(n_sp, 1))
+        model = A @ x_new
+        r = (c - model) / np.sqrt(np.maximum(model + bg, 1.0) + bg_sigma ** 2)
+        inflate = np.maximum((np.abs(r) / k_robust) ** 2, 1.0)
+        if np.allclose(x_new, x, rtol=1e-7, atol=1e-9):
+            x = x_new
+            break
+        x = x_new
+    var = (np.maximum(model + bg, 1.0) + bg_sigma ** 2) * inflate
+    cov = np.zeros((n_sp, n_sp))
+    act = x > 0
+    if act.any():
+        Aw = A[:, act] / np.sqrt(var)[:, None]
+        cov[np.ix_(act, act)] = np.linalg.pinv(Aw.T @ Aw)
+    return x, cov, model
+
+
+def _composition(amounts, cov, atoms):
+    """Metal atoms, atomic fractions and their standard errors."""
+    M = atoms.T @ amounts
+    covM = atoms.T @ cov @ atoms
+    S = M.sum()
+    if S <= 0:
+        k = M.size
+        return M, np.sqrt(np.maximum(np.diag(covM), 0)), np.full(k, np.nan), np.full(k, np.nan)
+    x = M / S
+    J = (np.eye(M.size) - x[:, None]) / S  # dx_i/dM_j = (delta_ij - x_i) / S
+    covx = J @ covM @ J.T
+    return M, np.sqrt(np.maximum(np.diag(covM), 0)), x, np.sqrt(np.maximum(np.diag(covx), 0))
+
+

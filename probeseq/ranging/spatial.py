@@ -1,0 +1,257 @@
+"""Refit overlapped ranges from the ions' mass-to-charge and their distance to the rod axes together.
+
+Where a metal line and a fragment line coincide (24Mg+ and C2+ at 24 Da, 26Mg2+ and CH+ at 13 Da),
+the spectrum alone cannot always split a range: the isotope and charge-state pattern may leave
+the amounts undetermined, and the least-squares fit then picks a vertex (all of it one species).
+Space can: metal ions sit on the rod axes (their distance to the nearest axis follows the blurred
+rod), linker fragments and background fill the space between. After the lattice is registered:
+
+1. **Reference profiles.** The distances (in units of the nearest-rod distance, binned) of ions in
+   clean metal ranges (the fit's metal share >= 0.97, no non-metal species in the range's design)
+   give the metal profile ``g_M``; those of clean non-metal ranges (metal share <= 0.03, no metal
+   species in the design) give the fragment profile ``g_F``. Both are measured on the run itself,
+   so no model of the blur or of the linker region is assumed.
+2. **Each overlapped range** (its design holds a metal species and a non-metal species, whatever
+   their fitted amounts) gets the maximum-likelihood metal share ``w`` of the binned mixture
+   ``w g_M + (1 - w) g_F`` of its ions' distances, with the standard error from the Fisher
+   information (``sum_b h_b (g_M - g_F)^2 / p_b^2``), and a profile-likelihood 95 % interval.
+3. **Joint refit.** Each such range adds a row to the amounts fit, "the metal species of this
+   range hold ``w`` of its ions", weighted by that standard error; the isotope patterns and charge
+   states of every species still tie all lines together. The composition and the ranges' shares
+   follow from the refitted amounts.
+
+A range whose profiles do not differ (too few reference ions, or rods not resolved) is left as the
+spectrum fit it.
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from dataclasses import replace
+
+import numpy as np
+
+from ..exceptions import DataQualityWarning
+from .isotopes import ion_label
+
+__all__ = ["refine_overlaps", "mixture_share"]
+
+#: distance bins, in units of the nearest-rod distance (the last bin takes everything farther)
+_EDGES = np.concatenate([np.linspace(0.0, 0.6, 13), [np.inf]])
+
+#: fewest ions of a reference profile, and of an overlapped range to refit
+MIN_REFERENCE_IONS = 300
+MIN_RANGE_IONS = 30
+
+#: a range's spatial share is used only when it is at least this informative (standard error)
+MAX_SHARE_SE = 0.2
+
+
+def _profile(u) -> np.ndarray:
+    h = np.histogram(u, _EDGES)[0].astype(float)
+    return h
+
+
+def mixture_share(h, g_m, g_f):
+    """Maximum-likelihood share ``w`` of profile ``g_m`` in the binned counts ``h`` of a mixture
+    ``w g_m + (1 - w) g_f``.
+
+    Parameters
+    ----------
+    h : (n_bins,) array of float
+        Counts per distance bin.
+    g_m, g_f : (n_bins,) array of float
+        The two profiles, each summing to 1.
+
+    Returns
+    -------
+    w : float
+        In [0, 1].
+    se : float
+        Standard error from the Fisher information at ``w``.
+    low, high : float
+        Profile-likelihood 95 % interval (log-likelihood within 1.92 of the maximum), honest at a
+        bound (a share of 0 gets an interval [0, high], not a zero error).
+    """
+    from scipy.optimize import minimize_scalar
+
+    h = np.asarray(h, float)
+    g_m = np.maximum(np.asarray(g_m, float), 1e-12)
+    g_f = np.maximum(np.asarray(g_f, float), 1e-12)
+
+    def nll(w):
+        return -float(np.sum(h * np.log(w * g_m + (1.0 - w) * g_f)))
+
+    res = minimize_scalar(nll, bounds=(0.0, 1.0), method="bounded", options={"xatol": 1e-7})
+    w = float(res.x)
+    for edge in (0.0, 1.0):
+        if nll(edge) <= nll(w):
+            w = edge
+    p = w * g_m + (1.0 - w) * g_f
+    info = float(np.sum(h * (g_m - g_f) ** 2 / p ** 2))
+    se = 1.0 / math.sqrt(info) if info > 0 else math.inf
+    top = nll(w) + 1.92
+    grid = np.linspace(0.0, 1.0, 2001)
+    inside = grid[np.array([nll(v) <= top for v in grid])]
+    low, high = (float(inside.min()), float(inside.max())) if inside.size else (w, w)
+    return w, se, low, high
+
+
+def _solve(A, gross, bg, bg_sigma, A_x, c_x, sd_x, active, n_iter: int = 10, k_robust: float = 4.0):
+    """Weighted NNLS of the spectrum rows plus the spatial rows (fixed weights ``1 / sd_x``),
+    re-weighted by the Poisson variance of the model; returns amounts and covariance."""
+    from scipy.optimize import nnls
+
+    c = gross - bg
+    n_sp = A.shape[1]
+    Aa, Ax = A[:, active], A_x[:, active]
+    x = np.zeros(int(active.sum()))
+    model = np.maximum(c, 0.0)
+    inflate = np.ones(c.size)
+    for _ in range(n_iter):
+        sw = 1.0 / np.sqrt((np.maximum(model + bg, 1.0) + bg_sigma ** 2) * inflate)
+        M = np.vstack([Aa * sw[:, None], Ax / sd_x[:, None]])
+        y = np.concatenate([c * sw, c_x / sd_x])
+        x_new, _ = nnls(M, y, maxiter=50 * max(n_sp, 1))
+        model = Aa @ x_new
+        r = (c - model) / np.sqrt(np.maximum(model + bg, 1.0) + bg_sigma ** 2)
+        inflate = np.maximum((np.abs(r) / k_robust) ** 2, 1.0)
+        done = np.allclose(x_new, x, rtol=1e-7, atol=1e-9)
+        x = x_new
+        if done:
+            break
+    sw = 1.0 / np.sqrt((np.maximum(model + bg, 1.0) + bg_sigma ** 2) * inflate)
+    M = np.vstack([Aa * sw[:, None], Ax / sd_x[:, None]])
+    amounts = np.zeros(n_sp)
+    cov = np.zeros((n_sp, n_sp))
+    amounts[active] = x
+    on = x > 0
+    if on.any():
+        sub = np.linalg.pinv(M[:, on].T @ M[:, on])
+        idx = np.flatnonzero(active)[on]
+        cov[np.ix_(idx, idx)] = sub
+    return amounts, cov
+
+
+def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
+    """Refit the overlapped ranges of a ranging result with the ions' distance to the rod axes.
+
+    Parameters
+    ----------
+    rr : RangingResult
+        From :func:`probeseq.ranging.auto.auto_range` (needs its ``fit_rows``).
+    range_index : (n_ions,) array of int
+        Range of each ion of the sample the distances belong to (-1 unranged).
+    distance_nm : (n_ions,) array of float, nm
+        Distance of each ion to the nearest rod axis (``inf`` where unknown).
+    d_nn_nm : float, nm
+        Nearest-rod distance of the lattice (the distance unit of the profiles).
+
+    Returns
+    -------
+    RangingResult
+        With refitted amounts, composition and range shares, and ``overlap_refinement`` telling
+        what changed; ``rr`` itself when nothing could be refined.
+    """
+    from .amounts import _composition
+    from .auto import _share_ranges
+
+    if rr.fit_rows is None or not len(rr.ranges):
+        return rr
+    A_all, gross_all, bg_all, bgs_all = rr.fit_rows
+    n_r = len(rr.ranges)
+    A = A_all[:n_r]
+    atoms = np.asarray(rr.species_metal_atoms, float)
+    is_metal = atoms.sum(axis=1) > 0
+    ri = np.asarray(range_index)
+    u = np.asarray(distance_nm, float) / float(d_nn_nm)
+    ok = np.isfinite(u) & (ri >= 0)
+    ri, u = ri[ok], u[ok]
+    mu = A * rr.amounts[None, :]
+    tot = mu.sum(1) + np.maximum(rr.background_counts, 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w_fit = np.where(tot > 0, mu[:, is_metal].sum(1) / tot, 0.0)
+    has_m = (A[:, is_metal] >= 0.02).any(1)
+    has_f = (A[:, ~is_metal] >= 0.02).any(1)
+    clean_m = (w_fit >= 0.97) & ~has_f
+    clean_f = (w_fit <= 0.03) & ~has_m
+    prof = np.stack([_profile(u[ri == j]) for j in range(n_r)])
+    g_m, g_f = prof[clean_m].sum(0), prof[clean_f].sum(0)
+    if g_m.sum() < MIN_REFERENCE_IONS or g_f.sum() < MIN_REFERENCE_IONS:
+        _warn_unseparated(rr, A, is_metal, has_m & has_f, clean_m, "too few ions of clean metal or fragment lines "
+                          "to tell them apart by their distance to the rod axes")
+        return rr
+    g_m, g_f = g_m / g_m.sum(), g_f / g_f.sum()
+    rows, report = [], []
+    for j in np.flatnonzero(has_m & has_f):
+        n_j = prof[j].sum()
+        if n_j < MIN_RANGE_IONS:
+            continue
+        w, se, lo, hi = mixture_share(prof[j], g_m, g_f)
+        used = se <= MAX_SHARE_SE
+        r = rr.ranges[j]
+        report.append({"low_da": float(r.low_da), "high_da": float(r.high_da), "ions": int(n_j),
+                       "metal_share_spectrum": float(w_fit[j]), "metal_share_space": w,
+                       "metal_share_space_err": se, "metal_share_space_low": lo, "metal_share_space_high": hi,
+                       "used": bool(used)})
+        if used:
+            rows.append((j, w, max(se, 1.0 / n_j)))
+    if not rows:
+        _warn_unseparated(rr, A, is_metal, has_m & has_f, clean_m, "their ions are not told apart by their "
+                          "distance to the rod axes")
+        return replace(rr, overlap_refinement=tuple(report))
+    # the metal species with a real line in the range (not a far tail of one)
+    A_x = np.stack([np.where(is_metal & (A[j] >= 0.02), A[j], 0.0) for j, _, _ in rows])
+    scale = np.array([gross_all[j] for j, _, _ in rows])
+    c_x = np.array([w for _, w, _ in rows]) * scale
+    sd_x = np.array([s for _, _, s in rows]) * np.maximum(scale, 1.0)
+    # species in play: those the spectrum fit used, and the metal species of the refitted ranges
+    active = (rr.amounts > 0) | ((A_x > 0).any(0) & is_metal)
+    amounts, cov = _solve(A_all, gross_all, bg_all, bgs_all, A_x, c_x, sd_x, active)
+    if not np.isfinite(amounts).all() or amounts.sum() > 2.0 * max(float(np.sum(gross_all)), 1.0):
+        return replace(rr, overlap_refinement=tuple(dict(d, used=False) for d in report))
+    M, M_sig, x, x_sig = _composition(amounts, cov, atoms)
+    mu_new = A * amounts[None, :]
+    ranges, deconv = _share_ranges(rr.ranges, mu_new, rr.background_counts, list(rr.species), rr.metals,
+                                   bool((rr.range_peak >= 0).all()))
+    _warn_split(rr, x, x_sig, A, is_metal, [j for j, _, _ in rows])
+    return replace(rr, ranges=ranges, deconvolved=tuple(deconv), amounts=amounts,
+                   amounts_sigma=np.sqrt(np.maximum(np.diag(cov), 0)), metal_atoms=M, metal_atoms_sigma=M_sig,
+                   composition=x, composition_sigma=x_sig, overlap_refinement=tuple(report),
+                   composition_spectrum=np.asarray(rr.composition, float))
+
+
+def _range_species(rr, A, j) -> str:
+    """'23.93-24.31 Da (Mg+, C2+)': a range and the species with a line in it."""
+    r = rr.ranges[j]
+    sp = [ion_label(*rr.species[s]) for s in np.flatnonzero(A[j] >= 0.02)]
+    return f"{r.low_da:.2f}-{r.high_da:.2f} Da ({', '.join(sp)})"
+
+
+def _warn_split(rr, x, x_sig, A, is_metal, refined):
+    """Warn for every metal whose composition moved when the overlapped ranges were refitted."""
+    atoms = np.asarray(rr.species_metal_atoms) > 0
+    for k, el in enumerate(rr.metals):
+        before, after = float(rr.composition[k]), float(x[k])
+        if not abs(after - before) > max(0.02, 2.0 * float(x_sig[k])):
+            continue
+        where = [_range_species(rr, A, j) for j in refined if (A[j, atoms[:, k]] >= 0.02).any()]
+        if not where:  # moved only because another metal's share changed
+            continue
+        warnings.warn(f"{el}: its composition depends on how overlapped ranges are split ({'; '.join(where[:4])}): "
+                      f"{after:.3f} with the ions' distance to the rod axes, {before:.3f} from the mass spectrum "
+                      "alone", DataQualityWarning, stacklevel=3)
+
+
+def _warn_unseparated(rr, A, is_metal, mixed, clean_m, why):
+    """Warn for a metal every line of which sits in an overlapped range that could not be refitted."""
+    atoms = np.asarray(rr.species_metal_atoms) > 0
+    for k, el in enumerate(rr.metals):
+        own = (A[:, atoms[:, k]] >= 0.02).any(1)
+        if not own.any() or (own & clean_m).any() or not (own & mixed).any():
+            continue
+        where = [_range_species(rr, A, j) for j in np.flatnonzero(own & mixed)]
+        warnings.warn(f"{el}: every line overlaps another species and {why} ({'; '.join(where[:4])}); its "
+                      "composition rests on the isotope pattern alone. A higher resolving power, or a range file "
+                      "with known shares (--ranges), would help", DataQualityWarning, stacklevel=3)
