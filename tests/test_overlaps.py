@@ -5,6 +5,7 @@ import numpy as np
 import periodictable as pt
 import pytest
 
+from probeseq.exceptions import DataQualityWarning
 from probeseq.ranging.isotopes import isotope_pattern
 from probeseq.ranging.spatial import mixture_share
 from probeseq.simulation.simulate import simulate_run
@@ -110,3 +111,32 @@ def test_a_metal_whose_every_line_overlaps_and_space_cannot_split_is_named():
     assert len(msgs) == 1 and msgs[0].startswith("Mg: every line overlaps another species")
     assert "23.90-24.30 Da (Mg+, C2+)" in msgs[0] and "higher resolving power" in msgs[0]
     assert "--ranges" in msgs[0]
+
+
+def test_an_amount_at_the_bound_does_not_claim_a_zero_error():
+    """The spectrum alone puts 24Mg+ at zero under C2+: its error is undetermined (NaN), not 0,
+    and a free species at zero with its own window gets the error it would have if free."""
+    from probeseq.pipeline.stages import range_sample
+
+    run = simulate_run(metals=("Mg", "Co"), fragments="carbon-rich", organic_per_site=3.0, mrp=400,
+                       depth_nm=24, top_radius_nm=6, seed=7, pattern="long-block")
+    rr = range_sample(run.ions, ("Mg", "Co"))
+    sp = {s["ion"]: s for s in rr.to_dict()["species"]}
+    assert sp["Mg+"]["amount"] == 0.0 and sp["Mg+"]["amount_err"] is None and sp["Mg+"]["amount_high"] is None
+    at_zero = [s for s in sp.values() if s["amount"] == 0.0]
+    assert all(s["amount_err"] is None or s["amount_err"] > 0 for s in at_zero)
+    assert any(s["amount_err"] is not None and s["amount_high"] > 0 for s in at_zero)
+    fitted = [s for s in sp.values() if s["amount"] > 0]
+    assert all(s["amount_low"] <= s["amount"] <= s["amount_high"] for s in fitted)
+
+
+def test_an_undetermined_metal_ion_is_named_with_what_covers_it():
+    from probeseq.pipeline.stages import range_sample
+    from probeseq.ranging.spatial import warn_undetermined
+
+    run = simulate_run(metals=("Mg", "Co"), fragments="carbon-rich", organic_per_site=3.0, mrp=400,
+                       depth_nm=24, top_radius_nm=6, seed=7, pattern="long-block")
+    rr = range_sample(run.ions, ("Mg", "Co"))  # the spectrum alone, before the spatial refit
+    with pytest.warns(DataQualityWarning, match=r"Mg: Mg\+ cannot be told apart from .*C2\+") as rec:
+        warn_undetermined(rr)
+    assert "higher resolving power" in str(rec[0].message)

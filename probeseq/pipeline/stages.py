@@ -233,14 +233,17 @@ def _refine_overlaps(rr, sample: IonList, stride: int, reg):
     """The ranging result refitted where metal and fragment lines overlap, from the ranged ions'
     mass-to-charge and distance to the rod axes (:func:`probeseq.ranging.spatial.refine_overlaps`)."""
     from ..ranging.channels import assign_channels
-    from ..ranging.spatial import refine_overlaps
+    from ..ranging.spatial import refine_overlaps, warn_undetermined
 
     if not rr.overlap_candidates:
+        warn_undetermined(rr)
         return rr
     m = sample.mass_to_charge[::stride]
     ri = assign_channels(m, rr.ranges, rr.metals).range_index
     d = reg.axis_distance_nm(sample.x[::stride], sample.y[::stride], sample.z[::stride])
-    return refine_overlaps(rr, ri, d, reg.lattice.nearest_rod_distance_nm)
+    out = refine_overlaps(rr, ri, d, reg.lattice.nearest_rod_distance_nm)
+    warn_undetermined(out)
+    return out
 
 
 def _ranging_stride(n: int) -> int:

@@ -5,6 +5,8 @@ squares of the counts, and the metal composition with its standard errors.
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 
 from .calibration import _Lines
@@ -120,3 +122,46 @@ def _composition(amounts, cov, atoms):
     return M, np.sqrt(np.maximum(np.diag(covM), 0)), x, np.sqrt(np.maximum(np.diag(covx), 0))
 
 
+
+
+def bound_errors(A, gross, bg, bg_sigma, amounts, cov, min_column: float = 1e-3, max_cond: float = 1e10):
+    """Standard errors of the amounts, also for species the fit put at zero.
+
+    A non-negative fit that stops at the bound gives a species no covariance, so its error would
+    read 0: as if an amount of exactly zero were known. Here such a species (one with a line in the
+    fitted rows) gets the error it would have if it were free: ``sqrt([(A_S^T W A_S)^-1]_ss)`` over
+    the fitted species plus it (``W`` the Poisson weights of the fitted model). The interval
+    ``[0, 1.96 sigma]`` is then the quadratic profile-likelihood interval of an amount at the bound.
+    Where the species' lines are a combination of the others' (the data cannot tell it apart), or
+    no fitted window holds any of its lines, the error is NaN: undetermined, not small.
+
+    Parameters
+    ----------
+    A : (n_rows, n_species) ndarray
+    gross, bg, bg_sigma : (n_rows,) ndarray
+    amounts : (n_species,) ndarray
+    cov : (n_species, n_species) ndarray
+        Covariance of the fitted (positive) amounts.
+
+    Returns
+    -------
+    (n_species,) ndarray of float
+    """
+    sig = np.sqrt(np.maximum(np.diag(cov), 0.0))
+    model = A @ amounts
+    w = 1.0 / np.sqrt(np.maximum(model + bg, 1.0) + bg_sigma ** 2)
+    act = amounts > 0
+    seen = np.abs(A).max(axis=0) >= min_column
+    sig[~act & ~seen] = np.nan  # no fitted window holds a line of it: not measured at all
+    for s in np.flatnonzero(~act & seen):
+        S = act.copy()
+        S[s] = True
+        Aw = A[:, S] * w[:, None]
+        F = Aw.T @ Aw
+        if not np.isfinite(F).all() or np.linalg.cond(F) > max_cond:
+            sig[s] = np.nan
+            continue
+        V = np.linalg.inv(F)
+        pos = int(np.flatnonzero(np.flatnonzero(S) == s)[0])
+        sig[s] = math.sqrt(max(V[pos, pos], 0.0))
+    return sig

@@ -95,7 +95,7 @@ from .calibration import (
 )
 from .channels import ChannelAssignment, _check_metals, _lookup_for, assign_channels
 from .isotopes import ion_label, metal_atoms, parse_formula
-from .amounts import _composition, _design, _probe_rows, _solve_amounts
+from .amounts import _composition, _design, _probe_rows, _solve_amounts, bound_errors
 from .ranges import Range, RangeSet
 from .spectrum import (
     DEFAULT_RESOLVING_POWER,
@@ -146,7 +146,9 @@ class RangingResult:
     species : tuple of (str, int)
         Species of the fit, ``(formula, charge)``.
     amounts, amounts_sigma : (n_species,) ndarray of float
-        Fitted ions of each species over all its isotopes, and standard errors.
+        Fitted ions of each species over all its isotopes, and standard errors; a species the fit
+        put at zero gets the error it would have if free (NaN where its lines cannot be told from
+        the others'), so ``[0, 1.96 sigma]`` is its interval (:func:`~probeseq.ranging.amounts.bound_errors`).
     species_metal_atoms : (n_species, n_metals) ndarray of int
     metal_atoms, metal_atoms_sigma : (n_metals,) ndarray of float
         Metal atoms (over all isotopes, background removed) and standard errors.
@@ -264,7 +266,8 @@ class RangingResult:
             "calibration": self.calibration.to_dict(),
             "ranges": ranges,
             "deconvolved_ranges": [int(j) for j in self.deconvolved],
-            "species": [{"ion": ion_label(f, z), "amount": float(a), "amount_err": float(s)}
+            "species": [{"ion": ion_label(f, z), "amount": float(a), "amount_err": _num(s),
+                         "amount_low": _num(max(a - 1.96 * s, 0.0)), "amount_high": _num(a + 1.96 * s)}
                         for (f, z), a, s in zip(self.species, self.amounts, self.amounts_sigma)],
             "unmatched_peaks": un,
             "n_peaks": len(self.peaks),
@@ -370,7 +373,7 @@ def auto_range(mass_to_charge, metals, species=None, *, ranges: RangeSet | None 
         metals=metals, ranges=rs, peaks=peaks, range_peak=np.asarray(range_peak, dtype=np.int64),
         unmatched=unmatched, unmatched_nearest=nearest, calibration=cal, gross_counts=fit["gross"],
         background_counts=bgc, background_sigma=fit["bg_sigma"], deconvolved=tuple(deconv), species=cand,
-        amounts=amounts, amounts_sigma=np.sqrt(np.maximum(np.diag(cov), 0)), species_metal_atoms=atoms,
+        amounts=amounts, amounts_sigma=bound_errors(*fit["rows"], amounts, cov), species_metal_atoms=atoms,
         metal_atoms=M, metal_atoms_sigma=M_sig, composition=x, composition_sigma=x_sig, resolving_power=rp,
         peak_shape=shape, search=search, spectrum=histogram(m, range_da=(search.spectrum.edges_da[0], search.spectrum.edges_da[-1]),
                                           resolving_power=rp), fit_rows=fit["rows"])

@@ -35,7 +35,7 @@ import numpy as np
 from ..exceptions import DataQualityWarning
 from .isotopes import ion_label
 
-__all__ = ["refine_overlaps", "mixture_share"]
+__all__ = ["refine_overlaps", "mixture_share", "warn_undetermined"]
 
 #: distance bins, in units of the nearest-rod distance (the last bin takes everything farther)
 _EDGES = np.concatenate([np.linspace(0.0, 0.6, 13), [np.inf]])
@@ -154,7 +154,7 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
         With refitted amounts, composition and range shares, and ``overlap_refinement`` telling
         what changed; ``rr`` itself when nothing could be refined.
     """
-    from .amounts import _composition
+    from .amounts import _composition, bound_errors
     from .auto import _share_ranges
 
     if rr.fit_rows is None or not len(rr.ranges):
@@ -217,7 +217,10 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
                                    bool((rr.range_peak >= 0).all()))
     _warn_split(rr, x, x_sig, A, is_metal, [j for j, _, _ in rows])
     return replace(rr, ranges=ranges, deconvolved=tuple(deconv), amounts=amounts,
-                   amounts_sigma=np.sqrt(np.maximum(np.diag(cov), 0)), metal_atoms=M, metal_atoms_sigma=M_sig,
+                   amounts_sigma=bound_errors(np.vstack([A_all, A_x]), np.concatenate([gross_all, c_x]),
+                                              np.concatenate([bg_all, np.zeros(c_x.size)]),
+                                              np.concatenate([bgs_all, sd_x]), amounts, cov),
+                   metal_atoms=M, metal_atoms_sigma=M_sig,
                    composition=x, composition_sigma=x_sig, overlap_refinement=tuple(report),
                    composition_spectrum=np.asarray(rr.composition, float))
 
@@ -255,3 +258,28 @@ def _warn_unseparated(rr, A, is_metal, mixed, clean_m, why):
         warnings.warn(f"{el}: every line overlaps another species and {why} ({'; '.join(where[:4])}); its "
                       "composition rests on the isotope pattern alone. A higher resolving power, or a range file "
                       "with known shares (--ranges), would help", DataQualityWarning, stacklevel=3)
+
+
+def warn_undetermined(rr) -> None:
+    """Warn when a metal's own M+ or M2+ ions could not be told apart from other species.
+
+    After every refit, a metal ion (M+ or M2+) that has lines in the ranges but sits at zero with an
+    undetermined error (its lines are a combination of other species' lines, and space did not
+    separate them) means the metal's composition may miss those ions: the warning names the species
+    that cover its lines and what would help.
+    """
+    if rr.fit_rows is None or not len(rr.ranges):
+        return
+    A = rr.fit_rows[0][:len(rr.ranges)]
+    for s, (formula, charge) in enumerate(rr.species):
+        if formula not in rr.metals or charge not in (1, 2):
+            continue
+        if rr.amounts[s] > 0 or math.isfinite(float(rr.amounts_sigma[s])) or not (A[:, s] >= 0.02).any():
+            continue
+        rows = np.flatnonzero(A[:, s] >= 0.02)
+        others = sorted({ion_label(*rr.species[o]) for j in rows for o in np.flatnonzero(A[j] >= 0.02)
+                         if o != s and rr.amounts[o] > 0})
+        warnings.warn(f"{formula}: {ion_label(formula, charge)} cannot be told apart from {', '.join(others) or 'other species'} "
+                      f"(its lines are covered by theirs), so the composition of {formula} may miss its "
+                      f"{ion_label(formula, charge)} ions. A higher resolving power, or a range file with known shares "
+                      "(--ranges), would help", DataQualityWarning, stacklevel=2)
