@@ -109,10 +109,11 @@ def test_cli_run_folder_without_description(tmp_path, capsys):
 
 
 def test_compare_two_runs_and_different_metals(tmp_path, capsys, block_result, block_run):
-    write_analysis(block_result, tmp_path / "runs" / "a")
+    # compare reads results.json and the bootstrap replicates: the figures and report are not needed
+    write_analysis(block_result, tmp_path / "runs" / "a", report=False)
     rnd = simulate_run(pattern="random", top_radius_nm=5, depth_nm=18, seed=22)
     r2 = analyze(rnd.ions, ("Co", "Zn"), rnd.lattice, options=AnalysisOptions(n_boot=60))
-    write_analysis(r2, tmp_path / "runs" / "b")
+    write_analysis(r2, tmp_path / "runs" / "b", report=False)
     code = main(["compare", str(tmp_path / "runs"), "--out", str(tmp_path / "cmp")])
     out = capsys.readouterr()
     assert code == 0, out.err
