@@ -233,9 +233,9 @@ def _refine_overlaps(rr, sample: IonList, stride: int, reg):
     """The ranging result refitted where metal and fragment lines overlap, from the ranged ions'
     mass-to-charge and distance to the rod axes (:func:`probeseq.ranging.spatial.refine_overlaps`)."""
     from ..ranging.channels import assign_channels
-    from ..ranging.spatial import refine_overlaps, warn_undetermined
+    from ..ranging.spatial import mixed_ranges, refine_overlaps, warn_undetermined
 
-    if not rr.overlap_candidates:
+    if not mixed_ranges(rr).any():
         warn_undetermined(rr)
         return rr
     m = sample.mass_to_charge[::stride]

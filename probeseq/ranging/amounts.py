@@ -72,12 +72,23 @@ def _probe_rows(ranges_lo, ranges_hi, lines: _Lines, cal_pos, active, fwhm_at, m
     return np.asarray(out_lo), np.asarray(out_hi)
 
 
-def _solve_amounts(A, gross, bg, bg_sigma, n_iter: int = 10, k_robust: float = 4.0):
+def _stack(A, y, w, extra):
+    """The weighted rows of the fit, with the ``extra`` rows ``(A_x, c_x, sd_x)`` (fixed weights
+    ``1 / sd_x``) appended when given."""
+    if extra is None:
+        return A * w[:, None], y * w
+    A_x, c_x, sd_x = extra
+    return np.vstack([A * w[:, None], A_x / sd_x[:, None]]), np.concatenate([y * w, c_x / sd_x])
+
+
+def _solve_amounts(A, gross, bg, bg_sigma, n_iter: int = 10, k_robust: float = 4.0, extra=None):
     """Weighted NNLS for c = gross - bg = A @ n, re-weighted by the fitted Poisson variance.
 
     Rows whose residual exceeds ``k_robust`` standard deviations (an unknown ion on a minor
     isotope line, say) have their variance inflated by ``(r / k_robust)**2``, a redescending
-    M-estimator, so that they cannot drag the amounts.
+    M-estimator, so that they cannot drag the amounts. ``extra``, ``(A_x, c_x, sd_x)``, adds rows
+    of other evidence with fixed standard deviations (the spatial shares of overlapped ranges,
+    :mod:`probeseq.ranging.spatial`).
 
     Returns amounts (n_species,), covariance (n_species, n_species), model counts (n_rows,).
     """
@@ -90,8 +101,8 @@ def _solve_amounts(A, gross, bg, bg_sigma, n_iter: int = 10, k_robust: float = 4
     inflate = np.ones(c.size)
     for _ in range(n_iter):
         var = (np.maximum(model + bg, 1.0) + bg_sigma ** 2) * inflate
-        sw = 1.0 / np.sqrt(var)
-        x_new, _ = nnls(A * sw[:, None], c * sw, maxiter=50 * max(n_sp, 1))
+        M, y = _stack(A, c, 1.0 / np.sqrt(var), extra)
+        x_new, _ = nnls(M, y, maxiter=50 * max(n_sp, 1))
         model = A @ x_new
         r = (c - model) / np.sqrt(np.maximum(model + bg, 1.0) + bg_sigma ** 2)
         inflate = np.maximum((np.abs(r) / k_robust) ** 2, 1.0)
@@ -104,6 +115,8 @@ def _solve_amounts(A, gross, bg, bg_sigma, n_iter: int = 10, k_robust: float = 4
     act = x > 0
     if act.any():
         Aw = A[:, act] / np.sqrt(var)[:, None]
+        if extra is not None:
+            Aw = np.vstack([Aw, extra[0][:, act] / extra[2][:, None]])
         cov[np.ix_(act, act)] = np.linalg.pinv(Aw.T @ Aw)
     return x, cov, model
 
@@ -124,7 +137,8 @@ def _composition(amounts, cov, atoms):
 
 
 
-def bound_errors(A, gross, bg, bg_sigma, amounts, cov, min_column: float = 1e-3, max_cond: float = 1e10):
+def bound_errors(A, gross, bg, bg_sigma, amounts, cov, min_column: float = 1e-3, max_cond: float = 1e10,
+                 extra=None):
     """Standard errors of the amounts, also for species the fit put at zero.
 
     A non-negative fit that stops at the bound gives a species no covariance, so its error would
@@ -142,6 +156,8 @@ def bound_errors(A, gross, bg, bg_sigma, amounts, cov, min_column: float = 1e-3,
     amounts : (n_species,) ndarray
     cov : (n_species, n_species) ndarray
         Covariance of the fitted (positive) amounts.
+    extra : tuple, optional
+        The extra rows of the fit, as for :func:`_solve_amounts`.
 
     Returns
     -------
@@ -149,14 +165,14 @@ def bound_errors(A, gross, bg, bg_sigma, amounts, cov, min_column: float = 1e-3,
     """
     sig = np.sqrt(np.maximum(np.diag(cov), 0.0))
     model = A @ amounts
-    w = 1.0 / np.sqrt(np.maximum(model + bg, 1.0) + bg_sigma ** 2)
+    Aw_all = _stack(A, gross, 1.0 / np.sqrt(np.maximum(model + bg, 1.0) + bg_sigma ** 2), extra)[0]
     act = amounts > 0
     seen = np.abs(A).max(axis=0) >= min_column
     sig[~act & ~seen] = np.nan  # no fitted window holds a line of it: not measured at all
     for s in np.flatnonzero(~act & seen):
         S = act.copy()
         S[s] = True
-        Aw = A[:, S] * w[:, None]
+        Aw = Aw_all[:, S]
         F = Aw.T @ Aw
         if not np.isfinite(F).all() or np.linalg.cond(F) > max_cond:
             sig[s] = np.nan

@@ -205,16 +205,6 @@ class RangingResult:
         """``{metal: (fraction, sigma)}``."""
         return {m: (float(x), float(s)) for m, x, s in zip(self.metals, self.composition, self.composition_sigma)}
 
-    @property
-    def overlap_candidates(self) -> bool:
-        """True when some range may hold both a metal species and a non-metal one (its design has
-        lines of both), so that space can help split it."""
-        if self.fit_rows is None or not len(self.ranges):
-            return False
-        A = self.fit_rows[0][:len(self.ranges)]
-        is_metal = np.asarray(self.species_metal_atoms).sum(axis=1) > 0
-        return bool(((A[:, is_metal] >= 0.02).any(1) & (A[:, ~is_metal] >= 0.02).any(1)).any())
-
     def range_notes(self) -> list:
         """One comment per range for the range file."""
         notes = []

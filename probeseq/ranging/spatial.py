@@ -35,7 +35,7 @@ import numpy as np
 from ..exceptions import DataQualityWarning
 from .isotopes import ion_label
 
-__all__ = ["refine_overlaps", "mixture_share", "warn_undetermined"]
+__all__ = ["refine_overlaps", "mixture_share", "mixed_ranges", "warn_undetermined"]
 
 #: distance bins, in units of the nearest-rod distance (the last bin takes everything farther)
 _EDGES = np.concatenate([np.linspace(0.0, 0.6, 13), [np.inf]])
@@ -98,40 +98,14 @@ def mixture_share(h, g_m, g_f):
     return w, se, low, high
 
 
-def _solve(A, gross, bg, bg_sigma, A_x, c_x, sd_x, active, n_iter: int = 10, k_robust: float = 4.0):
-    """Weighted NNLS of the spectrum rows plus the spatial rows (fixed weights ``1 / sd_x``),
-    re-weighted by the Poisson variance of the model; returns amounts and covariance."""
-    from scipy.optimize import nnls
-
-    c = gross - bg
-    n_sp = A.shape[1]
-    Aa, Ax = A[:, active], A_x[:, active]
-    x = np.zeros(int(active.sum()))
-    model = np.maximum(c, 0.0)
-    inflate = np.ones(c.size)
-    for _ in range(n_iter):
-        sw = 1.0 / np.sqrt((np.maximum(model + bg, 1.0) + bg_sigma ** 2) * inflate)
-        M = np.vstack([Aa * sw[:, None], Ax / sd_x[:, None]])
-        y = np.concatenate([c * sw, c_x / sd_x])
-        x_new, _ = nnls(M, y, maxiter=50 * max(n_sp, 1))
-        model = Aa @ x_new
-        r = (c - model) / np.sqrt(np.maximum(model + bg, 1.0) + bg_sigma ** 2)
-        inflate = np.maximum((np.abs(r) / k_robust) ** 2, 1.0)
-        done = np.allclose(x_new, x, rtol=1e-7, atol=1e-9)
-        x = x_new
-        if done:
-            break
-    sw = 1.0 / np.sqrt((np.maximum(model + bg, 1.0) + bg_sigma ** 2) * inflate)
-    M = np.vstack([Aa * sw[:, None], Ax / sd_x[:, None]])
-    amounts = np.zeros(n_sp)
-    cov = np.zeros((n_sp, n_sp))
-    amounts[active] = x
-    on = x > 0
-    if on.any():
-        sub = np.linalg.pinv(M[:, on].T @ M[:, on])
-        idx = np.flatnonzero(active)[on]
-        cov[np.ix_(idx, idx)] = sub
-    return amounts, cov
+def mixed_ranges(rr) -> np.ndarray:
+    """(n_ranges,) bool: ranges whose design holds a line (>= 2 % of a pattern) of a metal species
+    and one of a non-metal species, whatever their fitted amounts: the ranges space may split."""
+    if rr.fit_rows is None or not len(rr.ranges):
+        return np.zeros(len(rr.ranges), dtype=bool)
+    A = rr.fit_rows[0][:len(rr.ranges)]
+    is_metal = np.asarray(rr.species_metal_atoms).sum(axis=1) > 0
+    return (A[:, is_metal] >= 0.02).any(1) & (A[:, ~is_metal] >= 0.02).any(1)
 
 
 def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
@@ -154,7 +128,7 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
         With refitted amounts, composition and range shares, and ``overlap_refinement`` telling
         what changed; ``rr`` itself when nothing could be refined.
     """
-    from .amounts import _composition, bound_errors
+    from .amounts import _composition, _solve_amounts, bound_errors
     from .auto import _share_ranges
 
     if rr.fit_rows is None or not len(rr.ranges):
@@ -174,17 +148,18 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
         w_fit = np.where(tot > 0, mu[:, is_metal].sum(1) / tot, 0.0)
     has_m = (A[:, is_metal] >= 0.02).any(1)
     has_f = (A[:, ~is_metal] >= 0.02).any(1)
+    mixed = mixed_ranges(rr)
     clean_m = (w_fit >= 0.97) & ~has_f
     clean_f = (w_fit <= 0.03) & ~has_m
     prof = np.stack([_profile(u[ri == j]) for j in range(n_r)])
     g_m, g_f = prof[clean_m].sum(0), prof[clean_f].sum(0)
     if g_m.sum() < MIN_REFERENCE_IONS or g_f.sum() < MIN_REFERENCE_IONS:
-        _warn_unseparated(rr, A, is_metal, has_m & has_f, clean_m, "too few ions of clean metal or fragment lines "
+        _warn_unseparated(rr, A, is_metal, mixed, clean_m, "too few ions of clean metal or fragment lines "
                           "to tell them apart by their distance to the rod axes")
         return rr
     g_m, g_f = g_m / g_m.sum(), g_f / g_f.sum()
     rows, report = [], []
-    for j in np.flatnonzero(has_m & has_f):
+    for j in np.flatnonzero(mixed):
         n_j = prof[j].sum()
         if n_j < MIN_RANGE_IONS:
             continue
@@ -198,7 +173,7 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
         if used:
             rows.append((j, w, max(se, 1.0 / n_j)))
     if not rows:
-        _warn_unseparated(rr, A, is_metal, has_m & has_f, clean_m, "their ions are not told apart by their "
+        _warn_unseparated(rr, A, is_metal, mixed, clean_m, "their ions are not told apart by their "
                           "distance to the rod axes")
         return replace(rr, overlap_refinement=tuple(report))
     # the metal species with a real line in the range (not a far tail of one)
@@ -208,7 +183,11 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
     sd_x = np.array([s for _, _, s in rows]) * np.maximum(scale, 1.0)
     # species in play: those the spectrum fit used, and the metal species of the refitted ranges
     active = (rr.amounts > 0) | ((A_x > 0).any(0) & is_metal)
-    amounts, cov = _solve(A_all, gross_all, bg_all, bgs_all, A_x, c_x, sd_x, active)
+    sub, sub_cov, _ = _solve_amounts(A_all[:, active], gross_all, bg_all, bgs_all, extra=(A_x[:, active], c_x, sd_x))
+    amounts = np.zeros(active.size)
+    cov = np.zeros((active.size, active.size))
+    amounts[active] = sub
+    cov[np.ix_(active, active)] = sub_cov
     if not np.isfinite(amounts).all() or amounts.sum() > 2.0 * max(float(np.sum(gross_all)), 1.0):
         return replace(rr, overlap_refinement=tuple(dict(d, used=False) for d in report))
     M, M_sig, x, x_sig = _composition(amounts, cov, atoms)
@@ -217,9 +196,8 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
                                    bool((rr.range_peak >= 0).all()))
     _warn_split(rr, x, x_sig, A, is_metal, [j for j, _, _ in rows])
     return replace(rr, ranges=ranges, deconvolved=tuple(deconv), amounts=amounts,
-                   amounts_sigma=bound_errors(np.vstack([A_all, A_x]), np.concatenate([gross_all, c_x]),
-                                              np.concatenate([bg_all, np.zeros(c_x.size)]),
-                                              np.concatenate([bgs_all, sd_x]), amounts, cov),
+                   amounts_sigma=bound_errors(A_all, gross_all, bg_all, bgs_all, amounts, cov,
+                                              extra=(A_x, c_x, sd_x)),
                    metal_atoms=M, metal_atoms_sigma=M_sig,
                    composition=x, composition_sigma=x_sig, overlap_refinement=tuple(report),
                    composition_spectrum=np.asarray(rr.composition, float))
