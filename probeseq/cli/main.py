@@ -53,6 +53,30 @@ def simulate(
     lateral_blur: Annotated[float, typer.Option(help="Lateral blur (spread of positions across the rods), "
                                                      "nm.")] = 0.10,
     depth_blur: Annotated[float, typer.Option(help="Depth blur (spread of positions along the rods), nm.")] = 0.04,
+    depth_scale: Annotated[float, typer.Option(help="Reconstruction artefact: reconstructed depth per true depth, "
+                                                    "in [0.5, 2] (a depth scale fixed from an estimated image "
+                                                    "compression factor, field factor or evaporation field); "
+                                                    "1 = right.")] = 1.0,
+    depth_scale_change: Annotated[float, typer.Option(help="Reconstruction artefact: relative change of the depth "
+                                                           "scale over the analysed depth, in [-0.5, 0.5]: the local "
+                                                           "scale at true depth z nm is --depth-scale * (1 + value * "
+                                                           "z / --depth) (the specimen widens, the reconstruction's "
+                                                           "error grows with depth). 0 = constant.")] = 0.0,
+    plane_curvature: Annotated[float, typer.Option(help="Reconstruction artefact: curvature of the depth planes, "
+                                                        "1/nm, in [-0.05, 0.05]: an ion r nm from the specimen axis "
+                                                        "is moved by value * r^2 nm in depth (a wrong assumed tip "
+                                                        "radius; positive: deeper at the edge). 0 = flat.")] = 0.0,
+    magnification_change: Annotated[float, typer.Option(help="Reconstruction artefact: relative change of the "
+                                                             "lateral magnification over the analysed depth, in "
+                                                             "[-0.3, 0.3]: x and y (nm from the specimen axis) at "
+                                                             "true depth z nm are multiplied by 1 + value * z / "
+                                                             "--depth (a wrong shank angle). 0 = constant.")] = 0.0,
+    edge_efficiency: Annotated[float, typer.Option(help="Reconstruction artefact: detection efficiency at the "
+                                                        "specimen outline relative to the axis, in (0, 1]: an ion r "
+                                                        "nm from the axis where the needle radius is R nm is kept "
+                                                        "with probability 1 - (1 - value) (r / R)^2, on top of "
+                                                        "--detection-efficiency (ions from the flank miss the "
+                                                        "detector). 1 = uniform.")] = 1.0,
     mrp: Annotated[float, typer.Option(help="Mass resolving power m/dm (FWHM).")] = 600.0,
     seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
     force: Annotated[bool, typer.Option(help="Replace existing files that probeseq wrote.")] = False,
@@ -93,7 +117,9 @@ def simulate(
                     metal_patterns=mpat, packing=str(lattice).lower() if preset else "honeycomb",
                     lattice=given_lattice, a_nm=a, repeat_nm=repeat, sites_per_repeat=sites_per_repeat,
                     top_radius_nm=tip_radius, half_angle_deg=half_angle, depth_nm=depth, eta=detection_efficiency,
-                    sigma_xy_nm=lateral_blur, sigma_z_nm=depth_blur, mrp=mrp, seed=seed)
+                    sigma_xy_nm=lateral_blur, sigma_z_nm=depth_blur, mrp=mrp, seed=seed, depth_scale=depth_scale,
+                    depth_scale_change=depth_scale_change, plane_curvature_per_nm=plane_curvature,
+                    magnification_change=magnification_change, edge_efficiency=edge_efficiency)
     run = simulate_run(cfg)
     paths = run.write(out)
     c = run.truth["counts"]

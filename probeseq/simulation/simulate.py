@@ -30,10 +30,48 @@ Everything it makes is invented. The model, stage by stage:
    then the crystal is mapped into the reconstruction frame by a rotation about z
    (``rotation_deg``), a lateral scale error (``scale``), an offset (``offset_nm``), and the rods are
    tilted away from z by ``tilt_deg`` towards azimuth ``tilt_azimuth_deg``.
+6. **Reconstruction artefacts** (:mod:`probeseq.simulation.artefacts`; all off by default except
+   the depth blur). A reconstruction turns the detector hits and their order into positions with a
+   projection model whose parameters are only estimated, so the positions of stage 5 (the ideal
+   ones, ``(x, y, zeta)``, with ``rho = sqrt(x^2 + y^2)`` the distance from the specimen axis, the z
+   axis, and ``D = depth_nm``) come out distorted (the physical causes named below are recalled
+   from memory):
+
+   * ``sigma_z_nm`` -- depth blur (stage 5): the depth of an ion comes from its place in the
+     evaporation sequence and the assumed surface, which the field evaporation of neighbouring
+     ions and the roughness of the surface smear.
+   * ``depth_scale`` -- the reconstructed depth is ``depth_scale * zeta``: the depth added per ion
+     follows from the image compression factor, the field factor and the evaporation field, each
+     only estimated, so the whole depth axis is stretched or squeezed.
+   * ``depth_scale_change`` -- the local depth scale changes with depth,
+     ``s(zeta) = depth_scale * (1 + depth_scale_change * zeta / D)``, so
+     ``z_rec = depth_scale * (zeta + depth_scale_change * zeta^2 / (2 D))``: the specimen widens as
+     it is evaporated and an error of the assumed shape or field grows with depth.
+   * ``plane_curvature_per_nm`` -- kappa, 1/nm: every depth plane is curved, ``z_rec`` gets an extra
+     ``kappa rho^2`` (positive: the planes bend towards larger z at the edge): an assumed tip radius
+     that is wrong projects the flat planes of the crystal onto curved ones. The truth records the
+     sag at the top radius, ``kappa top_radius_nm^2``.
+   * ``magnification_change`` -- the lateral magnification changes with depth: ``x`` and ``y`` are
+     multiplied by ``m(zeta) = 1 + magnification_change * zeta / D`` (a wrong shank angle makes the
+     assumed radius grow at the wrong rate); the rods then fan out and are no longer straight.
+   * ``edge_efficiency`` -- the detection efficiency falls towards the specimen edge (ions from the
+     flank reach the edge of the detector or miss it): an ion at ``rho`` where the needle radius is
+     ``R(zeta)`` is kept with probability ``1 - (1 - edge_efficiency) * min(rho / R, 1)^2``, so
+     ``eta`` on the axis and ``eta * edge_efficiency`` at the outline, for every ion.
+
+   The edge thinning acts on the ideal positions, then the lateral map and
+   ``z_rec = Z(zeta) + kappa rho^2`` (``Z`` the depth-scale map, ``rho`` and ``zeta`` ideal) move
+   every ion; the ions still leave (are ordered and get their voltage) by their true depth. The
+   truth goes through the same map: ``SimRun.site_z_nm`` and the truth's ``rods[].z_nm`` are where
+   each site's point on its rod axis lands (``rods[].z_ideal_nm`` the ideal depths), the straight
+   rod axes are least-squares lines through the mapped axis points (``rods[].axis_xy_nm`` gives the
+   points themselves with a magnification change), and the truth's ``reconstruction`` section lists
+   the artefacts; :func:`true_depth_scale` gives the local depth scale at a reconstructed depth.
 
 The reconstruction frame is the one the tool sees: a rod axis at depth z is
-``rod_xy_nm + rod_tilt * z``. The tilt is a rotation of the crystal, so the planes of sites stay
-perpendicular to the rods: site depths depend on the lateral position (``SimRun.site_z_nm``).
+``rod_xy_nm + rod_tilt * z`` (for an ideal reconstruction exactly). The tilt is a rotation of the
+crystal, so the planes of sites stay perpendicular to the rods: site depths depend on the lateral
+position (``SimRun.site_z_nm``).
 """
 
 from __future__ import annotations
@@ -50,13 +88,16 @@ from ..decoding.chain import persistence as chain_persistence
 from ..exceptions import InputError
 from ..io.ions import IonList, IonMeta
 from ..lattice.model import PRESETS, Lattice
+from .artefacts import (axis_lines, check_artefacts, edge_keep, geometry_on, map_positions,
+                        reconstruction_truth, true_depth_scale)
 from .emission import (FRAGMENT_SETS, _draw_mass_to_charge, _emit_metal_ions, _emit_organic_ions,
                        _species_lines, _uniform_in_needle, ion_lines)
 from .chains import METAL_PATTERNS, chain_sequences, interspersed_transmat, per_metal_transmat
 from ..utils.tomlfile import short_repr
 from ..utils.validate import check_memory, check_number, check_scale, check_seed
 
-__all__ = ['SimConfig', 'SimRun', 'simulate_run', 'markov_sequences', 'ion_lines', 'PATTERNS', 'DEFAULT_PERSISTENCE']
+__all__ = ['SimConfig', 'SimRun', 'simulate_run', 'markov_sequences', 'ion_lines', 'true_depth_scale', 'PATTERNS',
+           'DEFAULT_PERSISTENCE']
 
 PATTERNS = ("random", "short-repeat", "long-block", "interspersed", "per-metal", "copied")
 
@@ -145,6 +186,12 @@ class SimConfig:
     tilt_azimuth_deg: float | None = None
     seed: int = 0
     lattice: Lattice | None = None
+    # reconstruction artefacts (module docstring, stage 6); these values switch them off
+    depth_scale: float = 1.0
+    depth_scale_change: float = 0.0
+    plane_curvature_per_nm: float = 0.0
+    magnification_change: float = 0.0
+    edge_efficiency: float = 1.0
 
     def __post_init__(self):
         if self.pattern not in PATTERNS:
@@ -192,6 +239,7 @@ class SimConfig:
         check_scale(self.scale, "scale")
         check_number(self.tilt_deg, "tilt_deg", 0, 45, hi_open=True, allow_none=True)
         check_number(self.tilt_azimuth_deg, "tilt_azimuth_deg", allow_none=True)
+        check_artefacts(self)
         if self.offset_nm is not None:
             off = np.atleast_1d(np.asarray(self.offset_nm, dtype=object))
             if off.shape != (2,):
@@ -239,6 +287,14 @@ class SimConfig:
             simulator places, inside or not), ``ions`` (metal, linker and background) and
             ``bytes`` (estimated peak memory, from :data:`BYTES_PER_ION` and
             :data:`BYTES_PER_GRID_SITE`).
+
+        Notes
+        -----
+        The run is simulated over the true depth ``depth_nm``: ``depth_scale`` and the other maps
+        of the reconstruction move ions (the file's depth extent is about ``depth_scale *
+        depth_nm``) but make none. ``edge_efficiency`` removes ions after they are made: ``ions``
+        counts those kept, ``(1 + edge_efficiency) / 2`` of them (the mean of
+        ``1 - (1 - edge_efficiency) (rho / R)^2`` over a uniform disc), while ``bytes`` counts all.
         """
         lat = lattice or self.lattice or Lattice.from_preset(self.packing, self.a_nm, self.repeat_nm,
                                                              self.sites_per_repeat)
@@ -255,9 +311,10 @@ class SimConfig:
         tilt = math.tan(math.radians(1.5 if self.tilt_deg is None else float(self.tilt_deg)))
         reach = (r1 + off + tilt * d) / scale + 2 * lat.a_nm
         grid = rho * math.pi * reach * reach * n_sites
-        ions = inside * (self.eta + self.organic_per_site) / (1 - self.background_fraction)
+        made = inside * (self.eta + self.organic_per_site) / (1 - self.background_fraction)
+        ions = made if self.edge_efficiency == 1.0 else made * (1.0 + self.edge_efficiency) / 2.0
         return {"metal_sites": inside, "grid_sites": grid, "ions": ions,
-                "bytes": BYTES_PER_ION * ions + BYTES_PER_GRID_SITE * grid}
+                "bytes": BYTES_PER_ION * made + BYTES_PER_GRID_SITE * grid}
 
     @property
     def composition_array(self) -> np.ndarray:
@@ -308,9 +365,17 @@ class SimConfig:
 class SimRun:
     """A simulated run: the ion list, the true lattice, and the truth per rod, site and ion.
 
-    ``site_z_nm`` is (n_rods, n_sites): the depth of every site in the reconstruction frame. With a
-    tilt, the site planes are perpendicular to the tilted rods, so site k of neighbouring rods sits
-    at slightly different depths. ``seq`` is (n_rods, n_sites), -1 outside the specimen.
+    ``site_z_nm`` is (n_rods, n_sites): the depth of every site in the reconstruction frame (of its
+    point on the rod axis, after the reconstruction artefacts). With a tilt, the site planes are
+    perpendicular to the tilted rods, so site k of neighbouring rods sits at slightly different
+    depths. ``seq`` is (n_rods, n_sites), -1 outside the specimen.
+
+    ``rod_xy_nm`` (n_rods, 2) is each rod's axis at z = 0 and ``rod_tilt`` (2,) the rods' common
+    ``(dx/dz, dy/dz)``. For an ideal reconstruction these are exact; with the artefacts that move
+    positions the axes are least-squares lines through the mapped axis points of each rod's
+    inside sites, ``rod_xy_nm`` and ``rod_tilt_per_rod`` (n_rods, 2) of each rod's own line (as in
+    the truth's ``rods[]``) and ``rod_tilt`` of the joint fit with one slope for all rods (a
+    magnification change fans the rods out, so their slopes differ).
     """
 
     ions: IonList
@@ -325,6 +390,7 @@ class SimRun:
     ion_metal: np.ndarray
     ion_species: np.ndarray
     config: SimConfig = field(default_factory=SimConfig)
+    rod_tilt_per_rod: np.ndarray | None = None
 
     @staticmethod
     def output_paths(out) -> dict:
@@ -458,16 +524,70 @@ def simulate_run(cfg: SimConfig | None = None, **kwargs) -> SimRun:
     ion_site = np.concatenate([s_idx, np.full(n_org + n_bg, -1)])
     ion_metal = np.concatenate([metal, np.full(n_org + n_bg, -1)])
     ion_species = np.concatenate([sp_all, np.full(n_bg, -1)])
-    ions, (ion_rod, ion_site, ion_metal, ion_species) = _evaporate(
-        cfg, rng, x, y, z, m, (ion_rod, ion_site, ion_metal, ion_species))
+    x, y, z, z_true, m, per_ion, (n_metal, n_org, n_bg) = _reconstruct(
+        cfg, x, y, z, m, (ion_rod, ion_site, ion_metal, ion_species), (n_metal, n_org, n_bg))
+    ions, (ion_rod, ion_site, ion_metal, ion_species) = _evaporate(cfg, rng, x, y, z, m, per_ion, z_true)
 
     counts = {"ions": int(z.size), "rods": int(n_rods), "metal_sites": int(inside.sum()),
               "metal_ions": int(n_metal), "organic_ions": int(n_org), "background_ions": int(n_bg)}
-    truth = _build_truth(cfg, lat, seq, inside, rods, dist, species, counts)
+    geo = _truth_geometry(cfg, rods, dist["tilt"])
+    truth = _build_truth(cfg, lat, seq, inside, rods, dist, species, counts, geo)
     seq_out = np.where(inside, seq, -1).astype(np.int64)
-    return SimRun(ions=ions, lattice=lat, truth=truth, rod_xy_nm=rod_xy, rod_tilt=dist["tilt"], seq=seq_out,
-                  site_z_nm=site_zr, ion_rod=ion_rod, ion_site=ion_site, ion_metal=ion_metal,
-                  ion_species=ion_species, config=cfg)
+    return SimRun(ions=ions, lattice=lat, truth=truth, rod_xy_nm=geo["rod_xy"], rod_tilt=geo["tilt"], seq=seq_out,
+                  site_z_nm=geo["site_z"], ion_rod=ion_rod, ion_site=ion_site, ion_metal=ion_metal,
+                  ion_species=ion_species, config=cfg, rod_tilt_per_rod=geo["slope"])
+
+
+def _reconstruct(cfg, x, y, z, m, per_ion, n_per_kind):
+    """The reconstruction artefacts on the ions (module docstring, stage 6).
+
+    The edge thinning keeps ions by their ideal positions, then the artefact maps move them. An
+    artefact that is off draws and changes nothing.
+
+    Parameters
+    ----------
+    cfg : SimConfig
+    x, y, z : ndarray of float, nm
+        Ideal positions of all ions, metal ions first, then linker, then background.
+    m : ndarray of float, Da
+        Mass-to-charge.
+    per_ion : tuple of ndarray
+        Per-ion truth arrays, thinned like the ions.
+    n_per_kind : tuple of int
+        Numbers of metal, linker and background ions.
+
+    Returns
+    -------
+    tuple
+        ``x, y, z`` mapped (nm), the ideal depth of the kept ions (nm), ``m``, ``per_ion`` and the
+        numbers of metal, linker and background ions kept.
+    """
+    if cfg.edge_efficiency != 1.0:
+        keep = edge_keep(cfg, x, y, z)
+        ends = np.cumsum((0,) + tuple(n_per_kind))
+        n_per_kind = tuple(int(keep[a:b].sum()) for a, b in zip(ends[:-1], ends[1:]))
+        x, y, z, m = x[keep], y[keep], z[keep], m[keep]
+        per_ion = tuple(a[keep] for a in per_ion)
+    z_true = z
+    x, y, z = map_positions(cfg, x, y, z)
+    return x, y, z, z_true, m, per_ion, n_per_kind
+
+
+def _truth_geometry(cfg, rods, tilt):
+    """Site depths and rod axes of the truth after the artefact maps (the ideal ones, as they are,
+    when no artefact moves positions).
+
+    Returns a dict of ``site_z`` (n_rods, n_sites), ``rod_xy`` (n_rods, 2), ``slope`` (n_rods, 2),
+    ``tilt`` (2,) and ``axis_xy`` ((n_rods, n_sites, 2) mapped axis points, or None).
+    """
+    rod_xy, site_zr, axis = rods["rod_xy"], rods["site_zr"], rods["axis"]
+    if not geometry_on(cfg):
+        return {"site_z": site_zr, "rod_xy": rod_xy, "slope": np.tile(tilt, (rod_xy.shape[0], 1)), "tilt": tilt,
+                "axis_xy": None}
+    ax, ay, site_z = map_positions(cfg, axis[..., 0], axis[..., 1], site_zr)
+    axis_xy = np.stack([ax, ay], axis=-1)
+    xy0, slope, common = axis_lines(axis_xy, site_z, rods["inside"], tilt)
+    return {"site_z": site_z, "rod_xy": xy0, "slope": slope, "tilt": common, "axis_xy": axis_xy}
 
 
 def _draw_distortion(cfg, rng):
@@ -530,25 +650,28 @@ def _place_rods(cfg, lat, dist, rng):
             "n_sites": n_sites, "phase": phase}
 
 
-def _evaporate(cfg, rng, x, y, z, m, per_ion):
-    """Order the ions by depth with a little jitter; add pulse numbers and a voltage ramp.
+def _evaporate(cfg, rng, x, y, z, m, per_ion, z_true=None):
+    """Order the ions by their true depth ``z_true`` (default ``z``) with a little jitter; add pulse
+    numbers and a voltage ramp (also by true depth).
 
     Returns the :class:`IonList` and the arrays of ``per_ion`` in the same order.
     """
-    order = np.argsort(z + rng.normal(0, 0.3, z.size), kind="stable")
-    x, y, z, m = x[order], y[order], z[order], m[order]
+    z_true = z if z_true is None else z_true
+    order = np.argsort(z_true + rng.normal(0, 0.3, z.size), kind="stable")
+    x, y, z, m, z_true = x[order], y[order], z[order], m[order], z_true[order]
     per_ion = tuple(a[order] for a in per_ion)
     pulse = np.cumsum(rng.geometric(0.01, z.size)).astype(np.float64)
-    voltage = 3000.0 + 3000.0 * np.clip(z / cfg.depth_nm, 0, 1) + rng.normal(0, 5, z.size)
+    voltage = 3000.0 + 3000.0 * np.clip(z_true / cfg.depth_nm, 0, 1) + rng.normal(0, 5, z.size)
     ions = IonList(x=x, y=y, z=z, mass_to_charge=m, multiplicity=np.ones(z.size), pulse_number=pulse,
                    dc_voltage_v=voltage, meta=IonMeta(source="simulated"))
     return ions, per_ion
 
 
-def _build_truth(cfg, lat, seq, inside, rods, dist, species, counts):
-    """The JSON-able truth of a run: pattern, composition, run lengths, distortion, counts and rods."""
+def _build_truth(cfg, lat, seq, inside, rods, dist, species, counts, geo):
+    """The JSON-able truth of a run: pattern, composition, run lengths, distortion, reconstruction,
+    counts and rods (``geo``: the site depths and rod axes of :func:`_truth_geometry`)."""
     k = len(cfg.metals)
-    rod_xy, site_zr, tilt = rods["rod_xy"], rods["site_zr"], dist["tilt"]
+    tilt = dist["tilt"]
     f = cfg.composition_array
     lam = cfg.persistence_value
     # along a rod every pattern (copied included: its master chain) has mean run 1/(1 - P_kk)
@@ -593,13 +716,29 @@ def _build_truth(cfg, lat, seq, inside, rods, dist, species, counts):
         "counts": counts,
         "species": [{"formula": s[0], "charge": s[1], "kind": s[2], "metal": s[3]} for s in species],
         "site_s_nm": [round(float(v), 5) for v in rods["zc"]],
-        "rods": [{"x0": round(float(rod_xy[r, 0]), 5), "y0": round(float(rod_xy[r, 1]), 5),
-                  "dxdz": round(float(tilt[0]), 7), "dydz": round(float(tilt[1]), 7),
-                  "z_nm": [round(float(v), 4) for v in site_zr[r, inside[r]]],
-                  "seq": "".join(str(int(v)) for v in seq[r, inside[r]])} for r in range(rod_xy.shape[0])],
+        "reconstruction": reconstruction_truth(cfg),
+        "rods": _truth_rods(cfg, seq, inside, rods, geo),
         "config": {k2: (lat.to_dict() if k2 == "lattice" else list(v) if isinstance(v, tuple) else v)
                    for k2, v in ((f, getattr(cfg, f)) for f in cfg.__dataclass_fields__)},
     }
+
+
+def _truth_rods(cfg, seq, inside, rods, geo) -> list:
+    """The truth's ``rods[]``: axis line, site depths (mapped and ideal), axis points with a
+    magnification change, and the sequence of the inside sites."""
+    rod_xy, slope, site_z, site_ideal = geo["rod_xy"], geo["slope"], geo["site_z"], rods["site_zr"]
+    out = []
+    for r in range(rod_xy.shape[0]):
+        ins = inside[r]
+        rod = {"x0": round(float(rod_xy[r, 0]), 5), "y0": round(float(rod_xy[r, 1]), 5),
+               "dxdz": round(float(slope[r, 0]), 7), "dydz": round(float(slope[r, 1]), 7),
+               "z_nm": [round(float(v), 4) for v in site_z[r, ins]],
+               "z_ideal_nm": [round(float(v), 4) for v in site_ideal[r, ins]],
+               "seq": "".join(str(int(v)) for v in seq[r, ins])}
+        if cfg.magnification_change != 0.0:
+            rod["axis_xy_nm"] = [[round(float(a), 4), round(float(b), 4)] for a, b in geo["axis_xy"][r, ins]]
+        out.append(rod)
+    return out
 
 
 def metal_classes(transmat, f, long_block_sites: float = LONG_BLOCK_SITES) -> list:
