@@ -235,6 +235,9 @@ def columns(
     scale: Annotated[Optional[float], typer.Option(help="Fix the lateral scale (reconstruction / crystal).")] = None,
     offset_nm: Annotated[Optional[str], typer.Option(help="Fix the lattice offset 'x,y', nm.")] = None,
     seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
+    as_reconstructed: Annotated[bool, typer.Option(help="Use the file's positions as they are: no calibration "
+                                                        "of the depth scale, plane curvature and lateral "
+                                                        "magnification on the lattice.")] = False,
     length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
     strict: Strict = False, force: Force = False, quiet: Quiet = False,
 ):
@@ -251,7 +254,8 @@ def columns(
     check_outdir(out, force, inputs)
     mets = _metals(metals)
     lat = _lattice(lattice, a, repeat, sites_per_repeat)
-    opts = AnalysisOptions(seed=seed, rotation_deg=rotation_deg, scale=scale, offset_nm=_parse_offset(offset_nm))
+    opts = AnalysisOptions(seed=seed, rotation_deg=rotation_deg, scale=scale, offset_nm=_parse_offset(offset_nm),
+                           correct_reconstruction=not as_reconstructed)
     given = RangeSet.from_toml(ranges) if ranges is not None else None
     # the count stage of 'analyze': sample, ranging, detection balance, registration, fused pass
     counted = count_file(ions, mets, lat, ranges=given, options=opts, length_unit=length_unit,
@@ -336,6 +340,9 @@ def analyze(
     rotation_deg: Annotated[Optional[float], typer.Option(help="Fix the lattice rotation, degrees.")] = None,
     scale: Annotated[Optional[float], typer.Option(help="Fix the lateral scale (reconstruction / crystal).")] = None,
     offset_nm: Annotated[Optional[str], typer.Option(help="Fix the lattice offset 'x,y', nm.")] = None,
+    as_reconstructed: Annotated[bool, typer.Option(help="Use the file's positions as they are: no calibration "
+                                                        "of the depth scale, plane curvature and lateral "
+                                                        "magnification on the lattice.")] = False,
     length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
     allow_outside: Annotated[bool, typer.Option(help="Let a run folder's run.toml name files outside the run "
                                                      "folder (refused by default).")] = False,
@@ -356,7 +363,7 @@ def analyze(
     # options first: a bad value is one error before any work, not one failure per run of a batch
     opts = AnalysisOptions(seed=seed, n_starts=n_starts, n_boot=n_boot, long_block_sites=long_block_sites,
                            alpha=alpha, copy_threshold=copy_threshold, rotation_deg=rotation_deg, scale=scale,
-                           offset_nm=_parse_offset(offset_nm))
+                           offset_nm=_parse_offset(offset_nm), correct_reconstruction=not as_reconstructed)
     mets = _metals(metals) if metals is not None else None
     common = dict(options=opts, metals=mets, lattice=lattice, a=a, repeat=repeat, sites_per_repeat=sites_per_repeat,
                   ranges=ranges, length_unit=length_unit, position_dataset=position_dataset,

@@ -161,6 +161,7 @@ def assign_rods(x, y, z, geometry: ColumnGeometry):
     x, y, z = (np.asarray(v) for v in (x, y, z))
     if not (x.shape == y.shape == z.shape and x.ndim == 1):
         raise InputError(f"x, y, z must be 1-D arrays of equal length, got shapes {x.shape}, {y.shape}, {z.shape}")
+    x, y, z = geometry.place(x, y, z)  # file positions through the reconstruction correction
     rod = np.empty(x.size, np.int32)
     site = np.empty(x.size, np.int32)
     for s in range(0, x.size, _CHUNK):
@@ -221,6 +222,7 @@ class ColumnBinner:
         n = x.size
         if not (x.shape == y.shape == z.shape == (n,)):
             raise InputError(f"x, y, z must be 1-D arrays of equal length, got shapes {x.shape}, {y.shape}, {z.shape}")
+        x, y, z = self.geometry.place(x, y, z)  # file positions through the reconstruction correction
         w = np.asarray(weights)
         K = self.n_metals
         if w.ndim == 1 and np.issubdtype(w.dtype, np.integer):
@@ -343,6 +345,8 @@ def columns_from_counts(geometry: ColumnGeometry, counts, metals, ion_stats: dic
     counts = compact_counts(counts)
     reg = g.registration
     params = {"registration": reg.to_dict(), "columns": g.to_dict(), "ions": dict(ion_stats), **(extra_params or {})}
+    if g.correction is not None:
+        params["reconstruction"] = g.correction.to_dict()
     depth = _rod_site_z(g.site_z_nm[:1], g.rod_xy_nm, reg.tilt, reg.z_ref_nm, float(reg.scale))
     offset = (depth[:, 0] - g.site_z_nm[0]) if g.n_sites else np.zeros(g.n_rods)
     return RodColumns(counts=counts, mask=g.mask, metals=metals, rod_xy_nm=g.rod_xy_nm.copy(),

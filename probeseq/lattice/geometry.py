@@ -6,13 +6,14 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import NamedTuple
+from typing import NamedTuple, Optional
 
 import numba
 import numpy as np
 
 from .. import runtime
 from ..exceptions import InputError
+from .correction import ReconstructionCorrection
 from .locator import RodLocator, _cached_locator
 from .model import Lattice
 from .registration import Registration, _check_xyz
@@ -170,6 +171,14 @@ class ColumnGeometry:
     lut_offset: np.ndarray = field(repr=False)  # (G * G,) int32: code offset, _EXCL or _FB + row
     rod_key: np.ndarray = field(repr=False)  # (2 * ni * nj * nb,) int32: first half -1, then rod or -1
     frac_affine: tuple = field(repr=False)  # registration.frac_map(), computed once
+    correction: Optional[ReconstructionCorrection] = field(default=None, repr=False)
+
+    def place(self, x, y, z):
+        """Positions in the frame of this geometry: the file's positions through its
+        reconstruction correction (unchanged when there is none), nm."""
+        if self.correction is None or self.correction.is_identity:
+            return x, y, z
+        return self.correction.apply(x, y, z)
 
     @property
     def n_rods(self) -> int:
@@ -369,7 +378,7 @@ def rod_site_depths(columns: RodColumns) -> np.ndarray:
 def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DEFAULT_CUTOFF_FRAC,
                  edge_margin_nm: float | None = None, z_range_nm=None, site_phase_nm: float | None = None,
                  slab_nm: float = 2.0, max_ions: int = 2_000_000, random_state=None,
-                 n_grid: int = 256) -> ColumnGeometry:
+                 n_grid: int = 256, correction: ReconstructionCorrection | None = None) -> ColumnGeometry:
     """Fix the rods, sites and mask from (a sample of) the metal ions and a registration.
 
     Parameters
@@ -393,6 +402,9 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
     random_state : int or numpy.random.Generator, optional
     n_grid : int
         Lookup-table size per axis.
+    correction : ReconstructionCorrection, optional
+        The reconstruction correction the positions ``x, y, z`` have been through (and that
+        :meth:`ColumnGeometry.place` applies to file positions); kept on the geometry.
 
     Returns
     -------
@@ -433,7 +445,7 @@ def plan_columns(x, y, z, registration: Registration, *, cutoff_frac: float = DE
         outline_radius_nm=orad, outline_center_nm=ocen, site_phase_nm=float(phase),
         site_phase_contrast=float(contrast), locator=locator, table_origin=origin,
         rod_table=table, code_offset=code_offset, lut_offset=lut_offset, rod_key=rod_key,
-        frac_affine=reg.frac_map())
+        frac_affine=reg.frac_map(), correction=correction)
 
 
 def _plan_sites(x, y, z, reg, z_range_nm, site_phase_nm):

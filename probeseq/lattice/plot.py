@@ -9,7 +9,7 @@ import numpy as np
 from ..exceptions import InputError
 from ..utils.palette import EMPTY, METAL_COLOURS, OTHER, metal_colour
 
-__all__ = ['plot_rod_density']
+__all__ = ['plot_rod_density', 'plot_reconstruction']
 
 def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, title: str | None = None):
     """Write a 2-D histogram of the tilt-corrected metal density with the rod axes drawn over it.
@@ -50,6 +50,10 @@ def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, tit
     z = np.asarray(z, float)
     if not (x.shape == y.shape == z.shape) or x.size == 0:
         raise InputError("plot_rod_density: x, y, z must be non-empty arrays of equal length")
+    from .correction import ReconstructionCorrection
+
+    # the rods were placed on calibrated positions: draw the ions there too
+    x, y, z = ReconstructionCorrection.from_dict(columns.params.get("reconstruction")).apply(x, y, z)
     reg = columns.params.get("registration", {})
     scale = float(reg.get("scale") or 1.0)
     lat = reg.get("lattice")
@@ -106,3 +110,98 @@ def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, tit
     fig.savefig(path, metadata=figure_metadata(path))
     plt.close(fig)
     return path
+
+
+def plot_reconstruction(report: dict, path=None, *, efficiency: dict | None = None):
+    """Draw the reconstruction's calibration: depth scale against depth, the phase left across the
+    field of view, the lateral magnification against depth and (when given) the detection
+    efficiency against radius.
+
+    Parameters
+    ----------
+    report : dict
+        The ``reconstruction`` record (:meth:`ReconstructionCorrection.to_dict`).
+    path : str or Path, optional
+        Save as ``<stem>.png`` and ``<stem>.svg``.
+    efficiency : dict, optional
+        The decoder's ``radial_efficiency`` record (drawn when it holds a profile).
+
+    Returns
+    -------
+    matplotlib.figure.Figure or None
+        None when the record holds nothing to draw.
+    """
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    depth = (report or {}).get("depth") or {}
+    lateral = (report or {}).get("lateral") or {}
+    prof = depth.get("depth_scale_profile") or {}
+    if not prof.get("z_nm") and not lateral.get("z_slab_nm"):
+        return None
+    eff = efficiency if efficiency and efficiency.get("profile") else None
+    n = 3 + (eff is not None)
+    fig = Figure(figsize=(3.4 * n, 3.2), layout="constrained")
+    FigureCanvasAgg(fig)
+    axes = [fig.add_subplot(1, n, k + 1) for k in range(n)]
+    ax = axes[0]
+    pitch = depth.get("expected_pitch_nm") or float("nan")
+    if prof.get("z_nm"):
+        zz = np.array(prof["z_nm"], float)
+        sc = np.array([np.nan if v is None else v for v in prof["scale"]], float)
+        se = np.array([np.nan if v is None else v for v in prof["scale_err"]], float)
+        ax.fill_between(zz, (sc - 2 * se) * pitch, (sc + 2 * se) * pitch, color=OTHER, alpha=0.35, lw=0,
+                        label="fit, 2 s.e.")
+        ax.plot(zz, sc * pitch, color="black", lw=1.2, label="fitted")
+    win = depth.get("windows") or {}
+    if win.get("scale"):
+        wz = np.array(win["z_nm"], float)
+        ws = np.array([np.nan if v is None else v for v in win["scale"]], float)
+        ax.plot(wz, ws * pitch, "o", ms=3, color=METAL_COLOURS[0], label="depth windows")
+    ax.axhline(pitch, color="grey", ls="--", lw=0.8, label="lattice pitch")
+    ax.set_xlabel("depth in the file (nm)")
+    ax.set_ylabel("site pitch measured along depth (nm)")
+    title = "not calibrated" if not depth.get("calibrated") else f"mean depth scale {depth.get('mean_depth_scale'):.4f}"
+    ax.set_title(title, fontsize=9)
+    ax.legend(fontsize=7, frameon=False)
+    ax = axes[1]
+    res = depth.get("residual_phase") or {}
+    if res.get("phase_pitches"):
+        ph = np.array([[np.nan if v is None else v for v in row] for row in res["phase_pitches"]], float)
+        ex, ey = res["x_edges_nm"], res["y_edges_nm"]
+        im = ax.imshow(ph.T, origin="lower", extent=(ex[0], ex[-1], ey[0], ey[-1]), cmap="RdBu_r", vmin=-0.25,
+                       vmax=0.25, aspect="equal")
+        fig.colorbar(im, ax=ax, label="phase left (pitches)", shrink=0.8)
+        ax.set_title(f"after calibration, rms {res.get('rms_pitches')}; curvature sag {depth.get('sag_at_radius_nm')} nm",
+                     fontsize=8)
+    else:
+        ax.text(0.5, 0.5, "no phase map", ha="center", va="center", transform=ax.transAxes)
+    ax.set_xlabel("x (nm)")
+    ax.set_ylabel("y (nm)")
+    ax = axes[2]
+    if lateral.get("z_slab_nm"):
+        zs = np.array(lateral["z_slab_nm"], float)
+        sc = np.array(lateral["scale"], float)
+        se = np.array(lateral["scale_err"], float)
+        ax.errorbar(zs, sc, yerr=2 * se, fmt="o", ms=3, color=METAL_COLOURS[1 % len(METAL_COLOURS)], capsize=2)
+        ax.set_title(f"magnification change {100 * lateral.get('magnification_change', 0):.1f} % "
+                     f"({'corrected' if lateral.get('applied') else 'not corrected'})", fontsize=8)
+    else:
+        ax.text(0.5, 0.5, lateral.get("reason", "no lateral refit"), ha="center", va="center", fontsize=7,
+                wrap=True, transform=ax.transAxes)
+    ax.set_xlabel("depth in the file (nm)")
+    ax.set_ylabel("lateral scale per depth slab (2 s.e.)")
+    if eff is not None:
+        ax = axes[3]
+        pr = eff["profile"]
+        ax.plot(pr["rho_norm"], pr["h"], color="black", lw=1.2)
+        if pr.get("h_low") and pr.get("h_high"):
+            ax.fill_between(pr["rho_norm"], pr["h_low"], pr["h_high"], color=OTHER, alpha=0.35, lw=0)
+        ax.set_xlabel("distance from the specimen axis / outline radius")
+        ax.set_ylabel("relative detection efficiency")
+        ax.set_title("used by the decoder" if eff.get("applied") else "not used (flat)", fontsize=8)
+    if path is not None:
+        from ..ranging.plot import save_figure
+
+        save_figure(fig, path)
+    return fig

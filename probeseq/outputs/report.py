@@ -38,7 +38,8 @@ SECTION_IDS = ("verdict", "statistics", "figures", "parameters", "warnings", "ca
 
 #: figure name -> element id of its <figure>
 FIGURE_IDS = {"tracks": "fig-tracks", "spectrum": "fig-spectrum", "density": "fig-density",
-              "run_lengths": "fig-run-lengths", "rod_to_rod": "fig-rod-to-rod", "groups": "fig-groups", "overlaps": "fig-overlaps"}
+              "run_lengths": "fig-run-lengths", "rod_to_rod": "fig-rod-to-rod", "groups": "fig-groups", "overlaps": "fig-overlaps",
+              "reconstruction": "fig-reconstruction"}
 
 
 #: a warning is added when more than this share of decoded sites is uncertain
@@ -346,6 +347,21 @@ def _standard_figures(result, ions, skip, dpi):
         "shaded), with the fitted ions of each species in it. Their split was refitted from the ions' "
         "mass-to-charge and their distance to the rod axes (metal ions sit on the axes, fragments between): "
         "the metal share from space is given beside the share the spectrum alone would give.", overlaps)
+
+    def reconstruction():
+        from ..lattice.plot import plot_reconstruction
+
+        return plot_reconstruction((result.columns.params or {}).get("reconstruction"),
+                                   efficiency=result.decoded.to_dict().get("radial_efficiency"))
+
+    add("reconstruction", "The reconstruction calibrated on the lattice",
+        "Left: the site pitch measured along depth (the file's depth per crystal pitch; points: depth windows, "
+        "line and band: the smooth fit with two standard errors) against the lattice's pitch, dashed; the sites "
+        "are cut in the calibrated depth. Middle: the phase of the site planes left after calibration across the "
+        "field of view, in pitches (flat planes give 0 everywhere). Right: the lateral scale refitted per depth "
+        "slab (a drifting magnification). Far right, when present: the detection efficiency against the distance "
+        "from the specimen axis that the decoder used. The calibration assumes the lattice's repeat is right: "
+        "a wrong repeat would be read as a depth scale error.", reconstruction)
 
     def density():
         if ions is None:

@@ -11,6 +11,7 @@ from pathlib import Path
 import numpy as np
 
 from ..exceptions import InputError
+from ..lattice.correction import file_site_positions
 from ..lattice.rodcolumns import RodColumns
 
 __all__ = ['RESULTS_SCHEMA_VERSION', 'DecodedTracks', 'save_decoded', 'load_decoded', 'read_replicates', 'load_results', 'TRACKS_COLUMNS', 'RUNS_COLUMNS']
@@ -51,8 +52,7 @@ def tracks_table(columns: RodColumns, decoded, select=None, rods: slice | None =
     else:
         r, s = np.nonzero(sel[rods])
         r += rods.indices(sel.shape[0])[0]
-    z = columns.site_z_nm[s] + columns.site_z_offset_nm[r]
-    xy = columns.rod_xy_nm[r] + columns.tilt[None, :] * (z - columns.z_ref_nm)[:, None]
+    xy, z = file_site_positions(columns, r, s)  # in the ion file's frame
     state = decoded.viterbi[r, s]
     return {"rod": r, "rod_x_nm": xy[:, 0], "rod_y_nm": xy[:, 1], "site": s, "z_nm": z,
             "state": np.asarray(columns.metals, dtype=object)[state], "posterior": decoded.posteriors[r, s, state]}
@@ -64,10 +64,10 @@ def runs_table(columns: RodColumns, decoded) -> dict:
     first, last = np.asarray(runs["first_site"], int), np.asarray(runs["last_site"], int)
     length = np.asarray(runs["length"], int)
     rod = np.asarray(runs["rod"], int)
-    off = columns.site_z_offset_nm[rod]
     return {"rod": rod, "first_site": first, "last_site": last,
             "length_sites": length, "length_nm": length * columns.pitch_nm,
-            "z_start_nm": columns.site_z_nm[first] + off, "z_end_nm": columns.site_z_nm[last] + off,
+            "z_start_nm": file_site_positions(columns, rod, first)[1],
+            "z_end_nm": file_site_positions(columns, rod, last)[1],
             "metal": np.asarray(columns.metals, dtype=object)[np.asarray(runs["metal"], int)],
             "mean_posterior": np.asarray(runs["mean_posterior"], float)}
 

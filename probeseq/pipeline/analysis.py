@@ -231,7 +231,8 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> 
     Files: ``tracks.svg/.pdf/.png`` (rods nearest the centre), ``spectrum.png/.svg``,
     ``density.png``, ``run_lengths.svg/.png``, ``rod_to_rod.svg/.png``, ``groups.svg/.png`` (when
     rods are not resolvable), ``overlaps.png/.svg`` (when overlapped metal and fragment lines were
-    refitted with the ions' distance to the rod axes). A figure that cannot be drawn is skipped with a warning.
+    refitted with the ions' distance to the rod axes), ``reconstruction.png/.svg`` (the depth
+    scale, plane curvature, magnification and detection efficiency calibrated on the lattice). A figure that cannot be drawn is skipped with a warning.
     """
     from ..outputs.figures import plot_group_variance, plot_rod_to_rod, plot_run_lengths, save_figure
     from ..outputs.tracks import plot_tracks
@@ -276,6 +277,14 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> 
         return plot_overlaps(result.ranging, folder / "overlaps")
 
     attempt("overlaps", overlaps, ())
+
+    def reconstruction():
+        from ..lattice.plot import plot_reconstruction
+
+        return plot_reconstruction(result.columns.params.get("reconstruction"), folder / "reconstruction",
+                                   efficiency=result.decoded.to_dict().get("radial_efficiency"))
+
+    attempt("reconstruction", reconstruction, ())
     if result.figure_ions is not None:
         attempt("density", lambda: write_density_figure(result.figure_ions, result.ranging, result.columns,
                                                         folder / "density.png"), ())

@@ -56,6 +56,12 @@ class AnalysisOptions:
         [0.2, 5], see :data:`probeseq.utils.validate.SCALE_RANGE`), nm.
     uncertain_below : float
         Sites whose best posterior is below this are flagged uncertain.
+    species : tuple of str, optional
+        Framework ions to predict instead of the defaults.
+    correct_reconstruction : bool
+        Calibrate the reconstruction on the lattice (depth scale, plane curvature, lateral
+        magnification against depth; :mod:`probeseq.lattice.calibrate`) before cutting sites;
+        False keeps the file's positions as they are (``--as-reconstructed``).
     """
 
     seed: int = 0
@@ -69,6 +75,7 @@ class AnalysisOptions:
     offset_nm: Optional[tuple] = None
     uncertain_below: float = 0.8
     species: Optional[tuple] = None
+    correct_reconstruction: bool = True
 
     def __post_init__(self):
         from ..utils.validate import check_number, check_scale, check_seed
@@ -86,6 +93,8 @@ class AnalysisOptions:
         check_number(self.uncertain_below, "--uncertain-below", 0.5, 1)
         check_number(self.rotation_deg, "--rotation-deg", -360, 360, allow_none=True)
         check_scale(self.scale)
+        if not isinstance(self.correct_reconstruction, (bool, np.bool_)):
+            raise InputError(f"correct_reconstruction must be True or False, got {self.correct_reconstruction!r:.40}")
         if self.offset_nm is not None:
             off = tuple(self.offset_nm) if isinstance(self.offset_nm, (tuple, list, np.ndarray)) else (self.offset_nm,)
             if len(off) != 2:
@@ -191,7 +200,8 @@ class AnalysisResult:
                         "resolvable": bool(col.resolvable), "misassigned_fraction": float(col.misassigned_fraction),
                         "n_metal_ions": int(self.n_metal_ions),
                         "metal_atoms_in_rods": float(col.counts.sum()),
-                        "registration": col.params},
+                        "registration": {k: v for k, v in col.params.items() if k != "reconstruction"}},
+            "reconstruction": col.params.get("reconstruction"),
             "decoding": dec,
             "groups": None if self.groups is None else self.groups.to_dict(),
             "ranging": self.ranging.to_dict(),

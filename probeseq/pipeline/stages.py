@@ -189,9 +189,32 @@ def _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, factor,
     rr, thin, geom = _fit_on_sample(sample, metals, lattice, opts, ranges, clock)
     with clock.stage("binning", message):
         plan = _start_pass(rr, metals, thin, geom, opts.seed)
-        counts, tally, ext = _run_pass(plan, None, factor, strict, blocks, where=where)
+        if geom.correction is None or geom.correction.is_identity:
+            counts, tally, ext = _run_pass(plan, None, factor, strict, blocks, where=where)
+        else:
+            raw = np.array([np.inf, -np.inf] * 3)
+            counts, tally, ext = _run_pass(plan, None, 1.0, strict, _placed_blocks(blocks, geom, factor, raw),
+                                           where=where)
+            ext = np.array(ext, float)
+            ext[:6] = raw  # the file's extents, not the calibrated ones
         cols, n_metal = _finish_pass(geom, counts, metals, tally, thin)
     return rr, cols, n_metal, tally, ext
+
+
+def _placed_blocks(blocks, geom, factor, raw_ext):
+    """``blocks`` with positions in nm through the geometry's reconstruction correction; the
+    file's extents (nm) are kept in ``raw_ext`` (x min, x max, y min, ...)."""
+    def placed():
+        for row0, x, y, z, m in blocks():
+            if factor != 1.0:
+                x, y, z = (np.multiply(a, a.dtype.type(factor)) for a in (x, y, z))
+            for k, a in enumerate((x, y, z)):
+                if a.size:
+                    raw_ext[2 * k] = min(raw_ext[2 * k], float(np.nanmin(a)))
+                    raw_ext[2 * k + 1] = max(raw_ext[2 * k + 1], float(np.nanmax(a)))
+            xc, yc, zc = geom.place(x, y, z)
+            yield row0, xc, yc, zc, m
+    return placed
 
 
 def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
@@ -217,16 +240,43 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
             x, y, z = sample.x[sel], sample.y[sel], sample.z[sel]
             reg = register_lattice(x, y, z, lattice, rotation_deg=opts.rotation_deg, scale=opts.scale,
                                    offset_nm=opts.offset_nm, random_state=opts.seed)
+        with clock.stage("calibration", "calibrating depth scale, plane curvature and magnification on the lattice"):
+            corr, reg, (x, y, z), placed = _correct(sample, sel, reg, lattice, opts)
+        with clock.stage("columns", "placing the rods and sites"):
             # overlapped metal and fragment lines: refit their shares with the distance to the rod axes
-            rr2 = _refine_overlaps(rr, sample, stride, reg)
+            rr2 = _refine_overlaps(rr, placed, stride, reg)
             if rr2 is not rr:
                 rr = rr2
                 ca = assign_channels(m, rr.ranges, metals)
                 ca_fit = ca if stride == 1 else replace(ca, range_index=ca.range_index[::stride],
                                                         channel=ca.channel[::stride])
                 thin = detection_balance(rr, ca_fit)
-            geom = plan_columns(x, y, z, reg, random_state=opts.seed)
+            geom = plan_columns(x, y, z, reg, random_state=opts.seed, correction=corr)
     return rr, thin, geom
+
+
+def _correct(sample: IonList, sel, reg, lattice, opts):
+    """The reconstruction correction of the sample's metal ions (identity when not asked for or
+    not found), the registration on the corrected positions, those positions and the sample with
+    corrected positions (for the overlap refit)."""
+    from ..lattice.calibrate import calibrate_reconstruction
+    from ..lattice.correction import ReconstructionCorrection
+    from ..lattice.registration import register_lattice
+
+    x, y, z = sample.x[sel], sample.y[sel], sample.z[sel]
+    if not opts.correct_reconstruction:
+        corr = ReconstructionCorrection.identity(float(z.min()), float(z.max()),
+                                                 report={"applied": False, "asked": False})
+        return corr, reg, (x, y, z), sample
+    corr = calibrate_reconstruction(x, y, z, reg, random_state=opts.seed, where=sample.meta.source or "")
+    if corr.is_identity:
+        return corr, reg, (x, y, z), sample
+    x, y, z = corr.apply(x, y, z)
+    reg = register_lattice(x, y, z, lattice, rotation_deg=opts.rotation_deg, scale=opts.scale,
+                           offset_nm=opts.offset_nm, random_state=opts.seed)
+    sx, sy, sz = corr.apply(sample.x, sample.y, sample.z)
+    placed = replace(sample, x=sx, y=sy, z=sz)
+    return corr, reg, (x, y, z), placed
 
 
 def _refine_overlaps(rr, sample: IonList, stride: int, reg):

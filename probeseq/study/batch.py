@@ -298,6 +298,9 @@ def summary_lines(res, verbose: bool = False) -> list:
     col = res.columns
     lines.append(f"rods {col.n_rods}, sites used {int(col.mask.sum())}, detection efficiency "
                  f"{res.decoded.eta:.3f}, persistence {st.estimates.get('persistence', float('nan')):.3f}")
+    rec = reconstruction_line(col.params.get("reconstruction"))
+    if rec:
+        lines.append(rec)
     for w in res.warnings:
         lines.append(f"warning: {w}")
     if verbose:
@@ -315,6 +318,24 @@ def summary_lines(res, verbose: bool = False) -> list:
                      f"(df {dec.lr_df}), BIC {dec.bic:.1f} vs {dec.bic_indep:.1f} independent")
     lines.append("timings (s): " + ", ".join(f"{k} {v:.2f}" for k, v in res.timings_s.items()))
     return lines
+
+
+def reconstruction_line(rec) -> str:
+    """One line on the reconstruction's calibration ("" when there is no record)."""
+    if not rec:
+        return ""
+    d, lat = rec.get("depth") or {}, rec.get("lateral") or {}
+    if not rec.get("applied") and not d:
+        return "reconstruction: used as in the file (--as-reconstructed)" if rec.get("asked") is False else ""
+    parts = []
+    if d.get("calibrated"):
+        parts.append(f"depth scale {d['mean_depth_scale']:.4f} +- {d.get('mean_depth_scale_err') or 0:.4f} "
+                     f"(calibrated on the site pitch), plane sag at the outline {d.get('sag_at_radius_nm') or 0:.3f} nm")
+    else:
+        parts.append(f"depth not calibrated ({d.get('reason', 'not asked for')})")
+    if lat.get("applied"):
+        parts.append(f"magnification change {100 * lat.get('magnification_change', 0):.1f} % over the depth (corrected)")
+    return "reconstruction: " + "; ".join(parts)
 
 
 # ---------------------------------------------------------------------- a batch of runs

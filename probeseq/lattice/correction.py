@@ -1,0 +1,262 @@
+"""The reconstruction correction: a smooth map from the file's positions to calibrated ones.
+
+A reconstruction fixes its depth scale and lateral magnification from parameters that are only
+estimated, and an assumed tip radius curves every depth plane (common practice; see
+``docs/REFERENCES.md`` §7). probeseq calibrates them on the lattice itself
+(:mod:`probeseq.lattice.calibrate`) and carries the result as a :class:`ReconstructionCorrection`:
+
+1. **lateral**: ``(x', y') = (x, y) / m(z) + d(z)``, the magnification ``m`` (relative to the
+   registration's) and shift ``d`` fitted per depth slab (rod axes that follow a drifting
+   magnification, or bend);
+2. **depth**: ``z' = T(z - kappa * rho**2)`` with ``rho`` the lateral distance of ``(x', y')``
+   from the specimen axis ``c(z)`` and ``T`` a smooth, increasing map whose slope is one over the
+   local depth scale (the site planes are then flat and exactly one site pitch apart).
+
+Every table is sampled on one uniform grid of file depths and read by linear interpolation
+(linear extrapolation beyond its ends), so applying the map is one compiled pass over the ions
+(:func:`_apply_kernel`). The identity correction (``ReconstructionCorrection.identity()``)
+leaves positions unchanged and costs nothing: callers test :attr:`is_identity`.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+
+import numba
+import numpy as np
+
+from ..exceptions import InputError
+
+__all__ = ['ReconstructionCorrection']
+
+
+@dataclass(frozen=True, eq=False)
+class ReconstructionCorrection:
+    """A map from file positions (nm) to calibrated positions (nm).
+
+    Attributes
+    ----------
+    grid_z_nm : (n,) ndarray of float, nm
+        Uniform grid of file depths on which the tables are sampled (n >= 2).
+    depth_nm : (n,) ndarray of float, nm
+        Calibrated depth ``T`` at the grid (strictly increasing).
+    magnification : (n,) ndarray of float
+        Lateral magnification relative to the registration's, at the grid.
+    shift_nm : (n, 2) ndarray of float, nm
+        Lateral shift ``d`` at the grid.
+    axis_nm : (n, 2) ndarray of float, nm
+        Specimen axis ``c`` (centre of the plane curvature), calibrated lateral frame.
+    curvature_per_nm : float, 1/nm
+        ``kappa``: a depth plane lies ``kappa * rho**2`` deeper in the file at lateral distance
+        ``rho`` from the axis than on it.
+    report : dict
+        The calibration report (JSON-able; ``results.json`` ``reconstruction``).
+    """
+
+    grid_z_nm: np.ndarray
+    depth_nm: np.ndarray
+    magnification: np.ndarray
+    shift_nm: np.ndarray
+    axis_nm: np.ndarray
+    curvature_per_nm: float = 0.0
+    report: dict = field(default_factory=dict)
+
+    def __post_init__(self):
+        g = np.array(self.grid_z_nm, float).reshape(-1)
+        n = g.size
+        arrays = {"grid_z_nm": g, "depth_nm": np.array(self.depth_nm, float).reshape(-1),
+                  "magnification": np.array(self.magnification, float).reshape(-1),
+                  "shift_nm": np.array(self.shift_nm, float).reshape(-1, 2),
+                  "axis_nm": np.array(self.axis_nm, float).reshape(-1, 2)}
+        if n < 2 or any(a.shape[0] != n for a in arrays.values()):
+            raise InputError(f"reconstruction correction: every table needs the grid's {n} (>= 2) rows")
+        if not all(np.isfinite(a).all() for a in arrays.values()) or not math.isfinite(self.curvature_per_nm):
+            raise InputError("reconstruction correction: the tables hold non-finite values")
+        dg = np.diff(g)
+        if not (dg > 0).all() or np.ptp(dg) > 1e-6 * dg.mean():
+            raise InputError("reconstruction correction: grid_z_nm must be uniform and increasing")
+        if not (np.diff(arrays["depth_nm"]) > 0).all():
+            raise InputError("reconstruction correction: the calibrated depth must increase with the file's depth")
+        if not (arrays["magnification"] > 0).all():
+            raise InputError("reconstruction correction: magnification must be positive")
+        for k, a in arrays.items():
+            a.flags.writeable = False
+            object.__setattr__(self, k, a)
+        object.__setattr__(self, "curvature_per_nm", float(self.curvature_per_nm))
+
+    # ------------------------------------------------------------ construction
+    @classmethod
+    def identity(cls, z_lo_nm: float = 0.0, z_hi_nm: float = 1.0, report: dict | None = None):
+        """The correction that changes nothing (two grid points, slope 1)."""
+        z = np.array([float(z_lo_nm), float(max(z_hi_nm, z_lo_nm + 1.0))])
+        return cls(grid_z_nm=z, depth_nm=z.copy(), magnification=np.ones(2), shift_nm=np.zeros((2, 2)),
+                   axis_nm=np.zeros((2, 2)), curvature_per_nm=0.0, report=dict(report or {}))
+
+    @property
+    def is_identity(self) -> bool:
+        """True when :meth:`apply` returns its input unchanged."""
+        return bool(np.array_equal(self.depth_nm, self.grid_z_nm) and (self.magnification == 1).all()
+                    and not self.shift_nm.any() and self.curvature_per_nm == 0.0)
+
+    # ------------------------------------------------------------ maps
+    def apply(self, x, y, z, out=None):
+        """Calibrated positions of file positions.
+
+        Parameters
+        ----------
+        x, y, z : (n,) array of float, nm
+            File (reconstruction-frame) positions; float32 stays float32.
+        out : tuple of three (n,) arrays, optional
+            Where to write (may be the inputs when they are writeable).
+
+        Returns
+        -------
+        x, y, z : (n,) ndarray, nm
+            Calibrated positions (the inputs themselves when the correction is the identity and
+            ``out`` is None).
+        """
+        x, y, z = (np.asarray(a) for a in (x, y, z))
+        if self.is_identity and out is None:
+            return x, y, z
+        dt = np.float32 if all(a.dtype == np.float32 for a in (x, y, z)) else np.float64
+        if out is None:
+            out = tuple(np.empty(x.shape, dt) for _ in range(3))
+        xs = [np.ascontiguousarray(a, dt) for a in (x, y, z)]
+        _apply_kernel(xs[0], xs[1], xs[2], out[0], out[1], out[2], *self._tables())
+        return out
+
+    def _tables(self):
+        g = self.grid_z_nm
+        return (float(g[0]), float((g.size - 1) / (g[-1] - g[0])), self.depth_nm, self.magnification,
+                np.ascontiguousarray(self.shift_nm), np.ascontiguousarray(self.axis_nm), self.curvature_per_nm)
+
+    def depth_scale(self, z_nm) -> np.ndarray:
+        """Local depth scale ``dz_file / dz_calibrated`` on the axis at file depths ``z_nm``."""
+        g, t = self.grid_z_nm, self.depth_nm
+        slope = np.diff(t) / np.diff(g)
+        i = np.clip(np.searchsorted(g, np.asarray(z_nm, float), side="right") - 1, 0, slope.size - 1)
+        return 1.0 / slope[i]
+
+    def to_file(self, x, y, z, n_iter: int = 4):
+        """File positions of calibrated positions (the inverse of :meth:`apply`), nm, float64.
+
+        The depth map is inverted by interpolation on its tables and the curvature and
+        lateral terms by a few fixed-point steps (they change slowly with depth).
+        """
+        xc, yc, zc = (np.asarray(a, float) for a in (x, y, z))
+        if self.is_identity:
+            return xc.copy(), yc.copy(), zc.copy()
+        g, t = self.grid_z_nm, self.depth_nm
+        w = _interp_extrap(zc, t, g)  # T^-1
+        zf = w.copy()
+        for _ in range(n_iter):
+            ax = _interp_extrap(zf, g, self.axis_nm[:, 0])
+            ay = _interp_extrap(zf, g, self.axis_nm[:, 1])
+            zf = w + self.curvature_per_nm * ((xc - ax) ** 2 + (yc - ay) ** 2)
+        m = _interp_extrap(zf, g, self.magnification)
+        xf = (xc - _interp_extrap(zf, g, self.shift_nm[:, 0])) * m
+        yf = (yc - _interp_extrap(zf, g, self.shift_nm[:, 1])) * m
+        return xf, yf, zf
+
+    # ------------------------------------------------------------ records
+    def to_dict(self) -> dict:
+        """JSON-able record: the report and the tables (rounded to 0.1 pm)."""
+        def r(a):
+            return np.round(np.asarray(a, float), 5).tolist()
+
+        return {**self.report, "tables": {
+            "grid_z_nm": r(self.grid_z_nm), "depth_nm": r(self.depth_nm), "magnification": r(self.magnification),
+            "shift_nm": r(self.shift_nm), "axis_nm": r(self.axis_nm), "curvature_per_nm": self.curvature_per_nm,
+            "about": "calibrated (x', y') = (x, y) / magnification(z) + shift(z); z' = depth(z - "
+                     "curvature_per_nm * rho^2), rho the distance of (x', y') from axis(z); tables linear in the "
+                     "file depth z (grid_z_nm), extrapolated linearly"}}
+
+    @classmethod
+    def from_dict(cls, d) -> "ReconstructionCorrection":
+        """The correction recorded by :meth:`to_dict` (identity when it holds no tables)."""
+        if not isinstance(d, dict) or not isinstance(d.get("tables"), dict):
+            return cls.identity()
+        t = d["tables"]
+        try:
+            g = np.asarray(t["grid_z_nm"], float)  # rounded on writing: the uniform grid again
+            return cls(grid_z_nm=np.linspace(g[0], g[-1], g.size) if g.ndim == 1 and g.size >= 2 else g, depth_nm=t["depth_nm"], magnification=t["magnification"],
+                       shift_nm=t["shift_nm"], axis_nm=t["axis_nm"], curvature_per_nm=float(t["curvature_per_nm"]),
+                       report={k: v for k, v in d.items() if k != "tables"})
+        except (KeyError, TypeError, ValueError) as exc:
+            raise InputError(f"reconstruction correction: malformed record ({exc})") from None
+
+
+def _interp_extrap(v, xp, fp):
+    """``np.interp`` with linear extrapolation beyond both ends (xp increasing)."""
+    v = np.asarray(v, float)
+    out = np.interp(v, xp, fp)
+    lo, hi = v < xp[0], v > xp[-1]
+    if lo.any():
+        out[lo] = fp[0] + (v[lo] - xp[0]) * (fp[1] - fp[0]) / (xp[1] - xp[0])
+    if hi.any():
+        out[hi] = fp[-1] + (v[hi] - xp[-1]) * (fp[-1] - fp[-2]) / (xp[-1] - xp[-2])
+    return out
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _lerp_index(v, z0, inv_h, n):
+    """Grid cell (clamped to the end cells, so the ends extrapolate) and fraction of depth v."""
+    f = (v - z0) * inv_h
+    i = int(math.floor(f)) if f == f else 0
+    if i < 0:
+        i = 0
+    elif i > n - 2:
+        i = n - 2
+    return i, f - i
+
+
+@numba.njit(cache=True, nogil=True)
+def _apply_kernel(x, y, z, ox, oy, oz, z0, inv_h, depth, mag, shift, axis, kappa):
+    """The map of :meth:`ReconstructionCorrection.apply`, one pass (NaN stays NaN)."""
+    n = depth.size
+    fdt = ox.dtype.type
+    for k in range(x.size):
+        zf = np.float64(z[k])
+        i, t = _lerp_index(zf, z0, inv_h, n)
+        m = mag[i] + t * (mag[i + 1] - mag[i])
+        xc = np.float64(x[k]) / m + shift[i, 0] + t * (shift[i + 1, 0] - shift[i, 0])
+        yc = np.float64(y[k]) / m + shift[i, 1] + t * (shift[i + 1, 1] - shift[i, 1])
+        ax = axis[i, 0] + t * (axis[i + 1, 0] - axis[i, 0])
+        ay = axis[i, 1] + t * (axis[i + 1, 1] - axis[i, 1])
+        w = zf - kappa * ((xc - ax) * (xc - ax) + (yc - ay) * (yc - ay))
+        j, s = _lerp_index(w, z0, inv_h, n)
+        ox[k] = fdt(xc)
+        oy[k] = fdt(yc)
+        oz[k] = fdt(depth[j] + s * (depth[j + 1] - depth[j]))
+
+
+def file_site_positions(columns, rods, sites):
+    """Where sites of a :class:`~probeseq.lattice.rodcolumns.RodColumns` lie in the ion file's frame.
+
+    The columns are cut in the calibrated frame of their reconstruction correction
+    (``columns.params["reconstruction"]``); this maps each site's point on its rod axis back to
+    the file's positions, so a site can be found in the user's reconstruction.
+
+    Parameters
+    ----------
+    columns : RodColumns
+    rods, sites : (n,) array of int
+        Rod and site index of each site.
+
+    Returns
+    -------
+    xy : (n, 2) ndarray of float, nm
+        Rod axis position at the site's depth, file frame.
+    z : (n,) ndarray of float, nm
+        The site's depth on its rod axis, file frame.
+    """
+    r = np.asarray(rods, np.int64)
+    s = np.asarray(sites, np.int64)
+    z = columns.site_z_nm[s] + columns.site_z_offset_nm[r]
+    xy = columns.rod_xy_nm[r] + columns.tilt[None, :] * (z - columns.z_ref_nm)[:, None]
+    corr = ReconstructionCorrection.from_dict(columns.params.get("reconstruction"))
+    if corr.is_identity:
+        return xy, z
+    xf, yf, zf = corr.to_file(xy[:, 0], xy[:, 1], z)
+    return np.column_stack([xf, yf]), zf
