@@ -60,6 +60,9 @@ SAG_PITCHES = 3.0
 #: ions per window in the scans (a random subset)
 SCAN_IONS = 3000
 
+#: ions per window in the wide scan
+WIDE_IONS = 1500
+
 #: windows (the most periodic) and ions per window of the curvature search
 KAPPA_WINDOWS = 6
 KAPPA_IONS = 2000
@@ -68,8 +71,8 @@ KAPPA_IONS = 2000
 FIT_IONS = 150_000
 
 #: n R^2 a window's best power must reach to count as periodic: for n uniform phases
-#: n R^2 is exponential of mean 1 (Rayleigh's test), so after the scan's ~2000 trials a
-#: window without signal passes with probability below 1e-3
+#: n R^2 is exponential of mean 1 (Rayleigh's test), so after the wide scan's ~500 trials a
+#: window without signal passes with probability below 2e-4
 RAYLEIGH_MIN = 15.0
 
 #: smallest share of windows holding a periodic signal for a calibration
@@ -166,7 +169,8 @@ class DepthCalibration:
 # ---------------------------------------------------------------------- scans
 @numba.njit(cache=True, nogil=True)
 def _power_grid(u, rho2, ratios, kappas, pitch, out):
-    """``out[a, b] = |sum exp(2 pi i (u - kappa_b rho2) / (pitch ratio_a))|^2 / n`` (u centred)."""
+    """``out[a, b] = |sum exp(2 pi i (u - kappa_b rho2) / (pitch ratio_a))|^2 / n`` (u centred): n R^2,
+    exponential of mean 1 for uniform phases (Rayleigh's test)."""
     n = u.size
     for b in range(kappas.size):
         kb = kappas[b]
@@ -287,13 +291,15 @@ def calibrate_depth(x, y, z, *, pitch_nm: float, plane_gradient=(0.0, 0.0), axis
             f"scale (needs {MIN_PLANES} planes, {MIN_PLANES * P:.3g} nm)"), **base)
     a_idx, b_idx, zc = _windows(z, WINDOW_PLANES * P)
     subs = [_subset(a, b, SCAN_IONS, rng) for a, b in zip(a_idx, b_idx)]
-    # 1. wide scan (no curvature) for the period the data hold
+    # 1. wide scan (a coarse curvature grid) for the period the data hold
     ratios = np.exp(np.arange(math.log(WIDE_RANGE[0]), math.log(WIDE_RANGE[1]), 1.0 / (3 * WINDOW_PLANES)))
+    kappas = np.linspace(-SAG_PITCHES, SAG_PITCHES, 7) * P / max(radius_nm, 1e-6) ** 2
     wide = np.empty((len(subs), ratios.size))
-    out = np.empty((ratios.size, 1))
+    out = np.empty((ratios.size, kappas.size))
     for j, s in enumerate(subs):
-        _power_grid(u[s] - zc[j], rho2[s], ratios, np.zeros(1), P, out)
-        wide[j] = out[:, 0] * max(s.size, 1)  # n R^2
+        s = s[:WIDE_IONS] if s.size > WIDE_IONS else s
+        _power_grid(u[s] - zc[j], rho2[s], ratios, kappas, P, out)
+        wide[j] = out.max(axis=1)  # n R^2 at the best curvature
     best = wide.max(1)
     periodic = best >= RAYLEIGH_MIN
     windows = dict(window_z_nm=zc)
@@ -337,7 +343,7 @@ def _local_scan(u, rho2, subs, zc, P, found, radius, periodic):
     for j in pick:
         s = subs[j][:KAPPA_IONS] if subs[j].size > KAPPA_IONS else subs[j]
         _power_grid(u[s] - zc[j], rho2[s], coarse, kappas, P, g)
-        total += g.max(axis=0)[None, :] * s.size
+        total += g.max(axis=0)[None, :]
     kb = int(np.argmax(total[0]))
     # refine the curvature between its neighbours (parabola through the three sums)
     kappa = float(kappas[kb])
@@ -355,7 +361,7 @@ def _local_scan(u, rho2, subs, zc, P, found, radius, periodic):
         if not periodic[j]:
             continue
         _power_grid(u[s] - zc[j], rho2[s], ratios, np.array([kappa]), P, col)
-        c = col[:, 0] * s.size
+        c = col[:, 0]
         a = int(np.argmax(c))
         power[j] = c[a]
         if power[j] < RAYLEIGH_MIN:
