@@ -212,10 +212,7 @@ def _wls(t, v, err, degree):
     c = cov @ (A.T @ (w * v))
     chi2 = float(np.sum(w * (v - A @ c) ** 2)) / max(t.size - degree - 1, 1)
     cov = cov * max(chi2, 1.0)  # scatter beyond the stated errors widens the errors
-    # back to coefficients of t (not t - t0)
-    from numpy.polynomial import polynomial as Pl
-
-    shifted = Pl.polyval  # noqa: F841 - kept simple: expand (t - t0)^k
+    # back to coefficients of t (not t - t0): expand (t - t0)^k
     M = np.zeros((degree + 1, degree + 1))
     for k in range(degree + 1):
         for j in range(k + 1):
