@@ -48,6 +48,8 @@ def _reciprocal_set(lattice: Lattice, k_max: float, sigma0: float, max_n: int = 
     hk, g, kn = hk[keep], g[keep], kn[keep]
     S = np.exp(-2j * np.pi * (hk @ lattice.rods_frac.T)).sum(1)
     w = (np.abs(S) / lattice.rods_per_cell) ** 2 * np.exp(-4 * np.pi ** 2 * sigma0 ** 2 * kn ** 2)
+    if not (w.size and w.max() > 0):  # no peak below k_max: empty arrays
+        return hk[:0], g[:0], S[:0], w[:0]
     keep = w > 0.02 * w.max()
     hk, g, S, w = hk[keep], g[keep], S[keep], w[keep]
     order = np.argsort(-w)[:max_n]
@@ -159,12 +161,7 @@ def _search_rotation_scale(spec, g, w, period_deg, scale_range, rotation_deg, sc
         ss = np.exp(np.arange(math.log(lo), math.log(hi) + 1e-9, 0.004))
     else:
         ss = np.array([float(scale)])
-    # vectorised grid
-    T, S = np.meshgrid(np.radians(ths), ss, indexing="ij")
-    c, s_ = np.cos(T)[..., None], np.sin(T)[..., None]
-    kx = (c * g[:, 0] - s_ * g[:, 1]) / S[..., None]
-    ky = (s_ * g[:, 0] + c * g[:, 1]) / S[..., None]
-    vals = (spec.sample(kx, ky) * w).sum(-1)
+    vals = _score_grid(spec, g, w, ths, ss)
     i, j = np.unravel_index(np.argmax(vals), vals.shape)
     th0, s0 = float(ths[i]), float(ss[j])
     free = [rotation_deg is None, scale is None]
@@ -186,6 +183,16 @@ def _search_rotation_scale(spec, g, w, period_deg, scale_range, rotation_deg, sc
             th0, s0 = float(q[0]), float(math.exp(q[1]))
     best = score(th0, s0)
     return th0 % period_deg if rotation_deg is None else th0, s0, best
+
+
+def _score_grid(spec, g, w, ths, ss):
+    """(len(ths), len(ss)) weighted mean normalised power at the peaks ``g`` (lattice frame,
+    cycles/nm, weights ``w``) turned by each rotation ``ths`` (degrees) and divided by each scale ``ss``."""
+    T, S = np.meshgrid(np.radians(ths), ss, indexing="ij")
+    c, s_ = np.cos(T)[..., None], np.sin(T)[..., None]
+    kx = (c * g[:, 0] - s_ * g[:, 1]) / S[..., None]
+    ky = (s_ * g[:, 0] + c * g[:, 1]) / S[..., None]
+    return (spec.sample(kx, ky) * w).sum(-1)
 
 
 def _slab_coefficients(xr, yr, slab, n_slabs, hk, Bp):

@@ -21,7 +21,9 @@ Method (coarse to fine)
 2. **Rotation and scale.** A grid search over rotation (one symmetry period) and scale
    (``scale_range``) of the mean normalised power at the lattice's reciprocal vectors, weighted by
    the model structure factor, then a Nelder-Mead polish. The best mean is the *peak ratio*; below
-   ``MIN_PEAK_RATIO`` the data hold no lattice signal and :class:`InputError` says so.
+   ``MIN_PEAK_RATIO`` the data hold no lattice signal and :class:`InputError` says so, naming the
+   likely causes checked on the data (positions in angstrom, a lattice constant far off;
+   :mod:`probeseq.lattice.sanity`).
 3. **Tilt.** The complex Fourier coefficient of each slab at the strongest reciprocal vectors turns
    in phase as the pattern drifts with depth; the tilt that re-aligns the slabs (maximum coherent
    power) is found by a grid search then a polish.
@@ -34,6 +36,10 @@ Method (coarse to fine)
    uniform background) fitted to the ion distances from their rod within half the nearest rod
    distance. The expected misassigned fraction is the share of a Gaussian cloud of
    that spread around a rod that lands nearer another rod, i.e. outside the rod's Voronoi cell.
+7. **Sanity.** A fitted scale outside ``1 +- SCALE_WARN`` draws a warning that names the lattice
+   constant the data suggest; a doubtful registration is compared with a wide scale search, and a
+   lattice that fits far better at another scale is named in an error
+   (:func:`probeseq.lattice.sanity.check_registered_scale`). Not when the scale is given.
 
 Cost: the fit is bounded whatever the number of ions: at most ``max_fit_ions`` enter, the phase
 stages use ``_N_PHASE`` of them, the refinement ``_N_REFINE`` and the spread fit ``_N_SIGMA``
@@ -73,6 +79,7 @@ from .fourier import (
 )
 from .locator import _cached_locator, _cell_boundaries, _gn_pass, _locator_arrays, _rot, lattice_symmetry
 from .model import Lattice
+from .sanity import NoLatticeSignal, SearchData, check_registered_scale, diagnose_no_signal
 
 __all__ = ['Registration', 'register_lattice', 'expected_misassigned_fraction', 'MIN_METAL_IONS', 'MIN_PEAK_RATIO', 'RESOLVABLE_MISASSIGNED']
 
@@ -309,8 +316,8 @@ def _refine(x, y, z, lattice, locator, p, free, z_ref, center, radius_all, fit_r
         if n_use < 20:
             JTJ, JTe, sse, n_use = _gn_pass(x, y, zr, rr, p, C, loc, fit_r, np.inf, dist, ok)
         if n_use < 20:
-            raise InputError("lattice registration: fewer than 20 metal ions lie near a model rod axis; "
-                             "no lattice signal (set --rotation-deg, --scale and --offset-nm to override)")
+            raise NoLatticeSignal("lattice registration: fewer than 20 metal ions lie near a model rod axis: "
+                                  "no lattice signal")
         JTJ = JTJ[np.ix_(free, free)]
         JTe = JTe[free]
         try:
@@ -469,8 +476,25 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
     Raises
     ------
     InputError
-        Too few metal ions, a specimen narrower than one cell, or no lattice signal.
+        Too few metal ions, a specimen narrower than one cell, or no lattice signal (the message
+        names the likely causes checked on the data: positions in angstrom, a lattice constant far
+        off); or the lattice matches only in part while it fits far better at a scale outside
+        ``scale_range`` (:func:`probeseq.lattice.sanity.check_registered_scale`).
+
+    Warns
+    -----
+    DataQualityWarning
+        The fitted scale is outside ``1 +- SCALE_WARN`` (the lattice constant or the reconstruction's
+        lateral scale is off); not when ``scale`` is given.
     """
+    return _register(x, y, z, lattice, rotation_deg, scale, offset_nm, tilt, random_state, z_ref_nm, scale_range,
+                     max_tilt_deg, max_fit_ions, checks=True)
+
+
+def _register(x, y, z, lattice, rotation_deg, scale, offset_nm, tilt, random_state, z_ref_nm, scale_range,
+              max_tilt_deg, max_fit_ions, checks):
+    """:func:`register_lattice`; with ``checks`` a lattice constant or a length unit far off is named
+    (:mod:`probeseq.lattice.sanity`), without them a missing signal raises :class:`NoLatticeSignal`."""
     x, y, z, scale_range = _check_registration_inputs(x, y, z, lattice, scale_range, max_tilt_deg,
                                                       random_state)
     n_ions = x.size
@@ -496,7 +520,8 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
                        0.5 * (np.percentile(y, 1) + np.percentile(y, 99))])
     xr, yr = x - center[0], y - center[1]
     rad = np.hypot(xr, yr)
-    radius = float(np.percentile(rad, 98)) / math.sqrt(0.98)
+    r98 = float(np.percentile(rad, 98))
+    radius = r98 / math.sqrt(0.98)
     cell_size = max(lattice.a_nm, lattice.b_nm)
     if 2 * radius < cell_size:
         raise InputError(f"specimen too narrow to register the lattice: metal ions span a diameter of "
@@ -504,19 +529,30 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
 
     fixed = tuple(k for k, v in (("rotation_deg", rotation_deg), ("scale", scale), ("offset_nm", offset_nm),
                                  ("tilt", tilt)) if v is not None)
-    th0, s0, peak_ratio, t0, o0 = _initial_placement(
-        x, y, z, xr, yr, rad, center, lattice, d_nn, period, sub_phase, rotation_deg, scale, offset_nm,
-        tilt, z_ref_nm, scale_range, max_tilt_deg)
+    sd = SearchData(xr, yr, z, lattice, period, rotation_deg, scale, tilt, float(z_ref_nm), float(max_tilt_deg),
+                    scale_range, MIN_PEAK_RATIO, center)
+
+    def refit(s_range):  # the same registration with the scale searched over s_range, unchecked
+        return _register(x, y, z, lattice, rotation_deg, None, offset_nm, tilt, random_state, z_ref_nm, s_range,
+                         max_tilt_deg, max_fit_ions, False)
 
     locator = _cached_locator(lattice, d_nn, 64)
-    p0 = [o0[0], o0[1], t0[0], t0[1], math.radians(th0), s0]
     free = [offset_nm is None, offset_nm is None, tilt is None, tilt is None, rotation_deg is None, scale is None]
     fit_r = FIT_RADIUS_FRAC * d_nn
     xf, yf, zf = x[sub_fit], y[sub_fit], z[sub_fit]
-    if any(free):
-        p, cov, _, _, _ = _refine(xf, yf, zf, lattice, locator, p0, free, z_ref_nm, center, radius, fit_r)
-    else:
-        p, cov = np.array(p0, float), np.zeros((6, 6))
+    try:
+        th0, s0, peak_ratio, t0, o0, spec = _initial_placement(
+            x, y, z, xr, yr, rad, center, lattice, d_nn, period, sub_phase, rotation_deg, scale, offset_nm,
+            tilt, z_ref_nm, scale_range, max_tilt_deg)
+        p0 = [o0[0], o0[1], t0[0], t0[1], math.radians(th0), s0]
+        if any(free):
+            p, cov, _, _, _ = _refine(xf, yf, zf, lattice, locator, p0, free, z_ref_nm, center, radius, fit_r)
+        else:
+            p, cov = np.array(p0, float), np.zeros((6, 6))
+    except NoLatticeSignal as e:  # name the likely causes, checked on the data
+        if not checks:
+            raise
+        raise InputError(f"{e}; {diagnose_no_signal(sd, r98, radius, n_ions, refit)}") from None
     dist, ok = _distances(xf, yf, zf, lattice, locator, p, z_ref_nm)
     theta, off = _fundamental_placement(p, lattice, shift_frac, period, rotation_deg is None, offset_nm is None)
     # resolution and quality
@@ -528,7 +564,7 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
     quality = (within - u0) / (1 - u0)
     misassigned = expected_misassigned_fraction(lattice, sig_lat) if math.isfinite(sig_lat) else float("nan")
     err = np.sqrt(np.maximum(np.diag(cov), 0.0))
-    return Registration(
+    reg = Registration(
         lattice=lattice, rotation_deg=float(theta), scale=float(p[5]), offset_nm=off, tilt=p[2:4].copy(),
         z_ref_nm=float(z_ref_nm), rotation_deg_err=float(math.degrees(err[4])), scale_err=float(err[5]),
         offset_nm_err=err[0:2], tilt_err=err[2:4], sigma_xy_nm=float(sig_lat * p[5]),
@@ -536,6 +572,9 @@ def register_lattice(x, y, z, lattice: Lattice, rotation_deg=None, scale=None, o
         resolvable=bool(misassigned < RESOLVABLE_MISASSIGNED), quality=float(quality), peak_ratio=float(peak_ratio),
         background_fraction=float(bg), symmetry_order=int(order), n_ions=int(n_ions), n_fit=int(n_fit),
         fixed=fixed)
+    if checks:
+        check_registered_scale(sd, reg, s0, spec, refit)
+    return reg
 
 
 def _check_registration_inputs(x, y, z, lattice, scale_range, max_tilt_deg, random_state):
@@ -565,15 +604,17 @@ def _initial_placement(x, y, z, xr, yr, rad, center, lattice, d_nn, period, sub_
     """Starting placement for the refinement: rotation and scale from the slab power spectrum,
     then tilt and offset from the phases of the strongest reciprocal peaks (fixed values kept).
 
-    Returns ``(rotation_deg, scale, peak_ratio, tilt, offset_nm)``.
+    Returns ``(rotation_deg, scale, peak_ratio, tilt, offset_nm, spectrum)`` (the spectrum ``None``
+    when rotation and scale are both given).
     """
     sigma0 = d_nn / 6.0
-    h = d_nn / 6.0
+    s_lo = scale_range[0] if scale is None else scale
+    h = d_nn / 6.0 * min(1.0, s_lo / 0.8)  # a finer pixel for scales below the default range
     extent = 2 * float(rad.max()) + 4 * h
     N = min(1 << int(math.ceil(math.log2(max(extent / h, 64)))), _FFT_MAX)
     k_nyq = 0.5 / h
     # recon-frame peaks are g / scale: keep the largest below 0.7 x Nyquist at the smallest scale
-    k_max = min(0.7 * k_nyq * (scale_range[0] if scale is None else scale), 3.0 / d_nn)
+    k_max = min(0.7 * k_nyq * s_lo, 3.0 / d_nn)
     hk, g, S, w = _reciprocal_set(lattice, k_max, sigma0)
     if hk.shape[0] == 0:
         raise InputError(f"lattice {lattice.name}: no reciprocal-lattice peak below {k_max:.3g} /nm to register")
@@ -589,7 +630,7 @@ def _initial_placement(x, y, z, xr, yr, rad, center, lattice, d_nn, period, sub_
     slab = np.clip(np.searchsorted(edges, z, side="right") - 1, 0, n_slabs - 1)
     zc = 0.5 * (edges[:-1] + edges[1:])
 
-    peak_ratio = float("nan")
+    peak_ratio, spec = float("nan"), None
     if rotation_deg is None or scale is None:
         spec = _power_spectrum(xr, yr, slab, n_slabs, h, N)
         th0, s0, peak_ratio = _search_rotation_scale(spec, g, w, period, scale_range, rotation_deg, scale)
@@ -599,12 +640,11 @@ def _initial_placement(x, y, z, xr, yr, rad, center, lattice, d_nn, period, sub_
                 searched.append(f"rotation 0-{period:g} deg")
             if scale is None:
                 searched.append(f"scale {scale_range[0]:g}-{scale_range[1]:g}")
-            raise InputError(
+            raise NoLatticeSignal(
                 f"no lattice signal in the metal-ion density: searched {' and '.join(searched)} for the "
                 f"{hk.shape[0]} strongest reciprocal peaks of lattice {lattice.name or '(custom)'} over "
                 f"{n_slabs} depth slabs; best match rotation {th0:.2f} deg, scale {s0:.4f} with peak power "
-                f"{peak_ratio:.2f}x background (need >= {MIN_PEAK_RATIO:g}); check the lattice, or give "
-                f"--rotation-deg, --scale and --offset-nm")
+                f"{peak_ratio:.2f}x background (need >= {MIN_PEAK_RATIO:g})")
     else:
         th0, s0 = float(rotation_deg), float(scale)
     Rm = _rot(math.radians(th0))
@@ -627,7 +667,7 @@ def _initial_placement(x, y, z, xr, yr, rad, center, lattice, d_nn, period, sub_
         o0 = center + (s0 * Rm @ lattice.cell_matrix) @ fo
     else:
         o0 = np.asarray(offset_nm, float)
-    return th0, s0, peak_ratio, t0, o0
+    return th0, s0, peak_ratio, t0, o0, spec
 
 
 def _fundamental_placement(p, lattice, shift_frac, period, fit_rotation, fit_offset):

@@ -272,8 +272,10 @@ def _correct(sample: IonList, sel, reg, lattice, opts):
     if corr.is_identity:
         return corr, reg, (x, y, z), sample
     x, y, z = corr.apply(x, y, z)
-    reg = register_lattice(x, y, z, lattice, rotation_deg=opts.rotation_deg, scale=opts.scale,
-                           offset_nm=opts.offset_nm, random_state=opts.seed)
+    with warnings.catch_warnings():  # the first registration has said what it had to say about the lattice
+        warnings.simplefilter("ignore", DataQualityWarning)
+        reg = register_lattice(x, y, z, lattice, rotation_deg=opts.rotation_deg, scale=opts.scale,
+                               offset_nm=opts.offset_nm, random_state=opts.seed)
     sx, sy, sz = corr.apply(sample.x, sample.y, sample.z)
     placed = replace(sample, x=sx, y=sy, z=sz)
     return corr, reg, (x, y, z), placed
