@@ -273,6 +273,11 @@ def columns(
         say(f"  rotation {reg.get('rotation_deg', float('nan')):.2f} deg, scale {reg.get('scale', float('nan')):.4f}, "
             f"lateral spread {reg.get('sigma_xy_nm', float('nan')):.3f} nm")
     say(f"  misassigned fraction {cols.misassigned_fraction:.3f} (a rod's ions expected nearer another rod): single rods {'resolvable' if cols.resolvable else 'NOT resolvable'}")
+    from ..study.batch import reconstruction_line
+
+    rec = reconstruction_line(cols.params.get("reconstruction"))
+    if rec:
+        say(f"  {rec}")
 
 
 # ---------------------------------------------------------------------- decode
