@@ -1,0 +1,375 @@
+"""Oracle decoder of simulated runs: the information limit of the data of a run.
+
+The oracle decodes the same sites the simulator made (``SimRun.seq``), but it is given what no
+analysis of the ion file can know: which ion is the own ion of which site (``SimRun.ion_rod`` and
+``SimRun.ion_site``) and the true generative model of the run (``SimRun.config``). What it must
+still infer is the metal of every site, from the same two sources of evidence a decoder has:
+
+* **the own ion of the site.** A site is detected with probability ``eta`` whatever its metal, so
+  an undetected site carries no evidence on its metal, and a detected one carries the likelihood
+  of its mass-to-charge ``y`` under each metal. With ``b_j`` the branching into the metal's forms
+  (M+, M2+, MO+[, M3+]) and ``w_ji`` the natural abundance of isotope line ``L_ji`` of form j,
+
+  ``P(no ion | k) = 1 - eta``,
+  ``P(ion at y | k) = eta * sum_j b_j sum_i w_ji g(y; L_ji)``,
+
+  where ``g`` is the simulator's peak: a Gaussian of FWHM ``L / mrp`` (``sigma = L / (2.3548
+  mrp)``), and with probability ``tail_fraction`` the same Gaussian convolved with an exponential
+  tail towards high mass of mean ``tau = tail_scale * L / mrp`` (an exponentially modified
+  Gaussian). Ions of ambiguous mass-to-charge (lines of two metals that overlap, or a tail
+  reaching a neighbouring line) therefore stay ambiguous. Linker and background ions are not
+  given to any site (the oracle knows they are not metal).
+* **the chain.** Along a rod the metals follow the true transition matrix ``P`` (``cfg.transmat``)
+  started from the composition ``f`` at the first site of the simulator's grid (the simulator's
+  start; ``f`` is the stationary distribution of ``P``). For ``copied`` runs the sites of all rods
+  at the same index t share a master metal ``m_t`` that follows ``P``; each rod's site copies it
+  or, with probability ``c = copy_error``, is an independent draw from ``f``:
+  ``C[m, k] = P(s_rt = k | m_t = m) = (1 - c) [m = k] + c f_k``.
+
+Posteriors (exact, by forward-backward in log space; ``l_rt(k) = log P(o_rt | k)``, 0 at sites
+outside the specimen, where there is no observation):
+
+* independent rods: ``P(s_rt = k | O_r)`` by forward-backward of each rod over all sites of the
+  grid with emission ``exp(l_rt(k))``.
+* copied rods: the children ``s_rt`` of ``m_t`` are independent given ``m_t``, so summing them
+  out gives the master emission ``E_t(m) = prod_r e_rt(m)``, ``e_rt(m) = sum_k C[m, k]
+  exp(l_rt(k))``. Forward-backward on the master chain gives the predicted ``a_t(m) = P(m_t |
+  O_<t)`` and the backward ``b_t(m) = P(O_>t | m_t)`` (O_<t: the sites of every rod before t).
+  Leaving out rod r at t, ``P(m_t = m | O without o_rt) ~ a_t(m) b_t(m) E_t(m) / e_rt(m)``, and
+
+  ``P(s_rt = k | O) ~ exp(l_rt(k)) sum_m C[m, k] P(m_t = m | O without o_rt)``.
+
+The oracle's decode is the argmax of the posterior per site (the decode of least expected site
+errors, recalled from memory); its accuracy is the share of inside sites (true state >= 0) it gets right.
+
+The only approximation: the simulator scales the tail of an ion by its Gaussian-blurred
+mass-to-charge, the oracle by the line position ``L``; the two scales differ by about
+``1 / (2.3548 mrp)`` (relative; 7e-4 at mrp 600).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from scipy.special import log_ndtr, logsumexp
+
+from probeseq.simulation.emission import METAL_FORMS, ion_lines
+
+__all__ = ["FWHM_PER_SIGMA", "metal_lines", "peak_log_density", "metal_log_likelihood", "site_log_emissions",
+           "chain_posteriors", "copied_posteriors", "oracle_posteriors", "oracle_correct", "oracle_accuracy"]
+
+#: FWHM / sigma of a Gaussian as the simulator writes it: 2 sqrt(2 ln 2) (recalled from memory) rounded to 2.3548
+FWHM_PER_SIGMA = 2.3548
+
+_LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
+
+
+def metal_lines(cfg):
+    """Isotope lines of every metal's species, weighted by the branching into the species.
+
+    Parameters
+    ----------
+    cfg : SimConfig
+        The run's configuration (``metals``, ``branching``).
+
+    Returns
+    -------
+    position : (n_lines,) ndarray of float, Da
+        Mass-to-charge of each line.
+    weight : (n_lines,) ndarray of float
+        Probability of the line given its metal (branching times isotope abundance); the weights of
+        one metal add up to 1.
+    metal : (n_lines,) ndarray of int
+        Index of the line's metal in ``cfg.metals``.
+    """
+    branching = np.asarray(cfg.branching, float)
+    branching = branching / branching.sum()
+    pos, wt, owner = [], [], []
+    for k, el in enumerate(cfg.metals):
+        for (form, charge), b in zip(METAL_FORMS[:branching.size], branching):
+            if b <= 0:
+                continue
+            mz, p = ion_lines(form(el), charge)
+            pos.append(np.asarray(mz, float))
+            wt.append(b * np.asarray(p, float))
+            owner.append(np.full(len(mz), k))
+    return np.concatenate(pos), np.concatenate(wt), np.concatenate(owner)
+
+
+def peak_log_density(y, line, mrp, tail_fraction, tail_scale):
+    """Log density of the simulator's peak shape of one isotope line.
+
+    Parameters
+    ----------
+    y : ndarray of float, Da
+        Mass-to-charge values (broadcast against ``line``).
+    line : ndarray of float, Da
+        Line positions.
+    mrp : float
+        Mass resolving power ``m / FWHM`` (dimensionless).
+    tail_fraction : float
+        Share of ions with a thermal tail.
+    tail_scale : float
+        Mean tail length in units of ``line / mrp``.
+
+    Returns
+    -------
+    ndarray of float, log(1/Da)
+        ``log[(1 - t) N(y; L, s) + t EMG(y; L, s, tau)]`` with ``s = L / (2.3548 mrp)`` and
+        ``tau = tail_scale L / mrp``.
+    """
+    y = np.asarray(y, float)
+    line = np.asarray(line, float)
+    s = line / mrp / FWHM_PER_SIGMA
+    d = y - line
+    log_gauss = -0.5 * (d / s) ** 2 - np.log(s) - _LOG_SQRT_2PI
+    if tail_fraction <= 0 or tail_scale <= 0:
+        return log_gauss
+    tau = tail_scale * line / mrp
+    # exponentially modified Gaussian, the density of N(L, s^2) plus an exponential of mean tau
+    # (recalled from memory; checked against the simulator's draws in tests/test_oracle.py):
+    # (1/tau) exp(s^2/(2 tau^2) - d/tau) Phi(d/s - s/tau)
+    log_emg = -np.log(tau) + 0.5 * (s / tau) ** 2 - d / tau + log_ndtr(d / s - s / tau)
+    if tail_fraction >= 1:
+        return log_emg
+    return np.logaddexp(math.log1p(-tail_fraction) + log_gauss, math.log(tail_fraction) + log_emg)
+
+
+def metal_log_likelihood(cfg, mz, chunk: int = 20000):
+    """Log likelihood of each ion's mass-to-charge under each metal, ``log p(y | metal k)``.
+
+    Parameters
+    ----------
+    cfg : SimConfig
+        The run's configuration (metals, branching, mrp, tail).
+    mz : (n,) array of float, Da
+        Mass-to-charge of the ions.
+    chunk : int
+        Ions per block (bounds the memory of the ions x lines table).
+
+    Returns
+    -------
+    (n, K) ndarray of float, log(1/Da)
+    """
+    pos, wt, owner = metal_lines(cfg)
+    k = len(cfg.metals)
+    mz = np.asarray(mz, float)
+    out = np.empty((mz.size, k))
+    log_w = np.log(wt)
+    for a in range(0, mz.size, chunk):
+        y = mz[a:a + chunk, None]
+        lp = peak_log_density(y, pos[None, :], cfg.mrp, cfg.tail_fraction, cfg.tail_scale) + log_w[None, :]
+        for m in range(k):
+            out[a:a + chunk, m] = logsumexp(lp[:, owner == m], axis=1)
+    return out
+
+
+def site_log_emissions(run):
+    """Log probability of each site's observation given its metal, ``l_rt(k) = log P(o_rt | k)``.
+
+    Parameters
+    ----------
+    run : SimRun
+
+    Returns
+    -------
+    (n_rods, n_sites, K) ndarray of float
+        ``log(1 - eta)`` at inside sites without an own ion, ``log eta + log p(y | k)`` at sites
+        with one, 0 outside the specimen (no observation).
+
+    Raises
+    ------
+    ValueError
+        When a site has more than one own ion or an own ion sits at a site outside the specimen
+        (the simulator makes neither; the oracle's emission would be wrong).
+
+    Notes
+    -----
+    ``P(no ion)`` does not depend on the metal, so a detection efficiency that varies with the
+    position (``edge_efficiency``) changes the emission of every metal by the same factor and
+    leaves the posterior unchanged.
+    """
+    cfg = run.config
+    seq = np.asarray(run.seq)
+    n_rods, n_sites = seq.shape
+    k = len(cfg.metals)
+    inside = seq >= 0
+    out = np.zeros((n_rods, n_sites, k))
+    out[inside] = math.log1p(-cfg.eta) if cfg.eta < 1 else -np.inf
+    own = np.flatnonzero(np.asarray(run.ion_rod) >= 0)
+    r = np.asarray(run.ion_rod)[own].astype(np.int64)
+    s = np.asarray(run.ion_site)[own].astype(np.int64)
+    if np.unique(r * n_sites + s).size != own.size:
+        raise ValueError("a site has more than one own ion; the oracle assumes at most one")
+    if own.size and not inside[r, s].all():
+        raise ValueError("an own ion belongs to a site outside the specimen")
+    mz = np.asarray(run.ions.mass_to_charge, float)[own]
+    out[r, s] = math.log(cfg.eta) + metal_log_likelihood(cfg, mz)
+    return out
+
+
+def _forward_backward(log_em, log_a, log_start):
+    """Forward-backward in log space for a batch of chains of one transition matrix.
+
+    Parameters
+    ----------
+    log_em : (n, T, K) ndarray of float
+        Log emission of each chain, step and state.
+    log_a : (K, K) ndarray of float
+        Log transition matrix (``-inf`` for impossible transitions).
+    log_start : (K,) ndarray of float
+        Log distribution of the first state.
+
+    Returns
+    -------
+    log_post : (n, T, K) ndarray of float
+        Log posterior of each state (normalised over K).
+    log_pred : (n, T, K) ndarray of float
+        Log ``P(x_t | o_<t)`` (normalised).
+    log_beta : (n, T, K) ndarray of float
+        Log ``P(o_>t | x_t)`` up to a constant per chain and step.
+    """
+    n, t_len, k = log_em.shape
+    log_filt = np.empty_like(log_em)
+    log_pred = np.empty_like(log_em)
+    log_pred[:, 0] = log_start[None, :]
+    for t in range(t_len):
+        if t > 0:
+            log_pred[:, t] = logsumexp(log_filt[:, t - 1, :, None] + log_a[None], axis=1)
+        a = log_pred[:, t] + log_em[:, t]
+        log_filt[:, t] = a - logsumexp(a, axis=1, keepdims=True)
+    log_beta = np.zeros_like(log_em)
+    for t in range(t_len - 2, -1, -1):
+        b = logsumexp(log_a[None] + (log_em[:, t + 1] + log_beta[:, t + 1])[:, None, :], axis=2)
+        log_beta[:, t] = b - logsumexp(b, axis=1, keepdims=True)
+    log_post = log_filt + log_beta
+    log_post -= logsumexp(log_post, axis=2, keepdims=True)
+    return log_post, log_pred, log_beta
+
+
+def _log(x):
+    """Natural log with log(0) = -inf and no warning."""
+    with np.errstate(divide="ignore"):
+        return np.log(np.asarray(x, float))
+
+
+def chain_posteriors(log_em, transmat, start):
+    """Site posteriors of rods that are independent chains of one transition matrix.
+
+    Parameters
+    ----------
+    log_em : (n_rods, n_sites, K) ndarray of float
+        ``log P(o_rt | k)`` (0 where there is no observation).
+    transmat : (K, K) array of float
+        Row-stochastic transition matrix.
+    start : (K,) array of float
+        Distribution of the first site of the grid.
+
+    Returns
+    -------
+    (n_rods, n_sites, K) ndarray of float
+        ``P(s_rt = k | O_r)``.
+    """
+    log_post, _, _ = _forward_backward(np.asarray(log_em, float), _log(transmat), _log(start))
+    return np.exp(log_post)
+
+
+def copied_posteriors(log_em, transmat, start, copy_error, composition):
+    """Site posteriors of rods that copy one master chain (see the module docstring).
+
+    Parameters
+    ----------
+    log_em : (n_rods, n_sites, K) ndarray of float
+        ``log P(o_rt | k)`` (0 where there is no observation).
+    transmat : (K, K) array of float
+        Transition matrix of the master chain.
+    start : (K,) array of float
+        Distribution of the master's first site.
+    copy_error : float
+        Probability ``c`` that a rod's site is an independent draw from ``composition`` instead of
+        the master's metal.
+    composition : (K,) array of float
+        Distribution of the independent draws.
+
+    Returns
+    -------
+    (n_rods, n_sites, K) ndarray of float
+        ``P(s_rt = k | O)``, O the observations of every rod.
+    """
+    log_em = np.asarray(log_em, float)
+    f = np.asarray(composition, float)
+    k = f.size
+    log_c = _log((1.0 - copy_error) * np.eye(k) + copy_error * np.tile(f, (k, 1)))  # [m, k]
+    # log e_rt(m) = log sum_k C[m, k] exp(l_rt(k))
+    log_e = logsumexp(log_c[None, None, :, :] + log_em[:, :, None, :], axis=3)
+    log_big_e = log_e.sum(axis=0)  # (T, K): log E_t(m)
+    _, log_pred, log_beta = _forward_backward(log_big_e[None], _log(transmat), _log(start))
+    log_master = log_pred[0] + log_beta[0] + log_big_e  # log P(m_t, O) up to a constant per t
+    log_excl = log_master[None] - log_e  # leave rod r's own site out
+    log_excl -= logsumexp(log_excl, axis=2, keepdims=True)
+    log_post = log_em + logsumexp(log_excl[:, :, :, None] + log_c[None, None], axis=2)
+    log_post -= logsumexp(log_post, axis=2, keepdims=True)
+    return np.exp(log_post)
+
+
+def oracle_posteriors(run):
+    """The oracle's site posteriors of a simulated run.
+
+    Parameters
+    ----------
+    run : SimRun
+
+    Returns
+    -------
+    (n_rods, n_sites, K) ndarray of float
+        ``P(s_rt = k | O)`` under the true model with the true ion-to-site assignment, for every
+        site of the simulator's grid (outside sites included; only inside sites are scored).
+    """
+    cfg = run.config
+    log_em = site_log_emissions(run)
+    f = cfg.composition_array
+    if cfg.pattern == "copied":
+        return copied_posteriors(log_em, cfg.transmat, f, cfg.copy_error, f)
+    return chain_posteriors(log_em, cfg.transmat, f)
+
+
+def oracle_correct(run, posteriors=None):
+    """Whether the oracle's decode (argmax posterior) is the true metal, per site.
+
+    Parameters
+    ----------
+    run : SimRun
+    posteriors : (n_rods, n_sites, K) ndarray, optional
+        From :func:`oracle_posteriors` (computed when not given).
+
+    Returns
+    -------
+    (n_rods, n_sites) ndarray of bool
+        False at sites outside the specimen.
+    """
+    post = oracle_posteriors(run) if posteriors is None else posteriors
+    seq = np.asarray(run.seq)
+    return (seq >= 0) & (post.argmax(axis=2) == seq)
+
+
+def oracle_accuracy(run, posteriors=None, sites=None) -> float:
+    """Share of sites whose oracle decode is the true metal.
+
+    Parameters
+    ----------
+    run : SimRun
+    posteriors : (n_rods, n_sites, K) ndarray, optional
+        From :func:`oracle_posteriors`.
+    sites : (n_rods, n_sites) ndarray of bool, optional
+        The sites to score (default: every inside site, true state >= 0).
+
+    Returns
+    -------
+    float
+        Accuracy in [0, 1] (nan with no site).
+    """
+    ok = oracle_correct(run, posteriors)
+    sel = np.asarray(run.seq) >= 0 if sites is None else np.asarray(sites, bool) & (np.asarray(run.seq) >= 0)
+    n = int(sel.sum())
+    return float(ok[sel].sum() / n) if n else float("nan")
