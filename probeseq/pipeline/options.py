@@ -137,6 +137,9 @@ class AnalysisResult:
         Tool, version, options, inputs and seed (the ``provenance`` section of ``results.json``).
     figure_ions : IonList or None
         Ions kept for the figures, if any.
+    copies : CopyResult or None
+        The copy-aware decoding when rods were found copied (``decoded`` then holds the pooled
+        posteriors of the rods that follow the master); None otherwise.
     """
 
     metals: tuple
@@ -154,6 +157,7 @@ class AnalysisResult:
     warnings: tuple
     provenance: dict = field(default_factory=dict)
     figure_ions: Optional[IonList] = field(default=None, repr=False, compare=False)
+    copies: Optional[object] = field(default=None, repr=False, compare=False)
 
     # ------------------------------------------------------------------ tables
     def tracks_table(self) -> dict:
@@ -185,6 +189,7 @@ class AnalysisResult:
             comp[m] = f
         col = self.columns
         dec = self.decoded.to_dict()
+        dec["copies"] = None if self.copies is None else self.copies.to_dict()
         return {
             "schema_version": RESULTS_SCHEMA_VERSION,
             "provenance": self.provenance,

@@ -301,6 +301,11 @@ def summary_lines(res, verbose: bool = False) -> list:
     rec = reconstruction_line(col.params.get("reconstruction"))
     if rec:
         lines.append(rec)
+    cp = getattr(res, "copies", None)
+    if cp is not None and cp.applied:
+        lines.append(f"copies: {int(cp.follows.sum())} of {int(res.columns.mask.any(1).sum())} rods follow one master "
+                     f"sequence (copy error {cp.copy_error:.3f} +- {cp.copy_error_err:.3f}); their sites are decoded "
+                     "from the pooled evidence of every copy")
     for w in res.warnings:
         lines.append(f"warning: {w}")
     if verbose:
