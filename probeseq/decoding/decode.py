@@ -15,9 +15,11 @@ from ..lattice.rodcolumns import RodColumns
 from ..utils.marks import finite_or_none
 from ..utils.validate import check_seed
 from .chain import runs_table
+from .efficiency import RadialEfficiency, fit_radial_efficiency
 from .hmm import run_em, viterbi
 from .model import (
     _BLOCK_RODS,
+    ETA_BOUNDS,
     LOW_COUNT_MIN,
     LOW_COUNT_SHARE,
     SCREEN_ITER,
@@ -37,6 +39,7 @@ from .model import (
     _rod_data,
     _screen_data,
     _subset,
+    _with_efficiency,
 )
 
 __all__ = ['DecodeResult', 'fit_decoder', 'decode', 'sample_model']
@@ -101,6 +104,13 @@ class DecodeResult:
     loglik_history : (n_evaluated,) ndarray of float
         Log-likelihood at every EM iteration on all rods.
     warnings : list of str
+    rod_efficiency : (n_rods,) ndarray of float or None
+        Relative detection efficiency ``h_r`` the model used (rod r: ``eta h_r``, extra rates
+        ``extra_rate * h_r``); None when it is 1 for every rod.
+    efficiency_source : str or None
+        ``"radial fit"`` or ``"given"`` (None with ``rod_efficiency`` None).
+    radial_efficiency : RadialEfficiency or None
+        The radial efficiency fit of :func:`fit_decoder` (None when not run).
     """
 
     metals: tuple
@@ -135,6 +145,9 @@ class DecodeResult:
     start_logliks: np.ndarray = field(default_factory=lambda: np.zeros(0))
     loglik_history: np.ndarray = field(default_factory=lambda: np.zeros(0))
     warnings: list = field(default_factory=list)
+    rod_efficiency: np.ndarray | None = None
+    efficiency_source: str | None = None
+    radial_efficiency: RadialEfficiency | None = None
 
     @property
     def params(self) -> DecoderParams:
@@ -188,7 +201,21 @@ class DecodeResult:
             "mean_decoded_run_length_sites": mean_run,
             "start_logliks": [num(v) for v in self.start_logliks],
             "warnings": list(self.warnings),
+            "efficiency": self._efficiency_dict(),
+            "radial_efficiency": None if self.radial_efficiency is None else self.radial_efficiency.to_dict(),
         }
+
+    def _efficiency_dict(self) -> dict:
+        """How the detection efficiency varied between rods (``eta`` alone when it did not)."""
+        h = self.rod_efficiency
+        if h is None:
+            return {"per_rod": False, "source": None, "eta": finite_or_none(self.eta)}
+        used = h[self.mask.any(axis=1)]
+        n = self.mask.sum(axis=1)[self.mask.any(axis=1)]
+        return {"per_rod": True, "source": self.efficiency_source, "eta": finite_or_none(self.eta),
+                "h_min": finite_or_none(used.min()), "h_max": finite_or_none(used.max()),
+                "h_mean_over_sites": finite_or_none(n @ used / max(n.sum(), 1)),
+                "eta_min": finite_or_none(self.eta * used.min()), "eta_max": finite_or_none(self.eta * used.max())}
 
 
 def _check_columns(columns) -> list:
@@ -259,6 +286,29 @@ def _check_uncertain(uncertain_below):
         raise InputError(f"uncertain_below must be a probability in (0, 1], got {uncertain_below!r}")
 
 
+def _check_rod_efficiency(rod_efficiency, columns: RodColumns, eta: float | None = None):
+    """The per-rod efficiency as a float64 array, or None when it is None or 1 for every rod."""
+    if rod_efficiency is None:
+        return None
+    try:
+        h = np.array(rod_efficiency, dtype=np.float64).reshape(-1)
+    except (TypeError, ValueError):
+        raise InputError(f"rod_efficiency must be {columns.n_rods} positive numbers (one per rod), "
+                         f"got {type(rod_efficiency).__name__}") from None
+    if h.shape != (columns.n_rods,):
+        raise InputError(f"rod_efficiency must have one value per rod ({columns.n_rods}), got {h.size}")
+    if not (np.isfinite(h).all() and (h > 0).all()):
+        raise InputError("rod_efficiency must be finite and positive (relative detection efficiency)")
+    if np.all(h == 1.0):
+        return None
+    h_max = float(h[columns.mask.any(axis=1)].max())
+    if eta is not None and not eta * h_max < 1.0:
+        raise InputError(f"params.eta * rod_efficiency must stay below 1, got {eta} * {h_max:.4g}")
+    if eta is None and not ETA_BOUNDS[0] * h_max < 1.0:
+        raise InputError(f"rod_efficiency up to {h_max:.4g} leaves no room for a detection efficiency")
+    return h
+
+
 def _decode_prepared(columns: RodColumns, prep: _Prepared, params: DecoderParams, uncertain_below: float):
     """Posteriors, Viterbi, per-rod statistics and runs for given parameters."""
     n_rods, n_sites, k = columns.counts.shape
@@ -301,7 +351,8 @@ def _n_params(k: int) -> tuple[int, int]:
 
 
 def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n_iter, converged,
-                  loglik_indep, start_logliks, history, notes) -> DecodeResult:
+                  loglik_indep, start_logliks, history, notes, rod_efficiency=None, efficiency_source=None,
+                  radial=None) -> DecodeResult:
     path, post, uncertain, per_rod_xi, occupancy, runs = decoded
     k = params.n_metals
     n_par, n_par_ind = _n_params(k)
@@ -353,11 +404,14 @@ def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n
         start_logliks=np.asarray(start_logliks, dtype=float),
         loglik_history=np.asarray(history, dtype=float),
         warnings=list(notes),
+        rod_efficiency=None if rod_efficiency is None else rod_efficiency.copy(),
+        efficiency_source=None if rod_efficiency is None else efficiency_source,
+        radial_efficiency=radial,
     )
 
 
 def decode(columns: RodColumns, params: DecoderParams, uncertain_below: float = UNCERTAIN_BELOW,
-           engine: str = "compiled") -> DecodeResult:
+           engine: str = "compiled", rod_efficiency=None) -> DecodeResult:
     """Decode every rod with given (fixed) parameters; no fitting.
 
     Parameters
@@ -370,6 +424,10 @@ def decode(columns: RodColumns, params: DecoderParams, uncertain_below: float = 
         Sites whose largest posterior is below this level are flagged uncertain.
     engine : {"compiled", "numpy"}
         See :func:`fit_decoder`.
+    rod_efficiency : (n_rods,) array_like of float, optional
+        Relative detection efficiency ``h_r`` of every rod (dimensionless, > 0, with
+        ``params.eta * h_r < 1``): rod r is decoded with ``eta h_r`` and extra rates
+        ``extra_rate * h_r``. None (or all 1): the same efficiency for every rod.
 
     Returns
     -------
@@ -383,17 +441,19 @@ def decode(columns: RodColumns, params: DecoderParams, uncertain_below: float = 
         raise InputError(f"params must be a DecoderParams, got {type(params).__name__}")
     if params.n_metals != columns.n_metals:
         raise InputError(f"params describe {params.n_metals} metals, columns have {columns.n_metals}")
+    h = _check_rod_efficiency(rod_efficiency, columns, params.eta)
     for msg in notes:
         warnings.warn(msg, DataQualityWarning, stacklevel=2)
     if engine == "compiled":
-        prep = _rod_data(columns.counts, columns.mask)
+        prep = _with_efficiency(_rod_data(columns.counts, columns.mask), h)
         loglik, *decoded = _decode_compiled(columns, prep, params, uncertain_below)
     else:
-        prep = _prepare(columns.counts, columns.mask)
+        prep = _with_efficiency(_prepare(columns.counts, columns.mask), h)
         loglik, *decoded = _decode_prepared(columns, prep, params, uncertain_below)
     return _build_result(
         columns, params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below, n_iter=0,
         converged=True, loglik_indep=float("nan"), start_logliks=[], history=[loglik], notes=notes,
+        rod_efficiency=h, efficiency_source="given",
     )
 
 
@@ -407,6 +467,30 @@ def _note_unconverged(trace, what: str, outcome: str, max_iter: int, tol: float,
     warnings.warn(msg, ConvergenceWarning, stacklevel=3)
 
 
+def _fit_efficiency(columns: RodColumns, rod_efficiency, radial_efficiency: bool):
+    """The per-rod efficiency of a fit (None: 1 for all), its source and the radial fit (or None)."""
+    h = _check_rod_efficiency(rod_efficiency, columns)
+    if rod_efficiency is not None or not radial_efficiency:
+        return h, "given", None
+    radial = fit_radial_efficiency(columns)
+    if radial.applied:
+        return _check_rod_efficiency(radial.per_rod, columns), "radial fit", radial
+    return None, None, radial
+
+
+def _fit_independent(prep, params: DecoderParams, rng, k: int, max_iter: int, tol_abs: float, notes: list):
+    """The independent-sites model, from the Markov fit and from the moment start; the best trace."""
+    ind_step = _indep_step(prep)
+    p_mom = _initial_params(prep, rng, k, random=False)
+    ind_traces = [
+        run_em(ind_step, (params.stationary, params.eta, params.extra_rate), max_iter=max_iter, tol=tol_abs),
+        run_em(ind_step, (p_mom.stationary, p_mom.eta, p_mom.extra_rate), max_iter=max_iter, tol=tol_abs),
+    ]
+    ind = max(ind_traces, key=lambda tr: tr.loglik)
+    _note_unconverged(ind, "independent-sites fit", "using the best fit", max_iter, tol_abs, notes)
+    return ind
+
+
 def fit_decoder(
     columns: RodColumns,
     n_starts: int = 4,
@@ -415,6 +499,8 @@ def fit_decoder(
     random_state=None,
     uncertain_below: float = UNCERTAIN_BELOW,
     engine: str = "compiled",
+    rod_efficiency=None,
+    radial_efficiency: bool = True,
 ) -> DecodeResult:
     """Fit the rod model to all rods by EM, then decode every rod.
 
@@ -441,6 +527,17 @@ def fit_decoder(
         numpy recursions of :mod:`probeseq.decoding.hmm` on all rods at once (several float64 arrays of
         the count array's size; float64 posteriors, int64 paths). Both fit the same model and
         agree to rounding.
+    rod_efficiency : (n_rods,) array_like of float, optional
+        Relative detection efficiency ``h_r`` of every rod (dimensionless, > 0): rod r has
+        ``eta h_r`` and extra rates ``extra_rate * h_r``, and the fitted ``eta`` and
+        ``extra_rate`` are those of a rod with ``h = 1``. Given, it is used as it is and the
+        radial fit is not run. None (or all 1): no per-rod efficiency unless the radial fit
+        supplies one.
+    radial_efficiency : bool
+        With ``rod_efficiency`` None: fit the efficiency's variation with the radial position
+        (:func:`probeseq.decoding.efficiency.fit_radial_efficiency`), use its ``per_rod`` when it
+        is ``applied`` (significant, enough rods) and keep the fit in the result
+        (``radial_efficiency``). False: the same efficiency for every rod, as before.
 
     Returns
     -------
@@ -464,17 +561,18 @@ def fit_decoder(
     _check_options(n_starts, max_iter, tol, uncertain_below)
     _check_engine(engine)
     check_seed(random_state)
+    h, source, radial = _fit_efficiency(columns, rod_efficiency, radial_efficiency)
     for msg in notes:
         warnings.warn(msg, DataQualityWarning, stacklevel=2)
     rng = np.random.default_rng(random_state)
     k = columns.n_metals
     compiled = engine == "compiled"
     if compiled:
-        prep = _rod_data(columns.counts, columns.mask)
+        prep = _with_efficiency(_rod_data(columns.counts, columns.mask), h)
         screen = _screen_data(prep, SCREEN_SITES, SCREEN_SEGMENT, rng)
         make_step = _compiled_step
     else:
-        prep = _prepare(columns.counts, columns.mask)
+        prep = _with_efficiency(_prepare(columns.counts, columns.mask), h)
         screen = _subset(prep, columns.counts, columns.mask, SCREEN_SITES, SCREEN_SEGMENT, rng)
         make_step = _hmm_step
     tol_abs = tol * prep.n_obs
@@ -493,15 +591,7 @@ def fit_decoder(
     params = trace.params
     _note_unconverged(trace, "hidden-Markov fit", "returning the best fit", max_iter, tol_abs, notes)
 
-    # independent-sites model, from the Markov fit and from the moment start
-    ind_step = _indep_step(prep)
-    p_mom = _initial_params(prep, rng, k, random=False)
-    ind_traces = [
-        run_em(ind_step, (params.stationary, params.eta, params.extra_rate), max_iter=max_iter, tol=tol_abs),
-        run_em(ind_step, (p_mom.stationary, p_mom.eta, p_mom.extra_rate), max_iter=max_iter, tol=tol_abs),
-    ]
-    ind = max(ind_traces, key=lambda tr: tr.loglik)
-    _note_unconverged(ind, "independent-sites fit", "using the best fit", max_iter, tol_abs, notes)
+    ind = _fit_independent(prep, params, rng, k, max_iter, tol_abs, notes)
 
     if not columns.resolvable:
         notes.append(
@@ -513,11 +603,12 @@ def fit_decoder(
     return _build_result(
         columns, params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below,
         n_iter=trace.n_iter, converged=trace.converged, loglik_indep=ind.loglik,
-        start_logliks=start_ll, history=trace.history, notes=notes,
+        start_logliks=start_ll, history=trace.history, notes=notes, rod_efficiency=h, efficiency_source=source,
+        radial=radial,
     )
 
 
-def sample_model(params: DecoderParams, n_rods: int, n_sites: int, random_state=None):
+def sample_model(params: DecoderParams, n_rods: int, n_sites: int, random_state=None, rod_efficiency=None):
     """Draw rods from the model itself (for parametric bootstrap and checks).
 
     Parameters
@@ -525,11 +616,13 @@ def sample_model(params: DecoderParams, n_rods: int, n_sites: int, random_state=
     params : DecoderParams
     n_rods, n_sites : int
     random_state : None, int or numpy.random.Generator
+    rod_efficiency : (n_rods,) array_like of float, optional
+        Relative detection efficiency ``h_r`` of every rod (``eta h_r <= 1``); None: 1.
 
     Returns
     -------
     counts : (n_rods, n_sites, K) ndarray of float
-        Own ion (probability ``eta``) plus Poisson(``extra_rate``) extras per channel.
+        Own ion (probability ``eta h_r``) plus Poisson(``extra_rate * h_r``) extras per channel.
     states : (n_rods, n_sites) ndarray of int
         The metal of every site; the chain starts stationary.
     """
@@ -546,8 +639,15 @@ def sample_model(params: DecoderParams, n_rods: int, n_sites: int, random_state=
     u = rng.random((n_rods, n_sites))
     for t in range(1, n_sites):
         states[:, t] = (u[:, t, None] >= cum[states[:, t - 1]]).sum(axis=1)
-    counts = rng.poisson(params.extra_rate, size=(n_rods, n_sites, k)).astype(float)
-    det = rng.random((n_rods, n_sites)) < params.eta
+    if rod_efficiency is None:
+        rate, eta = params.extra_rate, params.eta
+    else:
+        h = np.asarray(rod_efficiency, dtype=float).reshape(-1)
+        if h.shape != (n_rods,) or not (np.isfinite(h).all() and (h > 0).all() and params.eta * h.max() <= 1.0):
+            raise InputError(f"rod_efficiency must be {n_rods} positive numbers with eta * h <= 1")
+        rate, eta = params.extra_rate[None, None, :] * h[:, None, None], (params.eta * h)[:, None]
+    counts = rng.poisson(rate, size=(n_rods, n_sites, k)).astype(float)
+    det = rng.random((n_rods, n_sites)) < eta
     r, t = np.nonzero(det)
     counts[r, t, states[r, t]] += 1.0
     return counts, states

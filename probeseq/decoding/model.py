@@ -43,6 +43,10 @@ grows without bound as ``mu_k -> 0`` when many counts are below 1.) When the fra
 of a site sum to more than 1 they are scaled to 1, i.e. two or more split ions at one site
 are approximated by one.
 
+Per-rod efficiency (optional, :mod:`probeseq.decoding.efficiency`): rod r has ``eta h_r`` and
+``mu h_r``, so its state factor is ``1 - eta h_r + eta xe_k / mu_k`` and ``Pois(n; mu h_r)``, ``B``
+use ``mu h_r``; ``eta`` and ``mu`` are those of a rod with ``h = 1``.
+
 Only ``mu`` is identified by the data. It is reported split as ``mu_j = c f_j + b_j`` with the
 crosstalk rate ``c`` the largest value for which every background ``b_j >= 0`` (i.e. all
 composition-proportional extras are counted as crosstalk); see :class:`DecoderParams`.
@@ -54,6 +58,8 @@ detected, and the channel of a split ion. With state posteriors ``gamma_tk`` and
 detection posterior ``r_tk = eta xe_k / mu_k / (1 - eta + eta xe_k / mu_k)``:
 ``eta = sum gamma r / N``, ``mu_j = sum_t (E[y_tj] - gamma_tj r_tj) / N`` (N observed sites,
 ``E[y]`` the expected whole counts, ``x`` for integer counts),
+(with a per-rod efficiency: ``mu_j`` divided by ``sum_r N_r h_r`` and ``eta`` the root of the
+exact M-step equation, :func:`probeseq.decoding.efficiency.eta_mstep`),
 and ``A`` from the expected transitions by a generalised-EM step
 (:func:`probeseq.decoding.hmm.update_transmat`), so the likelihood never decreases. Starts:
 ``n_starts`` (one from moment estimates, the others random) each run ``SCREEN_ITER``
@@ -80,6 +86,7 @@ from scipy.special import gammaln
 from ..exceptions import InputError
 from ..lattice.rodcolumns import RodColumns
 from .chain import persistence, runs_table, stationary_distribution
+from .efficiency import RodTerms, distinct_rows_by_group, eta_mstep, with_rod_terms
 from .hmm import forward_backward_scaled, update_transmat
 
 __all__ = ['DecoderParams', 'emission_factors', 'emission_baseline', 'split_counts', 'UNCERTAIN_BELOW']
@@ -262,7 +269,7 @@ def _split_terms(n, pi, pi_none, mu):
     return c, b, n + c / b[..., None]
 
 
-def emission_factors(counts, params: DecoderParams) -> np.ndarray:
+def emission_factors(counts, params: DecoderParams, efficiency=None) -> np.ndarray:
     """State-dependent factor of the emission likelihood of every site.
 
     ``P(x | k) = Pois(n; mu) B(x; mu) (1 - eta + eta xe_k / mu_k)`` (module docstring); this
@@ -274,29 +281,37 @@ def emission_factors(counts, params: DecoderParams) -> np.ndarray:
     counts : (..., K) ndarray of float
         Counts per metal channel.
     params : DecoderParams
+    efficiency : float or (...) ndarray of float, optional
+        Relative efficiency ``h`` of each site's rod (``1 - eta h + eta xe_k / mu_k``, ``xe``
+        with ``mu h``); None: 1.
 
     Returns
     -------
     (..., K) ndarray of float
     """
+    h = 1.0 if efficiency is None else np.asarray(efficiency, dtype=float)[..., None]
     n, pi, pi_none = split_counts(counts)
-    _, _, xe = _split_terms(n, pi, pi_none, params.extra_rate)
-    return (1.0 - params.eta) + xe * (params.eta / params.extra_rate)
+    _, _, xe = _split_terms(n, pi, pi_none, params.extra_rate * h)
+    return (1.0 - params.eta * h) + xe * (params.eta / params.extra_rate)
 
 
-def emission_baseline(counts, extra_rate) -> np.ndarray:
-    """State-independent factor ``log(Pois(n; mu) B(x; mu))`` of every site (natural log).
+def emission_baseline(counts, extra_rate, efficiency=None) -> np.ndarray:
+    """State-independent factor ``log(Pois(n; mu h) B(x; mu h))`` of every site (natural log).
 
     Parameters
     ----------
     counts : (..., K) ndarray of float
     extra_rate : (K,) ndarray of float, counts per site
+    efficiency : float or (...) ndarray of float, optional
+        Relative efficiency ``h`` of each site's rod; None: 1.
 
     Returns
     -------
     (...,) ndarray of float
     """
     mu = np.asarray(extra_rate, dtype=float)
+    if efficiency is not None:
+        mu = mu * np.asarray(efficiency, dtype=float)[..., None]
     n, pi, pi_none = split_counts(counts)
     _, b, _ = _split_terms(n, pi, pi_none, mu)
     return (n * np.log(mu) - mu - gammaln(n + 1.0)).sum(axis=-1) + np.log(b)
@@ -328,6 +343,7 @@ class _Prepared:
     fs_pi_none: np.ndarray  # (F,)
     totals_mean: float
     totals_var: float
+    eff: RodTerms | None = None  # per-rod relative efficiency (None: 1 for every rod)
 
 
 def _sum_log_factorial(values: np.ndarray) -> float:
@@ -408,30 +424,34 @@ def _prepare(counts: np.ndarray, mask: np.ndarray, rods=None) -> _Prepared:
 
 
 def _screen_arrays(rods, per_rod, n_obs: int, counts, mask, max_sites: int, segment: int, rng):
-    """Counts and mask of rods drawn at random up to ``max_sites`` observed sites, cut into
-    segments of ``segment`` sites that are treated as separate rods (for screening the starts
-    only: the loops over depth get shorter, at the cost of the few transitions across the cuts).
-    None when that is all the rods, uncut."""
+    """Counts, mask and source rod of every row of rods drawn at random up to ``max_sites``
+    observed sites, cut into segments of ``segment`` sites that are treated as separate rods (for
+    screening the starts only: the loops over depth get shorter, at the cost of the few
+    transitions across the cuts). None when that is all the rods, uncut."""
     if n_obs > max_sites:
         order = rng.permutation(len(rods))
         keep = order[: max(2, int(np.searchsorted(np.cumsum(per_rod[order]), max_sites)))]
         rods = np.sort(rods[keep])
-    c, m = counts[rods], mask[rods]
+    c, m, src = counts[rods], mask[rods], rods
     n_sites = c.shape[1]
     if n_sites > 2 * segment:
         n_seg = -(-n_sites // segment)
         pad = n_seg * segment - n_sites
         c = np.pad(c, ((0, 0), (0, pad), (0, 0))).reshape(-1, segment, c.shape[2])
         m = np.pad(m, ((0, 0), (0, pad))).reshape(-1, segment)
+        src = np.repeat(rods, n_seg)
     elif n_obs <= max_sites:
         return None
-    return np.ascontiguousarray(c), m
+    return np.ascontiguousarray(c), m, src
+
+
+_with_efficiency = with_rod_terms
 
 
 def _subset(prep: _Prepared, counts, mask, max_sites: int, segment: int, rng) -> _Prepared:
     """The screening subset (:func:`_screen_arrays`) of the numpy engine."""
     cm = _screen_arrays(prep.rods, prep.obs.sum(axis=0), prep.n_obs, counts, mask, max_sites, segment, rng)
-    return prep if cm is None else _prepare(*cm)
+    return prep if cm is None else _with_efficiency(_prepare(*cm[:2]), prep.eff and prep.eff.h_rows[cm[2]])
 
 
 def _unique_rows(x: np.ndarray):
@@ -466,6 +486,7 @@ class _RodData:
     totals_var: float
     distinct_rows: np.ndarray  # (U, K) distinct count vectors of the observed sites
     distinct_mult: np.ndarray  # (U,) their multiplicities
+    eff: RodTerms | None = None  # per-rod relative efficiency (None: 1 for every rod)
 
 
 _BLOCK_RODS = 2048  # rods per block when summarising the counts
@@ -512,19 +533,27 @@ def _screen_data(data: _RodData, max_sites: int, segment: int, rng) -> _RodData:
     """The screening subset (:func:`_screen_arrays`) of the compiled engine."""
     cm = _screen_arrays(data.rods, data.mask[data.rods].sum(axis=1), data.n_obs, data.counts, data.mask,
                         max_sites, segment, rng)
-    return data if cm is None else _rod_data(*cm)
+    return data if cm is None else _with_efficiency(_rod_data(*cm[:2]), data.eff and data.eff.h_rows[cm[2]])
 
 
 def _compiled_step(data: _RodData):
     """EM step (E-step by the compiled kernel, then the M-step of :func:`_hmm_step`)."""
     from .rodchain import fit_pass
 
+    eff = data.eff
+    h_rows = None if eff is None else eff.h_rows
+
     def step(params: DecoderParams):
-        ll, xi, g0, own, adj, _ = fit_pass(data.counts, data.mask, data.rods, data.first, data.span,
-                                           params.eta, params.extra_rate, params.transmat, params.stationary)
-        n = data.n_obs
-        eta = float(np.clip(own.sum() / n, *ETA_BOUNDS))
-        mu = np.maximum((data.sum_n + adj - own) / n, MIN_RATE)
+        ll, xi, g0, own, adj, _, own_rod = fit_pass(data.counts, data.mask, data.rods, data.first, data.span,
+                                                    params.eta, params.extra_rate, params.transmat,
+                                                    params.stationary, h_rows)
+        if eff is None:
+            n = data.n_obs
+            eta = float(np.clip(own.sum() / n, *ETA_BOUNDS))
+            mu = np.maximum((data.sum_n + adj - own) / n, MIN_RATE)
+        else:
+            eta = eta_mstep(eff.h, eff.n_sites, own_rod, ETA_BOUNDS)
+            mu = np.maximum((data.sum_n + adj - own) / eff.sum_h, MIN_RATE)
         a = update_transmat(xi, g0, params.transmat)
         return ll + _baseline(data, params.extra_rate), DecoderParams(transmat=a, eta=eta, extra_rate=mu)
 
@@ -537,47 +566,60 @@ def _decode_compiled(columns: RodColumns, data: _RodData, params: DecoderParams,
 
     ll, post, path, uncertain, per_rod_xi, occupancy = decode_pass(
         data.counts, data.mask, data.rods, data.first, data.span, params.eta, params.extra_rate,
-        params.transmat, params.stationary, uncertain_below)
+        params.transmat, params.stationary, uncertain_below, None if data.eff is None else data.eff.h_rows)
     runs = runs_table(path, data.mask, post)
     return ll + _baseline(data, params.extra_rate), path, post, uncertain, per_rod_xi, occupancy, runs
 
 
 def _baseline(prep: _Prepared, mu: np.ndarray, b_split=None) -> float:
-    """Sum over observed sites of log(Pois(n; mu) B) (the state-independent part)."""
-    out = float(np.dot(prep.sum_n, np.log(mu)) - prep.n_obs * mu.sum() - prep.log_factorial)
+    """Sum over observed sites of log(Pois(n; mu h_r) B) (the state-independent part)."""
+    eff = prep.eff
+    if eff is None:
+        out = float(np.dot(prep.sum_n, np.log(mu)) - prep.n_obs * mu.sum() - prep.log_factorial)
+    else:
+        out = float(np.dot(prep.sum_n, np.log(mu)) + eff.log_term - eff.sum_h * mu.sum() - prep.log_factorial)
     if b_split is not None and b_split.size:
         out += float(np.log(b_split).sum())
     return out
 
 
 def _emission_tm(prep: _Prepared, params: DecoderParams):
-    """Emission factors (L, R', K), time-major (1 - eta at empty and unobserved cells), and
-    the split-ion terms of the sites that have one."""
+    """Emission factors (L, R', K), time-major (1 - eta h_r at empty and unobserved cells), and
+    the split-ion terms of the sites that have one (with ``1 - eta h_r`` of their rods, or None)."""
     eta, mu = params.eta, params.extra_rate
-    emis = np.full(prep.x.shape, 1.0 - eta)
+    if prep.eff is None:
+        emis = np.full(prep.x.shape, 1.0 - eta)
+    else:
+        emis = np.empty(prep.x.shape)
+        emis[...] = (1.0 - eta * prep.eff.h)[None, :, None]
     emis.reshape(-1)[prep.nz_flat] += prep.nz_x * (eta / mu)[prep.nz_k]
     split = None
     if prep.fs_cell.size:
-        c, b, xe = _split_terms(prep.fs_n, prep.fs_pi, prep.fs_pi_none, mu)
-        fac = (1.0 - eta) + xe * (eta / mu)
+        if prep.eff is None:
+            ome, mu_s = None, mu
+        else:
+            h_s = prep.eff.h[prep.fs_cell % prep.x.shape[1]]
+            ome, mu_s = (1.0 - eta * h_s)[:, None], mu * h_s[:, None]
+        c, b, xe = _split_terms(prep.fs_n, prep.fs_pi, prep.fs_pi_none, mu_s)
+        fac = ((1.0 - eta) if ome is None else ome) + xe * (eta / mu)
         emis.reshape(-1, mu.size)[prep.fs_cell] = fac
-        split = (c, b, xe, fac)
+        split = (c, b, xe, fac, ome)
     return emis, split
 
 
-def _split_expected_counts(n, c, b, gamma, eta, mu, fac):
+def _split_expected_counts(n, c, b, gamma, eta, mu, fac, ome=None):
     """E[y_j | x] at split-ion sites: the integer parts plus the posterior probability that the
-    split ion is in channel j, given the state posteriors ``gamma`` (S, K)."""
-    base = ((1.0 - eta) + n * (eta / mu)) / fac
+    split ion is in channel j, given the state posteriors ``gamma`` (S, K); ``ome`` is
+    ``1 - eta h_r`` of each site's rod ((S, 1); None: ``1 - eta``)."""
+    base = (((1.0 - eta) if ome is None else ome) + n * (eta / mu)) / fac
     s = (gamma * base).sum(axis=1)
     return n + (c / b[:, None]) * (s[:, None] + gamma * (eta / mu) / fac)
 
 
 def _hmm_estep(prep: _Prepared, params: DecoderParams, *, final: bool = False):
-    """Forward-backward on the prepared rods; returns loglik, the result and the expected own
-    ions and expected counts per channel."""
+    """Forward-backward on the prepared rods; returns loglik, the result and (unless ``final``)
+    :func:`_expected_own`."""
     eta, mu = params.eta, params.extra_rate
-    k = mu.size
     emis, split = _emission_tm(prep, params)
     fb = forward_backward_scaled(
         emis,  # used as work space
@@ -590,32 +632,57 @@ def _hmm_estep(prep: _Prepared, params: DecoderParams, *, final: bool = False):
         overwrite_emission=True,
     )
     del emis
-    # unobserved cells carried the state-independent factor 1 - eta: remove it
-    ll_rods = fb.loglik - (~prep.obs).sum(axis=0) * math.log(1.0 - eta)
+    # unobserved cells carried the state-independent factor 1 - eta h_r: remove it
+    if prep.eff is None:
+        ll_rods = fb.loglik - (~prep.obs).sum(axis=0) * math.log(1.0 - eta)
+    else:
+        ll_rods = fb.loglik - (~prep.obs).sum(axis=0) * np.log(1.0 - eta * prep.eff.h)
     loglik = float(ll_rods.sum()) + _baseline(prep, mu, None if split is None else split[1])
     if final:
         return loglik, fb, None
+    return (loglik, fb) + (_expected_own(prep, params, fb.posteriors, split),)
+
+
+def _expected_own(prep: _Prepared, params: DecoderParams, posteriors, split):
+    """Expected own ions per channel, expected whole counts per channel and (with a per-rod
+    efficiency, else None) expected own ions per rod, from the state posteriors (R', L, K)."""
+    eta, mu = params.eta, params.extra_rate
+    k = mu.size
     # detection posterior r_k = eta xe_k / mu_k / factor_k, zero where xe_k = 0: the sums run
     # over the nonzero whole counts and the split-ion sites only
-    gamma_flat = fb.posteriors.transpose(1, 0, 2).reshape(-1)  # time-major, contiguous
+    gamma_flat = posteriors.transpose(1, 0, 2).reshape(-1)  # time-major, contiguous
     q = prep.nz_x * (eta / mu)[prep.nz_k]
-    own = np.bincount(prep.nz_k, weights=gamma_flat[prep.nz_flat] * (q / ((1.0 - eta) + q)), minlength=k)
-    own = own.astype(float)
+    n_r = prep.x.shape[1]
+    if prep.eff is None:
+        w_own = gamma_flat[prep.nz_flat] * (q / ((1.0 - eta) + q))
+        own_rod = None
+    else:
+        nz_rod = (prep.nz_flat // k) % n_r
+        w_own = gamma_flat[prep.nz_flat] * (q / ((1.0 - eta * prep.eff.h[nz_rod]) + q))
+        own_rod = np.bincount(nz_rod, weights=w_own, minlength=n_r).astype(float)
+    own = np.bincount(prep.nz_k, weights=w_own, minlength=k).astype(float)
     counts = prep.sum_n.copy()
     if split is not None:
-        c, b, xe, fac = split
+        c, b, xe, fac, ome = split
         g = gamma_flat.reshape(-1, k)[prep.fs_cell]
-        own += (g * (xe * (eta / mu) / fac)).sum(axis=0)
-        counts += (_split_expected_counts(prep.fs_n, c, b, g, eta, mu, fac) - prep.fs_n).sum(axis=0)
-    return loglik, fb, (own, counts)
+        own_s = g * (xe * (eta / mu) / fac)
+        own += own_s.sum(axis=0)
+        if own_rod is not None:
+            own_rod += np.bincount(prep.fs_cell % n_r, weights=own_s.sum(axis=1), minlength=n_r)
+        counts += (_split_expected_counts(prep.fs_n, c, b, g, eta, mu, fac, ome) - prep.fs_n).sum(axis=0)
+    return own, counts, own_rod
 
 
 def _hmm_step(prep: _Prepared):
     def step(params: DecoderParams):
-        loglik, fb, (own, counts) = _hmm_estep(prep, params)
-        n = prep.n_obs
-        eta = float(np.clip(own.sum() / n, *ETA_BOUNDS))
-        mu = np.maximum((counts - own) / n, MIN_RATE)
+        loglik, fb, (own, counts, own_rod) = _hmm_estep(prep, params)
+        if prep.eff is None:
+            n = prep.n_obs
+            eta = float(np.clip(own.sum() / n, *ETA_BOUNDS))
+            mu = np.maximum((counts - own) / n, MIN_RATE)
+        else:
+            eta = eta_mstep(prep.eff.h, prep.eff.n_sites, own_rod, ETA_BOUNDS)
+            mu = np.maximum((counts - own) / prep.eff.sum_h, MIN_RATE)
         first_post = fb.posteriors[:, 0, :].sum(axis=0)
         a = update_transmat(fb.xi, first_post, params.transmat)
         return loglik, DecoderParams(transmat=a, eta=eta, extra_rate=mu)
@@ -625,6 +692,8 @@ def _hmm_step(prep: _Prepared):
 
 def _indep_step(prep):
     """EM step of the independent-sites model, from the distinct count vectors of the sites."""
+    if prep.eff is not None:
+        return _indep_step_eff(prep)
     if isinstance(prep, _RodData):
         x, mult = prep.distinct_rows, prep.distinct_mult
     else:
@@ -653,6 +722,46 @@ def _indep_step(prep):
     return step
 
 
+def _indep_step_eff(prep):
+    """:func:`_indep_step` with a per-rod efficiency: the distinct count vectors of each group of
+    rods with one ``h``, whose sites have ``1 - eta h`` and rates ``mu h``."""
+    h_vals, h_group = np.unique(prep.eff.h_rows, return_inverse=True)
+    h_group = h_group.reshape(-1)
+    if isinstance(prep, _RodData):
+        blocks = ((prep.counts[b0:b0 + _BLOCK_RODS][prep.mask[b0:b0 + _BLOCK_RODS]].astype(np.float64),
+                   np.repeat(h_group[b0:b0 + _BLOCK_RODS], prep.mask[b0:b0 + _BLOCK_RODS].sum(axis=1)))
+                  for b0 in range(0, prep.counts.shape[0], _BLOCK_RODS))
+    else:
+        blocks = [(prep.x_obs, h_group[prep.rods][np.nonzero(prep.obs)[1]])]  # x_obs is time-major
+    x, grp, mult = distinct_rows_by_group(blocks, h_vals.size)
+    hu = h_vals[grp]
+    n_int, pi, pi_none = split_counts(x)
+    n = prep.n_obs
+    lf = float(mult @ gammaln(n_int + 1.0).sum(axis=1))
+    sum_n = mult @ n_int
+    log_h = float(mult @ (n_int.sum(axis=1) * np.log(hu)))
+    sum_h = float(mult @ hu)
+
+    def step(state):
+        comp, eta, mu = state
+        c, b, xe = _split_terms(n_int, pi, pi_none, mu * hu[:, None])
+        ome = (1.0 - eta * hu)[:, None]
+        fac = ome + xe * (eta / mu)
+        w = fac * comp
+        tot = w.sum(axis=1)
+        base = float(sum_n @ np.log(mu)) + log_h - sum_h * mu.sum() - lf + float(mult @ np.log(b))
+        loglik = float(mult @ np.log(tot)) + base
+        gamma = w / tot[:, None]
+        own_u = gamma * (xe * (eta / mu) / fac)
+        own = mult @ own_u
+        counts = mult @ _split_expected_counts(n_int, c, b, gamma, eta, mu, fac, ome)
+        eta_new = eta_mstep(hu, mult, mult * own_u.sum(axis=1), ETA_BOUNDS)
+        mu_new = np.maximum((counts - own) / sum_h, MIN_RATE)
+        return loglik, ((mult @ gamma) / n, eta_new, mu_new)
+
+    return step
+
+
 def _initial_params(prep: _Prepared, rng, k: int, random: bool) -> DecoderParams:
     comp = prep.sum_x / prep.sum_x.sum()
     mean_t = prep.totals_mean
@@ -665,6 +774,8 @@ def _initial_params(prep: _Prepared, rng, k: int, random: bool) -> DecoderParams
         eta = math.sqrt(max(mean_t - prep.totals_var, 0.0025))
         lam = 0.5
     eta = float(np.clip(min(eta, 0.95 * mean_t if mean_t > 0 else eta), 0.05, 0.95))
+    if prep.eff is not None:
+        eta = min(eta, 0.95 / prep.eff.max_h)  # every rod's eta h below 1
     a = lam * np.eye(k) + (1.0 - lam) * comp[None, :]
     if random:
         a = 0.9 * a + 0.1 * rng.dirichlet(np.ones(k), size=k)
