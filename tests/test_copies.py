@@ -102,7 +102,7 @@ def test_copied_run_is_pooled_and_beats_single_rods(copied_run):
     alone = decode(res.columns, res.decoded.params)
     acc_alone = _accuracy_against_truth(replace(res, decoded=alone), run)
     assert pooled > acc_alone + 0.1
-    assert res.to_dict()["decoding"]["copies"]["applied"] is True
+    assert res.to_dict()["copies"]["applied"] is True
 
 
 def test_random_run_finds_no_master(copied_run):

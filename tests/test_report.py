@@ -144,6 +144,7 @@ def test_figures_argument_replaces_adds_and_drops(result, tmp_path):
     extra.savefig(png)
     with_groups = dataclasses.replace(result, groups=analyze_groups(result.columns, random_state=0))
     doc = report_html(with_groups, figures={"tracks": None, "spectrum": None, "rod_to_rod": None, "overlaps": None,
+                                            "reconstruction": None,
                                             "run_lengths": png, "comparison": (extra, "Runs compared", "caption")})
     fig = _section(doc, "figures")
     assert 'id="fig-tracks"' not in fig and 'id="fig-spectrum"' not in fig

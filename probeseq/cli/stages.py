@@ -293,17 +293,20 @@ def decode(
     from ..lattice.rodcolumns import load_columns
     from ..outputs.folder import check_outdir, staged_outdir, write_json
     from ..pipeline.options import AnalysisOptions
-    from ..pipeline.stages import decode_stage
+    from ..pipeline.stages import decode_stage, pool_copies
 
     _STATE["quiet"] = quiet
     opts = AnalysisOptions(seed=seed, n_starts=n_starts)
     check_outdir(out, force, [columns_dir])
     cols = load_columns(Path(columns_dir) / "columns.h5")
-    # the decoding stage of 'analyze' (and its groups-of-rods analysis when rods are not resolvable)
+    # the decoding stage of 'analyze' (and its groups-of-rods analysis when rods are not resolvable),
+    # then its copy stage: rods that copy one master sequence pooled
     dec, groups = decode_stage(cols, opts)
+    dec, copies = pool_copies(cols, dec)
     with staged_outdir(out, force=force, inputs=[columns_dir], command=_command_line()) as st:
         write_json(st / "decoding.json", {"decoding": dec.to_dict(),
-                                          "groups": None if groups is None else groups.to_dict()})
+                                          "groups": None if groups is None else groups.to_dict(),
+                                          "copies": None if copies is None else copies.to_dict()})
         _write_decoded_tables(st, cols, dec)
     say(f"wrote {out}: {cols.n_rods} rods decoded; log-likelihood {dec.loglik:.1f}, "
         f"detection efficiency {dec.eta:.3f}, persistence {dec.persistence:.3f}")

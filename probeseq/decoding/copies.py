@@ -36,13 +36,20 @@ from ..lattice.rodcolumns import RodColumns
 from .hmm import forward_backward, update_transmat
 from .model import DecoderParams, emission_factors
 
-__all__ = ['CopyResult', 'decode_copies', 'MIN_RODS', 'FOLLOW_Z']
+__all__ = ['CopyResult', 'decode_copies', 'copies_suspected', 'pooled_result', 'MIN_RODS', 'FOLLOW_Z',
+           'SUSPECT_KAPPA', 'SUSPECT_Z']
 
 #: fewest rods a master sequence is pooled from
 MIN_RODS = 4
 
 #: a rod follows the master when its copied share is this many standard errors above chance
 FOLLOW_Z = 3.0
+
+#: neighbouring rods' decoded paths must agree beyond chance by this kappa (excess agreement over
+#: what chance gives, as a share of what it leaves) and this many standard errors before the
+#: copy-aware decoding is tried
+SUSPECT_KAPPA = 0.2
+SUSPECT_Z = 5.0
 
 #: rods per block when the master's emission is summed (bounded memory)
 _BLOCK = 512
@@ -274,3 +281,35 @@ def pooled_result(decoded, copies: CopyResult):
     return replace(decoded, posteriors=post.astype(decoded.posteriors.dtype, copy=False),
                    viterbi=path.astype(decoded.viterbi.dtype, copy=False), uncertain=uncertain,
                    runs=runs_table(path, decoded.mask, post))
+
+
+def copies_suspected(columns: RodColumns, decoded) -> tuple:
+    """Whether neighbouring rods' single-rod paths agree far beyond chance (a cheap test that
+    decides whether :func:`decode_copies` is tried).
+
+    Agreement is the share of sites observed on both rods of a neighbouring pair where the
+    decoded metals are equal; chance is ``sum f_k^2`` (``f`` the decoder's composition); kappa
+    is ``(agreement - chance) / (1 - chance)`` and z its distance from 0 in binomial standard
+    errors.
+
+    Returns
+    -------
+    suspected : bool
+        ``kappa >= SUSPECT_KAPPA`` and ``z >= SUSPECT_Z``.
+    detail : dict
+        ``agreement``, ``chance``, ``kappa``, ``z``, ``n_pairs``, ``n_sites``.
+    """
+    nb = np.asarray(columns.neighbours, np.int64).reshape(-1, 2)
+    f = np.asarray(decoded.stationary, float)
+    chance = float(f @ f)
+    if nb.shape[0] == 0:
+        return False, {"agreement": None, "chance": chance, "kappa": None, "z": None, "n_pairs": 0, "n_sites": 0}
+    path, mask = np.asarray(decoded.viterbi), np.asarray(decoded.mask, bool)
+    both = mask[nb[:, 0]] & mask[nb[:, 1]]
+    same = (path[nb[:, 0]] == path[nb[:, 1]]) & both
+    n = int(both.sum())
+    agree = float(same.sum()) / max(n, 1)
+    kappa = (agree - chance) / max(1 - chance, 1e-12)
+    z = (agree - chance) / math.sqrt(max(chance * (1 - chance), 1e-12) / max(n, 1))
+    detail = {"agreement": agree, "chance": chance, "kappa": kappa, "z": z, "n_pairs": int(nb.shape[0]), "n_sites": n}
+    return bool(n > 0 and kappa >= SUSPECT_KAPPA and z >= SUSPECT_Z), detail

@@ -170,19 +170,38 @@ class DepthCalibration:
 @numba.njit(cache=True, nogil=True)
 def _power_grid(u, rho2, ratios, kappas, pitch, out):
     """``out[a, b] = |sum exp(2 pi i (u - kappa_b rho2) / (pitch ratio_a))|^2 / n`` (u centred): n R^2,
-    exponential of mean 1 for uniform phases (Rayleigh's test)."""
+    exponential of mean 1 for uniform phases (Rayleigh's test).
+
+    ``1 / ratios`` must be evenly spaced (a uniform grid of spatial frequencies): the phases of one
+    ion over the grid then advance by a constant step, so each term is one complex product.
+    """
     n = u.size
+    na = ratios.size
+    k0 = 2.0 * math.pi / (pitch * ratios[0])
+    dk = (2.0 * math.pi / (pitch * ratios[1]) - k0) if na > 1 else 0.0
+    re = np.zeros(na)
+    im = np.zeros(na)
     for b in range(kappas.size):
         kb = kappas[b]
-        for a in range(ratios.size):
-            k = 2.0 * math.pi / (pitch * ratios[a])
-            c = 0.0
-            s = 0.0
-            for i in range(n):
-                ph = k * (u[i] - kb * rho2[i])
-                c += math.cos(ph)
-                s += math.sin(ph)
-            out[a, b] = (c * c + s * s) / max(n, 1)
+        re[:] = 0.0
+        im[:] = 0.0
+        for i in range(n):
+            w = u[i] - kb * rho2[i]
+            c = math.cos(k0 * w)
+            s = math.sin(k0 * w)
+            sc = math.cos(dk * w)
+            ss = math.sin(dk * w)
+            for a in range(na):
+                re[a] += c
+                im[a] += s
+                c, s = c * sc - s * ss, c * ss + s * sc
+        for a in range(na):
+            out[a, b] = (re[a] * re[a] + im[a] * im[a]) / max(n, 1)
+
+
+def _ratio_grid(centre: float, half_width: float, n: int) -> np.ndarray:
+    """Pitch ratios whose inverses are evenly spaced about ``1 / centre`` (relative half width)."""
+    return 1.0 / ((1.0 / centre) * (1.0 + np.linspace(-half_width, half_width, n)))
 
 
 def _windows(z, length):
@@ -292,7 +311,7 @@ def calibrate_depth(x, y, z, *, pitch_nm: float, plane_gradient=(0.0, 0.0), axis
     a_idx, b_idx, zc = _windows(z, WINDOW_PLANES * P)
     subs = [_subset(a, b, SCAN_IONS, rng) for a, b in zip(a_idx, b_idx)]
     # 1. wide scan (a coarse curvature grid) for the period the data hold
-    ratios = np.exp(np.arange(math.log(WIDE_RANGE[0]), math.log(WIDE_RANGE[1]), 1.0 / (3 * WINDOW_PLANES)))
+    ratios = 1.0 / np.arange(1.0 / WIDE_RANGE[1], 1.0 / WIDE_RANGE[0], 1.0 / (3 * WINDOW_PLANES))
     kappas = np.linspace(-SAG_PITCHES, SAG_PITCHES, 7) * P / max(radius_nm, 1e-6) ** 2
     wide = np.empty((len(subs), ratios.size))
     out = np.empty((ratios.size, kappas.size))
@@ -334,7 +353,7 @@ def _local_scan(u, rho2, subs, zc, P, found, radius, periodic):
     The curvature is searched on the :data:`KAPPA_WINDOWS` most periodic windows (it is one
     number for the run); each window's scale then on a finer grid of ratios at that curvature.
     """
-    coarse = found * np.exp(np.linspace(-0.1, 0.1, 21))
+    coarse = _ratio_grid(found, 0.1, 21)
     kappas = np.linspace(-SAG_PITCHES, SAG_PITCHES, int(round(2 * SAG_PITCHES / 0.2)) + 1) * P / max(radius, 1e-6) ** 2
     wide_best = np.array([s.size for s in subs], float) * periodic
     pick = [j for j in np.argsort(-wide_best)[:KAPPA_WINDOWS] if periodic[j]]
@@ -352,8 +371,8 @@ def _local_scan(u, rho2, subs, zc, P, found, radius, periodic):
         den = y0 - 2 * y1 + y2
         if den < 0:
             kappa += 0.5 * (y0 - y2) / den * (kappas[1] - kappas[0])
-    ratios = found * np.exp(np.linspace(-0.1, 0.1, 41))
-    la = np.log(ratios)
+    ratios = _ratio_grid(found, 0.1, 41)
+    la = 1.0 / ratios  # evenly spaced
     scale = np.full(len(subs), np.nan)
     power = np.zeros(len(subs))
     col = np.empty((ratios.size, 1))
@@ -367,10 +386,10 @@ def _local_scan(u, rho2, subs, zc, P, found, radius, periodic):
         if power[j] < RAYLEIGH_MIN:
             continue
         d = 0.0
-        if 0 < a < ratios.size - 1:  # parabolic peak in log ratio
+        if 0 < a < ratios.size - 1:  # parabolic peak in the inverse ratio
             den = c[a - 1] - 2 * c[a] + c[a + 1]
             d = 0.5 * (c[a - 1] - c[a + 1]) / den if den < 0 else 0.0
-        scale[j] = math.exp(la[a] + d * (la[1] - la[0]))
+        scale[j] = 1.0 / (la[a] + d * (la[1] - la[0]))
     return scale, power, kappa
 
 

@@ -124,7 +124,7 @@ def plot_reconstruction(report: dict, path=None, *, efficiency: dict | None = No
     path : str or Path, optional
         Save as ``<stem>.png`` and ``<stem>.svg``.
     efficiency : dict, optional
-        The decoder's ``radial_efficiency`` record (drawn when it holds a profile).
+        The decoder's ``radial_efficiency`` record (its profile ``1 + a (rho_n^2 - c)`` is drawn).
 
     Returns
     -------
@@ -139,7 +139,7 @@ def plot_reconstruction(report: dict, path=None, *, efficiency: dict | None = No
     prof = depth.get("depth_scale_profile") or {}
     if not prof.get("z_nm") and not lateral.get("z_slab_nm"):
         return None
-    eff = efficiency if efficiency and efficiency.get("profile") else None
+    eff = efficiency if efficiency and efficiency.get("a") is not None and efficiency.get("c") is not None else None
     n = 3 + (eff is not None)
     fig = Figure(figsize=(3.4 * n, 3.2), layout="constrained")
     FigureCanvasAgg(fig)
@@ -193,10 +193,13 @@ def plot_reconstruction(report: dict, path=None, *, efficiency: dict | None = No
     ax.set_ylabel("lateral scale per depth slab (2 s.e.)")
     if eff is not None:
         ax = axes[3]
-        pr = eff["profile"]
-        ax.plot(pr["rho_norm"], pr["h"], color="black", lw=1.2)
-        if pr.get("h_low") and pr.get("h_high"):
-            ax.fill_between(pr["rho_norm"], pr["h_low"], pr["h_high"], color=OTHER, alpha=0.35, lw=0)
+        rho = np.linspace(0, 1, 51)
+        a, c, se = float(eff["a"]), float(eff["c"]), float(eff.get("a_se") or 0.0)
+        h = 1 + a * (rho ** 2 - c)
+        band = 2 * se * np.abs(rho ** 2 - c)
+        ax.fill_between(rho, h - band, h + band, color=OTHER, alpha=0.35, lw=0, label="2 s.e.")
+        ax.plot(rho, h, color="black", lw=1.2, label="fitted")
+        ax.axhline(1.0, color="grey", ls="--", lw=0.8)
         ax.set_xlabel("distance from the specimen axis / outline radius")
         ax.set_ylabel("relative detection efficiency")
         ax.set_title("used by the decoder" if eff.get("applied") else "not used (flat)", fontsize=8)

@@ -5,7 +5,7 @@ output folder (:mod:`.analysis`).
 
 from .analysis import analyze, analyze_file, write_analysis
 from .options import AnalysisOptions, AnalysisResult
-from .stages import CountResult, count_file, count_ions, decode_stage, range_file
+from .stages import CountResult, count_file, count_ions, decode_stage, pool_copies, range_file
 
 __all__ = ["AnalysisOptions", "AnalysisResult", "CountResult", "analyze", "analyze_file", "count_file",
-           "count_ions", "decode_stage", "range_file", "write_analysis"]
+           "count_ions", "decode_stage", "pool_copies", "range_file", "write_analysis"]

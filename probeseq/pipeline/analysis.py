@@ -38,6 +38,7 @@ from .stages import (
     _count_ions,
     _count_stream,
     _decode_stage,
+    _pool_copies,
     _whole_ions,
     start_up,
 )
@@ -113,7 +114,7 @@ def _run(counts_stage, metals, lattice, opts, progress, provenance, meta) -> Ana
         with clock.stage("classification", "classifying the arrangement"):
             cl = classify(st, dec.lr_pvalue, long_block_sites=opts.long_block_sites, alpha=opts.alpha,
                           copy_threshold=opts.copy_threshold)
-        dec, copies = _pool_copies(cols, dec, cl, clock)
+        dec, copies = _pool_copies(cols, dec, clock)
         caught = [str(w.message).splitlines()[0] for w in wlist]
     warn = list(dict.fromkeys(caught + list(getattr(dec, "warnings", []))))
     if not cols.resolvable:
@@ -131,19 +132,6 @@ def _run(counts_stage, metals, lattice, opts, progress, provenance, meta) -> Ana
                           warnings=tuple(warn), provenance=prov, figure_ions=counted.figure_ions, copies=copies)
 
 
-def _pool_copies(cols, dec, cl, clock):
-    """When rods copy one another, decode the followers of a master sequence from their pooled
-    evidence (:mod:`probeseq.decoding.copies`); the fallback to single rods is a warning."""
-    if cl.rod_to_rod != "copied" or not cols.resolvable:
-        return dec, None
-    from ..decoding.copies import decode_copies, pooled_result
-
-    with clock.stage("copies", "rods copy one another: decoding a master sequence from every copy"):
-        cr = decode_copies(cols, dec.params, dec.posteriors, rod_efficiency=getattr(dec, "rod_efficiency", None))
-    if not cr.applied:
-        warnings.warn(f"rods are copied but decoded one at a time: {cr.reason}", DataQualityWarning, stacklevel=2)
-        return dec, cr
-    return pooled_result(dec, cr), cr
 
 
 def analyze_file(path, metals, lattice: Lattice, *, ranges=None, options: AnalysisOptions | None = None,

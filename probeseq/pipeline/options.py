@@ -138,8 +138,10 @@ class AnalysisResult:
     figure_ions : IonList or None
         Ions kept for the figures, if any.
     copies : CopyResult or None
-        The copy-aware decoding when rods were found copied (``decoded`` then holds the pooled
-        posteriors of the rods that follow the master); None otherwise.
+        The copy-aware decoding when neighbouring rods' paths agree far beyond chance
+        (:func:`probeseq.pipeline.stages.pool_copies`; ``decoded`` then holds the pooled
+        posteriors of the rods that follow the master, the statistics those of single rods);
+        None otherwise.
     """
 
     metals: tuple
@@ -189,7 +191,6 @@ class AnalysisResult:
             comp[m] = f
         col = self.columns
         dec = self.decoded.to_dict()
-        dec["copies"] = None if self.copies is None else self.copies.to_dict()
         return {
             "schema_version": RESULTS_SCHEMA_VERSION,
             "provenance": self.provenance,
@@ -209,6 +210,7 @@ class AnalysisResult:
             "reconstruction": col.params.get("reconstruction"),
             "decoding": dec,
             "groups": None if self.groups is None else self.groups.to_dict(),
+            "copies": None if self.copies is None else self.copies.to_dict(),
             "ranging": self.ranging.to_dict(),
             "ions": self.ions_summary,
             "warnings": list(self.warnings),

@@ -20,7 +20,7 @@ from .options import AnalysisOptions, Progress, _check_ions, _Clock
 if TYPE_CHECKING:  # type names only: these modules are heavy to import
     from ..ranging.auto import RangingResult
 
-__all__ = ['CountResult', 'count_ions', 'count_file', 'range_file', 'range_sample', 'decode_stage']
+__all__ = ['CountResult', 'count_ions', 'count_file', 'range_file', 'range_sample', 'decode_stage', 'pool_copies']
 
 
 def start_up() -> float:
@@ -423,6 +423,45 @@ def _decode_stage(cols, opts, clock):
         with clock.stage("groups", "single rods are not resolvable: analysing groups of rods"):
             groups = analyze_groups(cols, random_state=opts.seed)
     return dec, groups
+
+
+def pool_copies(columns: RodColumns, decoded, *, progress: Progress = None):
+    """When neighbouring rods' paths agree far beyond chance, decode the rods that follow one
+    master sequence from the pooled evidence of every copy: the copy stage of :func:`analyze`
+    and of the ``decode`` command, after the statistics of the single-rod decoding.
+
+    Parameters
+    ----------
+    columns : RodColumns
+    decoded : DecodeResult
+        The single-rod decoding (:func:`decode_stage`).
+    progress : callable(stage, message), optional
+
+    Returns
+    -------
+    decoded : DecodeResult
+        With the pooled posteriors and paths of the following rods (the input when not pooled).
+    copies : CopyResult or None
+        None when the paths give no sign of copying (or rods are not resolvable).
+    """
+    return _pool_copies(columns, decoded, _Clock(progress))
+
+
+def _pool_copies(cols, dec, clock):
+    from ..decoding.copies import copies_suspected, decode_copies, pooled_result
+
+    if not cols.resolvable:
+        return dec, None
+    suspected, _ = copies_suspected(cols, dec)
+    if not suspected:
+        return dec, None
+    with clock.stage("copies", "neighbouring rods agree: decoding a master sequence from every copy"):
+        cr = decode_copies(cols, dec.params, dec.posteriors, rod_efficiency=getattr(dec, "rod_efficiency", None))
+    if not cr.applied:
+        warnings.warn(f"neighbouring rods agree beyond chance but are decoded one at a time: {cr.reason}",
+                      DataQualityWarning, stacklevel=3)
+        return dec, cr
+    return pooled_result(dec, cr), cr
 
 
 #: HDF5 files with at most this many ions are read whole and passed to :func:`analyze`
