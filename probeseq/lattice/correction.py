@@ -28,7 +28,7 @@ import numpy as np
 
 from ..exceptions import InputError
 
-__all__ = ['ReconstructionCorrection']
+__all__ = ['ReconstructionCorrection', 'file_site_positions', 'correct_point']
 
 
 @dataclass(frozen=True, eq=False)
@@ -127,6 +127,7 @@ class ReconstructionCorrection:
         return out
 
     def _tables(self):
+        """``(z0, inv_h, depth, magnification, shift, axis, kappa)`` as the compiled map reads them."""
         g = self.grid_z_nm
         return (float(g[0]), float((g.size - 1) / (g[-1] - g[0])), self.depth_nm, self.magnification,
                 np.ascontiguousarray(self.shift_nm), np.ascontiguousarray(self.axis_nm), self.curvature_per_nm)
@@ -211,25 +212,31 @@ def _lerp_index(v, z0, inv_h, n):
     return i, f - i
 
 
+@numba.njit(cache=True, nogil=True, inline="always")
+def correct_point(x, y, z, z0, inv_h, depth, mag, shift, axis, kappa):
+    """The map of :meth:`ReconstructionCorrection.apply` at one point, float64 (NaN stays NaN)."""
+    n = depth.size
+    i, t = _lerp_index(z, z0, inv_h, n)
+    m = mag[i] + t * (mag[i + 1] - mag[i])
+    xc = x / m + shift[i, 0] + t * (shift[i + 1, 0] - shift[i, 0])
+    yc = y / m + shift[i, 1] + t * (shift[i + 1, 1] - shift[i, 1])
+    ax = axis[i, 0] + t * (axis[i + 1, 0] - axis[i, 0])
+    ay = axis[i, 1] + t * (axis[i + 1, 1] - axis[i, 1])
+    w = z - kappa * ((xc - ax) * (xc - ax) + (yc - ay) * (yc - ay))
+    j, s = _lerp_index(w, z0, inv_h, n)
+    return xc, yc, depth[j] + s * (depth[j + 1] - depth[j])
+
+
 @numba.njit(cache=True, nogil=True)
 def _apply_kernel(x, y, z, ox, oy, oz, z0, inv_h, depth, mag, shift, axis, kappa):
     """The map of :meth:`ReconstructionCorrection.apply`, one pass (NaN stays NaN)."""
-    n = depth.size
     fdt = ox.dtype.type
     for k in range(x.size):
-        zf = np.float64(z[k])
-        i, t = _lerp_index(zf, z0, inv_h, n)
-        m = mag[i] + t * (mag[i + 1] - mag[i])
-        xc = np.float64(x[k]) / m + shift[i, 0] + t * (shift[i + 1, 0] - shift[i, 0])
-        yc = np.float64(y[k]) / m + shift[i, 1] + t * (shift[i + 1, 1] - shift[i, 1])
-        ax = axis[i, 0] + t * (axis[i + 1, 0] - axis[i, 0])
-        ay = axis[i, 1] + t * (axis[i + 1, 1] - axis[i, 1])
-        w = zf - kappa * ((xc - ax) * (xc - ax) + (yc - ay) * (yc - ay))
-        j, s = _lerp_index(w, z0, inv_h, n)
+        xc, yc, zc = correct_point(np.float64(x[k]), np.float64(y[k]), np.float64(z[k]), z0, inv_h, depth, mag,
+                                   shift, axis, kappa)
         ox[k] = fdt(xc)
         oy[k] = fdt(yc)
-        oz[k] = fdt(depth[j] + s * (depth[j + 1] - depth[j]))
-
+        oz[k] = fdt(zc)
 
 def file_site_positions(columns, rods, sites):
     """Where sites of a :class:`~probeseq.lattice.rodcolumns.RodColumns` lie in the ion file's frame.

@@ -68,7 +68,7 @@ KAPPA_WINDOWS = 6
 KAPPA_IONS = 2000
 
 #: ions in the phase fit (a random subset)
-FIT_IONS = 150_000
+FIT_IONS = 60_000
 
 #: n R^2 a window's best power must reach to count as periodic: for n uniform phases
 #: n R^2 is exponential of mean 1 (Rayleigh's test), so after the wide scan's ~500 trials a

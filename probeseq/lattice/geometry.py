@@ -99,6 +99,10 @@ class KernelGeometry(NamedTuple):
         Rod index of every table entry, ``-1`` for none (see :attr:`ColumnGeometry.rod_key`).
     n_sites : int
         Sites per rod.
+    corr_on : bool
+        Whether positions go through the reconstruction correction first (then the ``corr_``
+        fields are its tables, :meth:`ReconstructionCorrection._tables`, read by
+        :func:`probeseq.lattice.correction.correct_point`).
     """
 
     cell_xy: np.ndarray
@@ -121,6 +125,14 @@ class KernelGeometry(NamedTuple):
     rods_per_cell: np.int64
     rod_key: np.ndarray
     n_sites: np.int64
+    corr_on: np.bool_ = np.bool_(False)
+    corr_z0: np.float64 = np.float64(0.0)
+    corr_inv_h: np.float64 = np.float64(1.0)
+    corr_depth: np.ndarray = np.zeros(2)
+    corr_mag: np.ndarray = np.ones(2)
+    corr_shift: np.ndarray = np.zeros((2, 2))
+    corr_axis: np.ndarray = np.zeros((2, 2))
+    corr_kappa: np.float64 = np.float64(0.0)
 
 
 @dataclass(frozen=True, eq=False)
@@ -240,7 +252,18 @@ class ColumnGeometry:
             cutoff2_nm2=np.float64(loc.cutoff_nm ** 2 if math.isfinite(loc.cutoff_nm) else np.inf),
             n_cells_i=np.int64(ni), n_cells_j=np.int64(nj), rods_per_cell=np.int64(self.lattice.rods_per_cell),
             rod_key=np.ascontiguousarray(self.rod_key, np.int32), n_sites=np.int64(ns),
+            **self._correction_fields(),
         )
+
+    def _correction_fields(self) -> dict:
+        c = self.correction
+        if c is None or c.is_identity:
+            return {}
+        z0, inv_h, depth, mag, shift, axis, kappa = c._tables()
+        return {"corr_on": np.bool_(True), "corr_z0": np.float64(z0), "corr_inv_h": np.float64(inv_h),
+                "corr_depth": np.ascontiguousarray(depth, np.float64), "corr_mag": np.ascontiguousarray(mag, np.float64),
+                "corr_shift": np.ascontiguousarray(shift, np.float64), "corr_axis": np.ascontiguousarray(axis, np.float64),
+                "corr_kappa": np.float64(kappa)}
 
     def to_dict(self) -> dict:
         """JSON-able description of the geometry (no per-rod arrays)."""

@@ -189,32 +189,10 @@ def _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, factor,
     rr, thin, geom = _fit_on_sample(sample, metals, lattice, opts, ranges, clock)
     with clock.stage("binning", message):
         plan = _start_pass(rr, metals, thin, geom, opts.seed)
-        if geom.correction is None or geom.correction.is_identity:
-            counts, tally, ext = _run_pass(plan, None, factor, strict, blocks, where=where)
-        else:
-            raw = np.array([np.inf, -np.inf] * 3)
-            counts, tally, ext = _run_pass(plan, None, 1.0, strict, _placed_blocks(blocks, geom, factor, raw),
-                                           where=where)
-            ext = np.array(ext, float)
-            ext[:6] = raw  # the file's extents, not the calibrated ones
+        # the kernel puts each metal ion through the geometry's reconstruction correction
+        counts, tally, ext = _run_pass(plan, None, factor, strict, blocks, where=where)
         cols, n_metal = _finish_pass(geom, counts, metals, tally, thin)
     return rr, cols, n_metal, tally, ext
-
-
-def _placed_blocks(blocks, geom, factor, raw_ext):
-    """``blocks`` with positions in nm through the geometry's reconstruction correction; the
-    file's extents (nm) are kept in ``raw_ext`` (x min, x max, y min, ...)."""
-    def placed():
-        for row0, x, y, z, m in blocks():
-            if factor != 1.0:
-                x, y, z = (np.multiply(a, a.dtype.type(factor)) for a in (x, y, z))
-            for k, a in enumerate((x, y, z)):
-                if a.size:
-                    raw_ext[2 * k] = min(raw_ext[2 * k], float(np.nanmin(a)))
-                    raw_ext[2 * k + 1] = max(raw_ext[2 * k + 1], float(np.nanmax(a)))
-            xc, yc, zc = geom.place(x, y, z)
-            yield row0, xc, yc, zc, m
-    return placed
 
 
 def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
