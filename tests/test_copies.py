@@ -8,7 +8,7 @@ import warnings
 import numpy as np
 import pytest
 
-from probeseq.decoding.copies import _master_terms, _rod_posteriors, decode_copies, pooled_result
+from probeseq.decoding.copies import _master_terms, _rod_posteriors, copies_suspected, decode_copies, pooled_result
 from probeseq.decoding.hmm import forward_backward
 from probeseq.decoding.model import DecoderParams, emission_factors
 from probeseq.exceptions import DataQualityWarning
@@ -89,6 +89,7 @@ def test_copied_run_is_pooled_and_beats_single_rods(copied_run):
 
     run, res = copied_run
     assert res.classification.rod_to_rod == "copied"
+    assert copies_suspected(res.columns, res.decoded)[1]["z"] > 10
     cp = res.copies
     assert cp is not None and cp.applied
     assert cp.copy_error == pytest.approx(0.1, abs=0.03)
@@ -116,6 +117,9 @@ def test_random_run_finds_no_master(copied_run):
     cols = build_columns(run.ions.x[sel], run.ions.y[sel], run.ions.z[sel], w, run.config.metals, run.lattice,
                          random_state=0)
     dec = fit_decoder(cols, n_starts=1, random_state=0)
+    # independent rods: their posteriors agree as chance has it
+    suspected, detail = copies_suspected(cols, dec)
+    assert not suspected and abs(detail["z"]) < 4
     cr = decode_copies(cols, dec.params, dec.posteriors)
     assert not cr.applied and "no copy structure" in cr.reason
     assert pooled_result(dec, cr) is dec

@@ -27,7 +27,7 @@ import numpy as np
 from ..exceptions import DataQualityWarning
 from .correction import ReconstructionCorrection
 from .depthscale import DepthCalibration, calibrate_depth
-from .geometry import _plane_model
+from .geometry import _outline, _plane_model
 from .registration import FIT_RADIUS_FRAC, Registration, _refine
 from .locator import _cached_locator
 
@@ -220,29 +220,16 @@ def _wls(t, v, err, degree):
     return M @ c, M @ cov @ M.T
 
 
-def _axis(x, y, z, n_slabs: int = 8):
-    """Specimen axis per depth (centre of the 1st/99th percentiles, a line in depth) and the radius."""
-    edges = np.quantile(z, np.linspace(0, 1, n_slabs + 1))
-    zc, cx, cy, rr = [], [], [], []
-    for a, b in zip(edges[:-1], edges[1:]):
-        sel = (z >= a) & (z <= b)
-        if sel.sum() < 50:
-            continue
-        xs, ys = x[sel], y[sel]
-        c = (0.5 * (np.percentile(xs, 1) + np.percentile(xs, 99)), 0.5 * (np.percentile(ys, 1) + np.percentile(ys, 99)))
-        zc.append(float(np.median(z[sel])))
-        cx.append(c[0])
-        cy.append(c[1])
-        rr.append(float(np.percentile(np.hypot(xs - c[0], ys - c[1]), 98)) / math.sqrt(0.98))
-    if len(zc) < 2:
-        c = np.array([[float(np.mean(x)), float(np.mean(y))]] * 2)
-        return np.array([float(z.min()), float(z.max()) + 1e-9]), c, float(np.ptp(x)) / 2 + 1e-9
-    zc = np.array(zc)
-    fx, fy = np.polyfit(zc, cx, 1), np.polyfit(zc, cy, 1)
-    grid = np.array([float(z.min()), float(z.max())])
-    if grid[1] <= grid[0]:
-        grid[1] = grid[0] + 1.0
-    return grid, np.column_stack([np.polyval(fx, grid), np.polyval(fy, grid)]), float(np.median(rr))
+def _axis(x, y, z):
+    """Specimen axis against depth (the outline centres of :func:`probeseq.lattice.geometry._outline`,
+    a line in depth) on a two-point grid, and the median outline radius, nm."""
+    zc, cen, rad = _outline(x, y, z, slab_nm=max((float(z.max()) - float(z.min())) / 8, 0.5))
+    grid = np.array([float(z.min()), max(float(z.max()), float(z.min()) + 1.0)])
+    if zc.size < 2:
+        c = cen[0] if zc.size else np.array([float(np.mean(x)), float(np.mean(y))])
+        return grid, np.array([c, c]), float(rad[0]) if rad.size else float(np.ptp(x)) / 2 + 1e-9
+    fx, fy = np.polyfit(zc, cen[:, 0], 1), np.polyfit(zc, cen[:, 1], 1)
+    return grid, np.column_stack([np.polyval(fx, grid), np.polyval(fy, grid)]), float(np.median(rad))
 
 
 def _lateral_report(lat: dict) -> dict:
