@@ -376,7 +376,6 @@ def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
     nb = geo.rods_per_cell
     rod_key = geo.rod_key
     ns = geo.n_sites
-    corr_on = geo.corr_on
     a00 = fdt(a[0, 0]); a01 = fdt(a[0, 1]); a10 = fdt(a[1, 0]); a11 = fdt(a[1, 1])
     ez0 = fdt(ez[0]); ez1 = fdt(ez[1]); cc0 = fdt(cc[0]); cc1 = fdt(cc[1])
     s0 = fdt(site_c[0]); s1 = fdt(site_c[1]); s2 = fdt(site_c[2]); s3 = fdt(site_c[3])
@@ -399,12 +398,10 @@ def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
             zi = zi * fac
         if not (np.isfinite(xi) and np.isfinite(yi) and np.isfinite(zi)):
             continue  # an invalid row (tallied by the validity check)
-        if corr_on:  # the reconstruction correction, as ReconstructionCorrection.apply does it
+        if geo.corr_on:  # the reconstruction correction, as ReconstructionCorrection.apply does it
             xc, yc, zc = correct_point(np.float64(xi), np.float64(yi), np.float64(zi), geo.corr_z0, geo.corr_inv_h,
                                        geo.corr_depth, geo.corr_mag, geo.corr_shift, geo.corr_axis, geo.corr_kappa)
-            xi = fdt(xc)
-            yi = fdt(yc)
-            zi = fdt(zc)
+            xi, yi, zi = fdt(xc), fdt(yc), fdt(zc)
         nmetal += 1
         F1 = xi * a00
         F1 += yi * a01
