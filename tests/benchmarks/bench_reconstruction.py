@@ -29,6 +29,7 @@ from __future__ import annotations
 
 import argparse
 import math
+import sys
 import tempfile
 import time
 import warnings
@@ -36,6 +37,8 @@ from concurrent.futures import ProcessPoolExecutor
 from pathlib import Path
 
 import numpy as np
+
+sys.path.insert(0, str(Path(__file__).parent))  # bench_oracle's site matching
 
 PATTERNS = ("random", "short-repeat", "long-block", "interspersed", "copied")
 PACKINGS = (("honeycomb", 2.6, 0.68), ("square", 1.2, 0.70))
@@ -64,40 +67,18 @@ def suite(n):
 
 def site_accuracy(res, truth):
     """Share of decoded sites whose state is the truth's, sites matched as the agreed check does
-    (rods by axis position within half the rod spacing, sites by depth within half a pitch)."""
+    (rods by axis position within half the rod spacing, sites by depth within half a pitch; the
+    matching of bench_oracle.py)."""
     from probeseq.outputs.results import tracks_table
 
-    t = tracks_table(res.columns, res.decoded)
-    metals = list(res.metals)
-    rods = truth["rods"]
-    tx0 = np.array([r["x0"] for r in rods])
-    ty0 = np.array([r["y0"] for r in rods])
-    tdx = np.array([r["dxdz"] for r in rods])
-    tdy = np.array([r["dydz"] for r in rods])
-    tol = 0.5 * truth["d_nn_nm"] * truth["distortion"]["scale"]
-    half = 0.5 * truth["pitch_nm"] * truth.get("reconstruction", {}).get("depth_scale", 1.0)
-    state = np.array([metals.index(s) for s in t["state"]])
-    free = np.ones(len(rods), bool)
-    sites = correct = 0
-    for r in np.unique(t["rod"]):
-        sel = t["rod"] == r
-        zc, xc, yc = t["z_nm"][sel].mean(), t["rod_x_nm"][sel].mean(), t["rod_y_nm"][sel].mean()
-        d = np.hypot(xc - tx0 - tdx * zc, yc - ty0 - tdy * zc)
-        d[~free] = np.inf
-        j = int(np.argmin(d))
-        if d[j] >= tol:
-            continue
-        free[j] = False
-        tz = np.array(rods[j]["z_nm"])
-        seq = np.array([int(c) for c in rods[j]["seq"]])
-        zs = t["z_nm"][sel]
-        k = np.clip(np.searchsorted(tz, zs), 1, max(tz.size - 1, 1))
-        k = np.where(np.abs(tz[k - 1] - zs) <= np.abs(tz[np.minimum(k, tz.size - 1)] - zs), k - 1, k)
-        k = np.minimum(k, tz.size - 1)
-        ok = np.abs(tz[k] - zs) < half
-        sites += int(ok.sum())
-        correct += int((state[sel][ok] == seq[k[ok]]).sum())
-    return correct / max(sites, 1)
+    from bench_oracle import match_sites
+
+    rod, k, state = match_sites(tracks_table(res.columns, res.decoded), truth, list(res.metals))
+    if rod.size == 0:
+        return 0.0
+    seqs = [truth["rods"][j]["seq"] for j in range(len(truth["rods"]))]
+    true_state = np.array([int(seqs[j][kk]) for j, kk in zip(rod, k)])
+    return float(np.mean(true_state == state))
 
 
 def analyse(run):
