@@ -335,7 +335,7 @@ def reconstruction_line(rec) -> str:
     parts = []
     if d.get("calibrated"):
         parts.append(f"depth scale {d['mean_depth_scale']:.4f} +- {d.get('mean_depth_scale_err') or 0:.4f} "
-                     f"(calibrated on the site pitch), plane sag at the outline {d.get('sag_at_radius_nm') or 0:.3f} nm")
+                     f"(calibrated on the site pitch), plane sag at the outline {round(d.get('sag_at_radius_nm') or 0, 3) + 0.0:.3f} nm")
     else:
         parts.append(f"depth not calibrated ({d.get('reason', 'not asked for')})")
     if lat.get("applied"):
