@@ -168,3 +168,13 @@ def test_analysis_corrects_run_lengths_and_keeps_file_positions():
     # the file's depth scale lengthens every run by 8 %; the calibration removes it
     assert out[True] < 0.05
     assert out[False] > out[True] + 0.03
+
+
+def test_depth_scale_far_off_is_corrected_with_a_warning(ideal):
+    # a repeat given 15 % too large reads as depths 15 % too short: corrected, and said, with the
+    # pitch found against the lattice's
+    x, y, z = _metal(ideal)
+    reg = register_lattice(x, y, z, ideal.lattice, random_state=0)
+    with pytest.warns(DataQualityWarning, match="repeat every .* nm in depth where the lattice's site pitch gives"):
+        corr = calibrate_reconstruction(x, y, z * 0.85, reg, lateral=False, random_state=0)
+    assert corr.report["depth"]["mean_depth_scale"] == pytest.approx(0.85, rel=0.005)

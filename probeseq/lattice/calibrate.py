@@ -124,10 +124,11 @@ def _warn(cal: DepthCalibration, pre: str, asked: bool) -> None:
         return
     if abs(cal.mean_scale - 1.0) > SCALE_WARN:
         how = "long" if cal.mean_scale > 1 else "short"
-        warnings.warn(f"{pre}the file's depths are {abs(cal.mean_scale - 1) * 100:.0f} % too {how} (depth scale "
-                      f"{cal.mean_scale:.3f} +- {cal.mean_scale_err:.3f} from the site pitch {cal.expected_pitch_nm:.4g} "
-                      "nm): corrected, but check the reconstruction's parameters and the lattice's repeat",
-                      DataQualityWarning, stacklevel=3)
+        warnings.warn(f"{pre}the metal ions repeat every {cal.mean_scale * cal.expected_pitch_nm:.4g} nm in depth where "
+                      f"the lattice's site pitch gives {cal.expected_pitch_nm:.4g} nm: the file's depths are "
+                      f"{abs(cal.mean_scale - 1) * 100:.0f} % too {how} (depth scale {cal.mean_scale:.3f} +- "
+                      f"{cal.mean_scale_err:.3f}); corrected, but check the reconstruction's parameters and the "
+                      "lattice's repeat and sites per repeat", DataQualityWarning, stacklevel=3)
     if cal.contrast_after < WEAK_CONTRAST:
         warnings.warn(f"{pre}the site planes are weakly periodic even after depth calibration (site-phase contrast "
                       f"{cal.contrast_after:.3f}, below {WEAK_CONTRAST}): sites may be cut out of phase",
