@@ -132,13 +132,6 @@ class ReconstructionCorrection:
         return (float(g[0]), float((g.size - 1) / (g[-1] - g[0])), self.depth_nm, self.magnification,
                 np.ascontiguousarray(self.shift_nm), np.ascontiguousarray(self.axis_nm), self.curvature_per_nm)
 
-    def depth_scale(self, z_nm) -> np.ndarray:
-        """Local depth scale ``dz_file / dz_calibrated`` on the axis at file depths ``z_nm``."""
-        g, t = self.grid_z_nm, self.depth_nm
-        slope = np.diff(t) / np.diff(g)
-        i = np.clip(np.searchsorted(g, np.asarray(z_nm, float), side="right") - 1, 0, slope.size - 1)
-        return 1.0 / slope[i]
-
     def to_file(self, x, y, z, n_iter: int = 4):
         """File positions of calibrated positions (the inverse of :meth:`apply`), nm, float64.
 

@@ -64,10 +64,10 @@ def runs_table(columns: RodColumns, decoded) -> dict:
     first, last = np.asarray(runs["first_site"], int), np.asarray(runs["last_site"], int)
     length = np.asarray(runs["length"], int)
     rod = np.asarray(runs["rod"], int)
+    z_ends = file_site_positions(columns, np.r_[rod, rod], np.r_[first, last])[1]  # the file's frame
     return {"rod": rod, "first_site": first, "last_site": last,
             "length_sites": length, "length_nm": length * columns.pitch_nm,
-            "z_start_nm": file_site_positions(columns, rod, first)[1],
-            "z_end_nm": file_site_positions(columns, rod, last)[1],
+            "z_start_nm": z_ends[:rod.size], "z_end_nm": z_ends[rod.size:],
             "metal": np.asarray(columns.metals, dtype=object)[np.asarray(runs["metal"], int)],
             "mean_posterior": np.asarray(runs["mean_posterior"], float)}
 
