@@ -22,7 +22,7 @@ from probeseq.lattice.registration import register_lattice
 from probeseq.pipeline.analysis import analyze, analyze_file
 from probeseq.pipeline.options import AnalysisOptions
 from probeseq.ranging.auto import auto_range
-from probeseq.ranging.channels import assign_channels, detection_balance, draw_metal_ions
+from probeseq.ranging.channels import assign_channels, detection_balance, draw_metal_ions, metal_visibility
 from probeseq.simulation.simulate import simulate_run
 from probeseq.utils.draws import ion_uniforms
 
@@ -322,7 +322,7 @@ def test_file_and_memory_paths_agree_and_chunks_do_not_matter(tmp_path, run, cou
 
 def test_ranging_on_a_stride_of_the_sample_balances_on_the_same_ions(run, counts_only, monkeypatch):
     # with fewer ranging ions than sampled ions, the spectrum is ranged on every k-th sampled ion
-    # and the detection balance must come from the channels of exactly those ions
+    # and the metals' visibility must come from the channels of exactly those ions
     from probeseq.pipeline import stages
 
     ions = run.ions
@@ -331,8 +331,8 @@ def test_ranging_on_a_stride_of_the_sample_balances_on_the_same_ions(run, counts
     m = ions.mass_to_charge
     m_fit = m[::-(-m.size // (len(ions) // 3))]
     assert rr.spectrum.counts.sum() <= m_fit.size < m.size
-    want = detection_balance(rr, assign_channels(m_fit, rr.ranges, METALS))
-    got = [cols.params["detection_balance"][k] for k in METALS]
+    want = metal_visibility(rr, assign_channels(m_fit, rr.ranges, METALS))
+    got = [cols.params["visibility"][k] for k in METALS]
     np.testing.assert_allclose(got, want, rtol=0, atol=0)
 
 

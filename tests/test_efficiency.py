@@ -15,10 +15,10 @@ from probeseq.decoding import rodchain
 from probeseq.decoding.decode import decode, fit_decoder, sample_model
 from probeseq.decoding.efficiency import MIN_RODS, eta_mstep, fit_radial_efficiency
 from probeseq.decoding.hmm import run_em
+from probeseq.decoding.independent import independent_step
 from probeseq.decoding.model import (
     SCREEN_SEGMENT,
     DecoderParams,
-    _indep_step,
     _prepare,
     _rod_data,
     _screen_data,
@@ -249,8 +249,8 @@ def test_independent_sites_model_with_efficiency():
     mask = np.ones(counts.shape[:2], bool)
     mask[5, :20] = False
     cols = make_columns(counts, mask)
-    steps = [_indep_step(_with_efficiency(_rod_data(counts, mask), h)),
-             _indep_step(_with_efficiency(_prepare(counts, mask), h))]
+    steps = [independent_step(_with_efficiency(_rod_data(counts, mask), h)),
+             independent_step(_with_efficiency(_prepare(counts, mask), h))]
     tr = run_em(steps[0], (np.array([0.5, 0.5]), 0.5, np.array([0.1, 0.1])), max_iter=5000, tol=1e-10)
     comp, eta, mu = tr.params
 

@@ -28,7 +28,24 @@ import numpy as np
 
 from ..exceptions import InputError
 
-__all__ = ['runs_table', 'stationary_distribution', 'persistence', 'persistence_per_state', 'mean_run_lengths', 'independent_run_lengths', 'list_runs', 'masked_paths', 'signed_states']
+__all__ = ['runs_table', 'stationary_distribution', 'persistence', 'persistence_per_state', 'mean_run_lengths', 'independent_run_lengths', 'list_runs', 'masked_paths', 'signed_states', 'RUN_LENGTH_DEFINITIONS']
+
+#: what each mean run length of results.json is, in one line (written beside the numbers, so a
+#: reader of results.json, the report or runs.csv knows which is the headline and why they differ)
+RUN_LENGTH_DEFINITIONS = {
+    "mean_run_length_sites": (
+        "headline mean run length, sites: 1 / (1 - P_kk) of the fitted transition matrix P (the mean stay "
+        "of the fitted chain in metal k, from the model's expected transition counts; not shortened by rod "
+        "ends, masked sites or decoding errors); the terminal, the report and the classification use it"),
+    "mean_run_length_nm": "the headline mean run length times the site pitch, nm",
+    "independent_run_length_sites": "1 / (1 - f_k) sites: the mean run length independent sites of the same "
+                                    "composition f would give",
+    "run_length_ratio": "mean_run_length_sites / independent_run_length_sites (1 for independent sites)",
+    "mean_decoded_run_length_sites": (
+        "mean length, sites, of the runs listed in runs.csv (maximal stretches of one metal on the decoded "
+        "Viterbi paths, broken at masked sites); runs cut by a rod end or the mask are included and a "
+        "decoding error splits a run, so it is shorter than the headline mean_run_length_sites"),
+}
 
 def stationary_distribution(transmat) -> np.ndarray:
     """Stationary distribution ``mu`` of transition matrices (``mu P = mu``, ``sum mu = 1``).

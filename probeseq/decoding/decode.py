@@ -14,7 +14,7 @@ from ..exceptions import ConvergenceWarning, DataQualityWarning, InputError
 from ..lattice.rodcolumns import RodColumns
 from ..utils.marks import finite_or_none
 from ..utils.validate import check_seed
-from .chain import runs_table
+from .chain import RUN_LENGTH_DEFINITIONS, runs_table
 from .efficiency import RadialEfficiency, fit_radial_efficiency
 from .hmm import run_em, viterbi
 from .model import (
@@ -32,7 +32,6 @@ from .model import (
     _emission_tm,
     _hmm_estep,
     _hmm_step,
-    _indep_step,
     _initial_params,
     _prepare,
     _Prepared,
@@ -41,6 +40,8 @@ from .model import (
     _subset,
     _with_efficiency,
 )
+
+from .independent import independent_step
 
 __all__ = ['DecodeResult', 'fit_decoder', 'decode', 'sample_model']
 
@@ -72,7 +73,9 @@ class DecodeResult:
     loglik : float
         Log-likelihood of the hidden-Markov model (natural log).
     n_iter : int
-        EM iterations on all rods (0 when parameters were given).
+        EM iterations on all rods after the screening of the starts (0 when parameters were
+        given). Small when the screening already ran on every site (fewer than ``SCREEN_SITES``):
+        the fit then continues from the screened optimum.
     converged : bool
     n_params : int
         ``K (K - 1) + 1 + K`` free parameters.
@@ -111,6 +114,11 @@ class DecodeResult:
         ``"radial fit"`` or ``"given"`` (None with ``rod_efficiency`` None).
     radial_efficiency : RadialEfficiency or None
         The radial efficiency fit of :func:`fit_decoder` (None when not run).
+    n_iter_screening : int
+        EM iterations of the best start on the screening subset (0 when parameters were given).
+    n_obs_screening : int
+        Observed sites of the screening subset (equal to ``n_obs`` when it is every site; 0 when
+        parameters were given).
     """
 
     metals: tuple
@@ -148,11 +156,15 @@ class DecodeResult:
     rod_efficiency: np.ndarray | None = None
     efficiency_source: str | None = None
     radial_efficiency: RadialEfficiency | None = None
+    n_iter_screening: int = 0
+    n_obs_screening: int = 0
+    visibility: np.ndarray | None = None
 
     @property
     def params(self) -> DecoderParams:
         """The parameters as a :class:`DecoderParams` (to decode other columns with them)."""
-        return DecoderParams(transmat=self.transmat, eta=self.eta, extra_rate=self.extra_rate)
+        return DecoderParams(transmat=self.transmat, eta=self.eta, extra_rate=self.extra_rate,
+                             visibility=self.visibility)
 
     def to_dict(self) -> dict:
         """JSON-serialisable summary (no per-site arrays; NaN and infinities become None).
@@ -176,12 +188,17 @@ class DecodeResult:
             "stationary": self.stationary.tolist(),
             "persistence": num(self.persistence),
             "eta": num(self.eta),
+            "visibility": self._visibility_dict(),
             "extra_rate_per_site": self.extra_rate.tolist(),
             "crosstalk_rate_per_site": num(self.crosstalk_rate),
             "background_per_site": self.background.tolist(),
             "extra_fraction": num(self.extra_fraction),
             "loglik": num(self.loglik),
             "n_iter": int(self.n_iter),
+            "n_iter_screening": int(self.n_iter_screening),
+            "n_obs_screening": int(self.n_obs_screening),
+            "n_starts": int(np.size(self.start_logliks)),
+            "fitted": bool(np.size(self.start_logliks) > 0),
             "converged": bool(self.converged),
             "n_params": int(self.n_params),
             "loglik_indep": num(self.loglik_indep),
@@ -199,11 +216,22 @@ class DecodeResult:
             "fraction_uncertain": num(self.uncertain.sum() / max(self.n_obs, 1)),
             "n_runs": int(lengths.size),
             "mean_decoded_run_length_sites": mean_run,
+            "mean_decoded_run_length_definition": RUN_LENGTH_DEFINITIONS["mean_decoded_run_length_sites"],
             "start_logliks": [num(v) for v in self.start_logliks],
             "warnings": list(self.warnings),
             "efficiency": self._efficiency_dict(),
             "radial_efficiency": None if self.radial_efficiency is None else self.radial_efficiency.to_dict(),
         }
+
+    def _visibility_dict(self) -> dict:
+        """Per metal: the share of its ions the ranging counts as it (``a_k``), and the share of its
+        sites whose own ion was counted (``eta a_k``)."""
+        vis = np.ones(len(self.metals)) if self.visibility is None else np.asarray(self.visibility, float)
+        return {"relative": {m: finite_or_none(v) for m, v in zip(self.metals, vis)},
+                "sites_seen": {m: finite_or_none(self.eta * v) for m, v in zip(self.metals, vis)},
+                "definition": ("eta is the instrument's detection efficiency; a metal's relative visibility is "
+                               "the share of its ions the ranging counts as that metal (from the mass "
+                               "spectrum), so a site of it shows its own ion with probability eta times that")}
 
     def _efficiency_dict(self) -> dict:
         """How the detection efficiency varied between rods (``eta`` alone when it did not)."""
@@ -286,6 +314,22 @@ def _check_uncertain(uncertain_below):
         raise InputError(f"uncertain_below must be a probability in (0, 1], got {uncertain_below!r}")
 
 
+def _check_visibility(visibility, columns: RodColumns):
+    """The per-metal visibility as (K,) floats in (0, 1], or None for 1 everywhere."""
+    if visibility is None:
+        stored = (columns.params or {}).get("visibility")
+        if not isinstance(stored, dict):
+            return None
+        visibility = [stored.get(m, 1.0) for m in columns.metals]
+    try:
+        v = np.array(visibility, dtype=np.float64).reshape(-1)
+    except (TypeError, ValueError):
+        raise InputError(f"visibility must be {columns.n_metals} numbers in (0, 1], one per metal") from None
+    if v.shape != (columns.n_metals,) or not (np.isfinite(v).all() and (v > 0).all() and (v <= 1).all()):
+        raise InputError(f"visibility must be {columns.n_metals} numbers in (0, 1], one per metal, got {visibility!r}")
+    return None if np.all(v == 1.0) else v
+
+
 def _check_rod_efficiency(rod_efficiency, columns: RodColumns, eta: float | None = None):
     """The per-rod efficiency as a float64 array, or None when it is None or 1 for every rod."""
     if rod_efficiency is None:
@@ -352,7 +396,7 @@ def _n_params(k: int) -> tuple[int, int]:
 
 def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n_iter, converged,
                   loglik_indep, start_logliks, history, notes, rod_efficiency=None, efficiency_source=None,
-                  radial=None) -> DecodeResult:
+                  radial=None, screening=(0, 0)) -> DecodeResult:
     path, post, uncertain, per_rod_xi, occupancy, runs = decoded
     k = params.n_metals
     n_par, n_par_ind = _n_params(k)
@@ -380,7 +424,7 @@ def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n
         extra_rate=mu.copy(),
         crosstalk_rate=params.crosstalk_rate,
         background=params.background,
-        extra_fraction=float(mu.sum() / (params.eta + mu.sum())),
+        extra_fraction=float(mu.sum() / (float(params.state_eta @ params.stationary) + mu.sum())),
         loglik=float(loglik),
         n_iter=int(n_iter),
         converged=bool(converged),
@@ -404,9 +448,12 @@ def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n
         start_logliks=np.asarray(start_logliks, dtype=float),
         loglik_history=np.asarray(history, dtype=float),
         warnings=list(notes),
+        visibility=params.visibility.copy(),
         rod_efficiency=None if rod_efficiency is None else rod_efficiency.copy(),
         efficiency_source=None if rod_efficiency is None else efficiency_source,
         radial_efficiency=radial,
+        n_iter_screening=int(screening[0]),
+        n_obs_screening=int(screening[1]),
     )
 
 
@@ -480,8 +527,8 @@ def _fit_efficiency(columns: RodColumns, rod_efficiency, radial_efficiency: bool
 
 def _fit_independent(prep, params: DecoderParams, rng, k: int, max_iter: int, tol_abs: float, notes: list):
     """The independent-sites model, from the Markov fit and from the moment start; the best trace."""
-    ind_step = _indep_step(prep)
-    p_mom = _initial_params(prep, rng, k, random=False)
+    ind_step = independent_step(prep, params.visibility)
+    p_mom = _initial_params(prep, rng, k, random=False, visibility=params.visibility)
     ind_traces = [
         run_em(ind_step, (params.stationary, params.eta, params.extra_rate), max_iter=max_iter, tol=tol_abs),
         run_em(ind_step, (p_mom.stationary, p_mom.eta, p_mom.extra_rate), max_iter=max_iter, tol=tol_abs),
@@ -501,6 +548,7 @@ def fit_decoder(
     engine: str = "compiled",
     rod_efficiency=None,
     radial_efficiency: bool = True,
+    visibility=None,
 ) -> DecodeResult:
     """Fit the rod model to all rods by EM, then decode every rod.
 
@@ -538,6 +586,9 @@ def fit_decoder(
         (:func:`probeseq.decoding.efficiency.fit_radial_efficiency`), use its ``per_rod`` when it
         is ``applied`` (significant, enough rods) and keep the fit in the result
         (``radial_efficiency``). False: the same efficiency for every rod, as before.
+    visibility : (K,) array_like of float in (0, 1], optional
+        Relative visibility ``a_k`` of each metal (:class:`DecoderParams`). None: the count stage's
+        ``columns.params["visibility"]`` when present, else 1 for every metal.
 
     Returns
     -------
@@ -566,6 +617,7 @@ def fit_decoder(
         warnings.warn(msg, DataQualityWarning, stacklevel=2)
     rng = np.random.default_rng(random_state)
     k = columns.n_metals
+    vis = _check_visibility(visibility, columns)
     compiled = engine == "compiled"
     if compiled:
         prep = _with_efficiency(_rod_data(columns.counts, columns.mask), h)
@@ -581,7 +633,7 @@ def fit_decoder(
     screen_step = make_step(screen)
     starts = []
     for i in range(n_starts):
-        p0 = _initial_params(screen, rng, k, random=i > 0)
+        p0 = _initial_params(screen, rng, k, random=i > 0, visibility=vis)
         tr = run_em(screen_step, p0, max_iter=min(SCREEN_ITER, max_iter), tol=tol * screen.n_obs)
         starts.append(tr)
     start_ll = [tr.loglik for tr in starts]
@@ -604,7 +656,7 @@ def fit_decoder(
         columns, params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below,
         n_iter=trace.n_iter, converged=trace.converged, loglik_indep=ind.loglik,
         start_logliks=start_ll, history=trace.history, notes=notes, rod_efficiency=h, efficiency_source=source,
-        radial=radial,
+        radial=radial, screening=(best.n_iter, screen.n_obs),
     )
 
 
@@ -646,6 +698,8 @@ def sample_model(params: DecoderParams, n_rods: int, n_sites: int, random_state=
         if h.shape != (n_rods,) or not (np.isfinite(h).all() and (h > 0).all() and params.eta * h.max() <= 1.0):
             raise InputError(f"rod_efficiency must be {n_rods} positive numbers with eta * h <= 1")
         rate, eta = params.extra_rate[None, None, :] * h[:, None, None], (params.eta * h)[:, None]
+    if not params.uniform_visibility:
+        eta = eta * params.visibility[states]  # a site of metal k shows its own ion with eta a_k
     counts = rng.poisson(rate, size=(n_rods, n_sites, k)).astype(float)
     det = rng.random((n_rods, n_sites)) < eta
     r, t = np.nonzero(det)

@@ -151,11 +151,18 @@ class DecoderParams:
         Probability that a site's own ion is detected (detection efficiency), in (0, 1).
     extra_rate : (K,) ndarray of float, counts per site
         Mean number of extra counts (crosstalk + background) per site in each channel, > 0.
+    visibility : (K,) ndarray of float, optional
+        Relative visibility ``a_k`` of each metal, in (0, 1]: the share of a metal's ions that the
+        ranging counts as that metal (its lines' capture by the ranges and the share of shared
+        ranges), known from the mass spectrum. A site of metal k shows its own ion with
+        probability ``eta a_k``; ``eta`` is then the instrument's detection efficiency. None: 1
+        for every metal.
     """
 
     transmat: np.ndarray
     eta: float
     extra_rate: np.ndarray
+    visibility: np.ndarray | None = None
 
     def __post_init__(self):
         a = np.asarray(self.transmat, dtype=float)
@@ -171,9 +178,13 @@ class DecoderParams:
             raise InputError(
                 f"params.extra_rate must be {a.shape[0]} positive rates (counts per site), got {self.extra_rate!r}"
             )
+        vis = np.ones(a.shape[0]) if self.visibility is None else np.asarray(self.visibility, float).reshape(-1)
+        if vis.shape != (a.shape[0],) or not np.all(np.isfinite(vis)) or np.any(vis <= 0) or np.any(vis > 1):
+            raise InputError(f"params.visibility must be {a.shape[0]} values in (0, 1], got {self.visibility!r}")
         object.__setattr__(self, "transmat", a / a.sum(1, keepdims=True))
         object.__setattr__(self, "eta", eta)
         object.__setattr__(self, "extra_rate", mu)
+        object.__setattr__(self, "visibility", vis)
 
     @classmethod
     def from_components(cls, transmat, eta, crosstalk_rate, background) -> "DecoderParams":
@@ -196,6 +207,20 @@ class DecoderParams:
     @property
     def n_metals(self) -> int:
         return int(self.transmat.shape[0])
+
+    @property
+    def state_eta(self) -> np.ndarray:
+        """Detection probability of the own ion of a site of each metal, ``eta a_k``, (K,)."""
+        return self.eta * self.visibility
+
+    @property
+    def uniform_visibility(self) -> bool:
+        """True when every metal has visibility 1 (the state's ``eta`` is the scalar ``eta``)."""
+        return bool(np.all(self.visibility == 1.0))
+
+    def with_fit(self, transmat, eta, extra_rate) -> "DecoderParams":
+        """New parameters with these fitted values and the same visibility."""
+        return DecoderParams(transmat=transmat, eta=eta, extra_rate=extra_rate, visibility=self.visibility)
 
     @property
     def stationary(self) -> np.ndarray:
@@ -233,6 +258,8 @@ class DecoderParams:
             "persistence": self.persistence,
             "crosstalk_rate": self.crosstalk_rate,
             "background": self.background.tolist(),
+            "visibility": self.visibility.tolist(),
+            "state_eta": self.state_eta.tolist(),
         }
 
 
@@ -292,7 +319,41 @@ def emission_factors(counts, params: DecoderParams, efficiency=None) -> np.ndarr
     h = 1.0 if efficiency is None else np.asarray(efficiency, dtype=float)[..., None]
     n, pi, pi_none = split_counts(counts)
     _, _, xe = _split_terms(n, pi, pi_none, params.extra_rate * h)
-    return (1.0 - params.eta * h) + xe * (params.eta / params.extra_rate)
+    ev = _eta_of(params)
+    return (1.0 - ev * h) + xe * (ev / params.extra_rate)
+
+
+def _eta_of(params: DecoderParams):
+    """The own-ion detection probability as the formulas use it: the scalar ``eta`` when every
+    metal has visibility 1 (so results are those of the scalar model to the bit), else ``eta a_k``
+    per state, (K,)."""
+    return params.eta if params.uniform_visibility else params.state_eta
+
+
+def eta_update(params: DecoderParams, own, sites, h=None) -> float:
+    """M-step of the instrument efficiency ``eta`` from the expected own ions and observed sites
+    per state (and per rod with a per-rod efficiency ``h``).
+
+    Parameters
+    ----------
+    params : DecoderParams
+        The current parameters (their visibility ``a``).
+    own, sites : (K,) or (R, K) ndarray of float
+        Expected detected own ions and expected observed sites in each state (of each rod).
+    h : (R,) ndarray of float, optional
+        Relative efficiency of each rod (rows of ``own``).
+
+    Returns
+    -------
+    float
+        ``sum(own) / sum(sites)`` with visibility 1 and no ``h``; else the exact M-step
+        (:func:`probeseq.decoding.efficiency.eta_mstep`) over the groups (rod, state), ``h_r a_k``.
+    """
+    own, sites = np.asarray(own, dtype=float), np.asarray(sites, dtype=float)
+    if h is None and params.uniform_visibility:
+        return float(np.clip(own.sum() / sites.sum(), *ETA_BOUNDS))
+    rel = np.broadcast_to(params.visibility if h is None else np.outer(h, params.visibility), own.shape)
+    return eta_mstep(rel.reshape(-1), sites.reshape(-1), own.reshape(-1), ETA_BOUNDS)
 
 
 def emission_baseline(counts, extra_rate, efficiency=None) -> np.ndarray:
@@ -544,18 +605,24 @@ def _compiled_step(data: _RodData):
     h_rows = None if eff is None else eff.h_rows
 
     def step(params: DecoderParams):
-        ll, xi, g0, own, adj, _, own_rod = fit_pass(data.counts, data.mask, data.rods, data.first, data.span,
-                                                    params.eta, params.extra_rate, params.transmat,
-                                                    params.stationary, h_rows)
+        fp = fit_pass(data.counts, data.mask, data.rods, data.first, data.span, _eta_of(params),
+                      params.extra_rate, params.transmat, params.stationary, h_rows)
+        own, adj = fp.own, fp.split_extra
         if eff is None:
             n = data.n_obs
-            eta = float(np.clip(own.sum() / n, *ETA_BOUNDS))
+            if params.uniform_visibility:
+                eta = float(np.clip(own.sum() / n, *ETA_BOUNDS))
+            else:
+                eta = eta_update(params, own, fp.sites_per_rod_state.sum(axis=0))
             mu = np.maximum((data.sum_n + adj - own) / n, MIN_RATE)
         else:
-            eta = eta_mstep(eff.h, eff.n_sites, own_rod, ETA_BOUNDS)
+            if params.uniform_visibility:
+                eta = eta_mstep(eff.h, eff.n_sites, fp.own_per_rod_state.sum(axis=1), ETA_BOUNDS)
+            else:
+                eta = eta_update(params, fp.own_per_rod_state, fp.sites_per_rod_state, eff.h)
             mu = np.maximum((data.sum_n + adj - own) / eff.sum_h, MIN_RATE)
-        a = update_transmat(xi, g0, params.transmat)
-        return ll + _baseline(data, params.extra_rate), DecoderParams(transmat=a, eta=eta, extra_rate=mu)
+        a = update_transmat(fp.xi, fp.first_posterior, params.transmat)
+        return fp.loglik + _baseline(data, params.extra_rate), params.with_fit(a, eta, mu)
 
     return step
 
@@ -565,7 +632,7 @@ def _decode_compiled(columns: RodColumns, data: _RodData, params: DecoderParams,
     from .rodchain import decode_pass
 
     ll, post, path, uncertain, per_rod_xi, occupancy = decode_pass(
-        data.counts, data.mask, data.rods, data.first, data.span, params.eta, params.extra_rate,
+        data.counts, data.mask, data.rods, data.first, data.span, _eta_of(params), params.extra_rate,
         params.transmat, params.stationary, uncertain_below, None if data.eff is None else data.eff.h_rows)
     runs = runs_table(path, data.mask, post)
     return ll + _baseline(data, params.extra_rate), path, post, uncertain, per_rod_xi, occupancy, runs
@@ -586,12 +653,17 @@ def _baseline(prep: _Prepared, mu: np.ndarray, b_split=None) -> float:
 def _emission_tm(prep: _Prepared, params: DecoderParams):
     """Emission factors (L, R', K), time-major (1 - eta h_r at empty and unobserved cells), and
     the split-ion terms of the sites that have one (with ``1 - eta h_r`` of their rods, or None)."""
-    eta, mu = params.eta, params.extra_rate
+    eta, mu = _eta_of(params), params.extra_rate
     if prep.eff is None:
         emis = np.full(prep.x.shape, 1.0 - eta)
-    else:
+    elif np.ndim(eta) == 0:
         emis = np.empty(prep.x.shape)
         emis[...] = (1.0 - eta * prep.eff.h)[None, :, None]
+    else:
+        emis = np.empty(prep.x.shape)
+        emis[...] = 1.0 - prep.eff.h[None, :, None] * eta
+    if np.ndim(eta):
+        emis[~prep.obs] = 1.0  # a state-dependent 1 - eta_k must not weigh unobserved cells
     emis.reshape(-1)[prep.nz_flat] += prep.nz_x * (eta / mu)[prep.nz_k]
     split = None
     if prep.fs_cell.size:
@@ -599,7 +671,7 @@ def _emission_tm(prep: _Prepared, params: DecoderParams):
             ome, mu_s = None, mu
         else:
             h_s = prep.eff.h[prep.fs_cell % prep.x.shape[1]]
-            ome, mu_s = (1.0 - eta * h_s)[:, None], mu * h_s[:, None]
+            ome, mu_s = 1.0 - h_s[:, None] * eta, mu * h_s[:, None]
         c, b, xe = _split_terms(prep.fs_n, prep.fs_pi, prep.fs_pi_none, mu_s)
         fac = ((1.0 - eta) if ome is None else ome) + xe * (eta / mu)
         emis.reshape(-1, mu.size)[prep.fs_cell] = fac
@@ -619,7 +691,7 @@ def _split_expected_counts(n, c, b, gamma, eta, mu, fac, ome=None):
 def _hmm_estep(prep: _Prepared, params: DecoderParams, *, final: bool = False):
     """Forward-backward on the prepared rods; returns loglik, the result and (unless ``final``)
     :func:`_expected_own`."""
-    eta, mu = params.eta, params.extra_rate
+    eta, mu = _eta_of(params), params.extra_rate
     emis, split = _emission_tm(prep, params)
     fb = forward_backward_scaled(
         emis,  # used as work space
@@ -633,7 +705,9 @@ def _hmm_estep(prep: _Prepared, params: DecoderParams, *, final: bool = False):
     )
     del emis
     # unobserved cells carried the state-independent factor 1 - eta h_r: remove it
-    if prep.eff is None:
+    if np.ndim(eta):
+        ll_rods = fb.loglik  # unobserved cells carried 1
+    elif prep.eff is None:
         ll_rods = fb.loglik - (~prep.obs).sum(axis=0) * math.log(1.0 - eta)
     else:
         ll_rods = fb.loglik - (~prep.obs).sum(axis=0) * np.log(1.0 - eta * prep.eff.h)
@@ -644,22 +718,22 @@ def _hmm_estep(prep: _Prepared, params: DecoderParams, *, final: bool = False):
 
 
 def _expected_own(prep: _Prepared, params: DecoderParams, posteriors, split):
-    """Expected own ions per channel, expected whole counts per channel and (with a per-rod
-    efficiency, else None) expected own ions per rod, from the state posteriors (R', L, K)."""
-    eta, mu = params.eta, params.extra_rate
+    """Expected own ions per channel, expected whole counts per channel and expected own ions per
+    rod and state (R', K), from the state posteriors (R', L, K)."""
+    eta, mu = _eta_of(params), params.extra_rate
+    ev = np.broadcast_to(eta, mu.shape)
     k = mu.size
     # detection posterior r_k = eta xe_k / mu_k / factor_k, zero where xe_k = 0: the sums run
     # over the nonzero whole counts and the split-ion sites only
     gamma_flat = posteriors.transpose(1, 0, 2).reshape(-1)  # time-major, contiguous
     q = prep.nz_x * (eta / mu)[prep.nz_k]
     n_r = prep.x.shape[1]
+    nz_rod = (prep.nz_flat // k) % n_r
     if prep.eff is None:
-        w_own = gamma_flat[prep.nz_flat] * (q / ((1.0 - eta) + q))
-        own_rod = None
+        w_own = gamma_flat[prep.nz_flat] * (q / ((1.0 - ev[prep.nz_k]) + q))
     else:
-        nz_rod = (prep.nz_flat // k) % n_r
-        w_own = gamma_flat[prep.nz_flat] * (q / ((1.0 - eta * prep.eff.h[nz_rod]) + q))
-        own_rod = np.bincount(nz_rod, weights=w_own, minlength=n_r).astype(float)
+        w_own = gamma_flat[prep.nz_flat] * (q / ((1.0 - ev[prep.nz_k] * prep.eff.h[nz_rod]) + q))
+    own_rod = np.bincount(nz_rod * k + prep.nz_k, weights=w_own, minlength=n_r * k).astype(float).reshape(n_r, k)
     own = np.bincount(prep.nz_k, weights=w_own, minlength=k).astype(float)
     counts = prep.sum_n.copy()
     if split is not None:
@@ -667,8 +741,9 @@ def _expected_own(prep: _Prepared, params: DecoderParams, posteriors, split):
         g = gamma_flat.reshape(-1, k)[prep.fs_cell]
         own_s = g * (xe * (eta / mu) / fac)
         own += own_s.sum(axis=0)
-        if own_rod is not None:
-            own_rod += np.bincount(prep.fs_cell % n_r, weights=own_s.sum(axis=1), minlength=n_r)
+        fs_rod = prep.fs_cell % n_r
+        for j in range(k):
+            own_rod[:, j] += np.bincount(fs_rod, weights=own_s[:, j], minlength=n_r)
         counts += (_split_expected_counts(prep.fs_n, c, b, g, eta, mu, fac, ome) - prep.fs_n).sum(axis=0)
     return own, counts, own_rod
 
@@ -676,94 +751,32 @@ def _expected_own(prep: _Prepared, params: DecoderParams, posteriors, split):
 def _hmm_step(prep: _Prepared):
     def step(params: DecoderParams):
         loglik, fb, (own, counts, own_rod) = _hmm_estep(prep, params)
+        sites = None
+        if not params.uniform_visibility:  # expected observed sites per rod and state
+            sites = np.einsum("rlk,lr->rk", fb.posteriors, prep.obs.astype(float))
         if prep.eff is None:
             n = prep.n_obs
-            eta = float(np.clip(own.sum() / n, *ETA_BOUNDS))
+            eta = (float(np.clip(own.sum() / n, *ETA_BOUNDS)) if sites is None
+                   else eta_update(params, own, sites.sum(axis=0)))
             mu = np.maximum((counts - own) / n, MIN_RATE)
         else:
-            eta = eta_mstep(prep.eff.h, prep.eff.n_sites, own_rod, ETA_BOUNDS)
+            eta = (eta_mstep(prep.eff.h, prep.eff.n_sites, own_rod.sum(axis=1), ETA_BOUNDS) if sites is None
+                   else eta_update(params, own_rod, sites, prep.eff.h))
             mu = np.maximum((counts - own) / prep.eff.sum_h, MIN_RATE)
         first_post = fb.posteriors[:, 0, :].sum(axis=0)
         a = update_transmat(fb.xi, first_post, params.transmat)
-        return loglik, DecoderParams(transmat=a, eta=eta, extra_rate=mu)
+        return loglik, params.with_fit(a, eta, mu)
 
     return step
 
 
-def _indep_step(prep):
-    """EM step of the independent-sites model, from the distinct count vectors of the sites."""
-    if prep.eff is not None:
-        return _indep_step_eff(prep)
-    if isinstance(prep, _RodData):
-        x, mult = prep.distinct_rows, prep.distinct_mult
-    else:
-        x, mult = _unique_rows(prep.x_obs)
-    n_int, pi, pi_none = split_counts(x)
-    n = prep.n_obs
-    lf = float(mult @ gammaln(n_int + 1.0).sum(axis=1))
-    sum_n = mult @ n_int
-
-    def step(state):
-        comp, eta, mu = state
-        c, b, xe = _split_terms(n_int, pi, pi_none, mu)  # (U, K) distinct count vectors
-        fac = (1.0 - eta) + xe * (eta / mu)
-        w = fac * comp
-        tot = w.sum(axis=1)
-        base = float(sum_n @ np.log(mu)) - n * mu.sum() - lf + float(mult @ np.log(b))
-        loglik = float(mult @ np.log(tot)) + base
-        gamma = w / tot[:, None]
-        own = mult @ (gamma * (xe * (eta / mu) / fac))
-        counts = mult @ _split_expected_counts(n_int, c, b, gamma, eta, mu, fac)
-        comp_new = (mult @ gamma) / n
-        eta_new = float(np.clip(own.sum() / n, *ETA_BOUNDS))
-        mu_new = np.maximum((counts - own) / n, MIN_RATE)
-        return loglik, (comp_new, eta_new, mu_new)
-
-    return step
-
-
-def _indep_step_eff(prep):
-    """:func:`_indep_step` with a per-rod efficiency: the distinct count vectors of each group of
-    rods with one ``h``, whose sites have ``1 - eta h`` and rates ``mu h``."""
-    h_vals, h_group = np.unique(prep.eff.h_rows, return_inverse=True)
-    h_group = h_group.reshape(-1)
-    if isinstance(prep, _RodData):
-        blocks = ((prep.counts[b0:b0 + _BLOCK_RODS][prep.mask[b0:b0 + _BLOCK_RODS]].astype(np.float64),
-                   np.repeat(h_group[b0:b0 + _BLOCK_RODS], prep.mask[b0:b0 + _BLOCK_RODS].sum(axis=1)))
-                  for b0 in range(0, prep.counts.shape[0], _BLOCK_RODS))
-    else:
-        blocks = [(prep.x_obs, h_group[prep.rods][np.nonzero(prep.obs)[1]])]  # x_obs is time-major
-    x, grp, mult = distinct_rows_by_group(blocks, h_vals.size)
-    hu = h_vals[grp]
-    n_int, pi, pi_none = split_counts(x)
-    n = prep.n_obs
-    lf = float(mult @ gammaln(n_int + 1.0).sum(axis=1))
-    sum_n = mult @ n_int
-    log_h = float(mult @ (n_int.sum(axis=1) * np.log(hu)))
-    sum_h = float(mult @ hu)
-
-    def step(state):
-        comp, eta, mu = state
-        c, b, xe = _split_terms(n_int, pi, pi_none, mu * hu[:, None])
-        ome = (1.0 - eta * hu)[:, None]
-        fac = ome + xe * (eta / mu)
-        w = fac * comp
-        tot = w.sum(axis=1)
-        base = float(sum_n @ np.log(mu)) + log_h - sum_h * mu.sum() - lf + float(mult @ np.log(b))
-        loglik = float(mult @ np.log(tot)) + base
-        gamma = w / tot[:, None]
-        own_u = gamma * (xe * (eta / mu) / fac)
-        own = mult @ own_u
-        counts = mult @ _split_expected_counts(n_int, c, b, gamma, eta, mu, fac, ome)
-        eta_new = eta_mstep(hu, mult, mult * own_u.sum(axis=1), ETA_BOUNDS)
-        mu_new = np.maximum((counts - own) / sum_h, MIN_RATE)
-        return loglik, ((mult @ gamma) / n, eta_new, mu_new)
-
-    return step
-
-
-def _initial_params(prep: _Prepared, rng, k: int, random: bool) -> DecoderParams:
+def _initial_params(prep: _Prepared, rng, k: int, random: bool, visibility=None) -> DecoderParams:
     comp = prep.sum_x / prep.sum_x.sum()
+    vis = np.ones(k) if visibility is None else np.asarray(visibility, dtype=float)
+    if np.any(vis != 1.0):
+        # own ions show as eta a_k f_k: start from the composition of the sites, not of the counts
+        comp = comp / vis
+        comp = comp / comp.sum()
     mean_t = prep.totals_mean
     if random:
         eta = float(rng.uniform(0.15, 0.9))
@@ -774,11 +787,13 @@ def _initial_params(prep: _Prepared, rng, k: int, random: bool) -> DecoderParams
         eta = math.sqrt(max(mean_t - prep.totals_var, 0.0025))
         lam = 0.5
     eta = float(np.clip(min(eta, 0.95 * mean_t if mean_t > 0 else eta), 0.05, 0.95))
+    if np.any(vis != 1.0):  # the moments see the visible efficiency eta sum_k a_k f_k
+        eta = float(min(eta / float(vis @ comp), 0.95 / float(vis.max())))
     if prep.eff is not None:
-        eta = min(eta, 0.95 / prep.eff.max_h)  # every rod's eta h below 1
+        eta = min(eta, 0.95 / (prep.eff.max_h * float(vis.max())))  # every rod's eta a_k h below 1
     a = lam * np.eye(k) + (1.0 - lam) * comp[None, :]
     if random:
         a = 0.9 * a + 0.1 * rng.dirichlet(np.ones(k), size=k)
     m = prep.sum_x / prep.n_obs
-    mu = np.maximum(np.maximum(m - eta * comp, 0.05 * m), MIN_RATE)
-    return DecoderParams(transmat=a / a.sum(1, keepdims=True), eta=eta, extra_rate=mu)
+    mu = np.maximum(np.maximum(m - eta * vis * comp, 0.05 * m), MIN_RATE)
+    return DecoderParams(transmat=a / a.sum(1, keepdims=True), eta=eta, extra_rate=mu, visibility=visibility)

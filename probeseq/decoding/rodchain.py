@@ -38,6 +38,7 @@ factors is shared by the rods with ``h_r = 1`` and built per rod (16 entries) fo
 from __future__ import annotations
 
 import math
+from typing import NamedTuple
 
 import numba
 import numpy as np
@@ -84,7 +85,7 @@ def _site(counts, r, t, ome, coef, mu, kt, n_out, fac_out, s, c_out):
         msum += phi
     if msum == 0.0:
         for j in range(k):
-            fac_out[s, j] = ome + n_out[j] * coef[j]
+            fac_out[s, j] = ome[j] + n_out[j] * coef[j]
             c_out[j] = 0.0
         return 1.0, False
     denom = max(msum, 1.0)
@@ -99,7 +100,7 @@ def _site(counts, r, t, ome, coef, mu, kt, n_out, fac_out, s, c_out):
         b += c_out[j]
     for j in range(k):
         xe = n_out[j] + c_out[j] / b
-        fac_out[s, j] = ome + xe * coef[j]
+        fac_out[s, j] = ome[j] + xe * coef[j]
     return b, True
 
 
@@ -137,7 +138,7 @@ def _forward(counts, mask, r, t0, length, ome, mu, coef, a, p, alpha, fac, invc,
                 n = math.floor(v + _EPS)
                 if v - n >= _EPS:
                     whole = False
-                fac[s, j] = ome + n * coef[j]
+                fac[s, j] = ome[j] + n * coef[j]
                 if viterbi:
                     le[j] = ltab[j, int(n)] if n < n_tab else math.log(fac[s, j])
             if not whole:
@@ -220,7 +221,7 @@ def _store_rod(q, occl, xil, occ, xi):
 
 
 @numba.njit(cache=True, nogil=True, parallel=True, error_model="numpy")
-def _fit_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, ll, xi, g0, own, adj, kt):
+def _fit_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, ll, xi, g0, own, adj, gobs, kt):
     n_rods = rods.size
     k = len(kt)
     coef = eta / mu
@@ -244,9 +245,11 @@ def _fit_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, ll, xi, g0, o
         xil = np.zeros((k, k))
         ownl = np.zeros(k)
         hr = h[r]
-        ome = 1.0 - eta * hr  # the rod's 1 - eta_r; exactly 1 - eta when h_r = 1
+        ome = np.empty(k)  # the rod's 1 - eta_j h_r per state; exactly 1 - eta_j when h_r = 1
         mur = np.empty(k)
+        gl = np.zeros(k)
         for j in range(k):
+            ome[j] = 1.0 - eta[j] * hr
             mur[j] = mu[j] * hr
         logc, log_b = _forward(counts, mask, r, t0, length, ome, mur, coef, a, p, alpha, fac, invc, nb, cb, spl,
                                kt, (), no_tab, no_tab, no_vec, no_vit, no_back)
@@ -257,14 +260,15 @@ def _fit_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, ll, xi, g0, o
             if mask[r, t]:
                 for j in range(k):
                     f = fac[s, j]
-                    if f != ome:
-                        # detection posterior eta xe_j / mu_j / f_j = 1 - (1 - eta) / f_j
-                        ownl[j] += alpha[s, j] * beta[j] * (1.0 - ome / f)
+                    gl[j] += alpha[s, j] * beta[j]
+                    if f != ome[j]:
+                        # detection posterior eta_j xe_j / mu_j / f_j = 1 - (1 - eta_j) / f_j
+                        ownl[j] += alpha[s, j] * beta[j] * (1.0 - ome[j] / f)
                 if spl[s]:
                     b, _ = _site(counts, r, t, ome, coef, mur, kt, nb, fac, s, cb)
                     ssum = 0.0
                     for j in range(k):
-                        ssum += alpha[s, j] * beta[j] * (ome + nb[j] * coef[j]) / fac[s, j]
+                        ssum += alpha[s, j] * beta[j] * (ome[j] + nb[j] * coef[j]) / fac[s, j]
                     for j in range(k):
                         g = alpha[s, j] * beta[j]
                         adj[q, j] += (cb[j] / b) * (ssum + g * coef[j] / fac[s, j])
@@ -274,6 +278,8 @@ def _fit_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, ll, xi, g0, o
                 break
             _backward_step(alpha, fac, invc[s], a, s, beta, nbeta, w, xil, True)
         _store_rod(q, ownl, xil, own, xi)
+        for j in range(k):
+            gobs[q, j] = gl[j]
 
 
 @numba.njit(cache=True, nogil=True, parallel=True, error_model="numpy")
@@ -286,7 +292,7 @@ def _decode_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, below, ll,
     ltab = np.empty((k, n_tab))  # log factors of whole counts, for the rods with h_r = 1
     for j in range(k):
         for n in range(n_tab):
-            ltab[j, n] = math.log((1.0 - eta) + n * coef[j])
+            ltab[j, n] = math.log((1.0 - eta[j]) + n * coef[j])
     loga = np.empty((k, k))
     for i in range(k):
         for j in range(k):
@@ -312,16 +318,17 @@ def _decode_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, below, ll,
         occl = np.zeros(k)
         vit = np.empty((length, k))
         hr = h[r]
-        ome = 1.0 - eta * hr
+        ome = np.empty(k)
         mur = np.empty(k)
         for j in range(k):
+            ome[j] = 1.0 - eta[j] * hr
             mur[j] = mu[j] * hr
         tab = ltab
         if hr != 1.0:
             tab = np.empty((k, 16))
             for j in range(k):
                 for n in range(16):
-                    tab[j, n] = math.log(ome + n * coef[j])
+                    tab[j, n] = math.log(ome[j] + n * coef[j])
         logc, log_b = _forward(counts, mask, r, t0, length, ome, mur, coef, a, p, alpha, fac, invc, nb, cb, spl,
                                kt, (0,), tab, loga, logp, vit, back)
         ll[q] = logc + log_b
@@ -385,6 +392,26 @@ def _rod_efficiency(h, n_rods: int) -> np.ndarray:
     return h
 
 
+def _state_eta(eta, k: int) -> np.ndarray:
+    """The detection probability of each state's own ion as the kernels take it: (k,) float64
+    (a scalar is the same for every state)."""
+    v = np.ascontiguousarray(np.broadcast_to(np.asarray(eta, dtype=np.float64), (k,)))
+    return v.copy() if not v.flags.writeable else v
+
+
+class FitPassResult(NamedTuple):
+    """What one E-step of :func:`fit_pass` returns."""
+
+    loglik: float
+    xi: np.ndarray
+    first_posterior: np.ndarray
+    own: np.ndarray
+    split_extra: np.ndarray
+    loglik_per_rod: np.ndarray
+    own_per_rod_state: np.ndarray
+    sites_per_rod_state: np.ndarray
+
+
 def fit_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, rod_efficiency=None):
     """One E-step over the given rods.
 
@@ -394,7 +421,9 @@ def fit_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, rod_
     mask : (n_rods, n_sites) ndarray of bool
     rods, first, span : (R,) ndarray of int64
         Rods to use, their first observed site and span (see :func:`spans`).
-    eta : float
+    eta : float or (K,) ndarray of float
+        Detection probability of a site's own ion, the same for every state or one per state
+        (``eta_k = eta a_k`` with the per-metal visibility ``a_k``).
     mu : (K,) ndarray of float
     transmat : (K, K) ndarray of float
     startprob : (K,) ndarray of float
@@ -417,9 +446,13 @@ def fit_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, rod_
         Expected whole counts beyond the integer parts, from split-ion sites.
     loglik_per_rod : (R,) ndarray
         ``loglik`` of each of the given rods.
-    own_per_rod : (R,) ndarray
-        Expected own (detected) ions of each of the given rods, all channels (for the M-step of
-        ``eta`` with a per-rod efficiency).
+    own_per_rod_state : (R, K) ndarray
+        Expected own (detected) ions of each of the given rods in each state (for the M-step of
+        ``eta`` with per-state visibilities or a per-rod efficiency).
+    sites_per_rod_state : (R, K) ndarray
+        Expected observed sites of each of the given rods in each state.
+
+    Returns a :class:`FitPassResult`.
     """
     k = mu.size
     n = rods.size
@@ -428,12 +461,14 @@ def fit_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, rod_
     g0 = np.zeros((n, k))
     own = np.zeros((n, k))
     adj = np.zeros((n, k))
+    gobs = np.zeros((n, k))
     runtime.ensure()
     h = _rod_efficiency(rod_efficiency, counts.shape[0])
-    _fit_kernel(counts, mask, rods, first, span, float(eta), np.ascontiguousarray(mu, dtype=float), h,
+    _fit_kernel(counts, mask, rods, first, span, _state_eta(eta, k), np.ascontiguousarray(mu, dtype=float), h,
                 np.ascontiguousarray(transmat, dtype=float), np.ascontiguousarray(startprob, dtype=float),
-                ll, xi, g0, own, adj, _states(k))
-    return float(ll.sum()), xi.sum(axis=0), g0.sum(axis=0), own.sum(axis=0), adj.sum(axis=0), ll, own.sum(axis=1)
+                ll, xi, g0, own, adj, gobs, _states(k))
+    return FitPassResult(float(ll.sum()), xi.sum(axis=0), g0.sum(axis=0), own.sum(axis=0), adj.sum(axis=0), ll,
+                         own, gobs)
 
 
 def decode_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, uncertain_below,
@@ -467,7 +502,7 @@ def decode_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, u
     unc = np.zeros((n_rods, n_sites), dtype=bool)
     runtime.ensure()
     h = _rod_efficiency(rod_efficiency, n_rods)
-    _decode_kernel(counts, mask, rods, first, span, float(eta), np.ascontiguousarray(mu, dtype=float), h,
+    _decode_kernel(counts, mask, rods, first, span, _state_eta(eta, k), np.ascontiguousarray(mu, dtype=float), h,
                    np.ascontiguousarray(transmat, dtype=float), np.ascontiguousarray(startprob, dtype=float),
                    float(uncertain_below), ll, xi, occ, post, path, unc, _states(np.asarray(mu).size))
     per_xi = np.zeros((n_rods, k, k))

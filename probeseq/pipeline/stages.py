@@ -14,7 +14,7 @@ from ..exceptions import DataQualityWarning, InputError
 from ..io.ions import IonList, check_position_extent
 from ..lattice.model import Lattice
 from ..lattice.rodcolumns import RodColumns
-from ..ranging.channels import detection_balance
+from ..ranging.channels import metal_visibility
 from .options import AnalysisOptions, Progress, _check_ions, _Clock
 
 if TYPE_CHECKING:  # type names only: these modules are heavy to import
@@ -48,7 +48,8 @@ class CountResult:
         The ranged mass spectrum (fitted on at most :data:`RANGING_IONS` ions of the sample).
     columns : RodColumns
         Counts (n_rods, n_sites, n_metals), whole ions per site, with their geometry;
-        ``params["detection_balance"]`` holds the per-metal thinning factors of the pass.
+        ``params["visibility"]`` holds each metal's relative visibility (the share of its ions
+        counted as it, :func:`probeseq.ranging.channels.metal_visibility`), which the decoder uses.
     n_metal_ions : int
         Ions of the whole run that fall in a range holding a metal.
     sample : IonList
@@ -210,7 +211,7 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
             # the ranged ions' channels: a stride of the sample's (assignment is per ion)
             ca_fit = ca if stride == 1 else replace(ca, range_index=ca.range_index[::stride],
                                                     channel=ca.channel[::stride])
-            thin = detection_balance(rr, ca_fit)
+            thin = metal_visibility(rr, ca_fit)
             sel = (ca.metal_weights.sum(1) > 0)[ca.range_index]  # in a range holding a metal
         if not sel.any():
             raise InputError(f"no ions fall in ranges of the metals {', '.join(metals)}")
@@ -228,7 +229,7 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
                 ca = assign_channels(m, rr.ranges, metals)
                 ca_fit = ca if stride == 1 else replace(ca, range_index=ca.range_index[::stride],
                                                         channel=ca.channel[::stride])
-                thin = detection_balance(rr, ca_fit)
+                thin = metal_visibility(rr, ca_fit)
             geom = plan_columns(x, y, z, reg, random_state=opts.seed, correction=corr)
     return rr, thin, geom
 
@@ -309,7 +310,9 @@ def range_sample(sample: IonList, metals, *, species=None, ranges=None):
 def _start_pass(rr, metals, thin, geom, seed):
     from ..lattice.counting import make_count_plan
 
-    return make_count_plan(rr.ranges, metals, thin, geom, seed)
+    # every ranged metal ion is counted (nothing is thinned): the decoder models each metal's
+    # visibility instead (``thin`` here is that visibility, kept in the columns' params)
+    return make_count_plan(rr.ranges, metals, np.ones(len(metals)), geom, seed)
 
 
 def _run_pass(plan, counts, factor, strict, blocks, where="", threads=None):
@@ -352,8 +355,8 @@ def _finish_pass(geom, counts, metals, tally, thin):
         raise InputError(f"no ions fall in ranges of the metals {', '.join(metals)}")
     stats = {"n_ions": n_metal, "n_binned": t["n_binned"], "n_beyond_cutoff": t["n_beyond_cutoff"],
              "n_unused_rod": t["n_unused_rod"], "n_outside_depth": t["n_outside_depth"]}
-    balance = {m: float(v) for m, v in zip(metals, thin)}
-    cols = columns_from_counts(geom, counts, metals, stats, extra_params={"detection_balance": balance})
+    visibility = {m: float(v) for m, v in zip(metals, thin)}
+    cols = columns_from_counts(geom, counts, metals, stats, extra_params={"visibility": visibility})
     return cols, n_metal
 
 
