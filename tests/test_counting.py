@@ -183,13 +183,13 @@ def test_float32_counts_are_whole_and_a_saturated_bin_counts_again_in_float64(ru
         return ((s, x[s:s + 50_000], y[s:s + 50_000], z[s:s + 50_000], m[s:s + 50_000])
                 for s in range(0, x.size, 50_000))
 
-    c32, t32, _ = _run_pass(plan, None, 1.0, False, blocks)
+    c32, t32, _, _ = _run_pass(plan, None, 1.0, False, blocks)
     assert c32.dtype == np.float32
     top = float(c32.max())
     assert top >= 2
     monkeypatch.setattr(counting, "FLOAT32_LIMIT", top)
     with pytest.warns(DataQualityWarning, match="counting again in float64"):
-        c64, t64, _ = _run_pass(plan, None, 1.0, False, blocks)
+        c64, t64, _, _ = _run_pass(plan, None, 1.0, False, blocks)
     assert c64.dtype == np.float64
     np.testing.assert_array_equal(c64, c32)
     np.testing.assert_array_equal(t64, t32)
@@ -197,7 +197,7 @@ def test_float32_counts_are_whole_and_a_saturated_bin_counts_again_in_float64(ru
     with pytest.raises(InputError, match="float64 count array"):
         _run_pass(plan, plan.new_counts(np.float32), 1.0, False, blocks)
     monkeypatch.setattr(counting, "FLOAT32_LIMIT", top + 1)
-    c, _, _ = _run_pass(plan, plan.new_counts(np.float32), 1.0, False, blocks)
+    c, _, _, _ = _run_pass(plan, plan.new_counts(np.float32), 1.0, False, blocks)
     np.testing.assert_array_equal(c, c32)
 
 

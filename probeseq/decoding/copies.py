@@ -116,10 +116,11 @@ class CopyResult:
 
 def _factors(columns: RodColumns, params: DecoderParams, rods, efficiency):
     """Emission factors (n, T, K) of some rods (1 at masked sites) and their mask."""
-    c = np.asarray(columns.counts[rods], float)
+    soft = columns.evidence is not None  # the decoder read the soft evidence: so do the copies
+    c = np.asarray((columns.evidence if soft else columns.counts)[rods], float)
     m = np.asarray(columns.mask[rods], bool)
     h = None if efficiency is None else np.broadcast_to(np.asarray(efficiency, float)[rods][:, None], m.shape)
-    e = emission_factors(c, params, efficiency=h)
+    e = emission_factors(c, params, efficiency=h, linear=soft)
     e[~m] = 1.0
     return e, m
 

@@ -32,7 +32,6 @@ from .model import (
     _emission_tm,
     _hmm_estep,
     _hmm_step,
-    _initial_params,
     _prepare,
     _Prepared,
     _rod_data,
@@ -42,6 +41,8 @@ from .model import (
 )
 
 from .independent import independent_step
+from .starts import evidence_start
+from .starts import initial_params as _initial_params
 
 __all__ = ['DecodeResult', 'fit_decoder', 'decode', 'sample_model']
 
@@ -159,12 +160,19 @@ class DecodeResult:
     n_iter_screening: int = 0
     n_obs_screening: int = 0
     visibility: np.ndarray | None = None
+    model_eta: float | None = None
+    counts_params: DecoderParams | None = None
+
+    @property
+    def used_soft_evidence(self) -> bool:
+        """True when the sites were decoded from the columns' soft evidence, not their counts."""
+        return self.model_eta is not None
 
     @property
     def params(self) -> DecoderParams:
         """The parameters as a :class:`DecoderParams` (to decode other columns with them)."""
-        return DecoderParams(transmat=self.transmat, eta=self.eta, extra_rate=self.extra_rate,
-                             visibility=self.visibility)
+        eta = self.eta if self.model_eta is None else self.model_eta
+        return DecoderParams(transmat=self.transmat, eta=eta, extra_rate=self.extra_rate, visibility=self.visibility)
 
     def to_dict(self) -> dict:
         """JSON-serialisable summary (no per-site arrays; NaN and infinities become None).
@@ -188,6 +196,8 @@ class DecodeResult:
             "stationary": self.stationary.tolist(),
             "persistence": num(self.persistence),
             "eta": num(self.eta),
+            "soft_evidence": self.used_soft_evidence,
+            "eta_of_soft_evidence_fit": None if self.model_eta is None else num(self.model_eta),
             "visibility": self._visibility_dict(),
             "extra_rate_per_site": self.extra_rate.tolist(),
             "crosstalk_rate_per_site": num(self.crosstalk_rate),
@@ -230,8 +240,9 @@ class DecodeResult:
         return {"relative": {m: finite_or_none(v) for m, v in zip(self.metals, vis)},
                 "sites_seen": {m: finite_or_none(self.eta * v) for m, v in zip(self.metals, vis)},
                 "definition": ("eta is the instrument's detection efficiency; a metal's relative visibility is "
-                               "the share of its ions the ranging counts as that metal (from the mass "
-                               "spectrum), so a site of it shows its own ion with probability eta times that")}
+                               "the share of its ions that can tell its sites (from the mass spectrum: counted "
+                               "as it, or with soft evidence inside its ranges), so a site of it shows its own "
+                               "ion with probability eta times that")}
 
     def _efficiency_dict(self) -> dict:
         """How the detection efficiency varied between rods (``eta`` alone when it did not)."""
@@ -314,10 +325,23 @@ def _check_uncertain(uncertain_below):
         raise InputError(f"uncertain_below must be a probability in (0, 1], got {uncertain_below!r}")
 
 
-def _check_visibility(visibility, columns: RodColumns):
-    """The per-metal visibility as (K,) floats in (0, 1], or None for 1 everywhere."""
+def _compiled_data(columns: RodColumns, h):
+    """What the compiled engine works on: the soft evidence, read linearly, when the columns carry
+    it (:attr:`RodColumns.evidence`), else the counts."""
+    if columns.evidence is None:
+        return _with_efficiency(_rod_data(columns.counts, columns.mask), h)
+    stored = (columns.params or {}).get("evidence") or {}
+    scale = [float((stored.get("own_scale") or {}).get(m, 1.0)) for m in columns.metals]
+    return _with_efficiency(_rod_data(columns.evidence, columns.mask, own_scale=np.asarray(scale)), h)
+
+
+def _check_visibility(visibility, columns: RodColumns, soft: bool = False):
+    """The per-metal visibility as (K,) floats in (0, 1], or None for 1 everywhere (``soft``: the
+    metals' capture by their ranges, which is their visibility when decoding soft evidence)."""
     if visibility is None:
         stored = (columns.params or {}).get("visibility")
+        if soft:
+            stored = ((columns.params or {}).get("evidence") or {}).get("capture")
         if not isinstance(stored, dict):
             return None
         visibility = [stored.get(m, 1.0) for m in columns.metals]
@@ -396,7 +420,10 @@ def _n_params(k: int) -> tuple[int, int]:
 
 def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n_iter, converged,
                   loglik_indep, start_logliks, history, notes, rod_efficiency=None, efficiency_source=None,
-                  radial=None, screening=(0, 0)) -> DecodeResult:
+                  radial=None, screening=(0, 0), detection_efficiency=None, counts_params=None) -> DecodeResult:
+    """The :class:`DecodeResult` of a fit or decode; ``detection_efficiency`` (the instrument's, from
+    the fit of the counts) is reported as ``eta`` when the decoding read soft evidence, whose own
+    fitted ``eta`` is kept as ``model_eta``."""
     path, post, uncertain, per_rod_xi, occupancy, runs = decoded
     k = params.n_metals
     n_par, n_par_ind = _n_params(k)
@@ -420,7 +447,7 @@ def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n
         transmat=params.transmat.copy(),
         stationary=params.stationary,
         persistence=params.persistence,
-        eta=params.eta,
+        eta=params.eta if detection_efficiency is None else float(detection_efficiency),
         extra_rate=mu.copy(),
         crosstalk_rate=params.crosstalk_rate,
         background=params.background,
@@ -449,6 +476,8 @@ def _build_result(columns, params, loglik, decoded, *, n_obs, uncertain_below, n
         loglik_history=np.asarray(history, dtype=float),
         warnings=list(notes),
         visibility=params.visibility.copy(),
+        model_eta=None if detection_efficiency is None else params.eta,
+        counts_params=counts_params,
         rod_efficiency=None if rod_efficiency is None else rod_efficiency.copy(),
         efficiency_source=None if rod_efficiency is None else efficiency_source,
         radial_efficiency=radial,
@@ -492,7 +521,7 @@ def decode(columns: RodColumns, params: DecoderParams, uncertain_below: float = 
     for msg in notes:
         warnings.warn(msg, DataQualityWarning, stacklevel=2)
     if engine == "compiled":
-        prep = _with_efficiency(_rod_data(columns.counts, columns.mask), h)
+        prep = _compiled_data(columns, h)
         loglik, *decoded = _decode_compiled(columns, prep, params, uncertain_below)
     else:
         prep = _with_efficiency(_prepare(columns.counts, columns.mask), h)
@@ -501,6 +530,7 @@ def decode(columns: RodColumns, params: DecoderParams, uncertain_below: float = 
         columns, params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below, n_iter=0,
         converged=True, loglik_indep=float("nan"), start_logliks=[], history=[loglik], notes=notes,
         rod_efficiency=h, efficiency_source="given",
+        detection_efficiency=params.eta if engine == "compiled" and columns.evidence is not None else None,
     )
 
 
@@ -523,6 +553,20 @@ def _fit_efficiency(columns: RodColumns, rod_efficiency, radial_efficiency: bool
     if radial.applied:
         return _check_rod_efficiency(radial.per_rod, columns), "radial fit", radial
     return None, None, radial
+
+
+def _decode_sites(columns, compiled: bool, prep, params, fit_loglik: float, h, visibility, uncertain_below):
+    """Decode every rod with the fitted parameters: from the soft evidence when the columns carry it
+    (compiled engine), with the chain and efficiency fitted on the counts, else from the counts.
+    Returns (soft, the parameters decoded with, log-likelihood, decoded arrays)."""
+    if compiled and columns.evidence is not None:
+        dec_prep = _compiled_data(columns, h)
+        dec_params = evidence_start(dec_prep, params, _check_visibility(visibility, columns, soft=True))
+        _, *decoded = _decode_compiled(columns, dec_prep, dec_params, uncertain_below)
+        return True, dec_params, fit_loglik, decoded  # the fit's, compared with the independent-sites fit
+    decode_fn = _decode_compiled if compiled else _decode_prepared
+    loglik, *decoded = decode_fn(columns, prep, params, uncertain_below)
+    return False, params, loglik, decoded
 
 
 def _fit_independent(prep, params: DecoderParams, rng, k: int, max_iter: int, tol_abs: float, notes: list):
@@ -597,16 +641,15 @@ def fit_decoder(
     Raises
     ------
     InputError
-        Fewer than two metals with counts, all sites masked, negative or non-finite counts,
-        bad options.
+        Fewer than two metals with counts, all sites masked, negative or non-finite counts, bad options.
 
     Warns
     -----
     DataQualityWarning
         A metal has almost no counts.
     ConvergenceWarning
-        A fit reached ``max_iter``; the message gives the last change in log-likelihood and the
-        best fit found is still returned.
+        A fit reached ``max_iter`` (the message gives the last change in log-likelihood; the best fit
+        found is returned).
     """
     notes = _check_columns(columns)
     _check_options(n_starts, max_iter, tol, uncertain_below)
@@ -617,8 +660,8 @@ def fit_decoder(
         warnings.warn(msg, DataQualityWarning, stacklevel=2)
     rng = np.random.default_rng(random_state)
     k = columns.n_metals
-    vis = _check_visibility(visibility, columns)
     compiled = engine == "compiled"
+    vis = _check_visibility(visibility, columns)
     if compiled:
         prep = _with_efficiency(_rod_data(columns.counts, columns.mask), h)
         screen = _screen_data(prep, SCREEN_SITES, SCREEN_SEGMENT, rng)
@@ -650,13 +693,14 @@ def fit_decoder(
             "columns report single rods as not resolvable: per-rod sequences mix neighbouring rods;"
             " see probeseq.decoding.groups.analyze_groups"
         )
-    decode_fn = _decode_compiled if compiled else _decode_prepared
-    loglik, *decoded = decode_fn(columns, prep, params, uncertain_below)
+    soft, dec_params, loglik, decoded = _decode_sites(columns, compiled, prep, params, trace.loglik, h, visibility,
+                                                      uncertain_below)
     return _build_result(
-        columns, params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below,
+        columns, dec_params, loglik, decoded, n_obs=prep.n_obs, uncertain_below=uncertain_below,
         n_iter=trace.n_iter, converged=trace.converged, loglik_indep=ind.loglik,
         start_logliks=start_ll, history=trace.history, notes=notes, rod_efficiency=h, efficiency_source=source,
-        radial=radial, screening=(best.n_iter, screen.n_obs),
+        radial=radial, screening=(best.n_iter, screen.n_obs), detection_efficiency=params.eta if soft else None,
+        counts_params=params if soft else None,
     )
 
 

@@ -15,6 +15,20 @@ from .model import (ETA_BOUNDS, MIN_RATE, _BLOCK_RODS, _RodData, _split_expected
 __all__ = ['independent_step']
 
 
+def _split(prep, x):
+    """Integer parts and split-ion terms of the distinct rows; soft evidence (``prep.linear``) is
+    read linearly: the values themselves, no split ion."""
+    if getattr(prep, "linear", False):
+        return x, np.zeros_like(x), np.ones(x.shape[0])
+    return split_counts(x)
+
+
+def _own_scale(prep, k: int):
+    """Average value a detected own ion adds (1 for counts; ``prep.own_scale`` for soft evidence)."""
+    s = getattr(prep, "own_scale", None)
+    return np.ones(k) if s is None else np.asarray(s, dtype=float)
+
+
 def _visibility(visibility):
     """None when every metal has visibility 1 (the scalar formulas, to the bit), else (K,) floats."""
     if visibility is None:
@@ -49,11 +63,12 @@ def independent_step(prep, visibility=None):
         x, mult = prep.distinct_rows, prep.distinct_mult
     else:
         x, mult = _unique_rows(prep.x_obs)
-    n_int, pi, pi_none = split_counts(x)
+    n_int, pi, pi_none = _split(prep, x)
     n = prep.n_obs
     lf = float(mult @ gammaln(n_int + 1.0).sum(axis=1))
     sum_n = mult @ n_int
     vis = _visibility(visibility)
+    scale = _own_scale(prep, x.shape[1])
 
     def step(state):
         comp, eta0, mu = state
@@ -71,7 +86,7 @@ def independent_step(prep, visibility=None):
         comp_new = (mult @ gamma) / n
         eta_new = (float(np.clip(own.sum() / n, *ETA_BOUNDS)) if vis is None
                    else _eta_new(vis, own_u, gamma, mult))
-        mu_new = np.maximum((counts - own) / n, MIN_RATE)
+        mu_new = np.maximum((counts - own * scale) / n, MIN_RATE)
         return loglik, (comp_new, eta_new, mu_new)
 
     return step
@@ -90,13 +105,14 @@ def _independent_step_eff(prep, visibility=None):
         blocks = [(prep.x_obs, h_group[prep.rods][np.nonzero(prep.obs)[1]])]  # x_obs is time-major
     x, grp, mult = distinct_rows_by_group(blocks, h_vals.size)
     hu = h_vals[grp]
-    n_int, pi, pi_none = split_counts(x)
+    n_int, pi, pi_none = _split(prep, x)
     n = prep.n_obs
     lf = float(mult @ gammaln(n_int + 1.0).sum(axis=1))
     sum_n = mult @ n_int
     log_h = float(mult @ (n_int.sum(axis=1) * np.log(hu)))
     sum_h = float(mult @ hu)
     vis = _visibility(visibility)
+    scale = _own_scale(prep, x.shape[1])
 
     def step(state):
         comp, eta0, mu = state
@@ -113,7 +129,7 @@ def _independent_step_eff(prep, visibility=None):
         own = mult @ own_u
         counts = mult @ _split_expected_counts(n_int, c, b, gamma, eta, mu, fac, ome)
         eta_new = _eta_new(vis, own_u, gamma, mult, hu)
-        mu_new = np.maximum((counts - own) / sum_h, MIN_RATE)
+        mu_new = np.maximum((counts - own * scale) / sum_h, MIN_RATE)
         return loglik, ((mult @ gamma) / n, eta_new, mu_new)
 
     return step

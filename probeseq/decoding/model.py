@@ -296,7 +296,7 @@ def _split_terms(n, pi, pi_none, mu):
     return c, b, n + c / b[..., None]
 
 
-def emission_factors(counts, params: DecoderParams, efficiency=None) -> np.ndarray:
+def emission_factors(counts, params: DecoderParams, efficiency=None, linear: bool = False) -> np.ndarray:
     """State-dependent factor of the emission likelihood of every site.
 
     ``P(x | k) = Pois(n; mu) B(x; mu) (1 - eta + eta xe_k / mu_k)`` (module docstring); this
@@ -311,14 +311,19 @@ def emission_factors(counts, params: DecoderParams, efficiency=None) -> np.ndarr
     efficiency : float or (...) ndarray of float, optional
         Relative efficiency ``h`` of each site's rod (``1 - eta h + eta xe_k / mu_k``, ``xe``
         with ``mu h``); None: 1.
+    linear : bool
+        The values are soft evidence, read linearly (``xe = x``, no split ion).
 
     Returns
     -------
     (..., K) ndarray of float
     """
     h = 1.0 if efficiency is None else np.asarray(efficiency, dtype=float)[..., None]
-    n, pi, pi_none = split_counts(counts)
-    _, _, xe = _split_terms(n, pi, pi_none, params.extra_rate * h)
+    if linear:  # soft evidence (probeseq.lattice.evidence): the values themselves
+        xe = np.asarray(counts, dtype=float)
+    else:
+        n, pi, pi_none = split_counts(counts)
+        _, _, xe = _split_terms(n, pi, pi_none, params.extra_rate * h)
     ev = _eta_of(params)
     return (1.0 - ev * h) + xe * (ev / params.extra_rate)
 
@@ -548,13 +553,18 @@ class _RodData:
     distinct_rows: np.ndarray  # (U, K) distinct count vectors of the observed sites
     distinct_mult: np.ndarray  # (U,) their multiplicities
     eff: RodTerms | None = None  # per-rod relative efficiency (None: 1 for every rod)
+    linear: bool = False  # soft evidence: fractional values read linearly (probeseq.lattice.evidence)
+    own_scale: np.ndarray | None = None  # (K,) evidence a detected own ion adds, on average (linear)
 
 
 _BLOCK_RODS = 2048  # rods per block when summarising the counts
 
 
-def _rod_data(counts: np.ndarray, mask: np.ndarray) -> _RodData:
-    """Spans and summaries of the observed sites (compiled passes; no copy of the counts)."""
+def _rod_data(counts: np.ndarray, mask: np.ndarray, own_scale=None) -> _RodData:
+    """Spans and summaries of the observed sites (compiled passes; no copy of the counts).
+
+    With ``own_scale`` (K,) the values are soft evidence (:mod:`probeseq.lattice.evidence`), read
+    linearly; ``own_scale`` is the evidence a detected own ion adds on average."""
     from .rodchain import spans, summarise
 
     if counts.dtype not in (np.float32, np.float64) or not counts.flags.c_contiguous:
@@ -584,17 +594,20 @@ def _rod_data(counts: np.ndarray, mask: np.ndarray) -> _RodData:
             mult = np.bincount(inv.reshape(-1), weights=cnt, minlength=len(uniq))
         else:
             uniq, mult = np.zeros((0, k)), np.zeros(0)
+    linear = own_scale is not None
     return _RodData(counts=counts, mask=mask, rods=rods, first=first, span=span, n_obs=sm["n_obs"],
-                    sum_x=sm["sum_x"], sum_n=sm["sum_n"], log_factorial=log_fact,
+                    sum_x=sm["sum_x"], sum_n=sm["sum_x"] if linear else sm["sum_n"], log_factorial=log_fact,
                     totals_mean=sm["totals_mean"], totals_var=sm["totals_var"], distinct_rows=uniq,
-                    distinct_mult=mult)
+                    distinct_mult=mult, linear=linear,
+                    own_scale=None if own_scale is None else np.asarray(own_scale, dtype=float))
 
 
 def _screen_data(data: _RodData, max_sites: int, segment: int, rng) -> _RodData:
     """The screening subset (:func:`_screen_arrays`) of the compiled engine."""
     cm = _screen_arrays(data.rods, data.mask[data.rods].sum(axis=1), data.n_obs, data.counts, data.mask,
                         max_sites, segment, rng)
-    return data if cm is None else _with_efficiency(_rod_data(*cm[:2]), data.eff and data.eff.h_rows[cm[2]])
+    return data if cm is None else _with_efficiency(_rod_data(*cm[:2], own_scale=data.own_scale),
+                                                    data.eff and data.eff.h_rows[cm[2]])
 
 
 def _compiled_step(data: _RodData):
@@ -606,21 +619,22 @@ def _compiled_step(data: _RodData):
 
     def step(params: DecoderParams):
         fp = fit_pass(data.counts, data.mask, data.rods, data.first, data.span, _eta_of(params),
-                      params.extra_rate, params.transmat, params.stationary, h_rows)
+                      params.extra_rate, params.transmat, params.stationary, h_rows, linear=data.linear)
         own, adj = fp.own, fp.split_extra
+        own_ev = own if data.own_scale is None else own * data.own_scale  # own ions' share of the values
         if eff is None:
             n = data.n_obs
             if params.uniform_visibility:
                 eta = float(np.clip(own.sum() / n, *ETA_BOUNDS))
             else:
                 eta = eta_update(params, own, fp.sites_per_rod_state.sum(axis=0))
-            mu = np.maximum((data.sum_n + adj - own) / n, MIN_RATE)
+            mu = np.maximum((data.sum_n + adj - own_ev) / n, MIN_RATE)
         else:
             if params.uniform_visibility:
                 eta = eta_mstep(eff.h, eff.n_sites, fp.own_per_rod_state.sum(axis=1), ETA_BOUNDS)
             else:
                 eta = eta_update(params, fp.own_per_rod_state, fp.sites_per_rod_state, eff.h)
-            mu = np.maximum((data.sum_n + adj - own) / eff.sum_h, MIN_RATE)
+            mu = np.maximum((data.sum_n + adj - own_ev) / eff.sum_h, MIN_RATE)
         a = update_transmat(fp.xi, fp.first_posterior, params.transmat)
         return fp.loglik + _baseline(data, params.extra_rate), params.with_fit(a, eta, mu)
 
@@ -633,7 +647,8 @@ def _decode_compiled(columns: RodColumns, data: _RodData, params: DecoderParams,
 
     ll, post, path, uncertain, per_rod_xi, occupancy = decode_pass(
         data.counts, data.mask, data.rods, data.first, data.span, _eta_of(params), params.extra_rate,
-        params.transmat, params.stationary, uncertain_below, None if data.eff is None else data.eff.h_rows)
+        params.transmat, params.stationary, uncertain_below, None if data.eff is None else data.eff.h_rows,
+        linear=data.linear)
     runs = runs_table(path, data.mask, post)
     return ll + _baseline(data, params.extra_rate), path, post, uncertain, per_rod_xi, occupancy, runs
 
@@ -768,32 +783,3 @@ def _hmm_step(prep: _Prepared):
         return loglik, params.with_fit(a, eta, mu)
 
     return step
-
-
-def _initial_params(prep: _Prepared, rng, k: int, random: bool, visibility=None) -> DecoderParams:
-    comp = prep.sum_x / prep.sum_x.sum()
-    vis = np.ones(k) if visibility is None else np.asarray(visibility, dtype=float)
-    if np.any(vis != 1.0):
-        # own ions show as eta a_k f_k: start from the composition of the sites, not of the counts
-        comp = comp / vis
-        comp = comp / comp.sum()
-    mean_t = prep.totals_mean
-    if random:
-        eta = float(rng.uniform(0.15, 0.9))
-        lam = float(rng.uniform(0.0, 0.95))
-        comp = 0.7 * comp + 0.3 * rng.dirichlet(np.ones(k))
-    else:
-        # moments of the per-site total: Bernoulli(eta) + Poisson(M) has mean - variance = eta^2
-        eta = math.sqrt(max(mean_t - prep.totals_var, 0.0025))
-        lam = 0.5
-    eta = float(np.clip(min(eta, 0.95 * mean_t if mean_t > 0 else eta), 0.05, 0.95))
-    if np.any(vis != 1.0):  # the moments see the visible efficiency eta sum_k a_k f_k
-        eta = float(min(eta / float(vis @ comp), 0.95 / float(vis.max())))
-    if prep.eff is not None:
-        eta = min(eta, 0.95 / (prep.eff.max_h * float(vis.max())))  # every rod's eta a_k h below 1
-    a = lam * np.eye(k) + (1.0 - lam) * comp[None, :]
-    if random:
-        a = 0.9 * a + 0.1 * rng.dirichlet(np.ones(k), size=k)
-    m = prep.sum_x / prep.n_obs
-    mu = np.maximum(np.maximum(m - eta * vis * comp, 0.05 * m), MIN_RATE)
-    return DecoderParams(transmat=a / a.sum(1, keepdims=True), eta=eta, extra_rate=mu, visibility=visibility)

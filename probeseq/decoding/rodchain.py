@@ -106,7 +106,7 @@ def _site(counts, r, t, ome, coef, mu, kt, n_out, fac_out, s, c_out):
 
 @numba.njit(cache=True, nogil=True, error_model="numpy")
 def _forward(counts, mask, r, t0, length, ome, mu, coef, a, p, alpha, fac, invc, nb, cb, spl, kt,
-             vt, ltab, loga, logp, vit, back):
+             vt, ltab, loga, logp, vit, back, lin):
     """Forward pass of rod r over sites t0..t0+length-1, with the Viterbi recursion in the same
     loop when ``vt`` is a non-empty tuple. ``ome = 1 - eta h_r``, ``mu`` the rod's extra rates
     ``mu h_r`` and ``coef = eta / mu`` of the unscaled rates.
@@ -121,7 +121,12 @@ def _forward(counts, mask, r, t0, length, ome, mu, coef, a, p, alpha, fac, invc,
     recursions in one loop reads each site's counts once and interleaves two independent chains
     of dependent arithmetic. ``len(vt)`` is a compile-time constant, so the E-step's version
     (``vt = ()``, empty arrays for the rest) is compiled without the Viterbi code.
+
+    With ``len(lin) > 0`` (soft evidence, :mod:`probeseq.lattice.evidence`) the values are read
+    linearly: the factor is ``1 - eta_k h_r + x_k eta_k / mu_k`` for fractional ``x`` as well (no
+    split ion).
     """
+    linear = len(lin) > 0
     k = len(kt)
     viterbi = len(vt) > 0
     n_tab = ltab.shape[1]
@@ -138,10 +143,12 @@ def _forward(counts, mask, r, t0, length, ome, mu, coef, a, p, alpha, fac, invc,
                 n = math.floor(v + _EPS)
                 if v - n >= _EPS:
                     whole = False
+                    if linear:
+                        n = v
                 fac[s, j] = ome[j] + n * coef[j]
                 if viterbi:
-                    le[j] = ltab[j, int(n)] if n < n_tab else math.log(fac[s, j])
-            if not whole:
+                    le[j] = ltab[j, int(n)] if (n < n_tab and (whole or not linear)) else math.log(fac[s, j])
+            if not whole and not linear:
                 b, _ = _site(counts, r, t, ome, coef, mu, kt, nb, fac, s, cb)
                 spl[s] = True
                 log_b += math.log(b)
@@ -221,7 +228,7 @@ def _store_rod(q, occl, xil, occ, xi):
 
 
 @numba.njit(cache=True, nogil=True, parallel=True, error_model="numpy")
-def _fit_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, ll, xi, g0, own, adj, gobs, kt):
+def _fit_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, ll, xi, g0, own, adj, gobs, kt, lin):
     n_rods = rods.size
     k = len(kt)
     coef = eta / mu
@@ -252,7 +259,7 @@ def _fit_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, ll, xi, g0, o
             ome[j] = 1.0 - eta[j] * hr
             mur[j] = mu[j] * hr
         logc, log_b = _forward(counts, mask, r, t0, length, ome, mur, coef, a, p, alpha, fac, invc, nb, cb, spl,
-                               kt, (), no_tab, no_tab, no_vec, no_vit, no_back)
+                               kt, (), no_tab, no_tab, no_vec, no_vit, no_back, lin)
         ll[q] = logc + log_b
         for s in range(length - 1, -1, -1):
             t = t0 + s
@@ -284,7 +291,7 @@ def _fit_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, ll, xi, g0, o
 
 @numba.njit(cache=True, nogil=True, parallel=True, error_model="numpy")
 def _decode_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, below, ll, xi, occ, post, path, uncertain,
-                   kt):
+                   kt, lin):
     n_rods = rods.size
     k = len(kt)
     coef = eta / mu
@@ -330,7 +337,7 @@ def _decode_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, below, ll,
                 for n in range(16):
                     tab[j, n] = math.log(ome[j] + n * coef[j])
         logc, log_b = _forward(counts, mask, r, t0, length, ome, mur, coef, a, p, alpha, fac, invc, nb, cb, spl,
-                               kt, (0,), tab, loga, logp, vit, back)
+                               kt, (0,), tab, loga, logp, vit, back, lin)
         ll[q] = logc + log_b
         for s in range(length - 1, -1, -1):
             t = t0 + s
@@ -412,7 +419,7 @@ class FitPassResult(NamedTuple):
     sites_per_rod_state: np.ndarray
 
 
-def fit_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, rod_efficiency=None):
+def fit_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, rod_efficiency=None, linear=False):
     """One E-step over the given rods.
 
     Parameters
@@ -430,6 +437,8 @@ def fit_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, rod_
     rod_efficiency : (n_rods,) ndarray of float, optional
         Relative detection efficiency ``h`` of every rod (row of ``counts``), dimensionless: rod
         r has ``eta h_r`` and extra rates ``mu h_r``. None: 1 for every rod.
+    linear : bool
+        Read fractional values linearly (soft evidence, see :func:`_forward`), not as a split ion.
 
     Returns
     -------
@@ -466,13 +475,13 @@ def fit_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, rod_
     h = _rod_efficiency(rod_efficiency, counts.shape[0])
     _fit_kernel(counts, mask, rods, first, span, _state_eta(eta, k), np.ascontiguousarray(mu, dtype=float), h,
                 np.ascontiguousarray(transmat, dtype=float), np.ascontiguousarray(startprob, dtype=float),
-                ll, xi, g0, own, adj, gobs, _states(k))
+                ll, xi, g0, own, adj, gobs, _states(k), (0,) if linear else ())
     return FitPassResult(float(ll.sum()), xi.sum(axis=0), g0.sum(axis=0), own.sum(axis=0), adj.sum(axis=0), ll,
                          own, gobs)
 
 
 def decode_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, uncertain_below,
-                rod_efficiency=None):
+                rod_efficiency=None, linear=False):
     """Posteriors, Viterbi path and per-rod expectations of every rod.
 
     Parameters as :func:`fit_pass`; ``uncertain_below`` is the posterior level below which a
@@ -504,7 +513,8 @@ def decode_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, u
     h = _rod_efficiency(rod_efficiency, n_rods)
     _decode_kernel(counts, mask, rods, first, span, _state_eta(eta, k), np.ascontiguousarray(mu, dtype=float), h,
                    np.ascontiguousarray(transmat, dtype=float), np.ascontiguousarray(startprob, dtype=float),
-                   float(uncertain_below), ll, xi, occ, post, path, unc, _states(np.asarray(mu).size))
+                   float(uncertain_below), ll, xi, occ, post, path, unc, _states(np.asarray(mu).size),
+                   (0,) if linear else ())
     per_xi = np.zeros((n_rods, k, k))
     per_xi[rods] = xi
     per_occ = np.zeros((n_rods, k))

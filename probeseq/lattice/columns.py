@@ -323,7 +323,7 @@ def _to_float32_if_whole(src, dst):
 
 
 def columns_from_counts(geometry: ColumnGeometry, counts, metals, ion_stats: dict,
-                        extra_params: dict | None = None) -> RodColumns:
+                        extra_params: dict | None = None, evidence=None) -> RodColumns:
     """Wrap a finished (n_rods, n_sites, n_metals) count array and its geometry as RodColumns.
 
     Parameters
@@ -337,6 +337,8 @@ def columns_from_counts(geometry: ColumnGeometry, counts, metals, ion_stats: dic
     extra_params : dict, optional
         Further JSON-able entries of ``params``, after "registration", "columns" and "ions" (the
         params of the returned, frozen object are read-only).
+    evidence : (n_rods, n_sites, n_metals) ndarray of float, optional
+        Soft evidence of the sites (:attr:`RodColumns.evidence`), used as is.
     """
     g = geometry
     metals = tuple(str(m) for m in metals)
@@ -353,7 +355,7 @@ def columns_from_counts(geometry: ColumnGeometry, counts, metals, ion_stats: dic
                       tilt=reg.tilt.copy(), z_ref_nm=reg.z_ref_nm, site_z_nm=g.site_z_nm.copy(),
                       pitch_nm=g.pitch_nm, neighbours=rod_neighbours(g), resolvable=bool(reg.resolvable),
                       misassigned_fraction=float(reg.misassigned_fraction) if math.isfinite(reg.misassigned_fraction) else 1.0,
-                      params=params, site_z_offset_nm=offset)
+                      params=params, site_z_offset_nm=offset, evidence=evidence)
 
 
 def rod_neighbours(geometry: ColumnGeometry) -> np.ndarray:

@@ -46,6 +46,8 @@ from ..runtime import default_threads
 from ..utils.draws import _GOLDEN, _TO_UNIT, _mix64, draw_key
 from .correction import correct_point
 from .locator import nearest_candidate
+from .evidence import N_LEVELS as _N_LEVELS
+from .passcheck import _check_rows, _merge_checks, zeroed_array  # noqa: F401 (zeroed_array: public here)
 
 if TYPE_CHECKING:
     from .geometry import KernelGeometry
@@ -106,6 +108,9 @@ class CountPlan:
     geometry : KernelGeometry
         The rod and site lookup of the column geometry, by name
         (:meth:`probeseq.lattice.geometry.ColumnGeometry.kernel_geometry`).
+    evidence : EvidenceTable or None
+        With it, the pass also fills the soft evidence array (:mod:`probeseq.lattice.evidence`):
+        every ion of a metal-bearing range adds its increments there, drawn or not.
     """
 
     n_rods: int
@@ -118,6 +123,21 @@ class CountPlan:
     cum: np.ndarray
     has_metal: np.ndarray
     geometry: KernelGeometry
+    evidence: object = None
+
+    @property
+    def ev_on(self) -> bool:
+        return self.evidence is not None
+
+    @property
+    def ev_increments(self) -> np.ndarray:
+        """(n_codes, K) evidence increments (an empty table without evidence)."""
+        return self.evidence.increments if self.evidence is not None else np.zeros((0, self.n_metals))
+
+    @property
+    def ev_level(self) -> np.ndarray:
+        """Radial level of every lookup-grid cell (an empty table without evidence)."""
+        return self.evidence.cell_level if self.evidence is not None else np.zeros(0, np.int32)
 
     @property
     def metal_range(self) -> np.ndarray:
@@ -134,7 +154,7 @@ class CountPlan:
         return zeroed_array((self.n_rods, self.n_sites, self.n_metals), dtype)
 
 
-def make_count_plan(ranges, metals, thin, geometry, seed) -> CountPlan:
+def make_count_plan(ranges, metals, thin, geometry, seed, evidence=None) -> CountPlan:
     """Flatten ranges, thinning factors and the column geometry into a :class:`CountPlan`.
 
     Parameters
@@ -146,6 +166,8 @@ def make_count_plan(ranges, metals, thin, geometry, seed) -> CountPlan:
     geometry : ColumnGeometry
     seed : int
         Seed of the metal draws.
+    evidence : EvidenceTable, optional
+        Also fill the soft evidence array (:func:`probeseq.lattice.evidence.evidence_table`).
     """
     from ..ranging.channels import _lookup_for, _weights_for
     from .geometry import ColumnGeometry
@@ -166,7 +188,7 @@ def make_count_plan(ranges, metals, thin, geometry, seed) -> CountPlan:
     return CountPlan(n_rods=geometry.n_rods, n_sites=geometry.n_sites, n_metals=len(metals), key=draw_key(seed),
                      mass_lut=packed, lows=np.asarray(lk.lows, np.float64),
                      highs=np.asarray(lk.highs, np.float64), cum=cum, has_metal=np.ascontiguousarray(has_metal),
-                     geometry=geometry.kernel_geometry())
+                     geometry=geometry.kernel_geometry(), evidence=evidence)
 
 
 #: rod blocks of the grouped increments (a block's bins of one depth slice stay in cache)
@@ -175,46 +197,6 @@ _ROD_BLOCKS = 256
 
 #: sorted bins kept while the count array is still being made (see :class:`CountPass`)
 PENDING_BYTES = 256 << 20
-
-
-def zeroed_array(shape, dtype=np.float64) -> np.ndarray:
-    """A zeroed array whose pages are made resident up front.
-
-    A large array is an anonymous memory map advised for transparent huge pages (2 MiB pages: one
-    fault per 2 MiB instead of per 4 kiB) and made resident by a compiled loop writing one zero
-    per 4 kiB page, which releases the GIL (``mmap.madvise`` and ``MAP_POPULATE`` hold it for the
-    whole call, stalling every other thread of the process). On a virtual machine that costs a
-    fraction of taking a page fault per 4 kiB page later, and page faults from two threads contend
-    (measured here: 0.08 s for 512 MiB against 0.3 s with ``MAP_POPULATE`` on 4 kiB pages, when
-    the memory was used before; first use of fresh memory is slower either way).
-    ``np.zeros`` where memory maps are not available.
-    """
-    import mmap
-
-    shape = tuple(int(v) for v in shape)
-    dtype = np.dtype(dtype)
-    nbytes = int(np.prod(shape, dtype=np.int64)) * dtype.itemsize
-    if nbytes < (16 << 20):
-        return np.zeros(shape, dtype)
-    try:
-        mm = mmap.mmap(-1, nbytes, flags=mmap.MAP_PRIVATE | mmap.MAP_ANONYMOUS)
-    except (OSError, ValueError, AttributeError):
-        return np.zeros(shape, dtype)
-    if hasattr(mm, "madvise") and hasattr(mmap, "MADV_HUGEPAGE"):
-        try:
-            mm.madvise(mmap.MADV_HUGEPAGE)
-        except (OSError, ValueError):
-            pass
-    a = np.frombuffer(mm, dtype)
-    _touch_pages(a.view(np.uint8))
-    return a.reshape(shape)
-
-
-@numba.njit(cache=True, nogil=True)
-def _touch_pages(b):
-    # one write per 4 kiB page makes it resident (the pages are zero already)
-    for i in range(0, b.size, 4096):
-        b[i] = 0
 
 
 _FB = -2_100_000_000
@@ -226,69 +208,11 @@ _FB_LIMIT = -1_000_000_000
 _EXCL = 0
 
 
-@numba.njit(cache=True, nogil=True, fastmath={"nnan", "ninf", "nsz"})
-def _check_kernel(x, y, z, m, xb, yb, zb, mb, expo, ext):
-    """Invalid rows (a NaN or infinite value, or mass-to-charge <= 0) and the running min/max of
-    x, y, z (file unit) and m, in one vectorisable pass. Validity is read from the bit patterns
-    (``xb`` .. ``mb`` are the same arrays viewed as unsigned integers: a value is finite when its
-    exponent bits ``expo`` are not all set; m > 0 when its pattern, as a signed integer, is
-    positive and finite), so the fast-math flags of the min/max cannot touch it. The extents are
-    only valid when no row is invalid (the caller then recomputes them row by row)."""
-    bad = 0
-    xmin = x[0]; xmax = x[0]; ymin = y[0]; ymax = y[0]; zmin = z[0]; zmax = z[0]; mmin = m[0]; mmax = m[0]
-    for i in range(x.size):
-        nonfin = ((xb[i] & expo) == expo) | ((yb[i] & expo) == expo) | ((zb[i] & expo) == expo) \
-            | ((mb[i] & expo) == expo)
-        sign = mb[i] >> (mb.itemsize * 8 - 1)  # 1 for a negative m (or -0)
-        zero = (mb[i] << 1) == 0  # +0 or -0
-        bad += nonfin | (sign == 1) | zero
-        xmin = min(xmin, x[i]); xmax = max(xmax, x[i])
-        ymin = min(ymin, y[i]); ymax = max(ymax, y[i])
-        zmin = min(zmin, z[i]); zmax = max(zmax, z[i])
-        mmin = min(mmin, m[i]); mmax = max(mmax, m[i])
-    if bad == 0:
-        ext[0] = min(ext[0], xmin); ext[1] = max(ext[1], xmax)
-        ext[2] = min(ext[2], ymin); ext[3] = max(ext[3], ymax)
-        ext[4] = min(ext[4], zmin); ext[5] = max(ext[5], zmax)
-        ext[6] = min(ext[6], mmin); ext[7] = max(ext[7], mmax)
-    return bad
-
-
-_EXPO = {4: np.uint32(0x7F800000), 8: np.uint64(0x7FF0000000000000)}
-
-
-_UINT = {4: np.uint32, 8: np.uint64}
-
-
 @numba.njit(cache=True, nogil=True)
-def _slow_check_kernel(x, y, z, m, row0, factor, tally, ext):
-    """Row by row validity (non-finite, non-positive), first bad row and extents of the valid rows."""
-    fac = x.dtype.type(factor)
-    for i in range(x.size):
-        xi = x[i] * fac if factor != 1.0 else x[i]
-        yi = y[i] * fac if factor != 1.0 else y[i]
-        zi = z[i] * fac if factor != 1.0 else z[i]
-        mi = m[i]
-        if not (np.isfinite(xi) and np.isfinite(yi) and np.isfinite(zi) and np.isfinite(mi)):
-            tally[2] += 1
-            if tally[9] < 0:
-                tally[9] = row0 + i
-            continue
-        if not mi > 0:
-            tally[3] += 1
-            if tally[9] < 0:
-                tally[9] = row0 + i
-            continue
-        tally[1] += 1
-        ext[0] = min(ext[0], xi); ext[1] = max(ext[1], xi)
-        ext[2] = min(ext[2], yi); ext[3] = max(ext[3], yi)
-        ext[4] = min(ext[4], zi); ext[5] = max(ext[5], zi)
-        ext[6] = min(ext[6], mi); ext[7] = max(ext[7], mi)
-
-
-@numba.njit(cache=True, nogil=True)
-def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel, rows, metals):
-    """Rows of ``m[:n]`` in ranges holding metal, each with its drawn metal; returns their number.
+def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel, rows, metals, rngs, keep_all):
+    """Rows of ``m[:n]`` in ranges holding metal, each with its drawn metal (and its range in
+    ``rngs``); returns their number. With ``keep_all`` a row whose draw gives no metal is kept
+    with metal ``K`` (it adds soft evidence, not a count).
 
     Loop 1 (every row, mass-to-charge only): one table load gives the range (+ _CODE_BASE) and whether
     the row is a candidate (a range holding metal, or a cell holding a range edge, resolved in loop 2);
@@ -337,17 +261,37 @@ def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel
             u = np.float64(np.int64(hh >> np.uint64(11))) * _TO_UNIT
             while metal < K and u >= cum[r, metal]:
                 metal += 1
-            if metal == K:
+            if metal == K and not keep_all:
                 continue
         rows[nk] = np.int32(i)
         metals[nk] = np.int8(metal)
+        rngs[nk] = np.int32(r)
         nk += 1
     return nk
 
 
 @numba.njit(cache=True, nogil=True)
+def _sort_by_block(nk, keys, codes, bucket, bstart, order, ocodes, ev_on):
+    """Counting sort of the first ``nk`` bins (and evidence codes) by block of rods: ``bstart[b] ..
+    bstart[b + 1]`` in ``order`` are block b's. A chunk's ions come from a thin depth slice, so
+    within one block of rods the increments of :func:`_add_kernel` touch a few kB rather than the
+    whole count array."""
+    for b in range(1, bstart.size):
+        bstart[b] += bstart[b - 1]
+    for q in range(nk):
+        b = bucket[q]
+        order[bstart[b]] = keys[q]
+        if ev_on:
+            ocodes[bstart[b]] = codes[q]
+        bstart[b] += 1
+    for b in range(bstart.size - 1, 0, -1):
+        bstart[b] = bstart[b - 1]
+    bstart[0] = 0
+
+
+@numba.njit(cache=True, nogil=True)
 def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
-                   tally, keys, order, bucket, bstart, rshift):
+                   tally, keys, order, bucket, bstart, rshift, rngs, ev_level, codes, ocodes):
     """Place the selected ions ``rows[lo:hi]`` (rows of x, y, z) with their drawn ``metals`` on
     their rod and site (arithmetic as columns._assign_chunk), then sort their bins by block of rods.
 
@@ -386,9 +330,12 @@ def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
     noutside = 0
     nfb = 0
     nk = 0
+    ncount = 0
+    ev_on = ev_level.size > 0
     for q in range(lo, hi):
         i = np.int64(rows[q])
         metal = np.int64(metals[q])
+        counted = metal < K  # else an ion that adds soft evidence only
         xi = x[i]
         yi = y[i]
         zi = z[i]
@@ -402,7 +349,7 @@ def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
             xc, yc, zc = correct_point(np.float64(xi), np.float64(yi), np.float64(zi), geo.corr_z0, geo.corr_inv_h,
                                        geo.corr_depth, geo.corr_mag, geo.corr_shift, geo.corr_axis, geo.corr_kappa)
             xi, yi, zi = fdt(xc), fdt(yc), fdt(zc)
-        nmetal += 1
+        nmetal += counted
         F1 = xi * a00
         F1 += yi * a01
         F1 += zi * ez0
@@ -415,9 +362,10 @@ def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
         I2 = np.int32(np.floor(F2))
         ci = I1 >> sh
         cj = I2 >> sh
-        off = lut_offset[((I1 & gm1) << sh) | (I2 & gm1)]
+        gcell = ((I1 & gm1) << sh) | (I2 & gm1)
+        off = lut_offset[gcell]
         if off < _FB_LIMIT:
-            nfb += 1
+            nfb += counted
             xf = np.float64(xi)
             yf = np.float64(yi)
             zf = np.float64(zi)
@@ -426,13 +374,13 @@ def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
             code = nearest_candidate(cand, off - _FB, f1 - ci, f2 - cj, code_frac, metric, cut2)
             off = code_offset[code] if code >= 0 else code_offset[code_offset.size - 1]
         if off == _EXCL:
-            nbeyond += 1
+            nbeyond += counted
             continue
         ci = min(max(ci, 2), ni - 3)
         cj = min(max(cj, 2), nj - 3)
         rod = rod_key[ci * (nj * nb) + cj * nb + off]
         if rod < 0:
-            nunused += 1
+            nunused += counted
             continue
         sz = zi * s0
         sz += xi * s1
@@ -440,35 +388,49 @@ def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
         sz -= s3
         site = np.int64(np.floor(sz))
         if site < 0 or site >= ns:
-            noutside += 1
+            noutside += counted
             continue
-        keys[nk] = np.int32((np.int64(rod) * ns + site) * K + metal)
+        keys[nk] = np.int32((np.int64(rod) * ns + site) * K + min(metal, K - 1))
+        if ev_on:
+            codes[nk] = np.int32(((np.int64(rngs[q]) * _N_LEVELS + ev_level[gcell]) << 1) | counted)
+        ncount += counted
         b = np.int64(rod) >> rshift
         bucket[nk] = b
         bstart[b + 1] += 1
         nk += 1
-    # ---- counting sort of the bins by block of rods (bstart[b] .. bstart[b + 1] in order): a
-    # chunk's ions come from a thin depth slice, so within one block of rods the increments of
-    # _add_kernel touch a few kB rather than the whole count array
-    for b in range(1, bstart.size):
-        bstart[b] += bstart[b - 1]
-    for q in range(nk):
-        b = bucket[q]
-        order[bstart[b]] = keys[q]
-        bstart[b] += 1
-    for b in range(bstart.size - 1, 0, -1):
-        bstart[b] = bstart[b - 1]
-    bstart[0] = 0
+    _sort_by_block(nk, keys, codes, bucket, bstart, order, ocodes, ev_on)
     tally[4] += nmetal
-    tally[5] += nk
+    tally[5] += ncount
     tally[6] += nbeyond
     tally[7] += nunused
     tally[8] += noutside
     tally[10] += nfb
+    return nk
 
 
 #: a float32 bin counts whole numbers exactly up to this; a bin reaching it flags the pass
 FLOAT32_LIMIT = float(1 << 24)
+
+
+@numba.njit(cache=True, nogil=True)
+def _add_ev_kernel(flat, eflat, order, ocodes, lo, hi, limit, inc, K):
+    # as _add_kernel, and each entry's soft-evidence increments (row ``code >> 1`` of ``inc``) into
+    # eflat; entries with ``code & 1 == 0`` add evidence only
+    sat = False
+    for q in range(lo, hi):
+        k = order[q]
+        c = ocodes[q]
+        if c & 1:
+            v = np.float64(flat[k]) + 1.0
+            flat[k] = v
+            sat |= v >= limit
+        base = k - k % K
+        row = c >> 1
+        for j in range(K):
+            d = inc[row, j]
+            if d != 0.0:
+                eflat[base + j] += d
+    return sat
 
 
 @numba.njit(cache=True, nogil=True)
@@ -483,43 +445,6 @@ def _add_kernel(flat, order, lo, hi, limit):
     return sat
 
 
-def _check_rows(sl, xs, ys, zs, ms, row0, factor) -> int:
-    """Validity and extents of one block into slot ``sl``'s tallies; returns the invalid rows."""
-    n = xs.shape[0]
-    sl.tally[0] += n
-    ui, um = _UINT[xs.dtype.itemsize], _UINT[ms.dtype.itemsize]
-    if xs.dtype.itemsize == ms.dtype.itemsize:
-        bad = _check_kernel(xs, ys, zs, ms, xs.view(ui), ys.view(ui), zs.view(ui), ms.view(um),
-                            _EXPO[xs.dtype.itemsize], sl.ext_raw)
-    else:
-        bad = 1  # mixed float types: row by row
-    if bad == 0:
-        sl.tally[1] += n
-    else:
-        before = int(sl.tally[1])
-        _slow_check_kernel(xs, ys, zs, ms, np.int64(row0), np.float64(factor), sl.tally, sl.ext)
-        bad = n - (int(sl.tally[1]) - before)
-    return bad
-
-
-def _merge_checks(slots, factor, dtype):
-    """Tally and extents of the validity checks of ``slots`` (fields n_rows .. n_nonpositive and
-    first_bad_row; the rest stay 0)."""
-    tally, ext = new_tally()
-    for sl in slots:
-        tally[:4] += sl.tally[:4]
-        raw = sl.ext_raw.copy()
-        if factor != 1.0:  # scaled as the kernels scale (in the input's float type)
-            dt = np.float32 if dtype == np.float32 else np.float64
-            raw[:6] = np.where(np.isfinite(raw[:6]), raw[:6].astype(dt) * dt(factor), raw[:6])
-        for e in (sl.ext, raw):
-            ext[0::2] = np.minimum(ext[0::2], e[0::2])
-            ext[1::2] = np.maximum(ext[1::2], e[1::2])
-    rows = [int(sl.tally[9]) for sl in slots if sl.tally[9] >= 0]
-    tally[9] = min(rows) if rows else -1
-    return tally, ext
-
-
 class _Slot:
     """One worker's buffers and its own tallies (merged at the end: no shared writes)."""
 
@@ -532,6 +457,11 @@ class _Slot:
         self.sel = np.empty(size, np.int32)
         self.rows = np.empty(size, np.int32)
         self.metals = np.empty(size, np.int8)
+        self.rngs = np.empty(size, np.int32)
+        ev = size if plan.ev_on else 1
+        self.codes = np.empty(ev, np.int32)
+        self.ocodes = np.empty(ev, np.int32)
+        self.ev_on = plan.ev_on
         self.keys = np.empty(size, np.int32)
         self.order = np.empty(size, np.int32)
         self.bucket = np.empty(size, np.int32)
@@ -541,8 +471,11 @@ class _Slot:
 
     def grow(self, rows):
         if rows > self.sel.size:
-            for name, dt in (("sel", np.int32), ("rows", np.int32), ("metals", np.int8), ("keys", np.int32),
-                             ("order", np.int32), ("bucket", np.int32)):
+            names = [("sel", np.int32), ("rows", np.int32), ("metals", np.int8), ("keys", np.int32),
+                     ("order", np.int32), ("bucket", np.int32), ("rngs", np.int32)]
+            if self.ev_on:
+                names += [("codes", np.int32), ("ocodes", np.int32)]
+            for name, dt in names:
                 setattr(self, name, np.empty(int(rows), dt))
 
 
@@ -597,6 +530,7 @@ class CountPass:
                 raise InputError(f"counts must be a C-contiguous float32 or float64 array of shape {shape}")
             self._counts = counts
         self._saturated = False
+        self.evidence = zeroed_array(shape, np.float32) if plan.ev_on else None
         if threads is None:
             threads = default_threads()
         self.threads = max(1, int(threads))
@@ -638,32 +572,40 @@ class CountPass:
         return True
 
     def _flush(self, wait: bool, entries=()):
-        """Add the pending blocks and ``entries`` (lists of (sorted bins, bin-block starts)) when
-        the count array is there; otherwise keep copies of ``entries`` for later."""
+        """Add the pending blocks and ``entries`` (lists of (sorted bins, bin-block starts, sorted
+        evidence codes or None)) when the count array is there; otherwise keep copies of
+        ``entries`` for later."""
         entries = list(entries)
         if not self._ready(wait and True):
-            if self._pending_bytes + sum(o.nbytes for o, _ in entries) > PENDING_BYTES:
+            if self._pending_bytes + sum(o.nbytes for o, _, _ in entries) > PENDING_BYTES:
                 self._ready(True)
             else:
-                for o, b in entries:
-                    self._pending.append((o.copy(), b.copy()))
-                    self._pending_bytes += o.nbytes
+                for o, b, c in entries:
+                    self._pending.append((o.copy(), b.copy(), None if c is None else c.copy()))
+                    self._pending_bytes += o.nbytes * (1 if c is None else 2)
                 return
         todo = self._pending + entries
         self._pending, self._pending_bytes = [], 0
         if todo:
             self._add(todo)
 
+    def _add_range(self, flat, limit, o, c, lo, hi) -> bool:
+        """Add the sorted entries ``lo .. hi`` of one block; True when a bin reached ``limit``."""
+        if c is None:
+            return bool(_add_kernel(flat, o, lo, hi, limit))
+        return bool(_add_ev_kernel(flat, self.evidence.reshape(-1), o, c, lo, hi, limit, self.plan.ev_increments,
+                                   np.int64(self.plan.n_metals)))
+
     def _add(self, entries):
         flat = self._counts.reshape(-1)
         limit = np.float64(FLOAT32_LIMIT if flat.dtype == np.float32 else np.inf)
-        parts = len(self._slots) if sum(o.size for o, _ in entries) >= 65536 else 1
+        parts = len(self._slots) if sum(o.size for o, _, _ in entries) >= 65536 else 1
         if parts == 1:
-            for o, b in entries:
-                self._saturated |= bool(_add_kernel(flat, o, 0, int(b[-1]), limit))
+            for o, b, c in entries:
+                self._saturated |= self._add_range(flat, limit, o, c, 0, int(b[-1]))
             return
         # share the increments out by block of rods, balancing the number of bins
-        per_block = np.sum([np.diff(b) for _, b in entries], axis=0)
+        per_block = np.sum([np.diff(b) for _, b, _ in entries], axis=0)
         cum = np.cumsum(per_block)
         bounds = [0] + [int(np.searchsorted(cum, cum[-1] * t / parts)) + 1 for t in range(1, parts)] + [per_block.size]
         bounds = np.maximum.accumulate(np.minimum(bounds, per_block.size))
@@ -674,8 +616,8 @@ class CountPass:
             def run():
                 b0, b1 = int(bounds[t]), int(bounds[t + 1])
                 if b1 > b0:
-                    for o, b in entries:
-                        sat[t] |= bool(_add_kernel(flat, o, int(b[b0]), int(b[b1]), limit))
+                    for o, b, c in entries:
+                        sat[t] |= self._add_range(flat, limit, o, c, int(b[b0]), int(b[b1]))
             return run
 
         self._run([add(t) for t in range(parts)])
@@ -738,20 +680,20 @@ class CountPass:
                 sl = self._slots[k]
                 sl.grow(b - a)
                 sl.bstart[:] = 0
-                before = int(sl.tally[5])
                 xs, ys, zs, ms = x[a:b], y[a:b], z[a:b], m[a:b]
                 if _check_rows(sl, xs, ys, zs, ms, row0 + a, self.factor) and self.strict:
                     return
                 hi = _select_kernel(ms, b - a, np.int64(row0 + a), plan.key, plan.mass_lut, plan.lows, plan.highs,
-                                    plan.cum, plan.metal_range, sl.sel, sl.rows, sl.metals)
-                _locate_kernel(xs, ys, zs, sl.rows, sl.metals, np.int64(0), np.int64(hi), np.float64(self.factor),
-                               np.int64(plan.n_metals), plan.geometry,
-                               sl.tally, sl.keys, sl.order, sl.bucket, sl.bstart, sl.rshift)
-                nk[k] = int(sl.tally[5]) - before
+                                    plan.cum, plan.metal_range, sl.sel, sl.rows, sl.metals, sl.rngs, plan.ev_on)
+                nk[k] = _locate_kernel(xs, ys, zs, sl.rows, sl.metals, np.int64(0), np.int64(hi),
+                                       np.float64(self.factor), np.int64(plan.n_metals), plan.geometry,
+                                       sl.tally, sl.keys, sl.order, sl.bucket, sl.bstart, sl.rshift, sl.rngs,
+                                       plan.ev_level, sl.codes, sl.ocodes)
             return run
 
         self._run([place(k) for k in range(parts)])
-        self._flush(False, [(sl.order[:nk[k]], sl.bstart) for k, sl in enumerate(self._slots[:parts])])
+        self._flush(False, [(sl.order[:nk[k]], sl.bstart, sl.ocodes[:nk[k]] if plan.ev_on else None)
+                            for k, sl in enumerate(self._slots[:parts])])
 
     @property
     def first_bad_row(self) -> int:

@@ -82,6 +82,12 @@ class RodColumns:
         Depth offset of each rod's sites: site k of rod r lies at depth
         ``site_z_nm[k] + site_z_offset_nm[r]``. With tilted rods the planes of sites are
         perpendicular to the rods, not to z, so their depth depends on the lateral position.
+    evidence : (n_rods, n_sites, n_metals) ndarray of float, optional
+        Soft evidence of every site on each metal (:mod:`probeseq.lattice.evidence`): the sum over
+        the site's metal-bearing ions of their range's share of the metal times their radial
+        likelihood ratio. The decoder reads it instead of ``counts`` when present
+        (``params["evidence"]`` holds the metals' capture and own-ion scale); ``counts`` stay
+        whole ions for everything else.
     """
 
     counts: np.ndarray
@@ -97,6 +103,7 @@ class RodColumns:
     misassigned_fraction: float = 0.0
     params: dict = field(default_factory=dict)
     site_z_offset_nm: np.ndarray | None = None
+    evidence: np.ndarray | None = None
 
     def __post_init__(self):
         c = np.asarray(self.counts)
@@ -133,6 +140,11 @@ class RodColumns:
             raise InputError(f"params must be a mapping, got {type(self.params).__name__}")
         if not isinstance(self.params, ReadOnlyParams):
             object.__setattr__(self, "params", ReadOnlyParams(self.params))
+        if self.evidence is not None:
+            ev = np.asarray(self.evidence)
+            if ev.shape != c.shape or ev.dtype not in (np.float32, np.float64):
+                raise InputError(f"evidence must be a float array of the counts' shape {c.shape}, got {ev.shape}")
+            object.__setattr__(self, "evidence", ev)
         object.__setattr__(self, "site_z_offset_nm", off)
         object.__setattr__(self, "counts", c)
         object.__setattr__(self, "mask", m)
@@ -198,7 +210,10 @@ def save_columns(columns: RodColumns, path) -> None:
                                  ("tilt", columns.tilt, "dx/dz, dy/dz"),
                                  ("site_z_nm", columns.site_z_nm, "nm"),
                                  ("neighbours", columns.neighbours, "rod index pairs"),
-                                 ("site_z_offset_nm", columns.site_z_offset_nm, "nm")):
+                                 ("site_z_offset_nm", columns.site_z_offset_nm, "nm"),
+                                 ("evidence", columns.evidence, "soft evidence per site (see probeseq.lattice.evidence)")):
+            if data is None:
+                continue
             d = g.create_dataset(name, data=data, **({"compression": "gzip", "compression_opts": 1} if data.size > 4096 else {}))
             d.attrs["unit"] = unit
 
@@ -244,6 +259,9 @@ def load_columns(path) -> RodColumns:
         site_z = h5_array(g, "site_z_nm", p, "fiu", shape=(n_sites,))
         neighbours = h5_array(g, "neighbours", p, "iu", shape=(None, 2))
         offsets = h5_array(g, "site_z_offset_nm", p, "fiu", shape=(n_rods,), optional=True)
+        evidence = h5_array(g, "evidence", p, "f", shape=(n_rods, n_sites, k), optional=True)
+        if evidence is not None and not (np.isfinite(evidence).all() and evidence.min(initial=0.0) >= 0):
+            raise InputError(f"{p}: dataset 'evidence' holds NaN, infinite or negative values")
         for name, arr in (("rod_xy_nm", rod_xy), ("tilt", tilt), ("site_z_nm", site_z), ("site_z_offset_nm", offsets)):
             if arr is not None and not np.isfinite(arr).all():
                 raise InputError(f"{p}: dataset '{name}' holds NaN or infinite values")
@@ -273,6 +291,7 @@ def load_columns(path) -> RodColumns:
     try:
         return RodColumns(counts=counts, mask=mask, metals=tuple(metals), rod_xy_nm=rod_xy, tilt=tilt, z_ref_nm=z_ref,
                           site_z_nm=site_z, pitch_nm=pitch, neighbours=neighbours, resolvable=bool(resolvable),
-                          misassigned_fraction=misassigned, params=params, site_z_offset_nm=offsets)
+                          misassigned_fraction=misassigned, params=params, site_z_offset_nm=offsets,
+                          evidence=evidence)
     except InputError as e:
         raise InputError(f"{p}: {e}") from None

@@ -62,6 +62,10 @@ class AnalysisOptions:
         Calibrate the reconstruction on the lattice (depth scale, plane curvature, lateral
         magnification against depth; :mod:`probeseq.lattice.calibrate`) before cutting sites;
         False keeps the file's positions as they are (``--as-reconstructed``).
+    soft_evidence : bool
+        Decode from each ion's soft evidence (its range's share of each metal times its radial
+        likelihood ratio, :mod:`probeseq.lattice.evidence`); False decodes the counts of one
+        drawn metal per ion (``--drawn-metals``).
     """
 
     seed: int = 0
@@ -76,6 +80,7 @@ class AnalysisOptions:
     uncertain_below: float = 0.8
     species: Optional[tuple] = None
     correct_reconstruction: bool = True
+    soft_evidence: bool = True
 
     def __post_init__(self):
         from ..utils.validate import check_number, check_scale, check_seed
@@ -95,6 +100,8 @@ class AnalysisOptions:
         check_scale(self.scale)
         if not isinstance(self.correct_reconstruction, (bool, np.bool_)):
             raise InputError(f"correct_reconstruction must be True or False, got {self.correct_reconstruction!r:.40}")
+        if not isinstance(self.soft_evidence, (bool, np.bool_)):
+            raise InputError(f"soft_evidence must be True or False, got {self.soft_evidence!r:.40}")
         if self.offset_nm is not None:
             off = tuple(self.offset_nm) if isinstance(self.offset_nm, (tuple, list, np.ndarray)) else (self.offset_nm,)
             if len(off) != 2:

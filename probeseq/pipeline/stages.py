@@ -187,12 +187,12 @@ def _same_float(x, y, z):
 def _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, factor, *, strict: bool = False,
                    where: str = "", message: str = ""):
     """Fits on the sample, then the pass over ``blocks()``; returns (rr, cols, n_metal, tally, ext)."""
-    rr, thin, geom = _fit_on_sample(sample, metals, lattice, opts, ranges, clock)
+    rr, thin, geom, ev = _fit_on_sample(sample, metals, lattice, opts, ranges, clock)
     with clock.stage("binning", message):
-        plan = _start_pass(rr, metals, thin, geom, opts.seed)
+        plan = _start_pass(rr, metals, thin, geom, opts.seed, ev)
         # the kernel puts each metal ion through the geometry's reconstruction correction
-        counts, tally, ext = _run_pass(plan, None, factor, strict, blocks, where=where)
-        cols, n_metal = _finish_pass(geom, counts, metals, tally, thin)
+        counts, tally, ext, evidence = _run_pass(plan, None, factor, strict, blocks, where=where)
+        cols, n_metal = _finish_pass(geom, counts, metals, tally, thin, ev, evidence)
     return rr, cols, n_metal, tally, ext
 
 
@@ -231,7 +231,29 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
                                                         channel=ca.channel[::stride])
                 thin = metal_visibility(rr, ca_fit)
             geom = plan_columns(x, y, z, reg, random_state=opts.seed, correction=corr)
-    return rr, thin, geom
+            ev = _evidence_table(rr, ca_fit, geom, reg, (x, y, z), ca.range_index[sel], opts)
+    return rr, thin, geom, ev
+
+
+def _evidence_table(rr, ca_fit, geom, reg, xyz, range_index, opts):
+    """The soft-evidence increments of the pass (:mod:`probeseq.lattice.evidence`), or None when
+    not asked for. The own ions' lateral width is fitted on the sample's ions of pure metal ranges."""
+    if not opts.soft_evidence:
+        return None
+    from ..lattice.evidence import evidence_table, extras_shares, fit_lateral_spread
+
+    w = np.asarray(ca_fit.metal_weights, float)[:-1]  # (n_ranges, K)
+    pure = np.concatenate([(w >= 0.9).any(axis=1), [False]])[range_index]  # (nearly) one metal
+    d = reg.axis_distance_nm(*xyz)
+    spread = fit_lateral_spread(d[pure], geom.locator)
+    u = extras_shares(w, d, range_index, geom.locator, spread)
+    n_k = np.asarray(rr.amounts, float) @ np.asarray(rr.species_metal_atoms, float)
+    n_range = np.bincount(ca_fit.range_index + 1, minlength=w.shape[0] + 1)[1:w.shape[0] + 1]
+    with np.errstate(divide="ignore", invalid="ignore"):
+        p = np.where(n_k > 0, n_range[:, None] * w / n_k, 0.0)  # share of each metal's ions in each range
+    capture = np.where(n_k > 0, p.sum(axis=0), 1.0)
+    seen = (p * u).sum(axis=0)  # evidence an own ion adds, before the radial factor
+    return evidence_table(u, capture, np.where(n_k > 0, seen, 1.0), geom.locator, spread)
 
 
 def _correct(sample: IonList, sel, reg, lattice, opts):
@@ -307,17 +329,17 @@ def range_sample(sample: IonList, metals, *, species=None, ranges=None):
     return auto_range(m[::_ranging_stride(m.size)], tuple(metals), species=species, ranges=ranges)
 
 
-def _start_pass(rr, metals, thin, geom, seed):
+def _start_pass(rr, metals, thin, geom, seed, evidence=None):
     from ..lattice.counting import make_count_plan
 
     # every ranged metal ion is counted (nothing is thinned): the decoder models each metal's
     # visibility instead (``thin`` here is that visibility, kept in the columns' params)
-    return make_count_plan(rr.ranges, metals, np.ones(len(metals)), geom, seed)
+    return make_count_plan(rr.ranges, metals, np.ones(len(metals)), geom, seed, evidence=evidence)
 
 
 def _run_pass(plan, counts, factor, strict, blocks, where="", threads=None):
     """Feed the ``(row0, x, y, z, m)`` blocks of ``blocks()`` through the fused kernel; returns
-    (counts, tally, extents).
+    (counts, tally, extents, soft evidence or None).
 
     ``counts`` None: a float32 count array is made meanwhile (see
     :class:`probeseq.lattice.counting.CountPass`); should a bin reach 2**24 ions, where float32 stops
@@ -336,7 +358,7 @@ def _run_pass(plan, counts, factor, strict, blocks, where="", threads=None):
                                  f"values or a non-positive mass_to_charge (--strict)")
         tally, ext = cp.result()
         if not cp.saturated:
-            return cp.counts, tally, ext
+            return cp.counts, tally, ext, cp.evidence
         if counts is not None:
             raise InputError(f"a float32 count reached {FLOAT32_LIMIT:.0f} and is no longer exact: "
                              "pass a float64 count array")
@@ -345,7 +367,7 @@ def _run_pass(plan, counts, factor, strict, blocks, where="", threads=None):
     return _run_pass(plan, plan.new_counts(np.float64), factor, strict, blocks, where, threads)
 
 
-def _finish_pass(geom, counts, metals, tally, thin):
+def _finish_pass(geom, counts, metals, tally, thin, ev=None, evidence=None):
     from ..lattice.columns import columns_from_counts
     from ..lattice.counting import tally_dict
 
@@ -356,15 +378,24 @@ def _finish_pass(geom, counts, metals, tally, thin):
     stats = {"n_ions": n_metal, "n_binned": t["n_binned"], "n_beyond_cutoff": t["n_beyond_cutoff"],
              "n_unused_rod": t["n_unused_rod"], "n_outside_depth": t["n_outside_depth"]}
     visibility = {m: float(v) for m, v in zip(metals, thin)}
-    cols = columns_from_counts(geom, counts, metals, stats, extra_params={"visibility": visibility})
+    extra = {"visibility": visibility}
+    if ev is not None:
+        extra["evidence"] = {"capture": dict(zip(metals, ev.capture.tolist())),
+                             "own_scale": dict(zip(metals, ev.own_scale.tolist())),
+                             "lateral_spread": ev.spread.to_dict()}
+    cols = columns_from_counts(geom, counts, metals, stats, extra_params=extra,
+                               evidence=evidence if ev is not None else None)
     return cols, n_metal
 
 
 def _check_metals(metals) -> tuple:
+    """At least two metals, each an element symbol (checked before any file is read)."""
+    from ..ranging.isotopes import check_metals
+
     metals = tuple(metals)
     if len(metals) < 2:
         raise InputError(f"--metals needs at least two metals, got {list(metals)}")
-    return metals
+    return check_metals(metals, "--metals")
 
 
 def decode_stage(columns: RodColumns, options: AnalysisOptions | None = None, *, progress: Progress = None):
@@ -437,7 +468,11 @@ def _pool_copies(cols, dec, clock):
     if not suspected:
         return dec, None
     with clock.stage("copies", "neighbouring rods agree: decoding a master sequence from every copy"):
-        cr = decode_copies(cols, dec.params, dec.posteriors, rod_efficiency=getattr(dec, "rod_efficiency", None))
+        # pooled from the counts with the counts' fit (the soft-evidence model's approximations bias the
+        # copy error; pooling many rods needs no help from the soft evidence)
+        params = getattr(dec, "counts_params", None) or dec.params
+        cr = decode_copies(replace(cols, evidence=None), params, dec.posteriors,
+                           rod_efficiency=getattr(dec, "rod_efficiency", None))
     if not cr.applied:
         warnings.warn(f"neighbouring rods agree beyond chance but are decoded one at a time: {cr.reason}",
                       DataQualityWarning, stacklevel=3)

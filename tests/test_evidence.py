@@ -1,0 +1,229 @@
+"""Soft site evidence (probeseq.lattice.evidence): the lateral width, the extras' shares, the
+per-ion increments of the fused pass and the linear reading of the decoder."""
+
+from __future__ import annotations
+
+import itertools
+import math
+
+import numpy as np
+import pytest
+from test_counting import METALS, as_dict, fitted, run  # noqa: F401 (fixtures)
+from test_decode import make_columns
+
+from probeseq.decoding.decode import decode
+from probeseq.decoding.model import DecoderParams
+from probeseq.lattice.columns import ColumnBinner
+from probeseq.lattice.counting import CountPass, make_count_plan
+from probeseq.lattice.evidence import (N_LEVELS, UNITS, LateralSpread, _cell_d2, evidence_table, extras_shares,
+                                       fit_lateral_spread)
+from probeseq.ranging.channels import _weights_for, assign_channels
+
+
+def _cell_points(locator, n, rng):
+    """Points spread evenly over a rod's cell: squared distances to the axis drawn from the grid."""
+    d2 = _cell_d2(locator)
+    pick = rng.integers(0, d2.size, n)
+    jitter = rng.random(n)  # within the grid cell: small; enough for a distribution check
+    return np.sqrt(d2[pick]) * (0.98 + 0.04 * jitter)
+
+
+def _gauss_distances(sigma, n, rng):
+    return np.hypot(rng.normal(0, sigma, n), rng.normal(0, sigma, n))
+
+
+def test_lateral_spread_recovers_the_width(fitted):  # noqa: F811
+    _, _, geom = fitted
+    rng = np.random.default_rng(1)
+    for sigma in (0.1, 0.2):
+        d = np.concatenate([_gauss_distances(sigma, 8000, rng), _cell_points(geom.locator, 2000, rng)])
+        sp = fit_lateral_spread(d, geom.locator)
+        assert sp.fitted
+        assert sp.sigma_nm == pytest.approx(sigma, rel=0.08)
+        assert sp.own_share == pytest.approx(0.8, abs=0.05)
+    assert not fit_lateral_spread(np.ones(10), geom.locator).fitted
+
+
+def test_extras_shares_remove_the_own_ions(fitted):  # noqa: F811
+    # a range whose ions are 40 % of a metal: the metal's own ions (on the axes) are 30 % of the
+    # range, the rest is extras of which 1/7 are the metal
+    _, _, geom = fitted
+    rng = np.random.default_rng(2)
+    sigma = 0.12
+    own = _gauss_distances(sigma, 3000, rng)
+    extras = _cell_points(geom.locator, 7000, rng)
+    d = np.concatenate([own, extras])
+    share = np.array([[0.4, 0.0], [1.0, 0.0]])
+    ri = np.zeros(d.size, int)
+    u = extras_shares(share, d, ri, geom.locator, LateralSpread(sigma, 0.9, 1000, True))
+    assert u[0, 0] == pytest.approx(1 / 7, abs=0.03)
+    assert u[1, 0] == 1.0  # a pure range keeps its share
+    assert u[0, 1] == 0.0
+    # no fitted width: the spectrum's shares are kept
+    np.testing.assert_array_equal(extras_shares(share, d, ri, geom.locator, LateralSpread(0.15, 0, 0, False)), share)
+
+
+def test_table_quantisation_keeps_the_mean_and_exact_units(fitted):  # noqa: F811
+    _, _, geom = fitted
+    share = np.array([[1.0, 0.0], [0.0, 1.0], [0.3, 0.1], [0.0, 0.0]])
+    ev = evidence_table(share, [0.97, 0.95], [0.9, 0.92], geom.locator, LateralSpread(0.15, 0.9, 1000, True))
+    d2 = _cell_d2(geom.locator)
+    from probeseq.lattice.evidence import _grid_d2
+
+    inside = _grid_d2(geom.locator) < (geom.locator.cutoff_nm ** 2 if np.isfinite(geom.locator.cutoff_nm) else np.inf)
+    assert inside.sum() == d2.size
+    # rho averages to 1 over the cell area, so extras add on average their rate
+    assert ev.rho_levels[ev.cell_level[inside]].mean() == pytest.approx(1.0, rel=1e-12)
+    # every increment is a whole number of 1/UNITS: float32 sums are exact, whatever the order
+    inc = ev.increments
+    np.testing.assert_array_equal(inc * UNITS, np.rint(inc * UNITS))
+    assert inc.shape == (4 * N_LEVELS, 2)
+    assert not inc[3 * N_LEVELS:].any()  # a range without metal adds nothing
+    # nearer the axis, more evidence (rho falls with the distance)
+    lv = ev.cell_level
+    near, far = lv[np.argmin(_grid_d2(geom.locator))], lv[inside][np.argmax(d2)]
+    assert ev.rho_levels[near] > 3 * ev.rho_levels[far]
+    # an own ion adds on average E_g[rho] > 1 times its shares
+    assert ev.own_scale[0] > 0.9 / 0.97
+
+
+def _reference_evidence(ions, rr, geom, ev):
+    """numpy reference: grid cell of every ion as the kernels compute it (float64), its level, its
+    range's increments, binned with ColumnBinner."""
+    ca = assign_channels(ions["m"], rr.ranges, METALS)
+    w = ca.metal_weights[:-1]
+    ri = ca.range_index
+    sel = (ri >= 0)
+    sel[sel] = (w[ri[sel]] > 0).any(axis=1)
+    x, y, z = (np.asarray(ions[c], np.float64)[sel] for c in "xyz")
+    kg = geom.kernel_geometry()
+    G = int(kg.n_grid)
+    sh = int(kg.grid_bits)
+    F = []
+    for r in range(2):
+        f = x * kg.cell_xy[r, 0]
+        f += y * kg.cell_xy[r, 1]
+        f += z * kg.cell_z[r]
+        f += kg.cell_origin[r]
+        F.append(np.floor(f).astype(np.int64))
+    cell = ((F[0] & (G - 1)) << sh) | (F[1] & (G - 1))
+    inc = ev.increments[ri[sel] * N_LEVELS + ev.cell_level[cell]]
+    return ColumnBinner(geom, len(METALS)).add(x, y, z, inc).counts
+
+
+def test_fused_pass_fills_the_evidence_as_the_reference(run, fitted):  # noqa: F811
+    rr, _, geom = fitted
+    ions = as_dict(run.ions)
+    w, _, _ = _weights_for(rr.ranges, METALS)
+    ev = evidence_table(np.asarray(w[:-1]), [1.0, 1.0], [1.0, 1.0], geom.locator,
+                        LateralSpread(0.15, 0.9, 1000, True))
+    plan = make_count_plan(rr.ranges, METALS, np.ones(2), geom, 5, evidence=ev)
+    plain = make_count_plan(rr.ranges, METALS, np.ones(2), geom, 5)
+    x, y, z, m = (np.asarray(ions[c], np.float64) for c in "xyzm")
+    out = []
+    for threads, block in ((1, 50_000), (2, 7_001)):
+        with CountPass(plan, threads=threads) as cp:
+            for s in range(0, x.size, block):
+                cp.add(s, x[s:s + block], y[s:s + block], z[s:s + block], m[s:s + block])
+            tally, _ = cp.result()
+            out.append((cp.counts.copy(), cp.evidence.copy(), tally.copy()))
+    with CountPass(plain, threads=1) as cp:
+        cp.add(0, x, y, z, m)
+        t_plain, _ = cp.result()
+        c_plain = cp.counts.copy()
+    # the counts and tallies are those of the pass without evidence; the evidence is exact
+    for c, e, t in out:
+        np.testing.assert_array_equal(c, c_plain)
+        np.testing.assert_array_equal(t, t_plain)
+        np.testing.assert_array_equal(e, out[0][1])
+    ref = _reference_evidence(ions, rr, geom, ev)
+    np.testing.assert_allclose(out[0][1], ref, atol=1e-5)
+    assert out[0][1].sum() > 0
+
+
+def _brute_state_loglik(ev, mask, p):
+    """log sum over state sequences of prod_t factor_t(s_t) times the chain, the factor read
+    linearly: 1 - eta a_k + eta a_k E_k / mu_k (the model of probeseq.lattice.evidence)."""
+    T, K = ev.shape
+    f = p.stationary
+    e = p.eta * p.visibility
+    tot = 0.0
+    for seq in itertools.product(range(K), repeat=T):
+        lp = math.log(f[seq[0]]) + sum(math.log(p.transmat[seq[t - 1], seq[t]]) for t in range(1, T))
+        for t in range(T):
+            if mask[t]:
+                k = seq[t]
+                lp += math.log(1 - e[k] + e[k] * ev[t, k] / p.extra_rate[k])
+        tot += math.exp(lp)
+    return math.log(tot)
+
+
+@pytest.mark.filterwarnings("ignore::probeseq.exceptions.DataQualityWarning")  # a tiny rod has few counts
+def test_decoder_reads_soft_evidence_linearly():
+    evid = np.array([[[0.0, 2.7], [0.4, 0.0], [0.0, 0.0], [1.3, 0.2], [0.0, 0.0], [5.1, 0.0]]])
+    counts = np.rint(evid)
+    mask = np.array([[True, True, False, True, True, True]])
+    cols = make_columns(counts, mask)
+    import dataclasses
+
+    cols = dataclasses.replace(cols, evidence=evid, params={"evidence": {"own_scale": {"Co": 2.0, "Zn": 2.0}}})
+    base = dict(eta=0.6, extra_rate=np.array([0.3, 0.5]), visibility=[0.9, 0.8])
+    p1 = DecoderParams(transmat=[[0.8, 0.2], [0.3, 0.7]], **base)
+    p2 = DecoderParams(transmat=[[0.5, 0.5], [0.5, 0.5]], **base)
+    r1, r2 = decode(cols, p1), decode(cols, p2)
+    # the state-independent part is the same for both: the difference is the linear factors'
+    assert r1.loglik - r2.loglik == pytest.approx(
+        _brute_state_loglik(evid[0], mask[0], p1) - _brute_state_loglik(evid[0], mask[0], p2), rel=1e-9)
+    # and the counts alone give another answer (the split-ion reading of fractions is not used)
+    plain = decode(make_columns(evid, mask), p1)
+    assert plain.loglik != pytest.approx(r1.loglik, rel=1e-6)
+
+
+class _LinearEvidenceReference:
+    """The soft-evidence emission written out for hmmlearn 0.3.3 (its documented
+    ``_compute_log_likelihood`` hook, as hmmlearn's own StubHMM test does): log(1 - eta a_k +
+    eta a_k E_k / mu_k) per state; the last column of X flags observed sites."""
+
+    @staticmethod
+    def make(params):
+        base = pytest.importorskip("hmmlearn.base")  # source: hmmlearn 0.3.3
+
+        class Ref(base.BaseHMM):
+            def __init__(self):
+                super().__init__(n_components=params.n_metals, init_params="", params="")
+                self.startprob_ = params.stationary
+                self.transmat_ = params.transmat
+
+            def _compute_log_likelihood(self, X):
+                e, obs = X[:, :-1], X[:, -1] > 0
+                ek = params.eta * params.visibility
+                out = np.log(1 - ek + ek * e / params.extra_rate)
+                out[~obs] = 0.0
+                return out
+
+        return Ref()
+
+
+@pytest.mark.filterwarnings("ignore::probeseq.exceptions.DataQualityWarning")
+def test_soft_evidence_posteriors_match_hmmlearn():
+    import dataclasses
+
+    rng = np.random.default_rng(4)
+    n_rods, n_sites = 6, 80
+    evid = np.where(rng.random((n_rods, n_sites, 3)) < 0.3, np.rint(rng.gamma(2.0, 1.0, (n_rods, n_sites, 3)) * 64) / 64,
+                    0.0)
+    mask = rng.random((n_rods, n_sites)) > 0.1
+    cols = make_columns(np.rint(evid), mask)
+    cols = dataclasses.replace(cols, evidence=evid, params={"evidence": {"own_scale": {m: 2.0 for m in cols.metals}}})
+    p = DecoderParams(transmat=[[0.7, 0.2, 0.1], [0.15, 0.7, 0.15], [0.1, 0.3, 0.6]], eta=0.55,
+                      extra_rate=np.array([0.2, 0.3, 0.25]), visibility=[0.8, 1.0, 0.9])
+    res = decode(cols, p)
+    ref = _LinearEvidenceReference.make(p)
+    for r in range(n_rods):
+        obs = np.flatnonzero(mask[r])
+        t0, t1 = obs.min(), obs.max() + 1  # the rod's span: leading and trailing masked sites dropped
+        X = np.column_stack([evid[r, t0:t1], mask[r, t0:t1].astype(float)])
+        _, post = ref.score_samples(X)
+        np.testing.assert_allclose(res.posteriors[r, t0:t1][mask[r, t0:t1]], post[mask[r, t0:t1]], atol=2e-6)
+        path = ref.decode(X, algorithm="viterbi")[1]
+        np.testing.assert_array_equal(res.viterbi[r, t0:t1][mask[r, t0:t1]], path[mask[r, t0:t1]])
