@@ -277,8 +277,9 @@ def background_checksum(fn, path, out: dict):
 
 class Background:
     """Run ``fn(*args)`` in a forked child process (no pickling: the child inherits the data), so
-    a long table write uses another core while figures are drawn. Where fork is not available it
-    runs in place, at once.
+    a long table write uses another core while figures are drawn. Where fork is not available, or
+    in a daemonic process (a dask worker of a batch, which may not have children), it runs in
+    place, at once.
 
     Parameters
     ----------
@@ -299,6 +300,9 @@ class Background:
         try:
             ctx = mp.get_context("fork")
         except ValueError:
+            fn(*args)
+            return
+        if mp.current_process().daemon:
             fn(*args)
             return
         ensure()

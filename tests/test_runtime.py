@@ -110,7 +110,7 @@ def test_batch_takes_its_workers_from_n_jobs(tmp_path, restore_runtime):
     for n_jobs in (1, None):
         runtime.configure(n_jobs)
         outcomes = analyze_batch(src, tmp_path / f"out{n_jobs}", options=AnalysisOptions(n_boot=20),
-                                 started=lambda n_runs, n: workers.append(n))
+                                 started=lambda n_runs, where: workers.append(where.count))
         assert [o.ok for o in outcomes] == [False, False]  # the ion files do not exist
     assert workers == [1, min(2, os.cpu_count() or 1)]
 

@@ -1,9 +1,11 @@
 """Analysis of one run, and of a batch of runs, into output folders: the library behind ``analyze``.
 
 :func:`analyze_run` analyses one ion file or one run folder (ion file + ``run.toml``) and writes
-its output folder; :func:`analyze_batch` does the same for every run folder of a folder, in
-worker processes, through :func:`analyze_run` itself, so a run of a batch and a single run are
-analysed alike. Options given by the caller take precedence over what ``run.toml`` says.
+its output folder; :func:`analyze_batch` does the same for every run folder of a folder, one task
+per run on a dask cluster (local by default, or a running scheduler) or, without dask, in local
+worker processes (:mod:`probeseq.study.cluster`), through :func:`analyze_run` itself, so a run
+of a batch and a single run are analysed alike. Options given by the caller take precedence over
+what ``run.toml`` says.
 
 Examples
 --------
@@ -15,7 +17,6 @@ Examples
 
 from __future__ import annotations
 
-import os
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -26,7 +27,8 @@ from ..exceptions import InputError, ProbeseqError
 
 __all__ = ['RunSource', 'RunAnalysis', 'BatchOutcome', 'resolve_run', 'analyze_run', 'analyze_batch', 'run_folders', 'summary_lines', 'DEFAULT_WORKERS']
 
-#: worker processes of a batch unless told otherwise (each run uses up to two threads)
+#: worker processes of a batch without dask unless told otherwise (each run uses up to two threads);
+#: a local dask cluster has one worker per core
 DEFAULT_WORKERS = 2
 
 
@@ -424,16 +426,18 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
                   repeat: float | None = None, sites_per_repeat: int | None = None, ranges=None,
                   length_unit: str | None = None, position_dataset: str | None = None,
                   mass_dataset: str | None = None, strict: bool = False, allow_outside: bool = False,
-                  force: bool = False, workers: int | None = None,
+                  force: bool = False, workers: int | None = None, scheduler: str | None = None,
                   progress: Optional[Callable[[BatchOutcome], None]] = None,
-                  started: Optional[Callable[[int, int], None]] = None, command_line: str | None = None) -> list:
-    """Analyse every run folder of ``folder`` into ``out/<run folder name>``, in worker processes.
+                  started: Optional[Callable] = None, command_line: str | None = None) -> list:
+    """Analyse every run folder of ``folder`` into ``out/<run folder name>``, one task per run.
 
     Each run goes through :func:`analyze_run` with the same options, which take precedence over
     each ``run.toml``. A run that fails is recorded with its one-line reason and the others go
-    on. ``out`` is checked before any work (it may neither be nor contain the batch folder or a
-    run folder) and is made only when the first run's results are complete. The options (and a
-    lattice or range file given) are checked once, before any run starts.
+    on; a run whose worker process dies is run once more, then recorded as failed. ``out`` is
+    checked before any work (it may neither be nor contain the batch folder or a run folder) and
+    is made only when the first run's results are complete. The options (and a lattice or range
+    file given) are checked once, before any run starts. Each run's results depend on its run
+    folder and the options alone (the seed is in ``options``), never on the workers.
 
     Parameters
     ----------
@@ -444,13 +448,22 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
     options, metals, lattice, a, repeat, sites_per_repeat, ranges, length_unit, position_dataset, mass_dataset, strict, allow_outside, force, command_line
         As for :func:`analyze_run`, for every run.
     workers : int, optional
-        Worker processes (at most the number of processors and of runs). Default: ``n_jobs`` of
-        :func:`probeseq.runtime.configure` (the command line's ``--jobs``) when set, else
-        :data:`DEFAULT_WORKERS`; each worker's compiled kernels then use its share of ``n_jobs``.
+        Local worker processes (at most the number of processors and of runs; ignored with a
+        scheduler). Default: ``n_jobs`` of :func:`probeseq.runtime.configure` (the command line's
+        ``--jobs``) when set, else one per core on a local dask cluster, or
+        :data:`DEFAULT_WORKERS` processes without dask; each worker's compiled kernels then use
+        its share of the cores (of ``n_jobs`` when set).
+    scheduler : str, optional
+        Address of a running dask scheduler (``tcp://HOST:PORT``) to send the runs to; default:
+        the environment variable ``PROBESEQ_SCHEDULER``, else a local cluster (see
+        :func:`probeseq.study.cluster.run_tasks`). Its workers need probeseq and the same paths;
+        the paths are sent absolute.
     progress : callable, optional
-        Called with each :class:`BatchOutcome`, in the order of the runs, as results come in.
+        Called with each :class:`BatchOutcome` as its run finishes (in the order they finish).
     started : callable, optional
-        Called as ``started(n_runs, n_workers)`` once the checks have passed, before the first run.
+        Called as ``started(n_runs, where)`` (``where`` a :class:`probeseq.study.cluster.Workers`:
+        ``where.count`` runs at a time, ``str(where)`` says where) once the checks have passed and
+        the workers are ready, before the first run.
 
     Returns
     -------
@@ -460,15 +473,15 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
     Raises
     ------
     InputError
-        No run folder, an unusable ``out``, or a bad option (before any run starts).
+        No run folder, an unusable ``out``, or a bad option (before any run starts); a scheduler
+        named without dask installed, malformed, unreachable or without workers (see
+        :func:`probeseq.study.cluster.run_tasks`).
     """
-    from concurrent.futures import ProcessPoolExecutor
-
-    from .. import runtime
     from ..lattice.model import Lattice
     from ..outputs.folder import check_outdir
     from ..pipeline.options import AnalysisOptions
     from ..ranging.ranges import RangeSet
+    from .cluster import run_tasks, scheduler_address
 
     src = Path(folder)
     if not src.is_dir():
@@ -484,24 +497,27 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
         _build_lattice(lattice, a, repeat, sites_per_repeat, "--lattice")
     if ranges is not None:
         RangeSet.from_toml(ranges)
-    workers = runtime.worker_count(workers, DEFAULT_WORKERS)
-    if isinstance(workers, bool) or not isinstance(workers, int) or workers < 1:
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, int) or workers < 1):
         raise InputError(f"workers must be a positive integer, got {workers!r}")
-    kwargs = dict(options=options or AnalysisOptions(), metals=metals,
-                  lattice=lattice if isinstance(lattice, (Lattice, type(None))) else str(lattice), a=a,
-                  repeat=repeat, sites_per_repeat=sites_per_repeat, ranges=ranges, length_unit=length_unit,
+    remote = scheduler_address(scheduler)[0] is not None
+
+    def sent(path):  # a worker elsewhere has another working folder
+        return None if path is None else (Path(path).absolute() if remote else path)
+
+    if isinstance(lattice, (Lattice, type(None))):
+        lat = lattice
+    else:
+        lat = str(sent(lattice)) if _lattice_file(lattice) else str(lattice)
+    kwargs = dict(options=options or AnalysisOptions(), metals=metals, lattice=lat, a=a,
+                  repeat=repeat, sites_per_repeat=sites_per_repeat, ranges=sent(ranges), length_unit=length_unit,
                   position_dataset=position_dataset, mass_dataset=mass_dataset, strict=strict,
                   allow_outside=allow_outside, force=force, command_line=command_line)
-    jobs = [(sub, out / sub.name, kwargs) for sub in subs]
-    n = max(1, min(workers, os.cpu_count() or 1, len(jobs)))
-    if started is not None:
-        started(len(jobs), n)
-    outcomes = []
-    runtime.ensure()  # the fork-safe threading layer, before the workers start
-    with ProcessPoolExecutor(max_workers=n, initializer=runtime.configure,
-                             initargs=(runtime.worker_jobs(n),)) as ex:
-        for outcome in ex.map(_batch_job, jobs):
-            outcomes.append(outcome)
-            if progress is not None:
-                progress(outcome)
-    return outcomes
+    jobs = [(sent(sub), sent(out / sub.name), kwargs) for sub in subs]
+
+    def lost(i, reason):
+        return BatchOutcome(run=subs[i].name, outdir=jobs[i][1], ok=False, error=reason)
+
+    return run_tasks(_batch_job, jobs, lost=lost, scheduler=scheduler, workers=workers, pool_default=DEFAULT_WORKERS,
+                     names=[sub.name for sub in subs], started=None if started is None else
+                     (lambda where: started(len(jobs), where)),
+                     done=None if progress is None else (lambda i, outcome: progress(outcome)))

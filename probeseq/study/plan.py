@@ -9,19 +9,19 @@ arrangements, analyses each with the full pipeline, and reports
   (default 0.8, the conventional power of a study design; common practice).
 
 The simulated runs are small (a few hundred rods), so the figures are a guide for runs of that
-size; larger runs can only do better.
+size; larger runs can only do better. Each run is one task on a dask cluster (local by default,
+or a running scheduler) or, without dask, in local worker processes
+(:func:`probeseq.study.cluster.run_tasks`); every run has its own seed, so the plan is the same
+whatever the workers.
 """
 
 from __future__ import annotations
 
-import os
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 
-from .. import runtime
-from ..exceptions import InputError
+from ..exceptions import InputError, ProbeseqError
 from ..lattice.model import Lattice
 
 __all__ = ['PlanResult', 'plan_experiment', 'LABELS']
@@ -88,12 +88,33 @@ def _one(job):
     return res.classification.label, res.classification.along_rod, ""
 
 
+def _run_jobs(jobs, kinds, workers, scheduler, progress, started) -> list:
+    """The label of every simulated run, in the order of ``jobs``, one task per run."""
+    from .cluster import run_tasks
+
+    finished = []
+
+    def lost(i, reason):
+        kind, value = kinds[i]
+        raise ProbeseqError(f"simulated run {i + 1} of {len(jobs)} ({kind} {value}) gave no result: {reason}")
+
+    def done(i, result):
+        finished.append(i)
+        if progress:
+            progress(len(finished), len(jobs))
+
+    return run_tasks(_one, jobs, lost=lost, scheduler=scheduler, workers=workers, pool_default=2,
+                     names=[f"plan-{kind}-{value}" for kind, value in kinds], done=done,
+                     started=None if started is None else (lambda where: started(len(jobs), where)))
+
+
 def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_resolution_nm: float = 0.15,
                     composition=None, n_per_pattern: int = 4, persistences=(0.02, 0.05, 0.1, 0.2, 0.35),
                     n_per_persistence: int = 3, long_block_persistence: float = 0.9,
                     short_repeat_persistence: float = 0.5, copy_error: float = 0.05, top_radius_nm: float = 5.0,
                     depth_nm: float = 25.0, power: float = 0.8, n_boot: int = 60, seed: int = 0,
-                    workers: int | None = None, progress=None) -> PlanResult:
+                    workers: int | None = None, scheduler: str | None = None, progress=None,
+                    started=None) -> PlanResult:
     """Simulate runs under the given conditions and report what the analysis can tell apart.
 
     Parameters
@@ -107,13 +128,27 @@ def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_r
     n_per_pattern, n_per_persistence : int
         Simulated runs per arrangement and per persistence of the scan.
     workers : int, optional
-        Processes. Default: ``n_jobs`` of :func:`probeseq.runtime.configure` (the command
-        line's ``--jobs``) when set, else two (one on a single core); each worker's compiled
-        kernels then use its share of ``n_jobs``.
+        Local worker processes (ignored with a scheduler). Default: ``n_jobs`` of
+        :func:`probeseq.runtime.configure` (the command line's ``--jobs``) when set, else one per
+        core on a local dask cluster, or two processes without dask (one on a single core); never
+        more than the cores.
+    scheduler : str, optional
+        Address of a running dask scheduler; default: the environment variable
+        ``PROBESEQ_SCHEDULER``, else local (see :func:`probeseq.study.cluster.run_tasks`).
+    progress, started : callable, optional
+        ``progress(n_done, n_runs)`` as each simulated run is analysed; ``started(n_runs, where)``
+        once the workers are ready (``where`` a :class:`probeseq.study.cluster.Workers`).
 
     Returns
     -------
     PlanResult
+
+    Raises
+    ------
+    InputError
+        A condition out of range, or a scheduler named without dask, unreachable or without workers.
+    ProbeseqError
+        A simulated run gave no result, also when tried again (its worker died, say).
     """
     from ..pipeline.options import AnalysisOptions
     from ..simulation.simulate import MAX_TOP_RADIUS_NM, SimConfig
@@ -170,21 +205,7 @@ def plan_experiment(metals, lattice: Lattice, efficiency: float = 0.5, lateral_r
             s += 1
             jobs.append((SimConfig(pattern="short-repeat", persistence=lam, seed=s, **base), n_boot))
             kinds.append(("scan", lam))
-    n_workers = min(runtime.worker_count(workers, min(2, os.cpu_count() or 1)), len(jobs))
-    results = []
-    if n_workers > 1:
-        runtime.ensure()  # the fork-safe threading layer, before the workers start
-        with ProcessPoolExecutor(max_workers=n_workers, initializer=runtime.configure,
-                                 initargs=(runtime.worker_jobs(n_workers),)) as ex:
-            for i, r in enumerate(ex.map(_one, jobs)):
-                results.append(r)
-                if progress:
-                    progress(i + 1, len(jobs))
-    else:
-        for i, j in enumerate(jobs):
-            results.append(_one(j))
-            if progress:
-                progress(i + 1, len(jobs))
+    results = _run_jobs(jobs, kinds, workers, scheduler, progress, started)
     conf = np.zeros((len(patterns), len(LABELS)), dtype=int)
     scan = {lam: [] for lam in lams}
     for (kind, val), (label, along, _) in zip(kinds, results):
