@@ -55,8 +55,8 @@ def _root(
     jobs: Annotated[Optional[int], typer.Option(
         "--jobs", metavar="N", show_default=False,
         help="Threads for compiled kernels and worker processes for batches; default: all cores "
-             "(batch folders and plan: 2 worker processes). Give it before the command, e.g. "
-             "'probeseq --jobs 2 analyze ...'.")] = None,
+             "(batch folders and plan: a local dask cluster with one worker per core, or 2 worker "
+             "processes without dask). Give it before the command, e.g. 'probeseq --jobs 2 analyze ...'.")] = None,
 ):
     """probeseq: from a reconstructed ion list to the metal sequence along each rod."""
     from .. import runtime
@@ -133,3 +133,48 @@ def renamed(ctx: typer.Context, new: str, value, old: str, old_value):
     if source is not None and source.name == "COMMANDLINE":
         raise InputError(f"{new} and {old} are the same option ({old} is its deprecated name); give {new} only")
     return old_value
+
+
+# ---------------------------------------------------------------------- readable help
+#: how the value placeholders of options read in --help (the command-line layer's own are <type>)
+_METAVARS = {"str": "TEXT", "float": "NUMBER", "int": "INTEGER", "path": "PATH", "bool": "BOOLEAN"}
+
+
+def _argument_name(param) -> str:
+    """An argument as the usage line and --help show it: ``IONS``, ``[NAME]``, ``OUTDIRS...``."""
+    name = (param.metavar or param.name).upper()
+    if not param.required:
+        name = f"[{name}]"
+    return name + ("..." if param.nargs != 1 else "")
+
+
+class ReadableCommand(typer.core.TyperCommand):
+    """A command whose --help reads plainly: arguments as ``IONS`` (not ``{ions}``) in the usage
+    line and the argument list, option values as ``TEXT``, ``NUMBER``, ``INTEGER`` or ``PATH``
+    unless the option names its own placeholder."""
+
+    def collect_usage_pieces(self, ctx) -> list:
+        """``[OPTIONS]`` and the arguments by name."""
+        rv = [self.options_metavar] if self.options_metavar else []
+        for p in self.get_params(ctx):
+            rv.extend([_argument_name(p)] if p.param_type_name == "argument" else p.get_usage_pieces(ctx))
+        return rv
+
+    def format_options(self, ctx, formatter) -> None:
+        """The Arguments and Options sections, with readable placeholders."""
+        import re
+
+        args, opts = [], []
+        for p in self.get_params(ctx):
+            rec = p.get_help_record(ctx)
+            if rec is None:
+                continue
+            if p.param_type_name == "argument":
+                args.append((_argument_name(p), rec[1]))
+            elif p.param_type_name == "option":
+                opts.append((re.sub(r"<(\w+)>", lambda m: _METAVARS.get(m.group(1), m.group(1).upper()), rec[0]),
+                             rec[1]))
+        for title, rows in (("Arguments", args), ("Options", opts)):
+            if rows:
+                with formatter.section(title):
+                    formatter.write_dl(rows)

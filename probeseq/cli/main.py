@@ -138,7 +138,9 @@ def ion_file_kind_check(path):
 @app.command()
 def inspect(
     ions: Annotated[Path, typer.Argument(help="Ion file (.csv, .tsv, .txt, .h5, .hdf5).")],
-    length_unit: Annotated[Optional[str], typer.Option(help="nm | angstrom (unit of positions in the file).")] = None,
+    length_unit: Annotated[Optional[str], typer.Option(metavar="UNIT", show_default="nm; an HDF5 file's length_unit "
+                                                       "attribute when it has one",
+                                                       help="nm | angstrom (unit of positions in the file).")] = None,
     position_dataset: Annotated[Optional[str], typer.Option(help="HDF5 path of an N x 3 position dataset.")] = None,
     mass_dataset: Annotated[Optional[str], typer.Option(help="HDF5 path of the mass-to-charge dataset.")] = None,
     strict: Annotated[bool, typer.Option(help="Treat NaN/inf or non-positive mass-to-charge as an error.")] = False,
@@ -282,16 +284,20 @@ def _register_commands():
 
     The summary of a command in ``probeseq --help`` is the first paragraph of its docstring,
     wrapped but never cut short (the command-line layer would otherwise shorten it to the width
-    of the terminal).
+    of the terminal). Every command's help names its arguments and values plainly
+    (:class:`probeseq.cli.common.ReadableCommand`).
     """
     import inspect as _inspect
 
     from . import stages  # noqa: F401  (one way: cli_stages never imports this module)
+    from .common import ReadableCommand
 
     for info in app.registered_commands:
         doc = _inspect.getdoc(info.callback) or ""
         if info.short_help is None and doc:
             info.short_help = " ".join(doc.split("\n\n")[0].split())
+        if info.cls is None or info.cls is typer.core.TyperCommand:
+            info.cls = ReadableCommand  # usage lines name the arguments plainly (IONS, not {ions})
 
 
 def run():

@@ -21,7 +21,12 @@ from ..utils.marks import figure_metadata
 from .common import _STATE, app, deprecated_option, renamed, say, split_list
 
 # ---------------------------------------------------------------------- shared options
-LengthUnit = Annotated[Optional[str], typer.Option(help="nm | angstrom: unit of the positions in the ion file.")]
+#: what --help gives as the default of --length-unit (the readers' rule)
+LENGTH_UNIT_DEFAULT = "nm; an HDF5 file's length_unit attribute when it has one"
+
+
+LengthUnit = Annotated[Optional[str], typer.Option(metavar="UNIT", show_default=LENGTH_UNIT_DEFAULT,
+                                                   help="nm | angstrom: unit of the positions in the ion file.")]
 
 
 PosDataset = Annotated[Optional[str], typer.Option(help="HDF5 path of an N x 3 position dataset (other layouts).")]
@@ -33,10 +38,11 @@ MassDataset = Annotated[Optional[str], typer.Option(help="HDF5 path of the mass-
 Strict = Annotated[bool, typer.Option(help="Treat NaN/inf or non-positive mass-to-charge rows as an error.")]
 
 
-Metals = Annotated[Optional[str], typer.Option(help="Comma-separated metal symbols, e.g. Co,Zn.")]
+Metals = Annotated[Optional[str], typer.Option(metavar="A,B", help="Comma-separated metal symbols, e.g. Co,Zn.")]
 
 
-LatticeOpt = Annotated[Optional[str], typer.Option(help="Lattice TOML file, or a preset: honeycomb | triangular | square.")]
+LatticeOpt = Annotated[Optional[str], typer.Option(metavar="FILE|PRESET", help="Lattice TOML file, or a preset: "
+                                                                               "honeycomb | triangular | square.")]
 
 
 AOpt = Annotated[Optional[float], typer.Option("--a", help="Cell edge a, nm (with a preset).")]
@@ -62,6 +68,13 @@ Force = Annotated[bool, typer.Option(help="Replace an existing output that probe
 
 
 ForceFile = Annotated[bool, typer.Option(help="Replace an existing output file that probeseq wrote.")]
+
+
+SchedulerOpt = Annotated[Optional[str], typer.Option(
+    metavar="ADDRESS", help="A running dask scheduler (tcp://HOST:PORT) to send the runs to, one task per run; "
+                            "default: the environment variable PROBESEQ_SCHEDULER, else a local dask cluster "
+                            "with one worker per core (local processes without dask; pip install "
+                            "probeseq[cluster]).")]
 
 
 def _command_line() -> str:
@@ -94,10 +107,13 @@ def _lattice(spec, a, repeat, sites_per_repeat):
 
 
 def _metals(text):
+    """--metals as a tuple of element symbols, checked before any file is read."""
+    from ..ranging.isotopes import check_metals
+
     mets = split_list(text, "--metals")
     if len(mets) < 2:
         raise InputError("--metals needs at least two metals, e.g. --metals Co,Zn")
-    return tuple(mets)
+    return check_metals(mets, "--metals")
 
 
 class _Reporter:
@@ -355,12 +371,14 @@ def analyze(
     allow_outside: Annotated[bool, typer.Option(help="Let a run folder's run.toml name files outside the run "
                                                      "folder (refused by default).")] = False,
     strict: Strict = False, force: Force = False, quiet: Quiet = False, verbose: Verbose = False,
+    scheduler: SchedulerOpt = None,
 ):
     """Run the whole analysis: ranging, columns, decoding, statistics and classification; also for a batch.
 
     IONS may be an ion file, a run folder (the ion file plus run.toml), or a batch folder: a
-    folder of run folders, each analysed into OUT/<run folder name> (two runs at a time) with the
-    same options, which take precedence over each run.toml. A batch prints one line per run and
+    folder of run folders, each analysed into OUT/<run folder name> with the same options, which
+    take precedence over each run.toml, one task per run on a local dask cluster or the
+    --scheduler's. A batch shows its progress on a terminal, prints a summary line per run and
     exits with 1 if any run failed; the others are still written.
     """
     from ..pipeline.options import AnalysisOptions
@@ -380,7 +398,10 @@ def analyze(
     src = Path(ions)
     if src.is_dir() and not (src / "run.toml").exists() and run_folders(src):
         batch_out = Path(out) if out is not None else Path(f"analysis_{safe_file_name(src.resolve().name)}")
-        return _batch(src, batch_out, common, verbose)
+        return _batch(src, batch_out, common, verbose, scheduler)
+    if scheduler is not None:
+        sys.stderr.write("note: --scheduler is for a batch folder of run folders; this single run is analysed "
+                         "here\n")
     rep = _Reporter(quiet, verbose)
     try:
         ra = analyze_run(src, out, progress=rep, **common)
@@ -390,28 +411,27 @@ def analyze(
         say(line)
 
 
-def _batch(src: Path, out: Path, common: dict, verbose: bool):
-    """Analyse a batch folder with :func:`probeseq.study.batch.analyze_batch`; one summary line per run."""
+def _batch(src: Path, out: Path, common: dict, verbose: bool, scheduler: Optional[str]):
+    """Analyse a batch folder with :func:`probeseq.study.batch.analyze_batch`: progress on a
+    terminal, then one summary line per run."""
     from ..study.batch import analyze_batch
+    from .progress import RunProgress, batch_summary
 
-    def start(n_runs, n_workers):
-        say(f"analysing {n_runs} run folders of {src} with {n_workers} processes into {out}")
+    live = RunProgress(_STATE["quiet"])
 
-    def show(o):
-        if o.ok:
-            say(f"  {o.run:32s} {o.label} (confidence {o.confidence:.2f})")
-        else:
-            say(f"  {o.run:32s} failed: {o.error}")
-        if verbose:
-            for r in o.reasons:
-                say(f"  {'':32s}   - {r}")
-            for w in o.warnings:
-                say(f"  {'':32s}   warning: {w}")
+    def start(n_runs, where):
+        say(f"analysing {n_runs} run folders of {src} on {where} into {out}")
+        live.started(n_runs, where)
 
-    outcomes = analyze_batch(src, out, progress=show, started=start, **common)
+    try:
+        outcomes = analyze_batch(src, out, progress=lambda o: live.finished(o.ok, o.run, o.error), started=start,
+                                 scheduler=scheduler, **common)
+    finally:
+        live.close()
+    batch_summary(outcomes, out, time.perf_counter() - live.t0, verbose)
     failed = [o for o in outcomes if not o.ok]
     if failed:
-        where = "" if _STATE["quiet"] else "; reasons above"
+        where = "" if _STATE["quiet"] else "; reasons in the summary above"
         rest = "no run was written" if len(failed) == len(outcomes) else f"the others were written to {out}"
         raise InputError(f"{len(failed)} of {len(outcomes)} runs failed ({', '.join(o.run for o in failed[:5])}"
                          f"{', ...' if len(failed) > 5 else ''}{where}); {rest}")
@@ -487,14 +507,19 @@ def plan(
     depth: Annotated[float, typer.Option(help="Depth of the simulated runs, nm.")] = 25.0,
     out: Annotated[Optional[Path], typer.Option(help="Write the plan as JSON here.")] = None,
     seed: Annotated[int, typer.Option(help="Random seed.")] = 0,
-    force: ForceFile = False, quiet: Quiet = False,
+    force: ForceFile = False, quiet: Quiet = False, scheduler: SchedulerOpt = None,
     efficiency: Annotated[Optional[float], deprecated_option("--efficiency", "--detection-efficiency")] = None,
     lateral_resolution: Annotated[Optional[float], deprecated_option("--lateral-resolution", "--lateral-blur")] = None,
     radius: Annotated[Optional[float], deprecated_option("--radius", "--tip-radius")] = None,
 ):
-    """Before acquiring: simulate runs under your conditions and report what the analysis can tell apart."""
+    """Before acquiring: simulate runs under your conditions and report what the analysis can tell apart.
+
+    Each simulated run is one task on a local dask cluster or the --scheduler's; the plan is the
+    same whatever the workers (every run has its own seed).
+    """
     from ..outputs.folder import check_outfile, staged_file, write_json
     from ..study.plan import plan_experiment
+    from .progress import RunProgress
 
     _STATE["quiet"] = quiet
     detection_efficiency = renamed(ctx, "--detection-efficiency", detection_efficiency, "--efficiency", efficiency)
@@ -506,16 +531,14 @@ def plan(
     mets = _metals(metals)
     lat = _lattice(lattice, a, repeat, sites_per_repeat)
 
-    def prog(i, n):
-        if not quiet:
-            sys.stderr.write(f"\rsimulated and analysed {i}/{n} runs")
-            sys.stderr.flush()
-            if i == n:
-                sys.stderr.write("\n")
-
-    res = plan_experiment(mets, lat, efficiency=detection_efficiency, lateral_resolution_nm=lateral_blur,
-                          n_per_pattern=runs_per_pattern, n_per_persistence=runs_per_persistence,
-                          top_radius_nm=tip_radius, depth_nm=depth, seed=seed, progress=prog)
+    live = RunProgress(quiet, "simulated runs", announce=True)
+    try:
+        res = plan_experiment(mets, lat, efficiency=detection_efficiency, lateral_resolution_nm=lateral_blur,
+                              n_per_pattern=runs_per_pattern, n_per_persistence=runs_per_persistence,
+                              top_radius_nm=tip_radius, depth_nm=depth, seed=seed, scheduler=scheduler,
+                              progress=lambda i, n: live.finished(True), started=live.started)
+    finally:
+        live.close()
     say(f"expected confusion (rows: true arrangement, columns: label given), {res.n_runs} simulated runs")
     say(f"{'':18s}" + "".join(f"{lab[:12]:>13s}" for lab in res.labels))
     for i, p in enumerate(res.patterns):
@@ -539,13 +562,19 @@ def plan(
 def export(
     ctx: typer.Context,
     outdir: Annotated[Path, typer.Argument(help="An 'analyze' output folder.")],
-    format: Annotated[str, typer.Option("--format", help="csv | json | hdf5 | svg | pdf | png")] = "csv",
-    rods: Annotated[Optional[str], typer.Option(help="Rod ids, e.g. 3,5,10-12 (default all).")] = None,
-    depth_window: Annotated[Optional[str], typer.Option(help="Depth window 'A:B' in nm, either side may be "
-                                                             "left empty (default all).")] = None,
-    out: Annotated[Optional[Path], typer.Option(help="File to write (default OUTDIR/exports/tracks.<ext>).")] = None,
-    size: Annotated[str, typer.Option(help="Figure width preset: one-column | two-column.")] = "two-column",
-    dpi: Annotated[int, typer.Option(help="Resolution of PNG figures.")] = 300,
+    format: Annotated[str, typer.Option("--format", metavar="FORMAT", help="csv | json | hdf5 | svg | pdf | png")] = "csv",
+    rods: Annotated[Optional[str], typer.Option(metavar="IDS", show_default="all", help="Rod ids and ranges, e.g. "
+                                                "3,5,10-12 (the rod column of tracks.csv).")] = None,
+    depth_window: Annotated[Optional[str], typer.Option(metavar="A:B", show_default="all", help="Depth window in "
+                                                        "nm; either side may be left empty.")] = None,
+    max_rods: Annotated[int, typer.Option(metavar="N", help="Figures: the most tracks drawn, 1-400 (every track "
+                                                            "labelled); a larger selection shows its N rods nearest "
+                                                            "the centre of the field of view, and says so.")] = 400,
+    out: Annotated[Optional[Path], typer.Option(metavar="FILE", show_default="OUTDIR/exports/tracks.<ext>",
+                                                help="File to write.")] = None,
+    size: Annotated[str, typer.Option(metavar="PRESET", help="Figure width preset: one-column | "
+                                                             "two-column.")] = "two-column",
+    dpi: Annotated[int, typer.Option(metavar="DPI", help="Resolution of PNG figures.")] = 300,
     force: ForceFile = False, quiet: Quiet = False,
     depth: Annotated[Optional[str], deprecated_option("--depth", "--depth-window")] = None,
 ):
@@ -554,6 +583,9 @@ def export(
 
     _STATE["quiet"] = quiet
     depth_window = renamed(ctx, "--depth-window", depth_window, "--depth", depth)
+    notes = []
     path = export_outdir(outdir, format, out=out, rods=rods, depth_nm=parse_depth(depth_window), size=size,
-                         dpi=dpi, force=force)
+                         dpi=dpi, force=force, max_rods=max_rods, notes=notes)
     say(f"wrote {path}")
+    for n in notes:
+        say(f"  {n}")

@@ -9,14 +9,37 @@ import numpy as np
 from ..exceptions import InputError
 from ..utils.palette import EMPTY, METAL_COLOURS, OTHER, metal_colour
 
-__all__ = ['plot_rod_density', 'plot_reconstruction']
+__all__ = ['plot_rod_density', 'plot_reconstruction', 'decoded_rods']
+
+
+def decoded_rods(columns) -> np.ndarray:
+    """Rods the decoder read: at least one used site and at least one metal count in the used sites.
+
+    Parameters
+    ----------
+    columns : RodColumns
+
+    Returns
+    -------
+    (n_rods,) ndarray of bool
+    """
+    if not columns.n_sites:
+        return np.zeros(columns.n_rods, bool)
+    mask = np.asarray(columns.mask, bool)
+    counts = np.asarray(columns.counts, float).sum(axis=-1)
+    return mask.any(axis=1) & ((counts * mask).sum(axis=1) > 0)
+
 
 def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, title: str | None = None):
     """Write a 2-D histogram of the tilt-corrected metal density with the rod axes drawn over it.
 
     Positions are projected along the fitted rod direction to depth ``columns.z_ref_nm``
-    (``x - tilt_x (z - z_ref)``), so the rods appear as sharp spots. Used rods are drawn as open
-    circles of radius one quarter of the nearest rod distance; rods with no used site in grey.
+    (``x - tilt_x (z - z_ref)``), so the rods appear as sharp spots; the axes say so. The colour is
+    metal ions per nm^2 of the cross-section (the bin counts divided by the bin's area) on a
+    square-root scale, so the faint spots of edge rods stay visible. Rod axes
+    are open circles of radius one quarter of the nearest rod distance: rods that were decoded
+    (at least one used site and at least one metal count in their used sites) in a metal colour,
+    the others (no used site, or no ion in it: nothing to decode) in grey.
 
     Parameters
     ----------
@@ -40,7 +63,7 @@ def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, tit
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
     from matplotlib.collections import EllipseCollection
-    from matplotlib.colors import LinearSegmentedColormap
+    from matplotlib.colors import LinearSegmentedColormap, PowerNorm
 
     path = Path(path)
     if path.suffix.lower() not in (".png", ".svg"):
@@ -81,11 +104,14 @@ def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, tit
     H, xe, ye = np.histogram2d(xc, yc, bins=nbin, range=[[lo[0], hi[0]], [lo[1], hi[1]]])
     cmap = LinearSegmentedColormap.from_list("density", [EMPTY, METAL_COLOURS[0], METAL_COLOURS[-1]])
     fig, ax = plt.subplots(figsize=(6.4, 6.0), dpi=150)
-    im = ax.imshow(H.T, origin="lower", extent=(xe[0], xe[-1], ye[0], ye[-1]), cmap=cmap,
-                   interpolation="nearest", aspect="equal")
-    fig.colorbar(im, ax=ax, shrink=0.8, label=f"metal ions per {h:.3g} nm bin")
-    used = columns.mask.any(1) if columns.n_sites else np.zeros(columns.n_rods, bool)
-    for sel, colour, label in ((used, metal_colour(1), "rod axis (used)"), (~used, OTHER, "rod axis (unused)")):
+    # square-root colour scale: the faint spots of edge rods (few ions) stay visible beside dense ones
+    im = ax.imshow(H.T / (h * h), origin="lower", extent=(xe[0], xe[-1], ye[0], ye[-1]), cmap=cmap,
+                   interpolation="nearest", aspect="equal", norm=PowerNorm(0.5))
+    fig.colorbar(im, ax=ax, shrink=0.8,
+                 label=f"metal ions per nm\u00b2 (bins of {h:.3g} nm \u00d7 {h:.3g} nm, whole depth)")
+    used = decoded_rods(columns)
+    for sel, colour, label in ((used, metal_colour(1), f"rod axis, decoded ({int(used.sum())})"),
+                               (~used, OTHER, f"rod axis, not decoded: no ion in its used sites ({int((~used).sum())})")):
         if sel.any():
             xy = columns.rod_xy_nm[sel]
             ec = EllipseCollection(np.full(xy.shape[0], d_nn / 2), np.full(xy.shape[0], d_nn / 2),
@@ -95,8 +121,9 @@ def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, tit
             ax.plot([], [], "o", mfc="none", mec=colour, label=label)
     ax.set_xlim(xe[0], xe[-1])
     ax.set_ylim(ye[0], ye[-1])
-    ax.set_xlabel("x at z_ref (nm)")
-    ax.set_ylabel("y at z_ref (nm)")
+    zr = float(columns.z_ref_nm)
+    ax.set_xlabel(f"x moved along the rods to depth z_ref = {zr:.1f} nm (nm)")
+    ax.set_ylabel(f"y at depth z_ref = {zr:.1f} nm (nm)")
     rot = reg.get("rotation_deg")
     sub = (f"rotation {rot:.2f} deg, scale {scale:.4f}, sigma {reg.get('sigma_xy_nm') or float('nan'):.3f} nm, "
            f"misassigned {columns.misassigned_fraction:.3f}" if rot is not None else "")

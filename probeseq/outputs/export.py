@@ -17,9 +17,14 @@ import numpy as np
 from ..exceptions import InputError
 from ..utils.tomlfile import short_repr
 
-__all__ = ['FORMATS', 'OutputFolder', 'load_outdir', 'select_sites', 'export_outdir', 'parse_rods', 'parse_depth']
+__all__ = ['FORMATS', 'DEFAULT_MAX_RODS', 'OutputFolder', 'load_outdir', 'select_sites', 'export_outdir',
+           'check_max_rods', 'parse_rods', 'parse_depth']
 
 FORMATS = ("csv", "json", "hdf5", "svg", "pdf", "png")
+
+
+#: most tracks an exported figure draws unless --max-rods says otherwise (every track labelled)
+DEFAULT_MAX_RODS = 400
 
 
 @dataclass(frozen=True)
@@ -72,7 +77,26 @@ def _check_decoded_matches(cols, dec, d: Path) -> None:
 
 
 def parse_rods(text, n_rods: int):
-    """'3,5,10-12' -> sorted unique rod ids; errors name the ids that exist."""
+    """'3,5,10-12' -> sorted unique rod ids; errors name the ids that exist.
+
+    Parameters
+    ----------
+    text : str or None
+        Comma-separated rod ids and inclusive ranges ``a-b`` with ``a <= b``.
+    n_rods : int
+        Rods of the run (ids ``0 .. n_rods - 1``).
+
+    Returns
+    -------
+    ndarray of int or None
+        None when ``text`` is empty.
+
+    Raises
+    ------
+    InputError
+        A part that is not an id or a range, a reversed range (``10-5``: did you mean ``5-10``?),
+        or an id the run does not have (the message gives the ids that exist).
+    """
     if text is None or str(text).strip() == "":
         return None
     ids = []
@@ -80,10 +104,14 @@ def parse_rods(text, n_rods: int):
         part = part.strip()
         try:
             if "-" in part[1:]:
-                a, b = part.split("-", 1)
-                ids.extend(range(int(a), int(b) + 1))
+                a, b = (int(v) for v in part.split("-", 1))
+                if b < a:
+                    raise InputError(f"--rods: rod range {a}-{b} is reversed; did you mean {b}-{a}?")
+                ids.extend(range(a, b + 1))
             else:
                 ids.append(int(part))
+        except InputError:
+            raise
         except ValueError:
             raise InputError(f"--rods: '{part}' is not a rod id or a range like 10-12") from None
     ids = sorted(set(ids))
@@ -112,7 +140,14 @@ def parse_depth(text):
 
 
 def select_sites(columns, rods=None, depth_nm=None):
-    """Boolean (n_rods, n_sites) selection of used sites in the chosen rods and depth window."""
+    """Boolean (n_rods, n_sites) selection of used sites in the chosen rods and depth window.
+
+    Raises
+    ------
+    InputError
+        When the selection holds no decoded site; the message says where the chosen rods have
+        decoded sites, which rods have decoded sites in the depth window, and what the run holds.
+    """
     sel = columns.mask.copy()
     if rods is not None:
         keep = np.zeros(columns.n_rods, dtype=bool)
@@ -122,11 +157,34 @@ def select_sites(columns, rods=None, depth_nm=None):
         z = columns.site_depths_nm()
         sel &= (z >= depth_nm[0]) & (z <= depth_nm[1])
     if not sel.any():
-        z = columns.site_depths_nm()[columns.mask]
-        where = f"{z.min():.2f}-{z.max():.2f} nm" if z.size else "none"
-        raise InputError(f"the selection holds no decoded site (used sites span depths {where}, "
-                         f"rods 0-{columns.n_rods - 1})")
+        raise InputError("the selection holds no decoded site: " + _what_exists(columns, rods, depth_nm))
     return sel
+
+
+def _what_exists(columns, rods, depth_nm) -> str:
+    """Where the chosen rods have decoded sites, which rods the depth window holds, and the run's extent."""
+    from .trackrods import rod_id_text
+
+    def nm(v):
+        return f"{round(float(v), 1) + 0.0:.1f}"  # + 0.0: no "-0.0"
+
+    z, used = columns.site_depths_nm(), columns.mask
+    parts = []
+    if rods is not None:
+        zr = z[rods][used[rods]]
+        which = f"rod {int(rods[0])} has" if len(rods) == 1 else f"rods {rod_id_text(rods, 6)} have"
+        parts.append(f"{which} decoded sites at {nm(zr.min())} to {nm(zr.max())} nm" if zr.size
+                     else f"{which} no decoded site")
+    if depth_nm is not None:
+        lo, hi = depth_nm
+        window = f"{'' if np.isinf(lo) else f'{lo:g}'}:{'' if np.isinf(hi) else f'{hi:g}'}"
+        inside = np.flatnonzero((used & (z >= lo) & (z <= hi)).any(axis=1))
+        parts.append(f"rods with decoded sites in {window} nm: {rod_id_text(inside, 6)} ({inside.size} rods)"
+                     if inside.size else f"no rod has a decoded site in {window} nm")
+    za = z[used]
+    span = f"{nm(za.min())} to {nm(za.max())} nm" if za.size else "none"
+    parts.append(f"rods 0-{columns.n_rods - 1} exist, with decoded sites at depths {span}")
+    return "; ".join(parts)
 
 
 def _tracks(of: OutputFolder, sel):
@@ -143,7 +201,8 @@ def _tracks(of: OutputFolder, sel):
 
 
 def export_outdir(outdir, fmt: str, out=None, rods=None, depth_nm=None, size: str = "two-column",
-                  dpi: int = 300, force: bool = False) -> Path:
+                  dpi: int = 300, force: bool = False, max_rods: int = DEFAULT_MAX_RODS,
+                  notes: list | None = None) -> Path:
     """Write one export of an analysis folder and return its path.
 
     Parameters
@@ -158,6 +217,12 @@ def export_outdir(outdir, fmt: str, out=None, rods=None, depth_nm=None, size: st
     force : bool
         Replace an existing file that probeseq wrote; the analysis folder's own files are never
         replaced (see :mod:`probeseq.outputs`).
+    max_rods : int
+        Figures only: the most tracks drawn, 1 to 400. When the selection holds more rods, the
+        figure shows the ``max_rods`` of them nearest the centre of the field of view, lateral
+        neighbours on adjacent tracks, and its caption says so. Tables hold every selected rod.
+    notes : list, optional
+        Receives one line per remark for the terminal: for a figure, the rule that chose its rods.
     """
     from ..utils.marks import MARK
     from .folder import check_outfile, staged_file, write_json
@@ -171,6 +236,7 @@ def export_outdir(outdir, fmt: str, out=None, rods=None, depth_nm=None, size: st
         raise InputError(f"--size {short_repr(size)} is not a figure width preset; choose one of "
                          f"{', '.join(SIZE_PRESETS_MM)}")
     _check_dpi(dpi)
+    max_rods = check_max_rods(max_rods)
     ext = {"hdf5": "h5"}.get(fmt, fmt)
     path = Path(out) if out is not None else Path(outdir) / "exports" / f"tracks.{ext}"
     if path.suffix.lower() != f".{ext}":
@@ -180,6 +246,10 @@ def export_outdir(outdir, fmt: str, out=None, rods=None, depth_nm=None, size: st
     if isinstance(rods, str):
         rods = parse_rods(rods, of.columns.n_rods)
     sel = select_sites(of.columns, rods, depth_nm)
+    if fmt in ("svg", "pdf", "png"):
+        choice = _figure_rods(of.columns, sel, rods is not None, depth_nm is not None, max_rods)
+        if notes is not None:
+            notes.append(f"tracks: {choice.rule}")
     with staged_file(path, force, [outdir]) as part:
         if fmt == "csv":
             from .results import _write_table
@@ -200,11 +270,43 @@ def export_outdir(outdir, fmt: str, out=None, rods=None, depth_nm=None, size: st
         else:
             from .tracks import plot_tracks
 
-            r = np.flatnonzero(sel.any(1))
             z = of.columns.site_depths_nm()[sel]
-            plot_tracks(of.columns, of.decoded, part, rods=r,
-                        depth_nm=(float(z.min()), float(z.max())), size=size, dpi=dpi)
+            plot_tracks(of.columns, of.decoded, part, rods=choice.ids, depth_nm=(float(z.min()), float(z.max())),
+                        size=size, dpi=dpi, max_rods=max_rods, caption=f"Tracks: {choice.rule}.")
     return path
+
+
+def check_max_rods(max_rods) -> int:
+    """``--max-rods`` as an int from 1 to :data:`probeseq.outputs.trackrods.MAX_TRACKS`, else a one-line error."""
+    from .trackrods import MAX_TRACKS
+
+    if isinstance(max_rods, (bool, np.bool_)) or not isinstance(max_rods, (int, np.integer)) \
+            or not 1 <= max_rods <= MAX_TRACKS:
+        raise InputError(f"--max-rods {short_repr(max_rods)}: give a number of rods from 1 to {MAX_TRACKS} (the "
+                         "most tracks one figure holds); a larger selection is drawn as its rods nearest the centre")
+    return int(max_rods)
+
+
+def _figure_rods(columns, sel, rods_given: bool, windowed: bool, max_rods: int):
+    """The rods of an exported tracks figure and the rule that chose them (a :class:`RodChoice`).
+
+    Every selected rod with decoded sites, in rod id order, when they are at most ``max_rods``;
+    else the ``max_rods`` of them nearest the centre of the field of view, lateral neighbours on
+    adjacent tracks.
+    """
+    from .trackrods import RodChoice, choose_rods, rod_id_text
+
+    shown = sel.any(axis=1)
+    what = ("of --rods " if rods_given else "") + "with decoded sites" + (" in the depth window" if windowed else "")
+    r = np.flatnonzero(shown)
+    if r.size > max_rods:
+        c = choose_rods(columns, observed=shown, max_default=max_rods, max_rods=max_rods, what=what)
+        return RodChoice(c.ids, None, f"{c.rule} (--max-rods {max_rods})", int(r.size))
+    if rods_given and r.size == 1:
+        return RodChoice(r, None, f"rod {int(r[0])} (the rod {what})", 1)
+    if rods_given and r.size <= 12:
+        return RodChoice(r, None, f"rods {rod_id_text(r)} (the rods {what}), in rod id order", int(r.size))
+    return RodChoice(r, None, f"all {r.size} rods {what}, in rod id order", int(r.size))
 
 
 def _write_hdf5(of: OutputFolder, sel, path):

@@ -255,6 +255,7 @@ def check_outdir(outdir, force: bool = False, inputs=()) -> Path:
             if foreign:
                 raise InputError(f"--out {p}: holds '{foreign[0]}', which probeseq did not write; --force "
                                  "replaces only a previous probeseq output folder (choose a new folder)")
+    _check_creatable(p, "--out")
     return p
 
 
@@ -274,7 +275,24 @@ def check_outfile(path, force: bool = False, inputs=(), what: str = "--out") -> 
                              "probeseq's own files (choose another name)")
     if p.parent.exists() and not p.parent.is_dir():
         raise InputError(f"{what} {p}: {p.parent} is not a folder")
+    _check_creatable(p, what)
     return p
+
+
+def _check_creatable(p: Path, what: str) -> None:
+    """Refuse, before any work, an output whose missing folders could not be made when it is written.
+
+    The folders above ``p`` that do not exist yet are made when the output is written; here the
+    nearest one that exists must be a folder this process may write in.
+    """
+    anc = p.parent
+    while not (anc.exists() or anc.is_symlink()) and anc != anc.parent:
+        anc = anc.parent
+    if anc.exists() and not anc.is_dir():
+        raise InputError(f"{what} {p}: {anc} is a file, not a folder, so the output's folder cannot be made; "
+                         "choose another place")
+    if anc.is_dir() and not os.access(anc, os.W_OK | os.X_OK):
+        raise InputError(f"{what} {p}: no permission to write in {anc}; choose another place")
 
 
 # ---------------------------------------------------------------------- locking and recovery

@@ -1,8 +1,12 @@
 """The report of an analysis: one self-contained HTML file.
 
 :func:`write_report` writes ``report.html`` for an :class:`~probeseq.pipeline.options.AnalysisResult`:
-the verdict and its reasons first, then the statistics with their 95 % bootstrap intervals, the
-figures, the fitted parameters, the warnings, the cautions and the provenance. Everything the
+the verdict and its reasons first (after a "Synthetic data" banner when the run description marks
+the input as simulated), then the statistics with their 95 % bootstrap intervals, the figures, the
+fitted parameters, the warnings (``result.warnings``: the same list as the terminal and
+``results.json``), the cautions and the provenance. The words (captions, warnings, cautions) are
+written in :mod:`probeseq.outputs.reporttext`; p-values are printed at their test's resolution
+(:func:`probeseq.utils.textformat.format_p`). Everything the
 page needs is inside the file: figures are embedded as base64 PNG, the style sheet and a small
 script are inline, and a Content-Security-Policy forbids any network request, so the report opens
 the same offline, from an e-mail attachment or years later. All text is HTML-escaped.
@@ -29,6 +33,11 @@ import numpy as np
 
 from .._version import __version__
 from ..exceptions import InputError
+from ..utils.textformat import format_interval, format_p
+from .reporttext import CAUTIONS, FEW_RODS_WARN, UNCERTAIN_SHARE_WARN, em_iterations_text, figure_text, run_length_note  # noqa: F401
+from .reporttext import CONFIDENCE_MEANING as _CONFIDENCE_MEANING
+from .reporttext import LABEL_MEANING as _LABEL_MEANING
+from .reporttext import synthetic_note
 
 __all__ = ['write_report', 'report_html', 'SECTION_IDS', 'FIGURE_IDS', 'CAUTIONS', 'UNCERTAIN_SHARE_WARN', 'FEW_RODS_WARN']
 
@@ -40,14 +49,6 @@ SECTION_IDS = ("verdict", "statistics", "figures", "parameters", "warnings", "ca
 FIGURE_IDS = {"tracks": "fig-tracks", "spectrum": "fig-spectrum", "density": "fig-density",
               "run_lengths": "fig-run-lengths", "rod_to_rod": "fig-rod-to-rod", "groups": "fig-groups", "overlaps": "fig-overlaps",
               "reconstruction": "fig-reconstruction"}
-
-
-#: a warning is added when more than this share of decoded sites is uncertain
-UNCERTAIN_SHARE_WARN = 0.25
-
-
-#: a warning is added when fewer rods than this were decoded
-FEW_RODS_WARN = 20
 
 
 #: resolution of the embedded figures, dots per inch
@@ -63,50 +64,6 @@ NARROW_IN = 4.5
 
 
 NARROW_ZOOM = 1.6
-
-
-#: the cautions every report carries (the substance of the README's "Cautions and limits")
-CAUTIONS = (
-    ("What the inference assumes",
-     "The rod lattice (cell, rod positions, repeat along the rod, sites per repeat) is taken as known from "
-     "crystallography; every site along a rod holds exactly one of the listed metals; and the arrangement is "
-     "summarised by one first-order Markov chain shared by all rods of the run. Order such a chain cannot "
-     "express (longer-range motifs, gradients with depth, several domains with different order) shows only "
-     "through the misfit it causes."),
-    ("Atom-probe reconstructions have artefacts",
-     "Lateral positions are blurred and distorted (trajectory aberrations, local magnification, uneven "
-     "evaporation of metal and linker); the depth scale depends on the reconstruction parameters; and the "
-     "detection efficiency is well below one, so many sites leave no ion. Molecular ions may dissociate and "
-     "peaks of different species may overlap in mass-to-charge. Check the registration (density figure) and "
-     "the ranging (spectrum figure) before trusting a sequence."),
-    ("Results are statistical",
-     "Labels such as 'long-block' are inferences from a model, with the error rates and confidence stated "
-     "here, not direct observations of the metal at every site. A chemical conclusion (for example that a "
-     "synthesis condition causes segregation) needs supporting evidence from other methods (diffraction, "
-     "spectroscopy, several specimens)."),
-)
-
-
-_CONFIDENCE_MEANING = (
-    "The confidence is the probability that the label is right, calibrated on simulated runs of every "
-    "arrangement: {share:.0f} % of bootstrap resamples over rods gave the same label, and on simulated runs "
-    "labels with that agreement were right this often. It holds for data like the simulations (the model's "
-    "assumptions, similar sizes and efficiencies); it says nothing about artefacts the model leaves out.")
-
-
-_LABEL_MEANING = {
-    "random": "no memory along the rods: the metal at a site does not depend on the metal next to it "
-              "(the independent-sites model is not rejected).",
-    "short-repeat": "neighbouring sites along a rod are correlated, but runs of the least abundant metal are "
-                    "shorter than {lb:g} sites on average.",
-    "long-block": "the metals form long blocks along the rods: runs of the least abundant metal average "
-                  "{lb:g} sites or more.",
-    "interspersed": "the least abundant metal sits as isolated units (or very short stretches) between runs of "
-                    "the others: it follows itself significantly less often than independent sites would.",
-    "rod-to-rod-copied": "neighbouring rods carry the same sequence, more than crosstalk between rods explains.",
-    "undetermined": "the data do not support a class (too few rods, sites or sites of the least abundant metal, "
-                    "or no usable test result); no guess is made.",
-}
 
 
 _STYLE = """
@@ -206,13 +163,11 @@ def _fmt(v, digits: int = 4) -> str:
     return str(v)
 
 
-def _fmt_p(p) -> str:
-    if p is None or not _is_num(p) or not math.isfinite(float(p)):
+def _fmt_p(p, n_draws=None) -> str:
+    """A p-value at its test's resolution (the classification's reasons use the same text)."""
+    if not _is_num(p):
         return "\u2013"
-    p = float(p)
-    if p < 1e-300:
-        return "< 1e-300"
-    return f"{p:.2g}" if p < 0.001 else f"{p:.3f}"
+    return format_p(p, n_draws, missing="\u2013")
 
 
 def _pm(v, err, digits: int = 4) -> str:
@@ -295,31 +250,28 @@ def _metal_ions(result, ions):
 
 
 def _standard_figures(result, ions, skip, dpi):
-    """name -> (title, caption, data URI) of the figures drawn from the result; failures listed apart."""
+    """name -> (title, caption, data URI) of the figures drawn from the result; failures listed apart.
+
+    Titles and captions come from :func:`probeseq.outputs.reporttext.figure_text`, the same words as
+    for the figure files ``write_analysis`` hands over."""
     from . import figures, tracks
 
     st = result.statistics
     cl = result.classification
     figs, failed = {}, []
 
-    def add(name, title, caption, make):
+    def add(name, make):
         if name in skip:
             return
         try:
             fig = make()
             if fig is None:
                 return
-            figs[name] = (title, caption) + (fig if isinstance(fig, tuple) else _embed(fig, dpi))
+            figs[name] = figure_text(name, result) + (fig if isinstance(fig, tuple) else _embed(fig, dpi))
         except Exception as e:  # a figure that cannot be drawn must not cost the whole report
             failed.append(f"figure '{name}' could not be drawn: {type(e).__name__}: {str(e).splitlines()[0] if str(e) else ''}")
 
-    lb = (cl.thresholds or {}).get("long_block_sites", getattr(result.options, "long_block_sites", 8))
-    add("tracks", "Sequence tracks",
-        "Decoded metal at each site of a patch of neighbouring rods (lateral neighbours on adjacent tracks). "
-        "Colour = most probable metal; the lighter, the lower its posterior probability p; blank = no ion "
-        "detected and the posterior stays at the prior (the data say nothing there); hatched = outside the "
-        "analysed volume.",
-        lambda: tracks.plot_tracks(result.columns, result.decoded, size="two-column"))
+    add("tracks", lambda: tracks.plot_tracks(result.columns, result.decoded, size="two-column"))
     ranging = result.ranging
 
     def spectrum():
@@ -333,20 +285,14 @@ def _standard_figures(result, ions, skip, dpi):
             return plot_spectrum(histogram(ions.mass_to_charge), ranging.ranges, result.metals)
         return None
 
-    add("spectrum", "Mass spectrum with ranges",
-        "Counts per mass-to-charge bin (log scale); shaded bands are the ranges, coloured by metal channel "
-        "(grey: other species); '?' marks peaks no species explains.", spectrum)
+    add("spectrum", spectrum)
 
     def overlaps():
         from ..ranging.plot import plot_overlaps
 
         return plot_overlaps(ranging) if getattr(ranging, "overlap_refinement", None) else None
 
-    add("overlaps", "Overlapped metal and fragment lines",
-        "The spectrum near each range where a metal line and a fragment line coincide (log scale; the range "
-        "shaded), with the fitted ions of each species in it. Their split was refitted from the ions' "
-        "mass-to-charge and their distance to the rod axes (metal ions sit on the axes, fragments between): "
-        "the metal share from space is given beside the share the spectrum alone would give.", overlaps)
+    add("overlaps", overlaps)
 
     def reconstruction():
         from ..lattice.plot import plot_reconstruction
@@ -354,14 +300,7 @@ def _standard_figures(result, ions, skip, dpi):
         return plot_reconstruction((result.columns.params or {}).get("reconstruction"),
                                    efficiency=result.decoded.to_dict().get("radial_efficiency"))
 
-    add("reconstruction", "The reconstruction calibrated on the lattice",
-        "Left: the site pitch measured along depth (the file's depth per crystal pitch; points: depth windows, "
-        "line and band: the smooth fit with two standard errors) against the lattice's pitch, dashed; the sites "
-        "are cut in the calibrated depth. Middle: the phase of the site planes left after calibration across the "
-        "field of view, in pitches (flat planes give 0 everywhere). Right: the lateral scale refitted per depth "
-        "slab (a drifting magnification). Far right, when present: the detection efficiency against the distance "
-        "from the specimen axis that the decoder used. The calibration assumes the lattice's repeat is right: "
-        "a wrong repeat would be read as a depth scale error.", reconstruction)
+    add("reconstruction", reconstruction)
 
     def density():
         if ions is None:
@@ -375,26 +314,13 @@ def _standard_figures(result, ions, skip, dpi):
             p = plot_rod_density(x, y, z, result.columns, Path(tmp) / "density.png")
             return _embed(p, dpi)
 
-    add("density", "Metal density with the fitted rod lattice",
-        "Lateral density of metal ions projected along the fitted rod direction, with the registered rod axes "
-        "drawn as circles. Sharp spots centred in the circles mean the lattice registration holds.", density)
-    add("run_lengths", "Run lengths along the rods",
-        "Share of decoded runs longer than l sites (Kaplan-Meier, runs cut by a rod end or the mask counted "
-        "as censored), against the geometric law of independent sites of the same composition (dashed) and "
-        f"of the fitted chain (solid). The long-block threshold is {float(lb):g} sites.",
-        lambda: figures.plot_run_lengths(st, size="two-column"))
+    add("density", density)
+    add("run_lengths", lambda: figures.plot_run_lengths(st, size="two-column"))
     if getattr(st, "rod_to_rod", None) is not None:
-        add("rod_to_rod", "Rod-to-rod agreement against its null",
-            "Top: the test statistic (largest correlation of neighbouring rods over small depth lags) in null "
-            "replicates where one rod of each pair is circularly shifted, and the observed value. Bottom: the "
-            "correlation at each lag, on the posteriors and corrected for decoding noise.",
-            lambda: figures.plot_rod_to_rod(st, copy_threshold=(cl.thresholds or {}).get("copy_threshold"),
-                                             size="one-column"))
+        add("rod_to_rod", lambda: figures.plot_rod_to_rod(st, copy_threshold=(cl.thresholds or {}).get("copy_threshold"),
+                                                         size="one-column"))
     if result.groups is not None:
-        add("groups", "Groups of rods: variance against group size",
-            "Variance of the metal fraction of groups of n neighbouring rods. Independent rods fall as 1/n "
-            "(dashed); copied rods keep their variance. The fit gives the rod-to-rod correlation \u03c1.",
-            lambda: figures.plot_group_variance(result.groups, size="one-column"))
+        add("groups", lambda: figures.plot_group_variance(result.groups, size="one-column"))
     return figs, failed
 
 
@@ -415,6 +341,10 @@ def _verdict(result) -> str:
            f"<div><b>metals</b>{_esc(', '.join(result.metals))}</div>",
            "</div>",
            f'<p class="meaning">{_esc(_CONFIDENCE_MEANING.format(share=100 * float(getattr(cl, "bootstrap_share", 0.0))))}</p>']
+    note = synthetic_note(result.provenance)
+    if note:
+        body = note.split(": ", 1)[-1]
+        out.insert(1, f'<p class="alert" id="synthetic-note"><b>Synthetic data:</b> {_esc(body)}.</p>')
     per_metal = getattr(cl, "per_metal", None) or {}
     if per_metal:
         out.append("<h3>Each metal along the rods</h3><table><tr><th>metal</th><th>arrangement</th>"
@@ -447,10 +377,10 @@ def _stat_rows(st, metals):
     """(description, unit, name) of the statistics shown, in order."""
     rows = []
     for m in metals:
-        rows.append((f"composition of {m} (site fraction)", "", f"composition.{m}"))
+        rows.append((f"composition of {m} on the rod sites (decoder's site occupancy)", "site fraction", f"composition.{m}"))
     for m in metals:
-        rows.append((f"mean run length of {m} (fitted chain)", "sites", f"mean_run_length_sites.{m}"))
-        rows.append((f"mean run length of {m}", "nm", f"mean_run_length_nm.{m}"))
+        rows.append((f"mean run length of {m} (headline: fitted chain, 1 / (1 - P_kk))", "sites", f"mean_run_length_sites.{m}"))
+        rows.append((f"mean run length of {m} (headline, times the site pitch)", "nm", f"mean_run_length_nm.{m}"))
         rows.append((f"mean run length of {m} if sites were independent", "sites", f"independent_run_length_sites.{m}"))
         rows.append((f"run length of {m} / independent-sites value", "", f"run_length_ratio.{m}"))
     rows.append(("persistence (0 = independent sites, 1 = never changes)", "", "persistence"))
@@ -470,17 +400,46 @@ def _stat_rows(st, metals):
     return [r for r in rows if r[2] in st.estimates]
 
 
+def _composition_table(result) -> str:
+    """The two compositions, labelled: the spectrum's (the headline) and the rod model's site occupancy."""
+    st = result.statistics
+    rcomp = (result.ranging.to_dict() or {}).get("composition", {}) or {}
+    rows = []
+    for m in result.metals:
+        c = rcomp.get(m) or {}
+        f, sd = c.get("fraction"), c.get("fraction_err")
+        spec = (_fmt(f), format_interval(f - 1.96 * (sd or 0.0), f + 1.96 * (sd or 0.0), _fmt, "\u2013")) \
+            if _is_num(f) else ("\u2013", "\u2013")
+        est, lo, hi = st.interval(f"composition.{m}") if f"composition.{m}" in st.estimates else (None, None, None)
+        rows.append((m,) + spec + (_fmt(est), format_interval(lo, hi, _fmt, "\u2013")))
+    head = ("metal", "from the mass spectrum (results.json composition)", "95 % interval (counting, background)",
+            "on the rod sites (decoder's occupancy)", "95 % interval (bootstrap over rods)")
+    return ("<h3>Composition, two ways</h3><p>Atomic fractions of the metals. The spectrum's (background "
+            "subtracted, overlaps deconvolved, every metal ion of the run) is the headline composition; the rod "
+            "model's occupancy of the decoded sites is given beside it as a check.</p>"
+            + _table(head, rows, num_cols=(1, 2, 3, 4)))
+
+
 def _statistics(result) -> str:
     st = result.statistics
     rows = []
+    rr = getattr(st, "rod_to_rod", None)
+    n_null = int(np.isfinite(np.asarray(rr.null, dtype=float)).sum()) if rr is not None else None
     for desc, unit, name in _stat_rows(st, result.metals):
         est, lo, hi = st.interval(name)
-        f = _fmt_p if name.endswith(".p") or name.endswith("p_value") else _fmt
-        rows.append((desc, f(est), f(lo), f(hi), unit, name))
+        if name.endswith(".p") or name.endswith("p_value"):  # a p-value has no interval
+            rows.append((desc, _fmt_p(est, n_null if name == "rod_to_rod.p_value" else None), "\u2013", "\u2013",
+                         unit, name))
+        else:
+            rows.append((desc, _fmt(est), _fmt(lo), _fmt(hi), unit, name))
     out = ['<section id="statistics"><h2>Statistics</h2>',
            f'<p>Estimates with 95 % percentile intervals from {int(st.n_boot)} bootstrap resamples over rods '
-           f'({int(st.n_rods)} rods, {int(st.n_sites_used)} decoded sites, pitch {_esc(_fmt(st.pitch_nm))} nm).</p>',
-           _table(("statistic", "estimate", "95 % low", "95 % high", "unit", "name"), rows, num_cols=(1, 2, 3))]
+           f'({int(st.n_rods)} rods, {int(st.n_sites_used)} decoded sites, pitch {_esc(_fmt(st.pitch_nm))} nm). '
+           'p-values have no interval; a permutation p-value at the floor of its null draws is shown as '
+           '"\u2264 1/(draws + 1)", an analytic one below 1e-300 as "< 1e-300".</p>',
+           _composition_table(result),
+           _table(("statistic", "estimate", "95 % low", "95 % high", "unit", "name"), rows, num_cols=(1, 2, 3)),
+           f'<p class="muted" id="run-length-definition">{_esc(run_length_note(result))}</p>']
     mk = st.markov_test or {}
     out.append("<h3>Is there memory along the rods?</h3>")
     out.append(_table(("test", "statistic", "df", "p", "BIC Markov", "BIC independent"),
@@ -536,7 +495,7 @@ def _parameters(result) -> str:
             ("stationary distribution (composition)", _vec(dec.stationary), ", ".join(metals)),
             ("persistence", _fmt(dec.persistence), ""),
             ("log-likelihood, Markov / independent sites", f"{_fmt(dec.loglik, 8)} / {_fmt(dec.loglik_indep, 8)}", "nats"),
-            ("EM iterations (converged)", f"{int(dec.n_iter)} ({'yes' if dec.converged else 'no'})", ""),
+            ("EM iterations", em_iterations_text(dec), ""),
             ("observed sites", _fmt(int(dec.n_obs)), "")]
     out.append(_table(("parameter", "value", "unit"), rows, num_cols=(1,)))
     a = np.asarray(dec.transmat, dtype=float)
@@ -594,26 +553,9 @@ def _pair_pm(v, err) -> str:
 
 
 def _collect_warnings(result, extra) -> list:
-    out = list(dict.fromkeys(str(w) for w in (result.warnings or ())))
-    col, dec = result.columns, result.decoded
-    if not col.resolvable and not any("resolvable" in w for w in out):
-        out.insert(0, f"single rods are not resolvable (misassigned fraction {col.misassigned_fraction:.2f}: share of a rod's ions expected nearer another rod); per-rod sequences "
-                      "are unreliable, see the groups-of-rods analysis")
-    n_obs = max(int(getattr(dec, "n_obs", 0) or col.mask.sum()), 1)
-    share = float(np.asarray(dec.uncertain).sum()) / n_obs
-    if share > UNCERTAIN_SHARE_WARN:
-        out.append(f"{100 * share:.0f} % of decoded sites are uncertain (best posterior below "
-                   f"{float(dec.uncertain_below):g}; more than {100 * UNCERTAIN_SHARE_WARN:.0f} %): low counts per "
-                   "site make single-site sequences unreliable")
-    n_used = int(col.mask.any(axis=1).sum())
-    if n_used < FEW_RODS_WARN:
-        out.append(f"only {n_used} rods have decoded sites (fewer than {FEW_RODS_WARN}): bootstrap intervals over "
-                   "rods are rough")
-    g = result.groups
-    if g is not None:
-        out += [f"groups of rods: {w}" for w in getattr(g, "warnings", ()) or ()]
-    out += list(extra)
-    return list(dict.fromkeys(out))
+    """The analysis's one warnings list (``result.warnings``: the terminal's and results.json's), then
+    what went wrong while the report was written (``extra``: figures that could not be drawn)."""
+    return list(dict.fromkeys([str(w) for w in (result.warnings or ())] + [str(w) for w in extra]))
 
 
 def _warnings(warns) -> str:
@@ -651,8 +593,10 @@ def _provenance(result) -> str:
             ("rows dropped on reading", _fmt(result.ions_summary.get("rows_dropped"))),
             ("lattice", prov.get("lattice_source") or getattr(result.lattice, "name", "\u2013")),
             ("metals", ", ".join(prov.get("metals") or result.metals)),
-            ("seed", _fmt(prov.get("seed", getattr(result.options, "seed", None)))),
-            ("python, platform", f"{prov.get('python', '')}, {prov.get('platform', '')}")]
+            ("seed", _fmt(prov.get("seed", getattr(result.options, "seed", None))))]
+    runs_on = ", ".join(str(prov[k]) for k in ("python", "platform") if prov.get(k))
+    if runs_on:  # an empty field is left out, never shown blank
+        rows.append(("python" + (", platform" if prov.get("platform") else ""), runs_on))
     out = ['<section id="provenance"><h2>Provenance</h2>', _table(("item", "value"), rows)]
     opts = prov.get("options") or (result.options.to_dict() if hasattr(result.options, "to_dict") else {})
     if opts:
@@ -688,11 +632,10 @@ def report_html(result, *, ions=None, figures=None, figure_dpi: float = FIGURE_D
     for name, value in figures.items():
         if value is None:
             continue
-        title = name.replace("_", " ").capitalize()
-        caption = ""
+        title, caption = figure_text(name, result)
         if isinstance(value, tuple):
-            value, title, caption = (tuple(value) + ("", ""))[:3]
-            title, caption = str(title) or name, str(caption)
+            value, t, c = (tuple(value) + ("", ""))[:3]
+            title, caption = str(t) or title, str(c) or caption
         figs[name] = (title, caption) + _embed(value, figure_dpi)
     order = list(FIGURE_IDS)
     figs = dict(sorted(figs.items(), key=lambda kv: order.index(kv[0]) if kv[0] in order else len(order)))
@@ -702,6 +645,8 @@ def report_html(result, *, ions=None, figures=None, figure_dpi: float = FIGURE_D
     when = _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
     expect = list(SECTION_IDS) + [FIGURE_IDS.get(n, "fig-" + "".join(c if c.isalnum() else "-" for c in n.lower()))
                                   for n in figs]
+    if synthetic_note(result.provenance):  # the banner must be on screen too
+        expect.insert(1, "synthetic-note")
     nav = "".join(f'<a href="#{s}">{_esc(s)}</a>' for s in SECTION_IDS)
     parts = [
         "<!DOCTYPE html>",

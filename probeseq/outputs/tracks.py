@@ -1,4 +1,5 @@
-"""The sequence-track figure: which rods, which depth window, and how the tracks are drawn.
+"""The sequence-track figure: which rods (chosen in :mod:`probeseq.outputs.trackrods`), which depth
+window, and how the tracks are drawn.
 """
 
 from __future__ import annotations
@@ -23,15 +24,32 @@ from .figures import (
     figure_width_in,
     save_figure,
 )
+from .trackrods import (
+    DEFAULT_TRACKS,
+    MAX_TRACKS,
+    RodChoice,
+    choose_rods,
+    parse_rod_ids,
+    rod_id_text,
+    select_rods,
+)
 
-__all__ = ['DEFAULT_TRACKS', 'MAX_TRACKS', 'parse_rod_ids', 'depth_window', 'select_rods', 'track_cells', 'plot_tracks']
+__all__ = ['DEFAULT_TRACKS', 'MAX_TRACKS', 'RodChoice', 'rod_id_text', 'parse_rod_ids', 'depth_window', 'choose_rods',
+           'select_rods', 'track_cells', 'plot_tracks']
 
-#: rods shown when no selection is given
-DEFAULT_TRACKS = 24
+#: above this many merged cells the tracks are drawn as one image (a raster inside SVG and PDF)
+RASTER_CELLS = 3000
 
 
-#: most tracks one figure may hold
-MAX_TRACKS = 400
+#: image pixels per site along depth, and at most this many pixels across
+IMAGE_PX_PER_SITE = 4
+
+
+IMAGE_MAX_PX = 4096
+
+
+#: font of the caption and of its line height, relative to the figure's base font
+CAPTION_SCALE = 0.85
 
 
 # cell codes besides metal * n_levels + level
@@ -42,180 +60,6 @@ _MASKED = -2
 
 
 _OUTSIDE = -3
-
-
-# ---------------------------------------------------------------------------------- rod selection
-def parse_rod_ids(text: str) -> np.ndarray:
-    """Rod ids from text such as ``"3,5,10-14"`` (ranges inclusive).
-
-    Parameters
-    ----------
-    text : str
-
-    Returns
-    -------
-    (n,) ndarray of int
-    """
-    out = []
-    for item in str(text).split(","):
-        item = item.strip()
-        if not item:
-            raise InputError(f"rods: empty item in {text!r} (expected e.g. '3,5,10-14')")
-        lo, sep, hi = item.partition("-")
-        try:
-            a = int(lo)
-            b = int(hi) if sep else a
-        except ValueError:
-            raise InputError(f"rods: {item!r} in {text!r} is not a rod id or a range a-b of rod ids") from None
-        if b < a:
-            raise InputError(f"rods: range {item!r} ends before it starts")
-        out.extend(range(a, b + 1))
-    return np.asarray(out, dtype=np.int64)
-
-
-def _rod_id_array(rods, n_rods: int, what: str = "rods") -> np.ndarray:
-    if isinstance(rods, str):
-        ids = parse_rod_ids(rods)
-    else:
-        arr = np.atleast_1d(np.asarray(rods))
-        if arr.size == 0:
-            raise InputError(f"{what}: no rod id given; rods are numbered 0..{n_rods - 1}")
-        if arr.dtype.kind == "f" and np.all(np.isfinite(arr)) and np.all(arr == np.round(arr)):
-            arr = arr.astype(np.int64)
-        if arr.dtype.kind not in "iu" or arr.ndim != 1:
-            raise InputError(f"{what}: expected integer rod ids, got {rods!r}")
-        ids = arr.astype(np.int64)
-    bad = ids[(ids < 0) | (ids >= n_rods)]
-    if bad.size:
-        shown = ", ".join(str(int(v)) for v in bad[:5]) + (", ..." if bad.size > 5 else "")
-        raise InputError(f"{what}: unknown rod id(s) {shown}; this run has rods 0..{n_rods - 1}")
-    _, first = np.unique(ids, return_index=True)
-    return ids[np.sort(first)]
-
-
-def _chain_order(xy: np.ndarray) -> np.ndarray:
-    """Order points so each is followed by its nearest unvisited point (lateral neighbours adjacent)."""
-    m = xy.shape[0]
-    if m <= 2:
-        return np.arange(m)
-    centre = xy.mean(axis=0)
-    start = int(np.argmax(((xy - centre) ** 2).sum(1)))
-    order = [start]
-    left = np.ones(m, dtype=bool)
-    left[start] = False
-    cur = start
-    for _ in range(m - 1):
-        d = ((xy - xy[cur]) ** 2).sum(1)
-        d[~left] = np.inf
-        cur = int(np.argmin(d))
-        order.append(cur)
-        left[cur] = False
-    return np.asarray(order, dtype=np.int64)
-
-
-def _neighbours_of(columns, rod: int) -> np.ndarray:
-    nb = columns.neighbours
-    mine = np.concatenate([nb[nb[:, 0] == rod, 1], nb[nb[:, 1] == rod, 0]]) if nb.size else np.zeros(0, np.int64)
-    xy = columns.rod_xy_nm
-    if mine.size == 0 and columns.n_rods > 1:
-        d = np.sqrt(((xy - xy[rod]) ** 2).sum(1))
-        d[rod] = np.inf
-        mine = np.flatnonzero(d <= 1.2 * d.min())
-    mine = np.unique(mine)
-    ang = np.arctan2(xy[mine, 1] - xy[rod, 1], xy[mine, 0] - xy[rod, 0])
-    return mine[np.argsort(ang, kind="stable")]
-
-
-def _in_region(xy: np.ndarray, region) -> tuple:
-    try:
-        vals = tuple(float(v) for v in region)
-    except (TypeError, ValueError):
-        vals = ()
-    if len(vals) == 4 and all(map(math.isfinite, vals)) and vals[0] < vals[1] and vals[2] < vals[3]:
-        x0, x1, y0, y1 = vals
-        inside = (xy[:, 0] >= x0) & (xy[:, 0] <= x1) & (xy[:, 1] >= y0) & (xy[:, 1] <= y1)
-        return inside, f"box x {x0:g}..{x1:g} nm, y {y0:g}..{y1:g} nm"
-    if len(vals) == 3 and all(map(math.isfinite, vals)) and vals[2] > 0:
-        cx, cy, r = vals
-        inside = (xy[:, 0] - cx) ** 2 + (xy[:, 1] - cy) ** 2 <= r * r
-        return inside, f"disc centre ({cx:g}, {cy:g}) nm, radius {r:g} nm"
-    raise InputError(f"region: expected a box (x_min, x_max, y_min, y_max) or a disc (x, y, radius) in nm "
-                     f"with min < max and radius > 0, got {region!r}")
-
-
-def select_rods(columns, *, rods=None, region=None, neighbours_of=None, sample=None, random_state=None,
-                observed=None, max_default: int = DEFAULT_TRACKS):
-    """Choose the rods of a tracks figure (or an export), in display order.
-
-    At most one way of choosing may be given. Rod ids are the row indices of ``columns``
-    (the ``rod`` column of ``tracks.csv``).
-
-    Parameters
-    ----------
-    columns : RodColumns
-    rods : sequence of int or str, optional
-        These rods, in the order given (text such as ``"3,5,10-14"`` is accepted).
-    region : tuple of float, nm, optional
-        Rods whose axis at ``columns.z_ref_nm`` lies in the box ``(x_min, x_max, y_min, y_max)`` or
-        the disc ``(x, y, radius)``; ordered so that lateral neighbours are adjacent tracks.
-    neighbours_of : int, optional
-        That rod followed by its nearest neighbours (by angle around it).
-    sample : int, optional
-        A random sample of this many rods among those with observed sites, in id order.
-    random_state : None, int or numpy.random.Generator
-        Seed of ``sample``.
-    observed : (n_rods,) ndarray of bool, optional
-        Rods with observed sites (default: any unmasked site).
-    max_default : int
-        With no choice given: every rod when there are at most this many, else the
-        ``max_default`` observed rods nearest the lateral centre of the observed rods.
-
-    Returns
-    -------
-    ids : (n,) ndarray of int
-        Selected rod ids in display order.
-    centre : int or None
-        The rod given as ``neighbours_of``.
-    """
-    n = columns.n_rods
-    given = [k for k, v in (("rods", rods), ("region", region), ("neighbours_of", neighbours_of),
-                            ("sample", sample)) if v is not None]
-    if len(given) > 1:
-        raise InputError(f"choose rods one way only; got {', '.join(given)}")
-    obs = columns.mask.any(axis=1) if observed is None else np.asarray(observed, dtype=bool)
-    xy = columns.rod_xy_nm
-    centre = None
-    if rods is not None:
-        ids = _rod_id_array(rods, n)
-    elif neighbours_of is not None:
-        if isinstance(neighbours_of, (bool, np.bool_)) or not isinstance(neighbours_of, (int, np.integer)):
-            raise InputError(f"neighbours_of: expected one rod id, got {neighbours_of!r}")
-        centre = int(_rod_id_array([neighbours_of], n, "neighbours_of")[0])
-        ids = np.concatenate([[centre], _neighbours_of(columns, centre)]).astype(np.int64)
-    elif region is not None:
-        inside, desc = _in_region(xy, region)
-        ids = np.flatnonzero(inside)
-        if ids.size == 0:
-            raise InputError(f"region ({desc}) holds no rod axis; rod axes span x {xy[:, 0].min():.2f}.."
-                             f"{xy[:, 0].max():.2f} nm, y {xy[:, 1].min():.2f}..{xy[:, 1].max():.2f} nm")
-        ids = ids[_chain_order(xy[ids])]
-    elif sample is not None:
-        if isinstance(sample, (bool, np.bool_)) or not isinstance(sample, (int, np.integer)) or sample < 1:
-            raise InputError(f"sample: expected a number of rods >= 1, got {sample!r}")
-        pool = np.flatnonzero(obs) if obs.any() else np.arange(n)
-        rng = np.random.default_rng(random_state)
-        ids = np.sort(rng.choice(pool, size=min(int(sample), pool.size), replace=False))
-    else:
-        pool = np.flatnonzero(obs) if obs.any() else np.arange(n)
-        if pool.size > max_default:
-            c = np.median(xy[pool], axis=0)
-            d = ((xy[pool] - c) ** 2).sum(1)
-            pool = pool[np.argsort(d, kind="stable")[:max_default]]
-        ids = pool[_chain_order(xy[pool])]
-    if ids.size > MAX_TRACKS:
-        raise InputError(f"{given[0] if given else 'selection'}: {ids.size} rods chosen, at most {MAX_TRACKS} "
-                         "tracks fit one figure; narrow the choice or use sample=")
-    return ids.astype(np.int64), centre
 
 
 def depth_window(columns, depth_nm=None) -> tuple:
@@ -352,27 +196,32 @@ def _confidence_names():
 
 
 def _track_legend(metals, ncol: int):
-    """Legend handles: metals, confidence levels, then blank and masked, each group starting a new
-    row of ``ncol`` entries (matplotlib fills legend columns first, so the rows are interleaved)."""
+    """Legend ``(handles, labels)``: metals, confidence levels, then blank and masked, each group
+    starting a new row of ``ncol`` entries (matplotlib fills legend columns first, so the rows are
+    interleaved).
+
+    A confidence level's swatch is split into one box per metal, each in that metal's colour at
+    the level's opacity: the tints the tracks use (draw it with a ``HandlerTuple``).
+    """
     from matplotlib.patches import Patch
 
     groups = [
-        [Patch(facecolor=metal_colour(k), edgecolor="none", label=m) for k, m in enumerate(metals)],
-        [Patch(facecolor=_rgba(METAL_COLOURS[-1], a), edgecolor="none", label=name)
+        [(Patch(facecolor=metal_colour(k), edgecolor="none"), m) for k, m in enumerate(metals)],
+        [(tuple(Patch(facecolor=_rgba(metal_colour(k), a), edgecolor="none") for k in range(len(metals))), name)
          for (_low, a), name in zip(CONFIDENCE_LEVELS, _confidence_names())],
-        [Patch(facecolor=EMPTY, edgecolor=UNRANGED, linewidth=0.5, label="no ion, p \u2248 prior"),
-         Patch(facecolor="none", edgecolor=UNRANGED, hatch="////", linewidth=0.5, label="masked (outside volume)")],
+        [(Patch(facecolor=EMPTY, edgecolor=UNRANGED, linewidth=0.5), "no ion, p \u2248 prior"),
+         (Patch(facecolor="none", edgecolor=UNRANGED, hatch="////", linewidth=0.5), "masked (outside volume)")],
     ]
     flat = [h for g in groups for h in g]
-    if ncol >= len(flat):
-        return flat
-    blank = Patch(facecolor="none", edgecolor="none", label=" ")
-    lines = []
-    for g in groups:
-        for i in range(0, len(g), ncol):
-            part = g[i:i + ncol]
-            lines.append(part + [blank] * (ncol - len(part)))
-    return [lines[r][c] for c in range(ncol) for r in range(len(lines))]
+    if ncol < len(flat):
+        blank = (Patch(facecolor="none", edgecolor="none"), " ")
+        lines = []
+        for g in groups:
+            for i in range(0, len(g), ncol):
+                part = g[i:i + ncol]
+                lines.append(part + [blank] * (ncol - len(part)))
+        flat = [lines[r][c] for c in range(ncol) for r in range(len(lines))]
+    return [h for h, _ in flat], [lab for _, lab in flat]
 
 
 def _legend_layout(n_metals: int, width_in: float):
@@ -385,14 +234,15 @@ def _legend_layout(n_metals: int, width_in: float):
     return ncol, rows
 
 
-def _select_track_cells(columns, decoded, depth_nm, selection):
-    """Validate the decoding, pick the rods and return ``(ids, centre, sites, code)``."""
+def _select_track_cells(columns, decoded, depth_nm, selection, max_rods):
+    """Validate the decoding, pick the rods and return ``(choice, sites, code)``."""
     vit, post, mask, prior = _check_decoded(columns, decoded)
     sites, inside_all = depth_window(columns, depth_nm)
     observed_rods = (mask[:, sites] & inside_all).any(axis=1)
-    ids, centre = select_rods(columns, **selection, observed=observed_rods)
-    code = track_cells(columns, decoded, ids, sites, inside_all)
-    return ids, centre, sites, code
+    what = "with decoded sites" + ("" if depth_nm is None else " in the depth window")
+    choice = choose_rods(columns, **selection, observed=observed_rods, max_rods=max_rods, what=what)
+    code = track_cells(columns, decoded, choice.ids, sites, inside_all)
+    return choice, sites, code
 
 
 def _track_boxes(r, a, b, half=0.4):
@@ -418,21 +268,30 @@ def _track_geometry(columns, code, ids, sites):
     return edges, off, (row, x0, x1, val)
 
 
-def _tracks_figure(size, n_tr, k_metals, title):
-    """Figure and axes sized for ``n_tr`` tracks; returns ``(fig, ax, font, track_in, ncol)``."""
+def _tracks_figure(size, n_tr, k_metals, title, caption):
+    """Figure and axes sized for ``n_tr`` tracks.
+
+    Returns ``(fig, ax, font, track_in, ncol, caption_lines)``: the base font (pt), the height of
+    one track (inches), the legend's columns and the caption wrapped to the figure's width.
+    """
+    import textwrap
+
     # figure size: height from the number of tracks
     font = _font_pt(size)
     track_in = float(np.clip(4.2 / max(n_tr, 1), 0.075, 0.2))
     width_guess = figure_width_in(size) if isinstance(size, str) else _size_mm(size)[0] / MM_PER_INCH
     ncol, legend_rows = _legend_layout(k_metals, width_guess)
     legend_rows += 0.6
-    height = n_tr * track_in + 1.0 * font / 7.0 + legend_rows * 0.16 * font / 7.0 + (0.2 if title else 0.0)
+    # the caption in lines of about as many characters as fit the width (average glyph 0.5 em)
+    lines = textwrap.wrap(caption or "", width=max(30, int(width_guess * 72.0 / (0.5 * CAPTION_SCALE * font))))
+    height = (n_tr * track_in + 1.0 * font / 7.0 + legend_rows * 0.16 * font / 7.0 + (0.2 if title else 0.0)
+              + len(lines) * 1.3 * CAPTION_SCALE * font / 72.0)
     fig = _new_figure(*_figure_size(size, height))
     ax = fig.add_subplot(1, 1, 1)
-    return fig, ax, font, track_in, ncol
+    return fig, ax, font, track_in, ncol, lines
 
 
-def _draw_track_outlines(ax, code, edges, off):
+def _draw_track_outlines(ax, code, edges, off, zorder=1):
     """Outline each track over its drawn extent; returns the depth range ``(dmin, dmax)``."""
     from matplotlib.collections import PolyCollection
 
@@ -443,7 +302,7 @@ def _draw_track_outlines(ax, code, edges, off):
     hi_i = n_win - np.argmax(any_drawn[:, ::-1], axis=1)
     rows = np.arange(n_tr)
     outlines = PolyCollection(_track_boxes(rows, edges[lo_i] + off, edges[hi_i] + off), facecolors="none",
-                              edgecolors=UNRANGED, linewidths=0.4, zorder=1)
+                              edgecolors=UNRANGED, linewidths=0.4, zorder=zorder)
     outlines.set_gid("track-outlines")
     ax.add_collection(outlines)
     return float((edges[lo_i] + off).min()), float((edges[hi_i] + off).max())
@@ -468,8 +327,15 @@ def _draw_track_cells(ax, cells_drawn):
                            antialiaseds=False, zorder=2)
     cells.set_gid("track-cells")
     ax.add_collection(cells)
+    _draw_masked(ax, cells_drawn)
 
-    # masked stretches: light grey hatch
+
+def _draw_masked(ax, cells_drawn):
+    """The masked stretches, hatched in light grey, as one compound path."""
+    from matplotlib.collections import PathCollection
+    from matplotlib.path import Path as MplPath
+
+    row, x0, x1, val = cells_drawn
     msk = val == _MASKED
     mpaths = ([MplPath.make_compound_path_from_polys(_track_boxes(row[msk], x0[msk], x1[msk]))]
               if msk.any() else [])
@@ -477,6 +343,88 @@ def _draw_track_cells(ax, cells_drawn):
                             zorder=1.5)
     masked.set_gid("track-masked")
     ax.add_collection(masked)
+
+
+def track_image(cells_drawn, depth_range, n_tracks: int, pitch_nm: float) -> np.ndarray:
+    """The coloured cells of a tracks figure as an RGBA image, one pixel row per track.
+
+    Parameters
+    ----------
+    cells_drawn : tuple of ndarray
+        ``(row, x0, x1, code)``: merged cells, their depth span (nm) and code (see
+        :func:`track_cells`).
+    depth_range : (float, float), nm
+        Depth of the image's left and right edges.
+    n_tracks : int
+        Number of tracks (image rows).
+    pitch_nm : float
+        Site pitch, nm; pixels are ``pitch_nm / IMAGE_PX_PER_SITE`` wide (at most
+        :data:`IMAGE_MAX_PX` across).
+
+    Returns
+    -------
+    (n_tracks, n_px, 4) ndarray of uint8
+        Each pixel has the colour of the cell covering its centre: the metal's colour at the
+        opacity of the cell's confidence level; transparent where no coloured cell is (blank,
+        masked, outside the window).
+    """
+    row, x0, x1, val = (np.asarray(v) for v in cells_drawn)
+    dmin, dmax = (float(v) for v in depth_range)
+    span = max(dmax - dmin, 1e-9)
+    n_px = int(np.clip(math.ceil(span * IMAGE_PX_PER_SITE / float(pitch_nm)), 64, IMAGE_MAX_PX))
+    xc = (np.arange(n_px) + 0.5) * (span / n_px)
+    # one sorted key line: track r occupies [r * w, r * w + span], so one search finds every pixel's cell
+    w = span + 1.0
+    start = row * w + (x0 - dmin)
+    order = np.argsort(start, kind="stable")
+    row, x1, val, start = row[order], x1[order], val[order], start[order]
+    r_px = np.repeat(np.arange(n_tracks), n_px)
+    x_px = np.tile(xc, n_tracks)
+    j = np.searchsorted(start, r_px * w + x_px, side="right") - 1
+    jj = np.clip(j, 0, None)
+    hit = (j >= 0) & (row[jj] == r_px) & (x_px < x1[jj] - dmin) & (val[jj] >= 0)
+    n_lv = len(CONFIDENCE_LEVELS)
+    n_codes = int(val.max()) + 1 if val.size and val.max() >= 0 else 0
+    lut = np.array([_rgba(metal_colour(c // n_lv), CONFIDENCE_LEVELS[c % n_lv][1]) for c in range(n_codes)]
+                   or np.zeros((0, 4)))
+    img = np.zeros((n_tracks * n_px, 4), dtype=np.uint8)
+    img[hit] = np.round(255 * lut[val[jj[hit]]]).astype(np.uint8)
+    return img.reshape(n_tracks, n_px, 4)
+
+
+def _draw_track_image(ax, cells_drawn, depth_range, n_tr, pitch_nm):
+    """Draw the coloured cells as one image (large figures), white gaps between tracks, masked hatched."""
+    from matplotlib.collections import PolyCollection
+
+    dmin, dmax = depth_range
+    img = track_image(cells_drawn, depth_range, n_tr, pitch_nm)
+    # 'none': SVG and PDF embed the image at its own size instead of resampling it to the page
+    im = ax.imshow(img, extent=(dmin, dmax, n_tr - 0.5, -0.5), aspect="auto", interpolation="none",
+                   origin="upper", zorder=2)
+    im.set_gid("track-image")
+    gaps = PolyCollection(_track_boxes(np.arange(n_tr - 1) + 0.5, dmin, dmax, half=0.1), facecolors=EMPTY,
+                          edgecolors="none", linewidths=0, zorder=2.5)
+    gaps.set_gid("track-gaps")
+    ax.add_collection(gaps)
+    _draw_masked(ax, cells_drawn)
+
+
+def label_font_pt(font_pt: float, track_in: float) -> float:
+    """Font size (pt) of the rod labels: the base font, shrunk so that a label fits its track.
+
+    Parameters
+    ----------
+    font_pt : float
+        The figure's base font, pt.
+    track_in : float
+        Height of one track, inches (a text line takes 1.2 times its font size).
+
+    Returns
+    -------
+    float
+        ``min(font_pt, 72 * track_in / 1.2)``, pt: every track gets its label.
+    """
+    return float(min(font_pt, 72.0 * track_in / 1.2))
 
 
 def _style_track_axes(ax, ids, centre, n_tr, depth_range, font, track_in):
@@ -488,15 +436,10 @@ def _style_track_axes(ax, ids, centre, n_tr, depth_range, font, track_in):
     extra = max(0.9, 0.17 / track_in)  # room for the scale bar, in track heights
     ax.set_ylim(n_tr - 0.5 + extra, -0.6)
     ax.set_xlabel("depth z (nm)", fontsize=font)
-    step = max(1, math.ceil(n_tr * font * 1.15 / 72.0 / (n_tr * track_in)))
+    # every track is labelled: the labels' font shrinks to the track height (one line is 1.2 em)
     ax.set_yticks(np.arange(n_tr))
-    labels = []
-    for i, r in enumerate(ids):
-        if i % step:
-            labels.append("")
-        else:
-            labels.append(f"rod {int(r)}" + (" (centre)" if centre is not None and r == centre else ""))
-    ax.set_yticklabels(labels, fontsize=font * (0.85 if step == 1 and track_in < 0.11 else 1.0))
+    labels = [f"rod {int(r)}" + (" (centre)" if centre is not None and r == centre else "") for r in ids]
+    ax.set_yticklabels(labels, fontsize=label_font_pt(font, track_in))
     ax.tick_params(axis="y", length=0, pad=2)
     ax.tick_params(axis="x", labelsize=font, length=2.5, pad=1.5)
     for side in ("left", "right", "top"):
@@ -534,7 +477,8 @@ def _add_scale_bar(ax, depth_range, n_tr, extra, font):
 
 
 def plot_tracks(columns, decoded, path=None, *, rods=None, region=None, neighbours_of=None, sample=None,
-                depth_nm=None, size="one-column", dpi=300, random_state=None, title=None):
+                depth_nm=None, size="one-column", dpi=300, random_state=None, title=None,
+                max_rods: int = MAX_TRACKS, caption=None, raster=None):
     """Sequence tracks: rods as parallel tracks along depth, sites coloured by decoded metal.
 
     Parameters
@@ -546,23 +490,35 @@ def plot_tracks(columns, decoded, path=None, *, rods=None, region=None, neighbou
     path : str or Path, optional
         Save to this file (``.svg``, ``.pdf`` or ``.png``).
     rods, region, neighbours_of, sample, random_state
-        Which rods, see :func:`select_rods` (at most one; default a compact patch of
-        :data:`DEFAULT_TRACKS` rods near the centre, lateral neighbours on adjacent tracks).
+        Which rods, see :func:`choose_rods` (at most one; default a compact patch of
+        :data:`DEFAULT_TRACKS` rods nearest the centre, lateral neighbours on adjacent tracks).
     depth_nm : (float, float), nm, optional
         Depth window ``(start, end)``.
     size : str or (float, float)
         'one-column' (85 mm wide), 'two-column' (178 mm) or ``(width_mm, height_mm)``; a preset's
         height grows with the number of tracks.
     dpi : float
-        Resolution of PNG output.
+        Resolution of PNG output (and of the tracks image inside SVG and PDF).
     title : str, optional
+    max_rods : int
+        The most tracks drawn (1 to :data:`MAX_TRACKS`); a larger choice keeps the rods nearest the
+        centre of the field of view, and the caption says so.
+    caption : str, optional
+        Text above the tracks; default ``"Tracks: <rule>."`` with the rule that chose the rods
+        (:attr:`RodChoice.rule`); ``""`` for none.
+    raster : bool, optional
+        Draw the coloured cells as one image (True) or as vector paths (False); default: an image
+        when there are more than :data:`RASTER_CELLS` merged cells and ``path`` is not a PNG, so
+        large SVG and PDF files stay small and fast (Agg draws a PNG faster from the paths).
 
     Returns
     -------
     matplotlib.figure.Figure
-        Its axes hold three collections with gids ``track-outlines`` (one rectangle per track),
-        ``track-cells`` (one compound path of merged cells per colour) and ``track-masked``
-        (hatched masked stretches).
+        Its axes hold collections with gids ``track-outlines`` (one rectangle per track),
+        ``track-masked`` (hatched masked stretches) and either ``track-cells`` (one compound path
+        of merged cells per colour) or an image ``track-image`` (see :func:`track_image`) with
+        ``track-gaps`` between the tracks. The caption is the figure's ``suptitle`` (gid
+        ``track-caption``).
 
     Raises
     ------
@@ -570,16 +526,27 @@ def plot_tracks(columns, decoded, path=None, *, rods=None, region=None, neighbou
         Unknown rod ids (the message gives the range of ids), an empty depth window (the message
         gives the depth range of the sites), several ways of choosing rods, a bad size or suffix.
     """
+    from matplotlib.legend_handler import HandlerTuple
+
     dpi = _check_dpi(dpi)
     selection = dict(rods=rods, region=region, neighbours_of=neighbours_of, sample=sample,
                      random_state=random_state)
-    ids, centre, sites, code = _select_track_cells(columns, decoded, depth_nm, selection)
+    choice, sites, code = _select_track_cells(columns, decoded, depth_nm, selection, max_rods)
+    ids, centre = choice.ids, choice.centre
     n_tr, n_win = code.shape
     edges, off, cells_drawn = _track_geometry(columns, code, ids, sites)
+    if caption is None:
+        caption = f"Tracks: {choice.rule}."
+    if raster is None:  # an image keeps large SVG and PDF files small; a PNG is drawn faster from paths
+        raster = cells_drawn[0].size > RASTER_CELLS and not str(path or "").lower().endswith(".png")
+    as_image = bool(raster)
 
-    fig, ax, font, track_in, ncol = _tracks_figure(size, n_tr, columns.n_metals, title)
-    depth_range = _draw_track_outlines(ax, code, edges, off)
-    _draw_track_cells(ax, cells_drawn)
+    fig, ax, font, track_in, ncol, lines = _tracks_figure(size, n_tr, columns.n_metals, title, caption)
+    depth_range = _draw_track_outlines(ax, code, edges, off, zorder=3 if as_image else 1)
+    if as_image:
+        _draw_track_image(ax, cells_drawn, depth_range, n_tr, float(columns.pitch_nm))
+    else:
+        _draw_track_cells(ax, cells_drawn)
 
     # axes: depth below, site index above, rod labels left
     extra = _style_track_axes(ax, ids, centre, n_tr, depth_range, font, track_in)
@@ -587,12 +554,16 @@ def plot_tracks(columns, decoded, path=None, *, rods=None, region=None, neighbou
     _add_scale_bar(ax, depth_range, n_tr, extra, font)
 
     metals = tuple(columns.metals)
-    fig.legend(handles=_track_legend(metals, ncol), loc="outside lower center", ncols=ncol,
-               fontsize=font * 0.9, frameon=False, handlelength=1.2, handleheight=0.8, columnspacing=0.9,
-               handletextpad=0.4, borderaxespad=0.1, title="p = posterior of the decoded metal",
-               title_fontsize=font * 0.9)
+    handles, labels = _track_legend(metals, ncol)
+    fig.legend(handles=handles, labels=labels, handler_map={tuple: HandlerTuple(ndivide=None, pad=0)},
+               loc="outside lower center", ncols=ncol, fontsize=font * 0.9, frameon=False, handlelength=1.6,
+               handleheight=0.8, columnspacing=0.9, handletextpad=0.4, borderaxespad=0.1,
+               title="p = posterior of the decoded metal", title_fontsize=font * 0.9)
     if title:
         ax.set_title(title, fontsize=font * 1.1)
+    if lines:
+        fig.suptitle("\n".join(lines), fontsize=CAPTION_SCALE * font, ha="left", x=0.01,
+                     linespacing=1.15).set_gid("track-caption")
     if path is not None:
         save_figure(fig, path, dpi=dpi)
     return fig

@@ -13,6 +13,7 @@ The stages are public so the stage commands run exactly what ``analyze`` runs:
 
 from __future__ import annotations
 
+import platform
 import sys
 import threading
 import time
@@ -27,6 +28,7 @@ from ..exceptions import DataQualityWarning
 from ..io.ions import IonList
 from ..lattice.model import Lattice
 from ..lattice.rodcolumns import RodColumns
+from ..outputs.reporttext import analysis_warnings
 from ..outputs.results import RUNS_COLUMNS, RUNS_FORMATS, _write_replicates, _write_table, save_decoded, write_tracks
 from .options import AnalysisOptions, AnalysisResult, Progress, _check_ions, _Clock
 from .stages import (
@@ -116,16 +118,15 @@ def _run(counts_stage, metals, lattice, opts, progress, provenance, meta) -> Ana
                           copy_threshold=opts.copy_threshold)
         dec, copies = _pool_copies(cols, dec, clock)
         caught = [str(w.message).splitlines()[0] for w in wlist]
-    warn = list(dict.fromkeys(caught + list(getattr(dec, "warnings", []))))
-    if not cols.resolvable:
-        warn.insert(0, f"single rods are not resolvable (misassigned fraction {cols.misassigned_fraction:.2f}: share of a rod's ions expected nearer another rod); "
-                       "per-rod sequences are unreliable, see the groups-of-rods analysis")
     clock.timings["total"] = round(time.perf_counter() - clock.t0, 4)
     prov = {"tool": "probeseq", "version": __version__, "python": sys.version.split()[0],
+            "platform": f"{platform.system()} {platform.machine()}".strip(),
             "options": opts.to_dict(), "metals": list(metals),
             "lattice": lattice.to_dict(), "lattice_source": lattice.name, "seed": opts.seed,
             "input": {"source": meta.source, "sha256": meta.sha256}}
     prov.update(provenance or {})
+    # the one warnings list: the terminal prints it, results.json stores it, the report lists it
+    warn = analysis_warnings(cols, dec, groups, caught, prov)
     return AnalysisResult(metals=metals, lattice=lattice, options=opts, ions_summary=counted.ions_summary,
                           ranging=counted.ranging, n_metal_ions=counted.n_metal_ions, columns=cols, decoded=dec,
                           groups=groups, statistics=st, classification=cl, timings_s=clock.timings,
@@ -229,7 +230,7 @@ def _analyze_stream(path, metals, lattice, opts, ranges, progress, provenance, t
     return replace(res, ions_summary={**res.ions_summary, "sha256": sha["hex"]}), t_wait
 
 
-def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> dict:
+def write_figures(result: AnalysisResult, folder, progress: Progress = None, failures: list | None = None) -> dict:
     """Save the figures of an analysis in ``folder`` (vector and PNG) and return them by name.
 
     Files: ``tracks.svg/.pdf/.png`` (rods nearest the centre), ``spectrum.png/.svg``,
@@ -237,6 +238,8 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> 
     rods are not resolvable), ``overlaps.png/.svg`` (when overlapped metal and fragment lines were
     refitted with the ions' distance to the rod axes), ``reconstruction.png/.svg`` (the depth
     scale, plane curvature, magnification and detection efficiency calibrated on the lattice). A figure that cannot be drawn is skipped with a warning.
+    Its one-line message is also appended to ``failures`` when a list is given (``write_analysis``
+    adds them to the warnings of ``results.json`` and the report).
     """
     from ..outputs.figures import plot_group_variance, plot_rod_to_rod, plot_run_lengths, save_figure
     from ..outputs.tracks import plot_tracks
@@ -249,7 +252,10 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None) -> 
         try:
             fig = make()
         except Exception as e:  # a figure must never cost the results
-            warnings.warn(f"figure '{name}' not drawn: {e}", DataQualityWarning, stacklevel=2)
+            msg = f"figure '{name}' not drawn: {type(e).__name__}: {str(e).splitlines()[0] if str(e) else ''}"
+            warnings.warn(msg, DataQualityWarning, stacklevel=2)
+            if failures is not None:
+                failures.append(msg)
             figs[name] = None
             return
         if fig is None:
@@ -354,12 +360,17 @@ def _write_rest(result, st, report, progress, extra):
     _write_replicates(result.statistics, st / "bootstrap.h5")
     save_decoded(result.decoded, st / "decoded.h5")
     if report:
+        from ..outputs.folder import write_json
         from ..outputs.report import write_report
 
-        figs = write_figures(result, st / "figures", progress)
+        failures = []
+        figs = write_figures(result, st / "figures", progress, failures)
+        if failures:  # one warnings list: results.json and the report both carry the figures not drawn
+            result = replace(result, warnings=tuple(dict.fromkeys(tuple(result.warnings) + tuple(failures))))
+            write_json(st / "results.json", result.to_dict())
         if progress:
             progress("report", "writing report.html")
-        write_report(result, st / "report.html", ions=result.figure_ions,
-                     figures={k: v for k, v in figs.items() if v is not None and k != "density"})
+        # a figure that failed (None) is left out of the report, not drawn and warned about twice
+        write_report(result, st / "report.html", ions=result.figure_ions, figures=figs)
     if extra is not None:
         extra(st)

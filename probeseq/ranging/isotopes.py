@@ -34,7 +34,7 @@ import numpy as np
 
 from ..exceptions import InputError
 
-__all__ = ['ELECTRON_MASS_DA', 'MAX_FORMULA_ATOMS', 'MAX_FORMULA_CHARS', 'MAX_CHARGE', 'IsotopePattern', 'parse_formula', 'canonical_formula', 'parse_ion', 'ion_label', 'element_isotopes', 'isotope_pattern', 'metal_atoms']
+__all__ = ['ELECTRON_MASS_DA', 'MAX_FORMULA_ATOMS', 'MAX_FORMULA_CHARS', 'MAX_CHARGE', 'IsotopePattern', 'parse_formula', 'canonical_formula', 'parse_ion', 'check_metals', 'ion_label', 'element_isotopes', 'isotope_pattern', 'metal_atoms']
 
 _TOKEN = re.compile(r"([A-Z][a-z]?)(\d*)|(\()|(\))(\d*)")
 
@@ -158,6 +158,65 @@ def _check_element(sym: str, shown: str) -> None:
         raise InputError(f"formula {shown}: '{sym}' is an isotope symbol; use the element symbol")
     if el.number == 0 or not any(iso.abundance > 0 for iso in el):
         raise InputError(f"formula {shown}: element '{sym}' has no naturally occurring isotopes")
+
+
+def _element_problem(sym: str) -> str | None:
+    """Why ``sym`` is not an element with natural isotopes, or None when it is one."""
+    try:
+        _check_element(sym, repr(sym))
+    except InputError as e:
+        return str(e).split(": ", 1)[1]
+    return None
+
+
+def check_metals(symbols, what: str = "metals") -> tuple:
+    """Metal symbols checked before any file is read: known elements with natural isotopes.
+
+    Parameters
+    ----------
+    symbols : sequence of str
+        Element symbols as given, e.g. ``("Co", "Zn")``.
+    what : str
+        How the caller names them in a message (``"--metals"``, ``"run.toml [run] metals"``).
+
+    Returns
+    -------
+    tuple of str
+
+    Raises
+    ------
+    InputError
+        One line: symbols in the wrong case with the right spelling (``co,zn``: did you mean
+        ``Co,Zn``?), an unknown symbol, an isotope symbol, an element without natural isotopes,
+        or a metal given twice.
+    """
+    symbols = tuple(str(s).strip() for s in symbols)
+    given = ",".join(symbols)
+    given = given if len(given) <= 60 else given[:57] + "..."
+    fixed, problems = [], []
+    for sym in symbols:
+        why = _element_problem(sym) if re.fullmatch(r"[A-Za-z]{1,3}", sym) else "unknown element"
+        if why is not None and why.startswith("unknown element"):
+            why = f"'{sym[:20]}' is not an element symbol"
+        proper = sym[:1].upper() + sym[1:].lower()
+        if why is not None and proper != sym and _element_problem(proper) is None:
+            fixed.append(proper)
+            problems.append(None)
+        else:
+            fixed.append(sym)
+            problems.append(why)
+    bad = [p for p in problems if p is not None]
+    if bad:
+        hint = "; give element symbols, e.g. Co,Zn" if "not an element symbol" in bad[0] else ""
+        raise InputError(f"{what} {given}: {bad[0]}{hint}")
+    wrong = [s for s, f in zip(symbols, fixed) if s != f]
+    if wrong:
+        hint = f"did you mean {','.join(fixed)}?" if len(set(fixed)) == len(fixed) else "e.g. Co,Zn"
+        raise InputError(f"{what} {given}: '{wrong[0]}' is not an element symbol (symbols are case-sensitive); {hint}")
+    twice = sorted({s for s in symbols if symbols.count(s) > 1})
+    if twice:
+        raise InputError(f"{what} {given}: {', '.join(twice)} is listed twice; list each metal once")
+    return symbols
 
 
 def canonical_formula(formula: str) -> str:

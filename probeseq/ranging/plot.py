@@ -15,7 +15,7 @@ import numpy as np
 
 from ..utils.palette import OTHER, metal_colour
 
-__all__ = ['plot_ranging', 'plot_spectrum', 'save_figure', 'mathtext_ion']
+__all__ = ['plot_ranging', 'plot_spectrum', 'place_peak_labels', 'save_figure', 'mathtext_ion', 'OTHER_ALPHA']
 
 def mathtext_ion(formula: str, charge: int) -> str:
     """Ion label for matplotlib mathtext: ``('C2H2', 1) -> '$\\mathrm{C_{2}H_{2}}^{+}$'``."""
@@ -27,6 +27,80 @@ def mathtext_ion(formula: str, charge: int) -> str:
 def _range_label(r, min_share=0.05):
     parts = [(f, z) for (f, z), p in r.species_shares() if p >= min_share] or [(r.formula, r.charge)]
     return "/".join(mathtext_ion(f, z) for f, z in parts)
+
+
+#: opacity of the bands of non-metal ("other") ranges; higher than the metals' 0.35 because grey is pale
+OTHER_ALPHA = 0.6
+
+
+def place_peak_labels(ax, cands, avoid=(), pad_px: float = 1.5, step_px: float = 5.0) -> int:
+    """Write rotated peak labels without overlap; return how many were written.
+
+    Each label starts just above its peak. When it would overlap a label already written, a peak
+    spike (its vertical line from the axis to the peak top), an artist in ``avoid`` (the legend) or
+    leave the axes, it moves up in steps of ``step_px`` display pixels (and right, off the left
+    axis); a label moved is joined to its peak by a thin leader line. A label that finds no room
+    below the top of the axes is left out: candidates are written in the order given, so pass
+    the strongest peaks first and the minor ones lose their labels.
+
+    Parameters
+    ----------
+    ax : matplotlib.axes.Axes
+        With its limits and position final (a figure with a layout engine is laid out here first).
+    cands : sequence of (x_da, peak_counts, text)
+        Peak position in Da, peak height in the axis's y unit, label text.
+    avoid : sequence of matplotlib artists
+    pad_px, step_px : float, display pixels
+
+    Returns
+    -------
+    int
+    """
+    fig = ax.figure
+    if fig.get_layout_engine() is not None:
+        fig.draw_without_rendering()  # fixes a layout engine's positions, so display positions hold
+    rend = fig.canvas.get_renderer()
+    box = ax.get_window_extent(rend)
+    to_data = ax.transData.inverted()
+    spikes = []
+    for x, top, _ in cands:  # each labelled peak's spike is an obstacle for the other labels
+        px, py = ax.transData.transform((x, top))
+        spikes.append((px - 1.5, box.y0, px + 1.5, py))
+    taken = [(b.x0, b.y0, b.x1, b.y1) for b in (a.get_window_extent(rend) for a in avoid if a is not None)]
+    shown = 0
+
+    def hits(b, o):
+        return b.x0 - pad_px < o[2] and o[0] < b.x1 + pad_px and b.y0 - pad_px < o[3] and o[1] < b.y1 + pad_px
+
+    def free(b, own):
+        if b.x0 < box.x0 + pad_px or b.x1 > box.x1 - pad_px or b.y1 > box.y1 - pad_px:
+            return False
+        return not (any(hits(b, o) for o in taken) or any(hits(b, o) for k, o in enumerate(spikes) if k != own))
+
+    for i, (x, top, text) in enumerate(cands):
+        px, py = ax.transData.transform((x, top))
+        t = ax.text(x, top, text, rotation=90, ha="center", va="bottom", fontsize=7, clip_on=True)
+        t.set_in_layout(False)
+        dx, dy, ok = 0.0, 3.0, False
+        while py + dy < box.y1:
+            t.set_position(to_data.transform((px + dx, py + dy)))
+            b = t.get_window_extent(rend)
+            if b.x0 < box.x0 + pad_px:  # off the left axis: move right, then test again
+                dx += box.x0 + pad_px - b.x0
+                continue
+            if free(b, i):
+                ok = True
+                break
+            dy += step_px
+        if not ok:
+            t.remove()
+            continue
+        taken.append((b.x0, b.y0, b.x1, b.y1))
+        shown += 1
+        if dy > 3.0 + step_px or dx > 0:  # moved: a leader line back to the peak
+            lx, ly = to_data.transform((px + dx, b.y0 - 1.0))
+            ax.plot([x, lx], [top, ly], color="0.45", linewidth=0.4, clip_on=True)
+    return shown
 
 
 def plot_spectrum(spectrum, ranges=None, metals=(), *, label_at=None, unmatched_da=(), path=None,
@@ -60,19 +134,22 @@ def plot_spectrum(spectrum, ranges=None, metals=(), *, label_at=None, unmatched_
     from matplotlib.patches import Patch
 
     metals = tuple(metals)
-    fig = Figure(figsize=(12, 4.8), layout="constrained")
+    fig = Figure(figsize=(12, 4.8))
     FigureCanvasAgg(fig)
+    # a fixed layout (no layout engine): the peak labels are placed in display space before saving
+    fig.subplots_adjust(left=0.065, right=0.99, bottom=0.105, top=0.92 if title else 0.975)
     ax = fig.add_subplot(1, 1, 1)
     e, c = spectrum.edges_da, spectrum.counts
     ax.stairs(c, e, color="black", linewidth=0.6)
     ax.set_yscale("log")
     top = max(float(c.max()), 1.0)
     ax.set_ylim(0.5, top * 8)
-    ax.set_xlim(*(xlim_da if xlim_da is not None else (float(e[0]), float(e[-1]))))
+    # a little room on the left so the first peak's label clears the axis
+    ax.set_xlim(*(xlim_da if xlim_da is not None else (float(e[0]) - 0.01 * float(e[-1] - e[0]), float(e[-1]))))
     width = float(np.median(np.diff(e)))
     ax.set_xlabel("mass-to-charge (Da)")
     ax.set_ylabel(f"counts per {width:.3g} Da bin")
-    handles = []
+    handles, cands, marks, n_ranges = [], [], [], 0
     if ranges is not None and len(ranges):
         from .channels import channel_tables
 
@@ -80,16 +157,14 @@ def plot_spectrum(spectrum, ranges=None, metals=(), *, label_at=None, unmatched_
         cum = np.concatenate([[0], np.cumsum(c)])
         totals = []
         for j, r in enumerate(ranges):
-            col = metal_colour(int(channel[j])) if channel[j] < len(metals) else OTHER
-            ax.axvspan(r.low_da, r.high_da, color=col, alpha=0.35, linewidth=0)
+            if channel[j] < len(metals):
+                ax.axvspan(r.low_da, r.high_da, color=metal_colour(int(channel[j])), alpha=0.35, linewidth=0)
+            else:  # other species: darker fill with an outline, so narrow grey bands stay visible
+                ax.axvspan(r.low_da, r.high_da, facecolor=OTHER, alpha=OTHER_ALPHA, edgecolor=OTHER, linewidth=0.8)
             i0, i1 = np.searchsorted(e, [r.low_da, r.high_da])
             totals.append(cum[min(i1, c.size)] - cum[min(i0, c.size)])
-        x0, x1 = ax.get_xlim()
-        min_gap = 0.007 * (x1 - x0)  # labels closer than this would overprint: keep the stronger
-        placed = []
-        for j in np.argsort(totals)[::-1]:
-            if len(placed) >= max_labels:
-                break
+        cands = []
+        for j in np.argsort(totals)[::-1][:max_labels]:
             r = ranges[int(j)]
             i0, i1 = np.searchsorted(e, [r.low_da, r.high_da])
             i0, i1 = max(i0 - 1, 0), max(min(i1, c.size), i0)
@@ -98,23 +173,28 @@ def plot_spectrum(spectrum, ranges=None, metals=(), *, label_at=None, unmatched_
                 x = float(label_at[j])
             else:
                 x = float(spectrum.centres_da[i0 + int(np.argmax(seg))]) if seg.size else 0.5 * (r.low_da + r.high_da)
-            if not x0 <= x <= x1 or any(abs(x - p) < min_gap for p in placed):
-                continue
-            placed.append(x)
-            y = max(float(seg.max()) if seg.size else 1.0, 1.0) * 1.4
-            ax.text(x, y, _range_label(r), rotation=90, ha="center", va="bottom", fontsize=7, clip_on=True)
+            cands.append((x, max(float(seg.max()) if seg.size else 1.0, 1.0), _range_label(r)))
+        n_ranges = len(ranges)
         for k, el in enumerate(metals):
             handles.append(Patch(color=metal_colour(k), alpha=0.5, label=el))
-        handles.append(Patch(color=OTHER, alpha=0.5, label="other"))
+        handles.append(Patch(facecolor=OTHER, alpha=OTHER_ALPHA, edgecolor=OTHER, label="other species"))
     if len(unmatched_da):
         x = np.asarray(unmatched_da, dtype=float)
         i = np.clip(np.searchsorted(e, x) - 1, 0, c.size - 1)
         y = np.maximum(c[i], 1) * 1.4
         ax.plot(x, y, "v", color="black", markersize=4, label="unmatched peak")
         for xi, yi in zip(x, y):
-            ax.text(xi, yi * 1.3, "?", ha="center", va="bottom", fontsize=8, clip_on=True)
+            marks.append(ax.text(xi, yi * 1.3, "?", ha="center", va="bottom", fontsize=8, clip_on=True))
         handles.append(ax.lines[-1])
-    if handles:
+    if cands:  # the legend keeps room for the note on labels left out (made no wider afterwards)
+        note = Patch(facecolor="none", edgecolor="none", label=f"{n_ranges} minor range(s) shaded, not labelled")
+        legend = ax.legend(handles=handles + [note], loc="upper right", fontsize=8, frameon=False)
+        n_shown = place_peak_labels(ax, cands, avoid=[legend] + marks)
+        if n_shown < n_ranges:
+            legend.get_texts()[-1].set_text(f"{n_ranges - n_shown} minor range(s) shaded, not labelled")
+        else:
+            ax.legend(handles=handles, loc="upper right", fontsize=8, frameon=False)
+    elif handles:
         ax.legend(handles=handles, loc="upper right", fontsize=8, frameon=False)
     if title:
         ax.set_title(title)

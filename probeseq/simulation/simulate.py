@@ -136,8 +136,13 @@ def _check_metal_symbol(symbol) -> None:
     try:
         el = pt.elements.symbol(symbol)
     except ValueError:
-        raise InputError(f"--metals: '{symbol[:20]}' is not an element symbol (symbols are case-sensitive, "
-                         "e.g. Co,Zn)") from None
+        proper = symbol[:1].upper() + symbol[1:].lower()
+        try:
+            hint = f"did you mean '{pt.elements.symbol(proper).symbol}'?" if proper != symbol else "e.g. Co,Zn"
+        except ValueError:
+            hint = "e.g. Co,Zn"
+        raise InputError(f"--metals: '{symbol[:20]}' is not an element symbol (symbols are case-sensitive; "
+                         f"{hint})") from None
     if getattr(el, "isotope", None) is not None or el.number == 0 or not any(i.abundance > 0 for i in el):
         raise InputError(f"--metals: '{symbol}' is not an element with naturally occurring isotopes")
 

@@ -60,6 +60,7 @@ import numpy as np
 from scipy import stats as _sps
 
 from ..exceptions import InputError
+from ..utils.textformat import format_p
 from .summary import RunStatistics
 
 __all__ = ['Classification', 'classify', 'metal_descriptions', 'calibrated_confidence', 'LABELS', 'ALONG_ROD_CLASSES',
@@ -207,19 +208,16 @@ def _fmt(x, nd=None) -> str:
     return f"{x:.1e}"
 
 
-def _fmt_p(p) -> str:
-    if p is None or not math.isfinite(float(p)):
-        return "n/a"
-    p = float(p)
-    if p < 1e-16:
-        return "< 1e-16"
-    return f"{p:.3f}" if p >= 0.001 else f"{p:.1e}"
+def _p_eq(p, n_draws=None) -> str:
+    """'= 0.003', '< 1e-300' (analytic) or '≤ 0.005' (at the floor of ``n_draws`` null draws) for a
+    p-value in a sentence: the text of :func:`probeseq.utils.textformat.format_p`, as in the report."""
+    t = format_p(p, n_draws)
+    return t if t[0] in "<≤" else f"= {t}"
 
 
-def _p_eq(p) -> str:
-    """'= 0.003' or '< 1e-16' for a p-value in a sentence."""
-    t = _fmt_p(p)
-    return t if t.startswith("<") else f"= {t}"
+def _n_null(rr) -> int:
+    """Finite null draws of a rod-to-rod test (its p-value's resolution is 1 / (n + 1))."""
+    return int(np.isfinite(np.asarray(rr.null, dtype=float)).sum())
 
 
 def _span(lo, hi, nd=None) -> str:
@@ -506,7 +504,7 @@ def _evidence(stats, p_lr, alpha, long_block_sites, copy_threshold, along, rod):
                    f"(of lags -{top}..{top}): correlation {_fmt(e, 2)} after correcting for decoding noise "
                    f"(95 % interval {_span(lo, hi, 2)}), {_fmt(rr.statistic, 2)} on the posteriors, which "
                    f"recover {_fmt(100 * rr.reliability, 0)} % of the variance; circularly shifted rods give "
-                   f"{_fmt(rr.null_mean, 2)} on average, p {_p_eq(rr.p_value)}")
+                   f"{_fmt(rr.null_mean, 2)} on average, p {_p_eq(rr.p_value, _n_null(rr))}")
         if rod == "copied":
             out.append(f"significant (p < {alpha:g}) and at or above the copy threshold {copy_threshold:g}, "
                        "so rods are copied")
@@ -524,5 +522,5 @@ def _evidence(stats, p_lr, alpha, long_block_sites, copy_threshold, along, rod):
                            f"reach p < {alpha:g}")
         if math.isfinite(rr.corr_nonneighbour):
             out.append(f"non-neighbouring rods give {_fmt(rr.corr_nonneighbour, 2)} at the same depth "
-                       f"(p {_p_eq(rr.p_nonneighbour)} for neighbours exceeding them)")
+                       f"(p {_p_eq(rr.p_nonneighbour, min(_n_null(rr), 999))} for neighbours exceeding them)")
     return out

@@ -9,7 +9,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..decoding.chain import independent_run_lengths, mean_run_lengths, stationary_distribution
+from ..decoding.chain import (
+    RUN_LENGTH_DEFINITIONS,
+    independent_run_lengths,
+    mean_run_lengths,
+    stationary_distribution,
+)
 from ..exceptions import DataQualityWarning, InputError
 from ..utils.marks import to_jsonable
 from .agreement import (
@@ -110,7 +115,12 @@ class RunStatistics:
         return est, float(lo), float(hi)
 
     def to_dict(self) -> dict:
-        """JSON-able summary (NaN and infinities become None)."""
+        """JSON-able summary (NaN and infinities become None).
+
+        ``definitions`` says in one line per key what each run-length number is
+        (:data:`probeseq.decoding.chain.RUN_LENGTH_DEFINITIONS`): ``mean_run_length_sites`` is the
+        headline, ``1 / (1 - P_kk)`` of the fitted chain.
+        """
         e = self.estimates
         out = {
             "metals": list(self.metals),
@@ -161,6 +171,8 @@ class RunStatistics:
         out["run_lengths"] = {
             mt: {k: to_jsonable(v) for k, v in d.items()} for mt, d in self.run_lengths.items()
         }
+        # which mean run length is the headline, and how it differs from the decoded runs' mean
+        out["definitions"] = {k: v for k, v in RUN_LENGTH_DEFINITIONS.items() if k in out}
         out["intervals"] = {}
         for name in sorted(self.estimates):
             est, lo, hi = self.interval(name)
