@@ -227,3 +227,26 @@ def test_soft_evidence_posteriors_match_hmmlearn():
         np.testing.assert_allclose(res.posteriors[r, t0:t1][mask[r, t0:t1]], post[mask[r, t0:t1]], atol=2e-6)
         path = ref.decode(X, algorithm="viterbi")[1]
         np.testing.assert_array_equal(res.viterbi[r, t0:t1][mask[r, t0:t1]], path[mask[r, t0:t1]])
+
+
+def test_analyze_decodes_soft_evidence_by_default_and_drawn_metals_on_request(tmp_path, run):  # noqa: F811
+    import json
+
+    from probeseq.cli import main
+
+    paths = run.write(tmp_path / "run.csv")
+    common = [str(paths["ions"]), "--metals", ",".join(METALS), "--lattice", str(paths["lattice"]), "--n-boot", "20",
+              "-q"]
+    assert main(["analyze", *common, "--out", str(tmp_path / "soft")]) == 0
+    assert main(["analyze", *common, "--out", str(tmp_path / "drawn"), "--drawn-metals"]) == 0
+    soft = json.loads((tmp_path / "soft" / "results.json").read_text())
+    drawn = json.loads((tmp_path / "drawn" / "results.json").read_text())
+    assert soft["decoding"]["soft_evidence"] is True and drawn["decoding"]["soft_evidence"] is False
+    assert soft["decoding"]["eta_of_soft_evidence_fit"] is not None and drawn["decoding"]["eta_of_soft_evidence_fit"] is None
+    # the chain and the efficiency come from the counts either way: the same fit
+    assert soft["decoding"]["eta"] == pytest.approx(drawn["decoding"]["eta"], abs=1e-12)
+    from probeseq.lattice.rodcolumns import load_columns
+
+    cs, cd = load_columns(tmp_path / "soft" / "columns.h5"), load_columns(tmp_path / "drawn" / "columns.h5")
+    assert cs.evidence is not None and cd.evidence is None
+    np.testing.assert_array_equal(cs.counts, cd.counts)  # whole ions either way

@@ -254,6 +254,9 @@ def columns(
     as_reconstructed: Annotated[bool, typer.Option(help="Use the file's positions as they are: no calibration "
                                                         "of the depth scale, plane curvature and lateral "
                                                         "magnification on the lattice.")] = False,
+    drawn_metals: Annotated[bool, typer.Option(help="Decode one metal drawn per ion by its range's shares "
+                                                    "instead of each ion's soft evidence (its range's shares "
+                                                    "and its distance to the rod axis).")] = False,
     length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
     strict: Strict = False, force: Force = False, quiet: Quiet = False,
 ):
@@ -271,9 +274,9 @@ def columns(
     mets = _metals(metals)
     lat = _lattice(lattice, a, repeat, sites_per_repeat)
     opts = AnalysisOptions(seed=seed, rotation_deg=rotation_deg, scale=scale, offset_nm=_parse_offset(offset_nm),
-                           correct_reconstruction=not as_reconstructed)
+                           correct_reconstruction=not as_reconstructed, soft_evidence=not drawn_metals)
     given = RangeSet.from_toml(ranges) if ranges is not None else None
-    # the count stage of 'analyze': sample, ranging, detection balance, registration, fused pass
+    # the count stage of 'analyze': sample, ranging, visibility, registration, fused pass (counts, soft evidence)
     counted = count_file(ions, mets, lat, ranges=given, options=opts, length_unit=length_unit,
                          position_dataset=position_dataset, mass_dataset=mass_dataset, strict=strict)
     cols, rr = counted.columns, counted.ranging
@@ -367,6 +370,9 @@ def analyze(
     as_reconstructed: Annotated[bool, typer.Option(help="Use the file's positions as they are: no calibration "
                                                         "of the depth scale, plane curvature and lateral "
                                                         "magnification on the lattice.")] = False,
+    drawn_metals: Annotated[bool, typer.Option(help="Decode one metal drawn per ion by its range's shares "
+                                                    "instead of each ion's soft evidence (its range's shares "
+                                                    "and its distance to the rod axis).")] = False,
     length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
     allow_outside: Annotated[bool, typer.Option(help="Let a run folder's run.toml name files outside the run "
                                                      "folder (refused by default).")] = False,
@@ -389,7 +395,8 @@ def analyze(
     # options first: a bad value is one error before any work, not one failure per run of a batch
     opts = AnalysisOptions(seed=seed, n_starts=n_starts, n_boot=n_boot, long_block_sites=long_block_sites,
                            alpha=alpha, copy_threshold=copy_threshold, rotation_deg=rotation_deg, scale=scale,
-                           offset_nm=_parse_offset(offset_nm), correct_reconstruction=not as_reconstructed)
+                           offset_nm=_parse_offset(offset_nm), correct_reconstruction=not as_reconstructed,
+                           soft_evidence=not drawn_metals)
     mets = _metals(metals) if metals is not None else None
     common = dict(options=opts, metals=mets, lattice=lattice, a=a, repeat=repeat, sites_per_repeat=sites_per_repeat,
                   ranges=ranges, length_unit=length_unit, position_dataset=position_dataset,
@@ -464,30 +471,15 @@ def compare(
     table = {c: [r[c] if r[c] is not None else "" for r in rows] for c in cols}
     with staged_outdir(out, force=force, inputs=inputs, command=_command_line()) as st:
         _write_table(st / "comparison.csv", table, cols)
-        dcols = ("run_a", "run_b", "statistic", "difference", "low", "high", "p_value")
-        _write_table(st / "differences.csv", {c: [d[c] if d[c] is not None else "" for d in comp.differences]
+        dcols = ("run_a", "run_b", "statistic", "difference", "low", "high", "p_value", "p_value_text",
+                 "interval_text")
+        _write_table(st / "differences.csv", {c: [d.get(c) if d.get(c) is not None else "" for d in comp.differences]
                                               for c in dcols}, dcols)
         write_json(st / "comparison.json", comp.to_dict())
         plot_comparison(comp, st / "comparison.png")
         plot_comparison(comp, st / "comparison.svg")
-    say(f"{'run':28s} {by:>12s} {'label':>18s}  key statistics (estimate [95 % interval])")
-    show = [s for s in comp.statistics if s.startswith("mean_run_length_sites.") or s == "persistence"]
-    for rec in comp.runs:
-        parts = []
-        for s in show:
-            iv = rec.intervals.get(s) or {}
-            e, lo, hi = iv.get("estimate"), iv.get("low"), iv.get("high")
-            if e is not None:
-                parts.append(f"{s.replace('mean_run_length_sites.', 'run ')} {e:.2f} [{lo or float('nan'):.2f}-"
-                             f"{hi or float('nan'):.2f}]")
-        say(f"{rec.name[:28]:28s} {str(rec.metadata.get(by, '-')):>12s} {rec.label:>18s}  " + "; ".join(parts))
-    sig = [d for d in comp.differences if d["p_value"] is not None and d["p_value"] == d["p_value"]
-           and d["p_value"] < 0.01 and (d["statistic"] in show)]
-    for d in sig:
-        say(f"  {d['run_a']} vs {d['run_b']}: {d['statistic']} differs by {d['difference']:.3g} "
-            f"(95 % interval {d['low']:.3g} to {d['high']:.3g}, bootstrap p = {d['p_value']:.3g})")
-    for n in comp.notes:
-        say(f"note: {n}")
+    for line in comp.text_lines():  # intervals "low to high", p-values at the resolution of their test
+        say(line)
     say(f"wrote {out}/comparison.csv, differences.csv, comparison.json, comparison.png/.svg")
 
 

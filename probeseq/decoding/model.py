@@ -573,7 +573,10 @@ def _rod_data(counts: np.ndarray, mask: np.ndarray, own_scale=None) -> _RodData:
     n_rods, _, k = counts.shape
     rods, first, span = spans(mask)
     sm = summarise(counts, mask)
-    if sm["rows"] is not None:
+    if own_scale is not None:
+        # soft evidence is only decoded (the fits run on the counts): no distinct rows, no factorials
+        log_fact, uniq, mult = 0.0, np.zeros((0, k)), np.zeros(0)
+    elif sm["rows"] is not None:
         h = sm["n_hist"]
         log_fact = float(h @ gammaln(np.arange(h.size) + 1.0))
         uniq, mult = sm["rows"], sm["mult"]

@@ -287,13 +287,18 @@ def summary_lines(res, verbose: bool = False) -> list:
     lines = [f"verdict: {c.label} (along rods: {c.along_rod}; rod to rod: {c.rod_to_rod}; "
              f"confidence {c.confidence:.2f})"]
     d = res.to_dict()
-    lines.append(f"{'metal':6s} {'fraction':>18s} {'mean run (sites)':>24s} {'x independent':>14s}")
+    from ..utils.textformat import format_interval
+
+    lines.append(f"{'metal':6s} {'fraction (spectrum), 95 % interval':>36s} {'mean run (sites), 95 % interval':>34s} "
+                 f"{'x independent':>14s}")
     for m in res.metals:
         iv = d["composition_interval"][m] or {}
         f, flo, fhi = d["composition"][m], iv.get("low", float("nan")), iv.get("high", float("nan"))
         r, rlo, rhi = st.interval(f"mean_run_length_sites.{m}")
         ratio = st.estimates.get(f"run_length_ratio.{m}", float("nan"))
-        lines.append(f"{m:6s} {f:8.3f} [{flo:.3f}-{fhi:.3f}] {r:10.2f} [{rlo:.2f}-{rhi:.2f}] {ratio:14.2f}")
+        fi = format_interval(flo, fhi, lambda v: f"{v:.3f}")
+        ri = format_interval(rlo, rhi, lambda v: f"{v:.2f}")
+        lines.append(f"{m:6s} {f'{f:.3f} ({fi})':>36s} {f'{r:.2f} ({ri})':>34s} {ratio:14.2f}")
     per_metal = getattr(c, "per_metal", None) or {}
     if per_metal:
         lines.append("each metal along the rods: " + ", ".join(f"{m} {d['class']}" for m, d in per_metal.items()))

@@ -49,7 +49,7 @@ print(json.dumps({"code": code, "seconds": el, "peak_mb": int(hwm) / 1024, "chil
 COUNTS_CHILD = r"""
 import json, sys, time
 from probeseq import runtime
-from probeseq.lattice import Lattice
+from probeseq.lattice.model import Lattice
 from probeseq.pipeline import count_file
 
 lat = Lattice.from_toml(sys.argv[2])

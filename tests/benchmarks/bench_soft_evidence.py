@@ -28,7 +28,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parent))
 CHILD = r"""
 import json, sys, time
 t = time.perf_counter()
-from probeseq.lattice import Lattice
+from probeseq.lattice.model import Lattice
 from probeseq.pipeline import AnalysisOptions
 from probeseq.study.batch import analyze_run
 opts = AnalysisOptions(soft_evidence=sys.argv[4] == "1")
@@ -72,10 +72,9 @@ def main(argv=None) -> int:
                 runs[soft].append(_one(path, lat, tmp / f"out_{int(soft)}", soft))
         med = {k: float(np.median([r["seconds"] for r in v])) for k, v in runs.items()}
         ratio = med[True] / med[False]
-        print(f"analyze, drawn metals (baseline): {med[False]:.1f} s (runs "
-              f"{', '.join(f'{r['seconds']:.1f}' for r in runs[False])})")
-        print(f"analyze, soft evidence (default): {med[True]:.1f} s (runs "
-              f"{', '.join(f'{r['seconds']:.1f}' for r in runs[True])})")
+        listed = {k: ", ".join(f"{r['seconds']:.1f}" for r in v) for k, v in runs.items()}
+        print(f"analyze, drawn metals (baseline): {med[False]:.1f} s (runs {listed[False]})")
+        print(f"analyze, soft evidence (default): {med[True]:.1f} s (runs {listed[True]})")
         for soft in (False, True):
             t = runs[soft][0]["timings"]
             keys = [k for k in ("binning", "decoding", "statistics", "total") if k in t]
