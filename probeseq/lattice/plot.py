@@ -131,10 +131,10 @@ def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, tit
     ax.set_title(f"{head}\n{sub}" if sub else head, fontsize=9)
     ax.legend(loc="upper right", fontsize=7, framealpha=0.8)
     fig.tight_layout()
-    from ..utils.marks import figure_metadata
+    from ..utils.marks import figure_save_kwargs
 
     path.parent.mkdir(parents=True, exist_ok=True)
-    fig.savefig(path, metadata=figure_metadata(path))
+    fig.savefig(path, **figure_save_kwargs(path))
     plt.close(fig)
     return path
 

@@ -140,11 +140,10 @@ def save_figure(fig, path, dpi: float = 300) -> Path:
                          f"got '{p.suffix or '(none)'}'")
     dpi = _check_dpi(dpi)
     p.parent.mkdir(parents=True, exist_ok=True)
-    from ..utils.marks import figure_metadata
+    from ..utils.marks import figure_save_kwargs
 
-    meta = figure_metadata(p)
     with matplotlib.rc_context(_SAVE_RC):
-        fig.savefig(p, dpi=dpi, format=suffix[1:], metadata=meta)
+        fig.savefig(p, dpi=dpi, format=suffix[1:], **figure_save_kwargs(p))
     return p
 
 

@@ -198,6 +198,15 @@ def _table(header, rows, num_cols=()) -> str:
 
 
 # ---------------------------------------------------------------------------------- figures
+def report_dpi(fig, dpi: float = FIGURE_DPI) -> tuple:
+    """(rendered, stated) resolution in dots per inch of ``fig``'s PNG in the report.
+
+    Narrow figures are rendered at ``NARROW_ZOOM`` times ``dpi`` and shown that much wider: their
+    PNG states ``dpi`` in its pHYs chunk, from which the report takes the display width.
+    """
+    return dpi * (NARROW_ZOOM if float(fig.get_size_inches()[0]) < NARROW_IN else 1.0), float(dpi)
+
+
 def _png_of_figure(fig, dpi: float) -> bytes:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=dpi)
@@ -221,7 +230,7 @@ def _embed(value, dpi: float):
     bytes or a .png/.svg file."""
     if hasattr(value, "savefig"):
         width_in = float(value.get_size_inches()[0])
-        zoom = NARROW_ZOOM if width_in < NARROW_IN else 1.0
+        zoom = report_dpi(value, dpi)[0] / dpi
         data = _png_of_figure(value, dpi * zoom)
         return "data:image/png;base64," + base64.b64encode(data).decode("ascii"), width_in * zoom
     if isinstance(value, (str, os.PathLike)):

@@ -231,7 +231,12 @@ def _analyze_stream(path, metals, lattice, opts, ranges, progress, provenance, t
 
 
 def write_figures(result: AnalysisResult, folder, progress: Progress = None, failures: list | None = None) -> dict:
-    """Save the figures of an analysis in ``folder`` (vector and PNG) and return them by name.
+    """Save the figures of an analysis in ``folder`` (vector and PNG) and return the report's PNGs by name.
+
+    The figures are drawn in this process and a forked child at once
+    (:func:`probeseq.outputs.figurejobs.run_figure_jobs`); the returned value of each is its PNG at
+    the report's resolution (bytes; None for a figure that failed), for
+    :func:`probeseq.outputs.report.write_report`, which then draws none of them again.
 
     Files: ``tracks.svg/.pdf/.png`` (rods nearest the centre), ``spectrum.png/.svg``,
     ``density.png``, ``run_lengths.svg/.png``, ``rod_to_rod.svg/.png``, ``groups.svg/.png`` (when
@@ -241,52 +246,24 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None, fai
     Its one-line message is also appended to ``failures`` when a list is given (``write_analysis``
     adds them to the warnings of ``results.json`` and the report).
     """
-    from ..outputs.figures import plot_group_variance, plot_rod_to_rod, plot_run_lengths, save_figure
+    from ..outputs.figurejobs import FigureJob, run_figure_jobs
+    from ..outputs.figures import plot_group_variance, plot_rod_to_rod, plot_run_lengths
+    from ..outputs.report import report_dpi
     from ..outputs.tracks import plot_tracks
 
     folder = Path(folder)
-    folder.mkdir(parents=True, exist_ok=True)
-    figs = {}
-
-    def attempt(name, make, exts):
-        try:
-            fig = make()
-        except Exception as e:  # a figure must never cost the results
-            msg = f"figure '{name}' not drawn: {type(e).__name__}: {str(e).splitlines()[0] if str(e) else ''}"
-            warnings.warn(msg, DataQualityWarning, stacklevel=2)
-            if failures is not None:
-                failures.append(msg)
-            figs[name] = None
-            return
-        if fig is None:
-            return
-        for ext in exts:
-            save_figure(fig, folder / f"{name}.{ext}")
-        figs[name] = fig
-
     if progress:
         progress("figures", "drawing the figures (tracks, run lengths, rod-to-rod, spectrum, density)")
-    attempt("tracks", lambda: plot_tracks(result.columns, result.decoded, size="two-column"), ("svg", "pdf", "png"))
-    attempt("run_lengths", lambda: plot_run_lengths(result.statistics), ("svg", "png"))
-    if result.statistics.rod_to_rod is not None:
-        attempt("rod_to_rod", lambda: plot_rod_to_rod(result.statistics,
-                                                     copy_threshold=result.options.copy_threshold), ("svg", "png"))
-    if result.groups is not None:
-        attempt("groups", lambda: plot_group_variance(result.groups), ("svg", "png"))
 
     def spectrum():
         from ..ranging.plot import plot_ranging
 
         return plot_ranging(result.ranging, folder / "spectrum")
 
-    attempt("spectrum", spectrum, ())
-
     def overlaps():
         from ..ranging.plot import plot_overlaps
 
         return plot_overlaps(result.ranging, folder / "overlaps")
-
-    attempt("overlaps", overlaps, ())
 
     def reconstruction():
         from ..lattice.plot import plot_reconstruction
@@ -294,10 +271,30 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None, fai
         return plot_reconstruction(result.columns.params.get("reconstruction"), folder / "reconstruction",
                                    efficiency=result.decoded.to_dict().get("radial_efficiency"))
 
-    attempt("reconstruction", reconstruction, ())
+    # longest first (measured on the sample run): two processes take the next one as they come free
+    jobs = [FigureJob("tracks", lambda: plot_tracks(result.columns, result.decoded, size="two-column"),
+                      ("svg", "pdf", "png")),
+            FigureJob("reconstruction", reconstruction),
+            FigureJob("run_lengths", lambda: plot_run_lengths(result.statistics), ("svg", "png")),
+            FigureJob("spectrum", spectrum)]
+    if result.statistics.rod_to_rod is not None:
+        jobs.append(FigureJob("rod_to_rod", lambda: plot_rod_to_rod(result.statistics,
+                                                                   copy_threshold=result.options.copy_threshold),
+                              ("svg", "png")))
+    if result.groups is not None:
+        jobs.append(FigureJob("groups", lambda: plot_group_variance(result.groups), ("svg", "png")))
+    jobs.append(FigureJob("overlaps", overlaps))
     if result.figure_ions is not None:
-        attempt("density", lambda: write_density_figure(result.figure_ions, result.ranging, result.columns,
-                                                        folder / "density.png"), ())
+        jobs.append(FigureJob("density", lambda: write_density_figure(result.figure_ions, result.ranging,
+                                                                      result.columns, folder / "density.png")))
+    figs = {}
+    for name, (status, value) in run_figure_jobs(jobs, folder, report_dpi).items():
+        if status == "failed":
+            warnings.warn(value, DataQualityWarning, stacklevel=2)
+            if failures is not None:
+                failures.append(value)
+            value = None
+        figs[name] = value
     return figs
 
 
@@ -341,20 +338,26 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
     command = result.provenance.get("command_line")
     with staged_outdir(outdir, force=force, inputs=inputs, command=command) as st:
         write_json(st / "results.json", result.to_dict())
-        tracks = runtime.Background(write_tracks, st / "tracks.csv", result.columns, result.decoded)
+        tracks = runtime.Background(_write_csv_tables, result, st)
         try:
             _write_rest(result, st, report, progress, extra)
-            tracks.join("tracks.csv")
+            tracks.join("tracks.csv and runs.csv")
         finally:
             tracks.kill()
     return Path(outdir)
 
 
+def _write_csv_tables(result, st):
+    """tracks.csv and runs.csv, in a forked child: their compiled formatter is loaded there once (about
+    1 s in a fresh process) while this process draws the figures."""
+    write_tracks(st / "tracks.csv", result.columns, result.decoded)
+    _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS, RUNS_FORMATS)
+
+
 def _write_rest(result, st, report, progress, extra):
-    """Everything of an output folder but tracks.csv (written meanwhile in a child process)."""
+    """Everything of an output folder but tracks.csv and runs.csv (written meanwhile in a child process)."""
     from ..lattice.rodcolumns import save_columns
 
-    _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS, RUNS_FORMATS)
     result.ranging.to_toml(st / "ranges.toml")
     save_columns(result.columns, st / "columns.h5")
     _write_replicates(result.statistics, st / "bootstrap.h5")

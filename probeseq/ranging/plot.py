@@ -103,6 +103,26 @@ def place_peak_labels(ax, cands, avoid=(), pad_px: float = 1.5, step_px: float =
     return shown
 
 
+def _stairs(ax, values, edges, **kwargs):
+    """``ax.stairs(values, edges, **kwargs)`` without its cost on long spectra.
+
+    ``Axes.stairs`` adds its step patch with ``add_patch``, whose data-limit update walks the path
+    one segment at a time (about 85 us per bin: 1.7 s for 20,000 bins). The same patch is added
+    as an artist here and the data limits are updated from the step corners in one call.
+    """
+    from matplotlib.patches import StepPatch
+
+    values, edges = np.asarray(values, dtype=float), np.asarray(edges, dtype=float)
+    patch = StepPatch(values, edges, baseline=0, fill=False, **kwargs)
+    ax.add_artist(patch)
+    pts = np.column_stack([np.concatenate([edges[:-1], edges[1:], edges[[0, -1]]]),
+                           np.concatenate([values, values, [0.0, 0.0]])])
+    ax.update_datalim(pts)
+    patch.sticky_edges.y.append(0.0)
+    getattr(ax, "_request_autoscale_view", ax.autoscale_view)()  # as add_patch does
+    return patch
+
+
 def plot_spectrum(spectrum, ranges=None, metals=(), *, label_at=None, unmatched_da=(), path=None,
                   xlim_da=None, max_labels: int = 40, title: str | None = None):
     """Draw a spectrum with shaded, labelled ranges.
@@ -140,7 +160,7 @@ def plot_spectrum(spectrum, ranges=None, metals=(), *, label_at=None, unmatched_
     fig.subplots_adjust(left=0.065, right=0.99, bottom=0.105, top=0.92 if title else 0.975)
     ax = fig.add_subplot(1, 1, 1)
     e, c = spectrum.edges_da, spectrum.counts
-    ax.stairs(c, e, color="black", linewidth=0.6)
+    _stairs(ax, c, e, color="black", linewidth=0.6)
     ax.set_yscale("log")
     top = max(float(c.max()), 1.0)
     ax.set_ylim(0.5, top * 8)
@@ -283,13 +303,19 @@ def plot_overlaps(result, path=None, *, max_panels: int = 6):
 
 
 def save_figure(fig, path) -> list:
-    """Save ``fig`` as PNG (150 dpi) and SVG next to each other; return the two paths."""
+    """Save ``fig`` as PNG (150 dpi) and SVG next to each other; return the two paths.
+
+    A figure with a layout engine keeps the layout of the first save (its engine is set to none),
+    so the SVG does not lay it out again.
+    """
     p = Path(path)
     stem = p.with_suffix("") if p.suffix.lower() in (".png", ".svg") else p
     stem.parent.mkdir(parents=True, exist_ok=True)
     out = [stem.with_name(stem.name + ".png"), stem.with_name(stem.name + ".svg")]
-    from ..utils.marks import figure_metadata
+    from ..utils.marks import figure_metadata, figure_save_kwargs
 
-    fig.savefig(out[0], dpi=150, metadata=figure_metadata(out[0]))
+    fig.savefig(out[0], dpi=150, **figure_save_kwargs(out[0]))
+    if fig.get_layout_engine() is not None:  # laid out by the first save: the second keeps it (faster)
+        fig.set_layout_engine("none")
     fig.savefig(out[1], metadata=figure_metadata(out[1]))
     return [str(o) for o in out]

@@ -31,6 +31,19 @@ def figure_metadata(path) -> dict:
     return {}
 
 
+#: PNG encoder settings of every figure file: zlib level 1 encodes about 4x faster than PIL's default
+#: level 6 for files about 13 % larger (measured on the run-lengths figure at 300 dpi).
+PNG_PIL_KWARGS = {"compress_level": 1}
+
+
+def figure_save_kwargs(path) -> dict:
+    """``savefig`` keyword arguments for ``path``: probeseq's mark, and the fast PNG encoder for PNG."""
+    kw = {"metadata": figure_metadata(path)}
+    if Path(path).suffix.lower() == ".png":
+        kw["pil_kwargs"] = dict(PNG_PIL_KWARGS)
+    return kw
+
+
 # ---------------------------------------------------------------------- JSON
 def finite_or_none(value):
     """A number as a Python float, or None when it is NaN or infinite (JSON has no NaN).

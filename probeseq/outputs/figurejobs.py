@@ -1,0 +1,229 @@
+"""Drawing a set of figures, each laid out once, and the report's copy of each without drawing it again.
+
+:func:`run_figure_jobs` takes a list of :class:`FigureJob` (a figure's name, the function that
+draws it, the formats to save) and runs them here, or (with ``--jobs 2`` or more) in two
+processes: this one and a forked child (the child inherits the data, nothing is pickled but the
+results). Both take the next job from one shared counter, so the longer figures need no planning
+of who draws what. Matplotlib holds the GIL while it lays out and renders, so threads would not
+help (DEVELOPERS.md, "Output speed").
+
+For each figure the report needs a PNG at its own resolution. When the figure's PNG file was
+saved at a resolution at least that high, the report's copy is that file scaled down (a Lanczos
+filter, tens of milliseconds) instead of a second layout and rendering of the whole figure
+(0.2-1 s each).
+"""
+
+from __future__ import annotations
+
+import io
+import os
+import pickle
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+from ..utils.marks import PNG_PIL_KWARGS
+
+__all__ = ["FigureJob", "run_figure_jobs", "report_png"]
+
+
+@dataclass(frozen=True)
+class FigureJob:
+    """One figure to draw.
+
+    Attributes
+    ----------
+    name : str
+        Figure name (file stem in the figures folder, key of the report's figures).
+    make : callable
+        ``make()`` draws the figure and returns a matplotlib Figure (or None: no figure); it may
+        save its own files.
+    exts : tuple of str
+        Formats :func:`probeseq.outputs.figures.save_figure` saves after ``make`` (e.g. ``("svg", "png")``);
+        the first save lays the figure out and the others keep that layout.
+    """
+
+    name: str
+    make: Callable
+    exts: tuple = ()
+
+
+def _png_dpi(data: bytes):
+    """Resolution of a PNG in dots per inch from its pHYs chunk (None when it states none)."""
+    i = data.find(b"pHYs", 0, 4096)
+    if i < 0 or len(data) < i + 13 or data[i + 12] != 1:
+        return None
+    per_metre = int.from_bytes(data[i + 4:i + 8], "big")
+    return per_metre * 0.0254 if per_metre > 0 else None
+
+
+def report_png(fig, png_file, dpi: float, stated_dpi: float | None = None) -> bytes:
+    """The PNG of ``fig`` at ``dpi`` dots per inch for the report.
+
+    Parameters
+    ----------
+    fig : matplotlib.figure.Figure
+    png_file : Path or None
+        A PNG file of the same figure already saved; used, scaled down, when its resolution is at
+        least ``dpi``.
+    dpi : float, dots per inch
+        Resolution of the result.
+    stated_dpi : float, dots per inch, optional
+        Resolution written in the PNG's pHYs chunk (default ``dpi``); the report takes the display
+        width from it, so a smaller value shows the figure enlarged.
+
+    Returns
+    -------
+    bytes
+        PNG data.
+    """
+    stated = float(dpi if stated_dpi is None else stated_dpi)
+    if png_file is not None and Path(png_file).is_file():
+        data = Path(png_file).read_bytes()
+        have = _png_dpi(data)
+        if have is not None and have >= dpi - 1e-6:
+            from PIL import Image
+
+            with Image.open(io.BytesIO(data)) as im:
+                w, h = im.size
+                size = (max(1, round(w * dpi / have)), max(1, round(h * dpi / have)))
+                rgba = im.convert("RGBA")
+                # reducing_gap: a box reduction by a whole factor first, then Lanczos (about 5x faster)
+                small = rgba.resize(size, Image.LANCZOS, reducing_gap=3.0) if size != im.size else rgba
+                buf = io.BytesIO()
+                small.save(buf, format="png", dpi=(stated, stated), **PNG_PIL_KWARGS)
+            return buf.getvalue()
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi, pil_kwargs={"dpi": (stated, stated), **PNG_PIL_KWARGS})
+    return buf.getvalue()
+
+
+def warm_up():
+    """Pay matplotlib's one-time costs of a process (imports of the three backends, the font files,
+    the mathtext parser, the PDF font subsetter) on a tiny figure drawn into memory."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(1.0, 1.0))
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    ax.semilogy([1.0, 2.0], [1.0, 100.0])
+    ax.set_title(r"$\mathregular{Co^{2+}}$ warm-up", fontsize=7)
+    from .figures import save_figure
+
+    with tempfile.TemporaryDirectory(prefix="probeseq-warm-") as d:
+        for ext in ("png", "svg", "pdf"):
+            save_figure(fig, Path(d) / f"warm.{ext}", dpi=30)
+
+
+def _one(job: FigureJob, folder: Path, report_dpi):
+    """("ok", PNG bytes or None) or ("failed", message) or None (the job drew no figure)."""
+    from .figures import save_figure
+
+    try:
+        fig = job.make()
+        if fig is None:
+            return None
+        if isinstance(fig, (str, os.PathLike)):  # a PNG file the job saved itself: the report embeds it
+            return ("ok", None if report_dpi is None else Path(fig).read_bytes())
+        for ext in job.exts:
+            save_figure(fig, folder / f"{job.name}.{ext}")
+            if fig.get_layout_engine() is not None:  # laid out once, by the first format
+                fig.set_layout_engine("none")
+        if report_dpi is None:
+            return ("ok", None)
+        dpi, stated = report_dpi(fig)
+        return ("ok", report_png(fig, folder / f"{job.name}.png", dpi, stated))
+    except Exception as e:  # a figure must never cost the results
+        text = str(e).splitlines()[0] if str(e) else ""
+        return ("failed", f"figure '{job.name}' not drawn: {type(e).__name__}: {text}")
+
+
+def _work(jobs, folder, report_dpi, counter, out_path):
+    """Take jobs from the shared counter until none is left; results pickled to ``out_path``."""
+    done = {}
+    while True:
+        with counter.get_lock():
+            i = counter.value
+            counter.value += 1
+        if i >= len(jobs):
+            break
+        done[i] = _one(jobs[i], folder, report_dpi)
+        if out_path is not None:  # written after each figure: a crash loses only the figure in hand
+            tmp = f"{out_path}.part"
+            with open(tmp, "wb") as fh:
+                pickle.dump(done, fh)
+            os.replace(tmp, out_path)
+    return done
+
+
+def run_figure_jobs(jobs, folder, report_dpi=None, parallel: bool | None = None) -> dict:
+    """Draw and save ``jobs`` in this process and a forked child.
+
+    Parameters
+    ----------
+    jobs : list of FigureJob
+        Longest first: each process takes the next one as it becomes free.
+    folder : Path
+        Folder of the figure files.
+    report_dpi : callable, optional
+        ``report_dpi(fig)`` gives the (rendered, stated) resolution of a figure's PNG in the report
+        (dots per inch, see :func:`report_png`); with it each result carries that PNG.
+    parallel : bool, optional
+        False draws everything here; default: in two processes only when ``--jobs`` of 2 or more
+        was given (:func:`probeseq.runtime.jobs`). On the shared 2-CPU test machine the second
+        process did not pay for its fork and duplicated set-up (DEVELOPERS.md, "Output speed").
+
+    Notes
+    -----
+    ``make`` may also return the path of a PNG file it wrote itself; the report then embeds that
+    file as it is.
+
+    Returns
+    -------
+    dict
+        name -> ``("ok", PNG bytes or None)`` or ``("failed", one-line message)``; names of jobs
+        that drew no figure are absent. Jobs are listed in the order given.
+    """
+    import multiprocessing as mp
+
+    from .. import runtime
+
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    jobs = list(jobs)
+    results = {}
+    child, out_path = None, None
+    if parallel is None:
+        parallel = (runtime.jobs() or 1) >= 2
+    try:
+        counter = mp.get_context("fork").Value("i", 0) if parallel and len(jobs) > 1 else None
+    except (ValueError, OSError):  # no fork on this system
+        counter = None
+    if counter is not None:
+        warm_up()  # once, before the fork, instead of once in each process
+        fd, out_path = tempfile.mkstemp(prefix="probeseq-figures-", suffix=".pkl")
+        os.close(fd)
+        os.unlink(out_path)
+        child = runtime.Background(_work, jobs, folder, report_dpi, counter, out_path)
+        if child.proc is None:  # ran in place: it took every job
+            counter = None
+    try:
+        if counter is not None:
+            results.update(_work(jobs, folder, report_dpi, counter, None))
+        if child is not None and child.proc is not None:
+            child.proc.join()
+        if out_path is not None and os.path.exists(out_path):
+            with open(out_path, "rb") as fh:
+                results.update(pickle.load(fh))
+        for i, job in enumerate(jobs):  # whatever the child did not finish (it died) is drawn here
+            if i not in results:
+                results[i] = _one(job, folder, report_dpi)
+    finally:
+        if child is not None:
+            child.kill()
+        for p in (out_path, f"{out_path}.part") if out_path else ():
+            if os.path.exists(p):
+                os.unlink(p)
+    return {jobs[i].name: results[i] for i in sorted(results) if results[i] is not None}

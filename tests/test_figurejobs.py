@@ -1,0 +1,63 @@
+"""Figures drawn as jobs (probeseq.outputs.figurejobs): files, report PNGs, failures, two processes."""
+
+import io
+
+import numpy as np
+import pytest
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
+from PIL import Image
+
+from probeseq.outputs.figurejobs import FigureJob, report_png, run_figure_jobs
+from probeseq.utils.marks import MARK_BYTES
+
+
+def _figure(width_in=6.0):
+    fig = Figure(figsize=(width_in, 2.0), layout="constrained")
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    ax.plot(np.arange(10), np.arange(10) ** 2)
+    ax.set_title("squares")
+    return fig
+
+
+def _boom():
+    raise ValueError("no data\nsecond line")
+
+
+def _dpi_of(data):
+    with Image.open(io.BytesIO(data)) as im:
+        return im.size, im.info.get("dpi")
+
+
+@pytest.mark.parametrize("parallel", [False, True])
+def test_jobs_write_files_and_report_pngs(tmp_path, parallel):
+    jobs = [FigureJob("a", _figure, ("svg", "png")), FigureJob("none", lambda: None, ("png",)),
+            FigureJob("bad", _boom, ("png",)), FigureJob("b", lambda: _figure(3.0), ("pdf",))]
+    out = run_figure_jobs(jobs, tmp_path, lambda fig: (120.0 * 1.5, 120.0), parallel=parallel)
+    assert list(out) == ["a", "bad", "b"]  # order of the jobs; the job without a figure is absent
+    assert out["bad"] == ("failed", "figure 'bad' not drawn: ValueError: no data")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["a.png", "a.svg", "b.pdf"]
+    assert MARK_BYTES in (tmp_path / "a.png").read_bytes()
+    # 'a': scaled down from its 300-dpi file; 'b' (no PNG file): drawn at 180 dpi; both state 120 dpi
+    for name in ("a", "b"):
+        status, data = out[name]
+        assert status == "ok"
+        (w, h), dpi = _dpi_of(data)
+        width_in = 6.0 if name == "a" else 3.0
+        assert w == pytest.approx(width_in * 180, abs=1) and h == pytest.approx(2.0 * 180, abs=1)
+        assert dpi[0] == pytest.approx(120.0, abs=0.1)
+    assert not list(tmp_path.glob(".*"))
+
+
+def test_report_png_downscales_only_from_finer_files(tmp_path):
+    fig = _figure()
+    fig.savefig(tmp_path / "f.png", dpi=100)
+    coarse = report_png(fig, tmp_path / "f.png", 150.0)  # the file is coarser: the figure is drawn again
+    assert _dpi_of(coarse)[0] == (900, 300)
+    fig.savefig(tmp_path / "g.png", dpi=300)
+    fine = report_png(fig, tmp_path / "g.png", 150.0)
+    assert _dpi_of(fine)[0] == (900, 300)
+    a = np.asarray(Image.open(io.BytesIO(coarse)).convert("L"), dtype=float)
+    b = np.asarray(Image.open(io.BytesIO(fine)).convert("L"), dtype=float)
+    assert np.mean(np.abs(a - b)) < 12  # the same picture (anti-aliasing differs)
