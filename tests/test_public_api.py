@@ -14,7 +14,7 @@ PACKAGE = ROOT / "probeseq"
 DISTRIBUTION = {"sklearn": "scikit-learn", "yaml": "pyyaml"}
 # imports that a declared dependency brings: the CLI falls back to click's exceptions under typer
 # releases that depend on click instead of carrying their own copy
-BROUGHT_BY = {"click": "typer"}
+BROUGHT_BY = {"click": "typer", "PIL": "pillow"}  # import name -> distribution name
 
 
 def test_public_api_is_pinned():
