@@ -419,13 +419,13 @@ def test_params_read_only(tmp_path):
                       rod_xy_nm=[[0.0, 0.0]], tilt=[0.0, 0.0], z_ref_nm=0.0, site_z_nm=[0.0, 1.0], pitch_nm=1.0,
                       params={"registration": {"scale": 1.0}, "ions": {"n_ions": 3}})
     with pytest.raises(TypeError):
-        cols.params["detection_balance"] = {}
+        cols.params["visibility"] = {}
     with pytest.raises(TypeError):
         cols.params["registration"]["scale"] = 2.0
     with pytest.raises(TypeError):
         cols.params.update(a=1)
-    more = dataclasses.replace(cols, params={**cols.params, "detection_balance": {"Zn": 1.0}})
-    assert "detection_balance" not in cols.params and more.params["detection_balance"] == {"Zn": 1.0}
+    more = dataclasses.replace(cols, params={**cols.params, "visibility": {"Zn": 1.0}})
+    assert "visibility" not in cols.params and more.params["visibility"] == {"Zn": 1.0}
     assert pickle.loads(pickle.dumps(more)).params == more.params
     assert json.loads(json.dumps(more.params)) == more.params
     save_columns(more, tmp_path / "c.h5")

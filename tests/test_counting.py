@@ -22,7 +22,7 @@ from probeseq.lattice.registration import register_lattice
 from probeseq.pipeline.analysis import analyze, analyze_file
 from probeseq.pipeline.options import AnalysisOptions
 from probeseq.ranging.auto import auto_range
-from probeseq.ranging.channels import assign_channels, detection_balance, draw_metal_ions, metal_visibility
+from probeseq.ranging.channels import assign_channels, draw_metal_ions, metal_visibility
 from probeseq.simulation.simulate import simulate_run
 from probeseq.utils.draws import ion_uniforms
 
@@ -36,11 +36,11 @@ def run():
 
 @pytest.fixture(scope="module")
 def fitted(run):
-    """Ranges, thinning and geometry fitted on the whole (small) run, as the pipeline would."""
+    """Ranges and geometry fitted on the whole (small) run, as the pipeline would, and thinning factors."""
     ions = run.ions
     rr = auto_range(ions.mass_to_charge, METALS)
     ca = assign_channels(ions.mass_to_charge, rr.ranges, METALS)
-    thin = detection_balance(rr, ca)
+    thin = np.array([1.0, 0.7])  # thinning factors below 1 exercise the draw's cumulative weights
     sel = ca.weights().sum(1) > 0
     x, y, z = ions.x[sel], ions.y[sel], ions.z[sel]
     reg = register_lattice(x, y, z, run.lattice, random_state=0)

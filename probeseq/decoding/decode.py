@@ -617,8 +617,8 @@ def fit_decoder(
         (:mod:`probeseq.decoding.rodchain`), with memory of a few rods' length beyond the counts and the
         results, and gives float32 posteriors and int8 paths; ``"numpy"`` runs the batched
         numpy recursions of :mod:`probeseq.decoding.hmm` on all rods at once (several float64 arrays of
-        the count array's size; float64 posteriors, int64 paths). Both fit the same model and
-        agree to rounding.
+        the count array's size; float64 posteriors, int64 paths). Both fit the same model, agree
+        to rounding. Only ``"compiled"`` reads soft evidence (``columns.evidence``).
     rod_efficiency : (n_rods,) array_like of float, optional
         Relative detection efficiency ``h_r`` of every rod (dimensionless, > 0): rod r has
         ``eta h_r`` and extra rates ``extra_rate * h_r``, and the fitted ``eta`` and

@@ -162,7 +162,7 @@ def make_count_plan(ranges, metals, thin, geometry, seed, evidence=None) -> Coun
     ranges : RangeSet
     metals : sequence of str
     thin : (n_metals,) array of float
-        Per-metal thinning factors (:func:`probeseq.ranging.channels.detection_balance`).
+        Per-metal thinning factors (the pipeline passes ones: each metal's visibility is modelled instead).
     geometry : ColumnGeometry
     seed : int
         Seed of the metal draws.

@@ -14,7 +14,7 @@ from ..exceptions import DataQualityWarning, InputError
 from ..io.ions import IonList, check_position_extent
 from ..lattice.model import Lattice
 from ..lattice.rodcolumns import RodColumns
-from ..ranging.channels import metal_visibility
+from ..ranging.channels import metal_range_shares, metal_visibility
 from .options import AnalysisOptions, Progress, _check_ions, _Clock
 
 if TYPE_CHECKING:  # type names only: these modules are heavy to import
@@ -247,13 +247,11 @@ def _evidence_table(rr, ca_fit, geom, reg, xyz, range_index, opts):
     d = reg.axis_distance_nm(*xyz)
     spread = fit_lateral_spread(d[pure], geom.locator)
     u = extras_shares(w, d, range_index, geom.locator, spread)
-    n_k = np.asarray(rr.amounts, float) @ np.asarray(rr.species_metal_atoms, float)
-    n_range = np.bincount(ca_fit.range_index + 1, minlength=w.shape[0] + 1)[1:w.shape[0] + 1]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        p = np.where(n_k > 0, n_range[:, None] * w / n_k, 0.0)  # share of each metal's ions in each range
-    capture = np.where(n_k > 0, p.sum(axis=0), 1.0)
-    seen = (p * u).sum(axis=0)  # evidence an own ion adds, before the radial factor
-    return evidence_table(u, capture, np.where(n_k > 0, seen, 1.0), geom.locator, spread)
+    p = metal_range_shares(rr, ca_fit)  # share of each metal's ions in each range (NaN: no fitted ions)
+    known = np.isfinite(p).all(axis=0)
+    capture = np.where(known, np.nan_to_num(p).sum(axis=0), 1.0)
+    seen = np.where(known, (np.nan_to_num(p) * u).sum(axis=0), 1.0)  # an own ion's evidence, no radial factor
+    return evidence_table(u, capture, seen, geom.locator, spread)
 
 
 def _correct(sample: IonList, sel, reg, lattice, opts):

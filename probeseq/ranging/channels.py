@@ -366,48 +366,35 @@ def draw_metal_ions(assignment, thin, rng=None, *, seed=None, start: int = 0) ->
     return realise_channels(assignment.weights() * np.asarray(thin)[None, :], rng)
 
 
+def metal_range_shares(ranging, assignment) -> np.ndarray:
+    """Share of each metal's ions that falls in each range, ``p_jk = N_j s_jk / n_k``, (n_ranges, K).
+
+    N_j is the number of ions in range j, ``s_jk`` the range's share of metal k (atoms per ion) and
+    n_k the metal's fitted ions over all its peaks, tails included; a column sums to the share of
+    the metal's ions inside its ranges. A metal without fitted ions has a column of NaN.
+    """
+    w = np.asarray(assignment.metal_weights, float)[:-1]  # (n_ranges, K); the unranged row dropped
+    n_range = np.bincount(assignment.range_index + 1, minlength=w.shape[0] + 1)[1:w.shape[0] + 1]
+    n_k = np.asarray(ranging.amounts, float) @ np.asarray(ranging.species_metal_atoms, float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(n_k > 0, n_range[:, None] * w / n_k, np.nan)
+
+
 def metal_visibility(ranging, assignment) -> np.ndarray:
     """Share of each metal's ions that the count stage counts as that metal: ``rho_k``, (K,).
 
     An ion in a range shared with another species counts for metal k with probability ``s``, the
-    range's share of k, so of metal k's ions ``rho_k = sum_j N_j s_jk^2 / n_k`` are counted as k
-    (N_j ions in range j; n_k the metal's fitted ions over all its peaks, tails included): lines
-    outside every range and the shared ranges both lower it. The rod model takes it as the
-    metal's relative visibility (:class:`probeseq.decoding.model.DecoderParams`), so nothing is
-    thinned and the fitted ``eta`` is the instrument's detection efficiency.
+    range's share of k, so of metal k's ions ``rho_k = sum_j p_jk s_jk`` are counted as k
+    (:func:`metal_range_shares`): lines outside every range and the shared ranges both lower it.
+    The rod model takes it as the metal's relative visibility
+    (:class:`probeseq.decoding.model.DecoderParams`), so nothing is thinned and the fitted ``eta`` is
+    the instrument's detection efficiency.
 
     Returns ones when a metal's share cannot be computed (no fitted ions of it); values are kept
     in [0.02, 1].
     """
-    rho = _seen_share(ranging, assignment)
+    w = np.asarray(assignment.metal_weights, float)[:-1]
+    rho = (metal_range_shares(ranging, assignment) * w).sum(axis=0)
     if not np.isfinite(rho).all() or (rho <= 0).any():
         return np.ones(rho.size)
     return np.clip(rho, 0.02, 1.0)
-
-
-def _seen_share(ranging, assignment) -> np.ndarray:
-    """``rho_k`` of :func:`metal_visibility` (NaN where a metal has no fitted ions)."""
-    w = np.asarray(assignment.metal_weights, float)  # (n_ranges + 1, K), last row unranged
-    n_range = np.bincount(assignment.range_index + 1, minlength=w.shape[0] + 1)
-    counts = np.concatenate([n_range[1:w.shape[0]], n_range[:1]])  # ranges 0.., then unranged
-    own = (counts[:, None] * w ** 2).sum(0)
-    n_k = np.asarray(ranging.amounts, float) @ np.asarray(ranging.species_metal_atoms, float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        return np.where(n_k > 0, own / n_k, np.nan)
-
-
-def detection_balance(ranging, assignment) -> np.ndarray:
-    """Per-metal thinning factors that equalise how well each metal's own ions are seen in the rods.
-
-    An ion in a range shared with another species carries the range's share ``s`` of a metal, so a
-    true ion there counts ``s`` of itself and the rest of the range's ions add diffuse weight. The
-    share of metal k's ions that is seen as its own is ``rho_k = sum_j N_j s_jk^2 / n_k`` (N_j ions
-    in range j; n_k the metal's fitted ions over all its peaks, tails included). When it differs
-    between metals (Fe2+ under CO+, for example), the rod model, which has one detection efficiency
-    for all metals, would read the difference as composition. Returns ``min(rho) / rho_k`` (<= 1):
-    every metal is thinned to the least well seen one.
-    """
-    rho = _seen_share(ranging, assignment)
-    if not np.isfinite(rho).all() or (rho <= 0).any():
-        return np.ones(rho.size)
-    return np.minimum(1.0, rho.min() / rho)
