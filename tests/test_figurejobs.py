@@ -61,3 +61,13 @@ def test_report_png_downscales_only_from_finer_files(tmp_path):
     a = np.asarray(Image.open(io.BytesIO(coarse)).convert("L"), dtype=float)
     b = np.asarray(Image.open(io.BytesIO(fine)).convert("L"), dtype=float)
     assert np.mean(np.abs(a - b)) < 12  # the same picture (anti-aliasing differs)
+
+
+def test_two_processes_only_with_a_free_cpu_and_jobs_allowing_it():
+    from probeseq.outputs.figurejobs import two_processes_pay
+
+    assert two_processes_pay(None, cpus=2, load=0.3)  # a free CPU, jobs not limited
+    assert two_processes_pay(2, cpus=4, load=2.0)
+    assert not two_processes_pay(None, cpus=2, load=1.8)  # both CPUs busy: the fork would not pay
+    assert not two_processes_pay(1, cpus=8, load=0.0)  # --jobs 1 keeps everything in one process
+    assert not two_processes_pay(None, cpus=1, load=0.0)

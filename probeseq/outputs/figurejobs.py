@@ -1,8 +1,8 @@
 """Drawing a set of figures, each laid out once, and the report's copy of each without drawing it again.
 
 :func:`run_figure_jobs` takes a list of :class:`FigureJob` (a figure's name, the function that
-draws it, the formats to save) and runs them here, or (with ``--jobs 2`` or more) in two
-processes: this one and a forked child (the child inherits the data, nothing is pickled but the
+draws it, the formats to save) and runs them here, or (when two CPUs may be used and one is free,
+:func:`two_processes_pay`) in two processes: this one and a forked child (the child inherits the data, nothing is pickled but the
 results). Both take the next job from one shared counter, so the longer figures need no planning
 of who draws what. Matplotlib holds the GIL while it lays out and renders, so threads would not
 help (DEVELOPERS.md, "Output speed").
@@ -25,7 +25,7 @@ from typing import Callable
 
 from ..utils.marks import PNG_PIL_KWARGS
 
-__all__ = ["FigureJob", "run_figure_jobs", "report_png"]
+__all__ = ["FigureJob", "run_figure_jobs", "report_png", "two_processes_pay"]
 
 
 @dataclass(frozen=True)
@@ -140,6 +140,41 @@ def _one(job: FigureJob, folder: Path, report_dpi):
         return ("failed", f"figure '{job.name}' not drawn: {type(e).__name__}: {text}")
 
 
+def two_processes_pay(n_jobs: int | None, cpus: int | None = None, load: float | None = None) -> bool:
+    """Whether drawing the figures in two processes is worth its fork.
+
+    Parameters
+    ----------
+    n_jobs : int or None
+        ``--jobs`` (:func:`probeseq.runtime.jobs`); None: not limited. 1 keeps everything here.
+    cpus : int, optional
+        CPUs this process may run on (default: its affinity set).
+    load : float, optional
+        Runnable processes now, the one-minute load average (default: ``os.getloadavg()``).
+
+    Returns
+    -------
+    bool
+        True when at least two CPUs may be used and at least one of them is free: the load
+        average is below ``cpus - 0.5`` (this process itself counts as about one).
+    """
+    if n_jobs is not None and n_jobs < 2:
+        return False
+    if cpus is None:
+        try:
+            cpus = len(os.sched_getaffinity(0))
+        except (AttributeError, OSError):
+            cpus = os.cpu_count() or 1
+    if cpus < 2:
+        return False
+    if load is None:
+        try:
+            load = os.getloadavg()[0]
+        except (AttributeError, OSError):  # no load average on this system: assume a free CPU
+            load = 0.0
+    return load < cpus - 0.5
+
+
 def _work(jobs, folder, report_dpi, counter, out_path):
     """Take jobs from the shared counter until none is left; results pickled to ``out_path``."""
     done = {}
@@ -171,9 +206,9 @@ def run_figure_jobs(jobs, folder, report_dpi=None, parallel: bool | None = None)
         ``report_dpi(fig)`` gives the (rendered, stated) resolution of a figure's PNG in the report
         (dots per inch, see :func:`report_png`); with it each result carries that PNG.
     parallel : bool, optional
-        False draws everything here; default: in two processes only when ``--jobs`` of 2 or more
-        was given (:func:`probeseq.runtime.jobs`). On the shared 2-CPU test machine the second
-        process did not pay for its fork and duplicated set-up (DEVELOPERS.md, "Output speed").
+        False draws everything here; default (:func:`two_processes_pay`): in two processes when
+        ``--jobs`` allows two or more and a CPU is free now (the fork pays off only with a free CPU:
+        DEVELOPERS.md, "Output speed").
 
     Notes
     -----
@@ -196,7 +231,7 @@ def run_figure_jobs(jobs, folder, report_dpi=None, parallel: bool | None = None)
     results = {}
     child, out_path = None, None
     if parallel is None:
-        parallel = (runtime.jobs() or 1) >= 2
+        parallel = two_processes_pay(runtime.jobs())
     try:
         counter = mp.get_context("fork").Value("i", 0) if parallel and len(jobs) > 1 else None
     except (ValueError, OSError):  # no fork on this system

@@ -238,7 +238,7 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None, fai
     the report's resolution (bytes; None for a figure that failed), for
     :func:`probeseq.outputs.report.write_report`, which then draws none of them again.
 
-    Files: ``tracks.svg/.pdf/.png`` (rods nearest the centre), ``spectrum.png/.svg``,
+    Files: ``tracks.svg/.png`` (rods nearest the centre; a PDF with ``probeseq export --format pdf``), ``spectrum.png/.svg``,
     ``density.png``, ``run_lengths.svg/.png``, ``rod_to_rod.svg/.png``, ``groups.svg/.png`` (when
     rods are not resolvable), ``overlaps.png/.svg`` (when overlapped metal and fragment lines were
     refitted with the ions' distance to the rod axes), ``reconstruction.png/.svg`` (the depth
@@ -273,7 +273,7 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None, fai
 
     # longest first (measured on the sample run): two processes take the next one as they come free
     jobs = [FigureJob("tracks", lambda: plot_tracks(result.columns, result.decoded, size="two-column"),
-                      ("svg", "pdf", "png")),
+                      ("svg", "png")),
             FigureJob("reconstruction", reconstruction),
             FigureJob("run_lengths", lambda: plot_run_lengths(result.statistics), ("svg", "png")),
             FigureJob("spectrum", spectrum)]
