@@ -14,7 +14,8 @@ from ..exceptions import InputError
 from ..lattice.correction import file_site_positions
 from ..lattice.rodcolumns import RodColumns
 
-__all__ = ['RESULTS_SCHEMA_VERSION', 'DecodedTracks', 'save_decoded', 'load_decoded', 'read_replicates', 'load_results', 'TRACKS_COLUMNS', 'RUNS_COLUMNS']
+__all__ = ['RESULTS_SCHEMA_VERSION', 'DecodedTracks', 'save_decoded', 'load_decoded', 'read_replicates', 'load_results',
+           'TRACKS_COLUMNS', 'RUNS_COLUMNS', 'TRACKS_TABLE_CHOICES', 'tracks_table_files', 'write_tracks_h5']
 
 #: version of the results.json layout; bumped when a key changes meaning or moves
 RESULTS_SCHEMA_VERSION = 1
@@ -34,7 +35,8 @@ TRACKS_FORMATS = {"rod": "%d", "rod_x_nm": "%.4f", "rod_y_nm": "%.4f", "site": "
 RUNS_FORMATS = {"length_nm": "%.4f", "z_start_nm": "%.4f", "z_end_nm": "%.4f", "mean_posterior": "%.4f"}
 
 
-def tracks_table(columns: RodColumns, decoded, select=None, rods: slice | None = None) -> dict:
+def tracks_table(columns: RodColumns, decoded, select=None, rods: slice | None = None,
+                 state_codes: bool = False) -> dict:
     """One row per decoded site (the columns of ``tracks.csv``) as 1-D arrays.
 
     Parameters
@@ -45,6 +47,8 @@ def tracks_table(columns: RodColumns, decoded, select=None, rods: slice | None =
         Sites to include (default: every used site, ``columns.mask``).
     rods : slice, optional
         Only these rods (a block of the table; see :func:`write_tracks`).
+    state_codes : bool
+        ``state`` as the metal's index (int8) instead of its name.
     """
     sel = columns.mask if select is None else select
     if rods is None:
@@ -54,8 +58,9 @@ def tracks_table(columns: RodColumns, decoded, select=None, rods: slice | None =
         r += rods.indices(sel.shape[0])[0]
     xy, z = file_site_positions(columns, r, s)  # in the ion file's frame
     state = decoded.viterbi[r, s]
+    names = state.astype(np.int8) if state_codes else np.asarray(columns.metals, dtype=object)[state]
     return {"rod": r, "rod_x_nm": xy[:, 0], "rod_y_nm": xy[:, 1], "site": s, "z_nm": z,
-            "state": np.asarray(columns.metals, dtype=object)[state], "posterior": decoded.posteriors[r, s, state]}
+            "state": names, "posterior": decoded.posteriors[r, s, state]}
 
 
 def runs_table(columns: RodColumns, decoded) -> dict:
@@ -80,6 +85,75 @@ def write_tracks(path, columns: RodColumns, decoded, rods_per_block: int = 1024)
     blocks = (tracks_table(columns, decoded, rods=slice(b, min(n, b + rods_per_block)))
               for b in range(0, n, rods_per_block))
     write_csv(path, blocks, TRACKS_COLUMNS, TRACKS_FORMATS)
+
+
+#: ``--tracks-table auto`` writes tracks.csv up to this many rows (about 50 MB of text), tracks.h5 above
+TRACKS_CSV_MAX_ROWS = 2_000_000
+
+#: the ways of writing the tracks table: ``auto`` (CSV up to TRACKS_CSV_MAX_ROWS rows, else HDF5),
+#: ``csv``, ``hdf5`` or ``both``
+TRACKS_TABLE_CHOICES = ("auto", "csv", "hdf5", "both")
+
+#: unit of each tracks-table column (tracks.h5 stores it as the dataset's ``unit`` attribute)
+TRACKS_UNITS = {"rod": "1", "rod_x_nm": "nm", "rod_y_nm": "nm", "site": "1", "z_nm": "nm", "state": "metal",
+                "posterior": "probability"}
+
+
+def tracks_table_files(choice: str, n_rows: int) -> tuple:
+    """The files holding the tracks table: a tuple of ``"tracks.csv"`` and/or ``"tracks.h5"``.
+
+    Parameters
+    ----------
+    choice : {"auto", "csv", "hdf5", "both"}
+        ``auto``: ``tracks.csv`` up to :data:`TRACKS_CSV_MAX_ROWS` rows, ``tracks.h5`` above.
+    n_rows : int
+        Rows of the table (decoded sites).
+    """
+    from ..exceptions import InputError
+
+    if choice not in TRACKS_TABLE_CHOICES:
+        raise InputError(f"--tracks-table {choice!r}: choose one of {', '.join(TRACKS_TABLE_CHOICES)}")
+    if choice == "auto":
+        return ("tracks.csv",) if n_rows <= TRACKS_CSV_MAX_ROWS else ("tracks.h5",)
+    return {"csv": ("tracks.csv",), "hdf5": ("tracks.h5",), "both": ("tracks.csv", "tracks.h5")}[choice]
+
+
+def write_tracks_h5(path, columns: RodColumns, decoded, rods_per_block: int = 4096):
+    """Write the tracks table (the rows and columns of ``tracks.csv``) as HDF5 group ``/tracks``.
+
+    One 1-D dataset per column of :data:`TRACKS_COLUMNS`, each with a ``unit`` attribute: ``rod``
+    and ``site`` int32, ``rod_x_nm``, ``rod_y_nm``, ``z_nm`` (nm, the ion file's frame) and
+    ``posterior`` float32, ``state`` an HDF5 enumeration of the metals (int8 codes in the order of
+    the group's ``metals`` attribute). Uncompressed, written a block of rods at a time: about 25
+    bytes per row, read with h5py alone (``{k: f["tracks"][k][:] for k in f["tracks"]}``).
+    """
+    import h5py
+
+    from ..utils.marks import MARK
+
+    n_rows = int(np.count_nonzero(columns.mask))
+    metals = list(columns.metals)
+    state_dt = h5py.enum_dtype({m: i for i, m in enumerate(metals)}, basetype="i1")
+    dtypes = {"rod": np.int32, "rod_x_nm": np.float32, "rod_y_nm": np.float32, "site": np.int32,
+              "z_nm": np.float32, "state": state_dt, "posterior": np.float32}
+    with h5py.File(path, "w") as f:
+        f.attrs["written_by"] = MARK
+        g = f.create_group("tracks")
+        g.attrs["about"] = ("one row per decoded site, the columns of tracks.csv; state codes index the metals "
+                            "attribute")
+        g.attrs["metals"] = json.dumps(metals)
+        ds = {}
+        for c in TRACKS_COLUMNS:
+            ds[c] = g.create_dataset(c, shape=(n_rows,), dtype=dtypes[c])
+            ds[c].attrs["unit"] = TRACKS_UNITS[c]
+        pos = 0
+        n = columns.n_rods
+        for b in range(0, n, rods_per_block):
+            t = tracks_table(columns, decoded, rods=slice(b, min(n, b + rods_per_block)), state_codes=True)
+            m = len(t["rod"])
+            for c in TRACKS_COLUMNS:
+                ds[c][pos:pos + m] = np.asarray(t[c]).astype(ds[c].dtype if c != "state" else np.int8, copy=False)
+            pos += m
 
 
 def _fast_formats(table: dict, columns, fmt: dict) -> bool:

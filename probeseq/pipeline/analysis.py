@@ -1,7 +1,7 @@
 """The whole analysis, stage by stage: ranging -> columns -> decoding -> statistics -> classification.
 
 :func:`analyze` runs the stages in order on an ion list and returns an :class:`AnalysisResult`;
-:func:`write_analysis` writes its output folder (``results.json``, ``tracks.csv``, ``runs.csv`` and
+:func:`write_analysis` writes its output folder (``results.json``, the tracks table, ``runs.csv`` and
 the intermediate files). Each stage is a pure library call; this module only joins them, times
 them and reports progress through an optional callback.
 
@@ -21,6 +21,8 @@ import warnings
 from dataclasses import replace
 from pathlib import Path
 from typing import Callable
+
+import numpy as np
 
 from .. import runtime
 from .._version import __version__
@@ -323,45 +325,63 @@ def write_density_figure(ions: IonList, ranging, columns: RodColumns, path):
 
 
 def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: Callable | None = None,
-                   report: bool = True, progress: Progress = None, inputs=()) -> Path:
+                   report: bool = True, progress: Progress = None, inputs=(), tracks_table: str = "auto") -> Path:
     """Write an analysis output folder (staged: complete or not at all).
 
-    Files: ``results.json``, ``tracks.csv``, ``runs.csv``, ``ranges.toml``, ``columns.h5``,
-    ``decoded.h5``, ``bootstrap.h5``, ``probeseq-manifest.json``; with ``report``, ``figures/`` and
-    ``report.html``. ``extra`` (called with the staging folder) may add more. ``inputs`` (paths)
-    are the analysis's inputs, which the output folder may neither be nor contain; an existing
-    folder is replaced only with ``force`` and only when it holds nothing but probeseq's outputs
-    (see :mod:`probeseq.outputs`).
+    Files: ``results.json``, the tracks table (``tracks.csv`` and/or ``tracks.h5``, see
+    ``tracks_table``), ``runs.csv``, ``ranges.toml``, ``columns.h5``, ``decoded.h5``,
+    ``bootstrap.h5``, ``probeseq-manifest.json``; with ``report``, ``figures/`` and ``report.html``.
+    ``extra`` (called with the staging folder) may add more. ``inputs`` (paths) are the analysis's
+    inputs, which the output folder may neither be nor contain; an existing folder is replaced only
+    with ``force`` and only when it holds nothing but probeseq's outputs (see :mod:`probeseq.outputs`).
+    ``tracks_table`` is one of :data:`probeseq.outputs.results.TRACKS_TABLE_CHOICES`: ``auto``
+    writes ``tracks.csv`` up to 2,000,000 decoded sites and the same table as ``tracks.h5`` above
+    (a CSV of a 10^8-ion run is about 2 GB of text; ``probeseq export OUTDIR --format csv`` still
+    writes it). ``results.json`` names the file(s) under ``outputs.tracks_table``.
     """
     from ..outputs.folder import staged_outdir, write_json
+    from ..outputs.results import tracks_table_files
 
+    files = tracks_table_files(tracks_table, int(np.count_nonzero(result.columns.mask)))
     command = result.provenance.get("command_line")
     with staged_outdir(outdir, force=force, inputs=inputs, command=command) as st:
-        write_json(st / "results.json", result.to_dict())
-        tracks = runtime.Background(_write_csv_tables, result, st)
+        write_json(st / "results.json", _results_dict(result, files))
+        tables = runtime.Background(_write_child_files, result, st, files)
         try:
-            _write_rest(result, st, report, progress, extra)
-            tracks.join("tracks.csv and runs.csv")
+            _write_rest(result, st, report, progress, extra, files)
+            tables.join(", ".join(files + ("runs.csv", "columns.h5", "decoded.h5")))
         finally:
-            tracks.kill()
+            tables.kill()
     return Path(outdir)
 
 
-def _write_csv_tables(result, st):
-    """tracks.csv and runs.csv, in a forked child: their compiled formatter is loaded there once (about
-    1 s in a fresh process) while this process draws the figures."""
-    write_tracks(st / "tracks.csv", result.columns, result.decoded)
-    _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS, RUNS_FORMATS)
+def _results_dict(result, files) -> dict:
+    """``results.json``: the result's dictionary and, under ``outputs``, the files of the tracks table."""
+    d = result.to_dict()
+    d["outputs"] = {"tracks_table": list(files)}
+    return d
 
 
-def _write_rest(result, st, report, progress, extra):
-    """Everything of an output folder but tracks.csv and runs.csv (written meanwhile in a child process)."""
+def _write_child_files(result, st, files):
+    """The tracks table, runs.csv, columns.h5 and decoded.h5, in a forked child while this process
+    draws the figures (the compiled table formatter is loaded there once, about 1 s in a fresh
+    process, and the compressed HDF5 writes take about 1.5 s at 10^7 ions)."""
     from ..lattice.rodcolumns import save_columns
+    from ..outputs.results import write_tracks_h5
 
-    result.ranging.to_toml(st / "ranges.toml")
+    if "tracks.csv" in files:
+        write_tracks(st / "tracks.csv", result.columns, result.decoded)
+    if "tracks.h5" in files:
+        write_tracks_h5(st / "tracks.h5", result.columns, result.decoded)
+    _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS, RUNS_FORMATS)
     save_columns(result.columns, st / "columns.h5")
-    _write_replicates(result.statistics, st / "bootstrap.h5")
     save_decoded(result.decoded, st / "decoded.h5")
+
+
+def _write_rest(result, st, report, progress, extra, files):
+    """Everything of an output folder but what the child writes meanwhile (:func:`_write_child_files`)."""
+    result.ranging.to_toml(st / "ranges.toml")
+    _write_replicates(result.statistics, st / "bootstrap.h5")
     if report:
         from ..outputs.folder import write_json
         from ..outputs.report import write_report
@@ -370,7 +390,7 @@ def _write_rest(result, st, report, progress, extra):
         figs = write_figures(result, st / "figures", progress, failures)
         if failures:  # one warnings list: results.json and the report both carry the figures not drawn
             result = replace(result, warnings=tuple(dict.fromkeys(tuple(result.warnings) + tuple(failures))))
-            write_json(st / "results.json", result.to_dict())
+            write_json(st / "results.json", _results_dict(result, files))
         if progress:
             progress("report", "writing report.html")
         # a figure that failed (None) is left out of the report, not drawn and warned about twice
