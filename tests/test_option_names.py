@@ -169,7 +169,7 @@ def test_root_help_lists_every_command_untruncated(capsys):
 
     assert main(["--help"]) == 0
     text = " ".join(capsys.readouterr().out.split())
-    assert len(app.registered_commands) == 9
+    assert len(app.registered_commands) == 10
     for info in app.registered_commands:
         summary = " ".join(inspect.getdoc(info.callback).split("\n\n")[0].split())
         assert summary in text, summary

@@ -230,7 +230,8 @@ def test_empty_selections_say_what_exists_and_reversed_ranges_are_named(sample_o
 
 
 # ---------------------------------------------------------------------- 5. help and metals
-COMMANDS = ("simulate", "inspect", "range", "columns", "decode", "analyze", "compare", "plan", "export")
+COMMANDS = ("simulate", "inspect", "range", "columns", "decode", "analyze", "compare", "plan", "export",
+            "prepare")
 
 
 @pytest.mark.parametrize("command", COMMANDS)

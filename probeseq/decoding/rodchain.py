@@ -108,7 +108,9 @@ def _site(counts, r, t, ome, coef, mu, kt, n_out, fac_out, s, c_out):
 def _forward(counts, mask, r, t0, length, ome, mu, coef, a, p, alpha, fac, invc, nb, cb, spl, kt,
              vt, ltab, loga, logp, vit, back, lin):
     """Forward pass of rod r over sites t0..t0+length-1, with the Viterbi recursion in the same
-    loop when ``vt`` is a non-empty tuple. ``ome = 1 - eta h_r``, ``mu`` the rod's extra rates
+    loop when ``vt`` is a non-empty tuple (the decode passes ``kt``: a tuple of its own arguments
+    is typed once, where a literal ``(0,)`` built in the kernel had the helper compiled twice, for
+    the literal and for its plain type). ``ome = 1 - eta h_r``, ``mu`` the rod's extra rates
     ``mu h_r`` and ``coef = eta / mu`` of the unscaled rates.
 
     The forward variables are rescaled to sum 1 every ``RESCALE_EVERY`` steps, at the last step
@@ -337,7 +339,7 @@ def _decode_kernel(counts, mask, rods, first, span, eta, mu, h, a, p, below, ll,
                 for n in range(16):
                     tab[j, n] = math.log(ome[j] + n * coef[j])
         logc, log_b = _forward(counts, mask, r, t0, length, ome, mur, coef, a, p, alpha, fac, invc, nb, cb, spl,
-                               kt, (0,), tab, loga, logp, vit, back, lin)
+                               kt, kt, tab, loga, logp, vit, back, lin)
         ll[q] = logc + log_b
         for s in range(length - 1, -1, -1):
             t = t0 + s
@@ -387,6 +389,24 @@ def _rod_spans(mask):
     first = m.argmax(axis=1).astype(np.int64)
     last = mask.shape[1] - 1 - m[:, ::-1].argmax(axis=1)
     return rods, first, (last - first + 1).astype(np.int64)
+
+
+def _kernel_mask(mask) -> np.ndarray:
+    """The mask as the kernels take it: a read-only, C-ordered bool view (a copy only when it is
+    not one already). The count stage's mask is read-only, one read back from a file is not; each
+    different argument type would build the kernels again."""
+    m = np.ascontiguousarray(mask, dtype=np.bool_).view()
+    m.flags.writeable = False
+    return m
+
+
+def _kernel_arrays(counts, mask, rods, first, span):
+    """The kernels' array arguments in one form whatever the caller holds: C-ordered counts (their
+    dtype kept), the mask of :func:`_kernel_mask` and C-ordered int64 rods, first sites and spans.
+    A second argument type would build the fit and decode kernels again (about 12 s for one number
+    of metals); with one form the cache filled by ``probeseq prepare`` serves every caller."""
+    ints = (np.ascontiguousarray(a, dtype=np.int64) for a in (rods, first, span))
+    return (np.ascontiguousarray(counts), _kernel_mask(mask), *ints)
 
 
 def _rod_efficiency(h, n_rods: int) -> np.ndarray:
@@ -463,6 +483,7 @@ def fit_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, rod_
 
     Returns a :class:`FitPassResult`.
     """
+    counts, mask, rods, first, span = _kernel_arrays(counts, mask, rods, first, span)
     k = mu.size
     n = rods.size
     ll = np.zeros(n)
@@ -501,6 +522,7 @@ def decode_pass(counts, mask, rods, first, span, eta, mu, transmat, startprob, u
     occupancy : (n_rods, K) ndarray
         Expected observed sites per metal.
     """
+    counts, mask, rods, first, span = _kernel_arrays(counts, mask, rods, first, span)
     n_rods, n_sites, k = counts.shape
     n = rods.size
     ll = np.zeros(n)
@@ -588,6 +610,7 @@ def summarise(counts, mask):
         ``n_hist`` (observed cells per whole count value, all channels) and the distinct count
         vectors ``rows`` with multiplicities ``mult``; None for ``n_hist``/``rows`` otherwise.
     """
+    counts, mask = np.ascontiguousarray(counts), _kernel_mask(mask)
     n_obs, sum_x, sum_n, tot1, tot2, max_n, whole = _summary_kernel(counts, mask)
     mean = tot1 / max(n_obs, 1)
     out = {"n_obs": int(n_obs), "sum_x": sum_x, "sum_n": sum_n, "totals_mean": mean,

@@ -122,7 +122,7 @@ class ReconstructionCorrection:
         dt = np.float32 if all(a.dtype == np.float32 for a in (x, y, z)) else np.float64
         if out is None:
             out = tuple(np.empty(x.shape, dt) for _ in range(3))
-        xs = [np.ascontiguousarray(a, dt) for a in (x, y, z)]
+        xs = [_read_only(np.ascontiguousarray(a, dt)) for a in (x, y, z)]
         _apply_kernel(xs[0], xs[1], xs[2], out[0], out[1], out[2], *self._tables())
         return out
 
@@ -191,6 +191,14 @@ def _interp_extrap(v, xp, fp):
     if hi.any():
         out[hi] = fp[-1] + (v[hi] - xp[-1]) * (fp[-1] - fp[-2]) / (xp[-1] - xp[-2])
     return out
+
+
+def _read_only(a: np.ndarray) -> np.ndarray:
+    """A read-only view of ``a`` (no copy): the compiled map gets one argument type whether the
+    positions are its own arrays or read-only views of a file, and is built once, not twice."""
+    v = a.view()
+    v.flags.writeable = False
+    return v
 
 
 @numba.njit(cache=True, nogil=True, inline="always")

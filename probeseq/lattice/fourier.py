@@ -214,10 +214,14 @@ def _slab_coefficients(xr, yr, slab, n_slabs, hk, Bp):
 @numba.njit(cache=True, nogil=True)
 def _coef_kernel(xr, yr, slab, hk, Bp, out_re, out_im):
     m = hk.shape[0]
-    h0 = hk[:, 0].min()
-    h1 = hk[:, 0].max()
-    k0 = hk[:, 1].min()
-    k1 = hk[:, 1].max()
+    # index ranges by plain loops: the array methods min/max brought 1.1 s of compiling
+    h0 = h1 = hk[0, 0]
+    k0 = k1 = hk[0, 1]
+    for q in range(1, m):
+        h0 = min(h0, hk[q, 0])
+        h1 = max(h1, hk[q, 0])
+        k0 = min(k0, hk[q, 1])
+        k1 = max(k1, hk[q, 1])
     p1r = np.empty(h1 - h0 + 1)
     p1i = np.empty(h1 - h0 + 1)
     p2r = np.empty(k1 - k0 + 1)

@@ -228,7 +228,9 @@ def _brute_nearest(u, v, frac, g):
     v = np.ascontiguousarray(v, np.float64).ravel()
     code = np.empty(u.size, dtype=np.int64)
     dmin = np.empty(u.size)
-    _brute_kernel(u, v, np.ascontiguousarray(frac, np.float64), np.ascontiguousarray(g, np.float64), code, dmin)
+    frac, g = (np.ascontiguousarray(a, np.float64).view() for a in (frac, g))
+    frac.flags.writeable = g.flags.writeable = False  # one argument type for every caller: built once
+    _brute_kernel(u, v, frac, g, code, dmin)
     return code, dmin
 
 
