@@ -3,6 +3,7 @@ per-ion increments of the fused pass and the linear reading of the decoder."""
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 
@@ -16,8 +17,9 @@ from probeseq.decoding.model import DecoderParams
 from probeseq.lattice.columns import ColumnBinner
 from probeseq.lattice.counting import CountPass, make_count_plan
 from probeseq.lattice.evidence import (N_LEVELS, UNITS, LateralSpread, _cell_d2, evidence_table, extras_shares,
-                                       fit_lateral_spread)
+                                       fit_lateral_spread, own_fractions, remove_own, run_evidence_table)
 from probeseq.ranging.channels import _weights_for, assign_channels
+from probeseq.ranging.rangebins import RangeBins, one_bin_per_range
 
 
 def _cell_points(locator, n, rng):
@@ -63,6 +65,29 @@ def test_extras_shares_remove_the_own_ions(fitted):  # noqa: F811
     np.testing.assert_array_equal(extras_shares(share, d, ri, geom.locator, LateralSpread(0.15, 0, 0, False)), share)
 
 
+def test_own_fraction_is_measured_per_metal_on_its_pure_ranges(fitted):  # noqa: F811
+    # metal 0's pure range: 80 % of its ions on the axes. Its mixed range (40 % metal 0) gets that
+    # own fraction whatever its own ions say (here: none sampled); metal 1 has no pure range and
+    # takes the value of all pure ranges
+    _, _, geom = fitted
+    rng = np.random.default_rng(5)
+    sigma = 0.12
+    d = np.concatenate([_gauss_distances(sigma, 4000, rng), _cell_points(geom.locator, 1000, rng)])
+    share = np.array([[1.0, 0.0], [0.4, 0.0], [0.0, 0.3], [0.2, 0.2]])
+    ri = np.zeros(d.size, int)
+    spread = LateralSpread(sigma, 0.9, 1000, True)
+    c = own_fractions(share, d, ri, geom.locator, spread)
+    assert c[0] == 0.0  # a pure range keeps its share
+    assert c[1] == pytest.approx(0.8, abs=0.03)
+    assert c[2] == c[1] and c[3] == pytest.approx(c[1], rel=1e-12)
+    u = extras_shares(share, d, ri, geom.locator, spread)
+    assert u[1, 0] == pytest.approx((1 - c[1]) * 0.4 / (1 - c[1] * 0.4), rel=1e-12)
+    # the mixed range's own ions do not move it once the metal has a pure range
+    d2 = np.concatenate([d, _cell_points(geom.locator, 3000, rng)])
+    ri2 = np.concatenate([ri, np.ones(3000, int)])
+    np.testing.assert_array_equal(own_fractions(share, d2, ri2, geom.locator, spread), c)
+
+
 def test_table_quantisation_keeps_the_mean_and_exact_units(fitted):  # noqa: F811
     _, _, geom = fitted
     share = np.array([[1.0, 0.0], [0.0, 1.0], [0.3, 0.1], [0.0, 0.0]])
@@ -87,9 +112,9 @@ def test_table_quantisation_keeps_the_mean_and_exact_units(fitted):  # noqa: F81
     assert ev.own_scale[0] > 0.9 / 0.97
 
 
-def _reference_evidence(ions, rr, geom, ev):
+def _reference_evidence(ions, rr, geom, ev, bins=None):
     """numpy reference: grid cell of every ion as the kernels compute it (float64), its level, its
-    range's increments, binned with ColumnBinner."""
+    range's (or mass bin's) increments, binned with ColumnBinner."""
     ca = assign_channels(ions["m"], rr.ranges, METALS)
     w = ca.metal_weights[:-1]
     ri = ca.range_index
@@ -107,7 +132,8 @@ def _reference_evidence(ions, rr, geom, ev):
         f += kg.cell_origin[r]
         F.append(np.floor(f).astype(np.int64))
     cell = ((F[0] & (G - 1)) << sh) | (F[1] & (G - 1))
-    inc = ev.increments[ri[sel] * N_LEVELS + ev.cell_level[cell]]
+    row = ri[sel] if bins is None else bins.bin_of(ri[sel], ions["m"][sel])
+    inc = ev.increments[row * N_LEVELS + ev.cell_level[cell]]
     return ColumnBinner(geom, len(METALS)).add(x, y, z, inc).counts
 
 
@@ -139,6 +165,110 @@ def test_fused_pass_fills_the_evidence_as_the_reference(run, fitted):  # noqa: F
     ref = _reference_evidence(ions, rr, geom, ev)
     np.testing.assert_allclose(out[0][1], ref, atol=1e-5)
     assert out[0][1].sum() > 0
+
+
+def _random_bins(rr, rng):
+    """Mass bins of every metal range (2 to 11 each) with random shares: a table the pass must read
+    by mass bin."""
+    w = np.asarray(_weights_for(rr.ranges, METALS)[0][:-1])
+    n = np.where((w > 0).any(axis=1), rng.integers(2, 12, w.shape[0]), 1)
+    start = np.concatenate([[0], np.cumsum(n)]).astype(np.int64)
+    lows, highs = rr.ranges.lows_da, rr.ranges.highs_da
+    share = np.where((w > 0)[np.repeat(np.arange(n.size), n)], rng.random((int(start[-1]), len(METALS))), 0.0)
+    return RangeBins(start=start, scale=np.where(n > 1, n / (highs - lows), 0.0), lows=np.asarray(lows, float),
+                     share=share, metal_split=np.ones_like(share), range_share=w)
+
+
+def test_fused_pass_reads_the_mass_bins_exactly(run, fitted):  # noqa: F811
+    rr, _, geom = fitted
+    ions = as_dict(run.ions)
+    bins = _random_bins(rr, np.random.default_rng(6))
+    ev = evidence_table(bins.share, [1.0, 1.0], [1.0, 1.0], geom.locator, LateralSpread(0.15, 0.9, 1000, True),
+                        bins=bins)
+    assert ev.increments.shape == (bins.n_bins * N_LEVELS, 2)
+    plan = make_count_plan(rr.ranges, METALS, np.ones(2), geom, 5, evidence=ev)
+    x, y, z, m = (np.asarray(ions[c], np.float64) for c in "xyzm")
+    out = []
+    for threads, block in ((1, x.size), (2, 7_001), (2, 140_001)):
+        with CountPass(plan, threads=threads) as cp:
+            for s in range(0, x.size, block):
+                cp.add(s, x[s:s + block], y[s:s + block], z[s:s + block], m[s:s + block])
+            cp.result()
+            out.append(cp.evidence.copy())
+    for e in out[1:]:
+        np.testing.assert_array_equal(e, out[0])  # exact whatever the threads and blocks
+    np.testing.assert_array_equal(out[0] * UNITS, np.rint(out[0] * UNITS))
+    ref = _reference_evidence(ions, rr, geom, ev, bins)
+    np.testing.assert_allclose(out[0], ref, atol=1e-5)
+    # the bins matter: reading the first bin of every range gives another array
+    first = dataclasses.replace(bins, scale=np.zeros_like(bins.scale))
+    assert np.abs(_reference_evidence(ions, rr, geom, ev, first) - out[0]).max() > 0.5
+    # float32 mass-to-charge: the pass converts m to float64 before the bin arithmetic, as bin_of does
+    m32 = np.asarray(ions["m"], np.float32)
+    with CountPass(plan, threads=1) as cp:
+        cp.add(0, x, y, z, m32)
+        cp.result()
+        e32 = cp.evidence.copy()
+    np.testing.assert_allclose(e32, _reference_evidence(dict(ions, m=m32), rr, geom, ev, bins), atol=1e-5)
+
+
+def test_own_ions_come_out_of_every_bin_alike():
+    # per bin the extras' share is (1 - c) s_b / (1 - c s_b); over the bins, weighted by the extras in
+    # them, it gives the range's extras' share: the bins only move the evidence within the range
+    rng = np.random.default_rng(3)
+    s_b = np.column_stack([rng.uniform(0.05, 0.9, 12), np.zeros(12)])
+    n_b = rng.uniform(10, 500, 12)
+    s_r = np.array([[(n_b * s_b[:, 0]).sum() / n_b.sum(), 0.0]])
+    for c in (0.0, 0.4, 0.9):
+        u_b = remove_own(s_b, np.full(12, c))
+        u_r = remove_own(s_r, [c])
+        extras = n_b * (1 - c * s_b[:, 0])
+        assert (extras * u_b[:, 0]).sum() / extras.sum() == pytest.approx(u_r[0, 0], rel=1e-12)
+    assert remove_own(s_b, np.zeros(12)) == pytest.approx(s_b)  # no own ions: the spectrum's shares
+
+
+def test_extras_shares_per_bin_use_their_range_own_fraction(fitted):  # noqa: F811
+    _, _, geom = fitted
+    rng = np.random.default_rng(2)
+    sigma = 0.12
+    d = np.concatenate([_gauss_distances(sigma, 3000, rng), _cell_points(geom.locator, 7000, rng)])
+    share = np.array([[0.4, 0.0], [1.0, 0.0]])
+    ri = np.zeros(d.size, int)
+    spread = LateralSpread(sigma, 0.9, 1000, True)
+    flat = one_bin_per_range(share)
+    np.testing.assert_array_equal(extras_shares(share, d, ri, geom.locator, spread, bins=flat),
+                                  extras_shares(share, d, ri, geom.locator, spread))
+    # range 0 in three bins of shares 0.7, 0.4, 0.1: each bin loses the range's own fraction
+    bins = RangeBins(start=np.array([0, 3, 4]), scale=np.array([30.0, 0.0]), lows=np.array([1.0, 2.0]),
+                     share=np.array([[0.7, 0.0], [0.4, 0.0], [0.1, 0.0], [1.0, 0.0]]),
+                     metal_split=np.ones((4, 2)), range_share=share)
+    u = extras_shares(share, d, ri, geom.locator, spread, bins=bins)
+    u_r = extras_shares(share, d, ri, geom.locator, spread)[0, 0]
+    c_r = (0.4 - u_r) / (0.4 * (1 - u_r))  # from u = (1 - c) s / (1 - c s)
+    np.testing.assert_allclose(u[:3, 0], (1 - c_r) * bins.share[:3, 0] / (1 - c_r * bins.share[:3, 0]), rtol=1e-12)
+    assert u[0, 0] > u[1, 0] > u[2, 0] and u[3, 0] == 1.0
+
+
+def test_own_scale_of_flat_bins_is_the_ranges(run, fitted):  # noqa: F811
+    # cutting a range into bins that all carry the range's share changes nothing the decoder reads
+    rr, _, geom = fitted
+    ions = run.ions
+    ca = assign_channels(ions.mass_to_charge, rr.ranges, METALS)
+    sel = (ca.metal_weights[:-1].sum(1) > 0)[ca.range_index] & (ca.range_index >= 0)
+    d = geom.registration.axis_distance_nm(ions.x[sel], ions.y[sel], ions.z[sel])
+    w = np.asarray(ca.metal_weights)[:-1]
+    one = run_evidence_table(rr, ca, d, ca.range_index[sel], geom.locator, bins=one_bin_per_range(w))
+    n = np.where((w > 0).any(axis=1), 4, 1)
+    start = np.concatenate([[0], np.cumsum(n)]).astype(np.int64)
+    lows, highs = rr.ranges.lows_da, rr.ranges.highs_da
+    rep = np.repeat(np.arange(n.size), n)
+    split = np.where(n[rep, None] > 1, 1.0 / n[rep, None], 1.0) * np.ones((1, w.shape[1]))
+    flat = RangeBins(start=start, scale=np.where(n > 1, n / (highs - lows), 0.0), lows=np.asarray(lows, float),
+                     share=w[rep], metal_split=split, range_share=w)
+    cut = run_evidence_table(rr, ca, d, ca.range_index[sel], geom.locator, bins=flat)
+    np.testing.assert_allclose(cut.own_scale, one.own_scale, rtol=1e-12)
+    np.testing.assert_array_equal(cut.capture, one.capture)
+    np.testing.assert_array_equal(cut.increments.reshape(-1, N_LEVELS, 2), one.increments.reshape(-1, N_LEVELS, 2)[rep])
 
 
 def _brute_state_loglik(ev, mask, p):

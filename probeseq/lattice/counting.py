@@ -140,6 +140,15 @@ class CountPlan:
         return self.evidence.cell_level if self.evidence is not None else np.zeros(0, np.int32)
 
     @property
+    def ev_bins(self) -> tuple:
+        """(first bin (n_ranges + 1,) int64, bins per Da (n_ranges,) float64) of the evidence's
+        mass bins (one bin per range without evidence)."""
+        if self.evidence is None:
+            n = self.lows.size
+            return np.arange(n + 1, dtype=np.int64), np.zeros(n)
+        return self.evidence.bin_start, self.evidence.bin_scale
+
+    @property
     def metal_range(self) -> np.ndarray:
         """(n_ranges + 1,) uint8: 1 where range r - 1 holds metal (slot 0 for unranged)."""
         return self._metal_range
@@ -209,10 +218,13 @@ _EXCL = 0
 
 
 @numba.njit(cache=True, nogil=True)
-def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel, rows, metals, rngs, keep_all):
-    """Rows of ``m[:n]`` in ranges holding metal, each with its drawn metal (and its range in
-    ``rngs``); returns their number. With ``keep_all`` a row whose draw gives no metal is kept
-    with metal ``K`` (it adds soft evidence, not a count).
+def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel, rows, metals, rngs, keep_all,
+                   bin_start, bin_scale):
+    """Rows of ``m[:n]`` in ranges holding metal, each with its drawn metal (and its mass bin of the
+    soft evidence in ``rngs``: ``bin_start[r] + floor((m - lows[r]) * bin_scale[r])`` in float64,
+    clipped to the range's bins; the range itself with one bin per range); returns their number.
+    With ``keep_all`` a row whose draw gives no metal is kept with metal ``K`` (it adds soft
+    evidence, not a count).
 
     Loop 1 (every row, mass-to-charge only): one table load gives the range (+ _CODE_BASE) and whether
     the row is a candidate (a range holding metal, or a cell holding a range edge, resolved in loop 2);
@@ -265,7 +277,13 @@ def _select_kernel(m, n, row0, key, mass_lut, lows, highs, cum, metal_range, sel
                 continue
         rows[nk] = np.int32(i)
         metals[nk] = np.int8(metal)
-        rngs[nk] = np.int32(r)
+        b = bin_start[r]
+        nb = bin_start[r + 1] - b
+        if nb > 1:
+            t = (np.float64(m[i]) - lows[r]) * bin_scale[r]
+            if t > 0.0:  # truncation is floor here; a NaN stays in the first bin
+                b += min(np.int64(t), nb - 1)
+        rngs[nk] = np.int32(b)
         nk += 1
     return nk
 
@@ -684,7 +702,8 @@ class CountPass:
                 if _check_rows(sl, xs, ys, zs, ms, row0 + a, self.factor) and self.strict:
                     return
                 hi = _select_kernel(ms, b - a, np.int64(row0 + a), plan.key, plan.mass_lut, plan.lows, plan.highs,
-                                    plan.cum, plan.metal_range, sl.sel, sl.rows, sl.metals, sl.rngs, plan.ev_on)
+                                    plan.cum, plan.metal_range, sl.sel, sl.rows, sl.metals, sl.rngs, plan.ev_on,
+                                    *plan.ev_bins)
                 nk[k] = _locate_kernel(xs, ys, zs, sl.rows, sl.metals, np.int64(0), np.int64(hi),
                                        np.float64(self.factor), np.int64(plan.n_metals), plan.geometry,
                                        sl.tally, sl.keys, sl.order, sl.bucket, sl.bstart, sl.rshift, sl.rngs,

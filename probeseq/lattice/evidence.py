@@ -20,8 +20,18 @@ drawing one metal per ion, and an ion of a range shared with linker fragments, o
 axis, counts for as little as it says. Pure ranges have ``u = 1``; without the radial factor and
 with pure ranges only, ``E`` is the count of ions.
 
+Mass bins: nothing above needs r to be a whole range. A range holding a metal line and a fragment
+line is cut into equal mass bins b (:mod:`probeseq.ranging.rangebins`), each with its own ``p_bk``
+(the share of metal k's ions in the bin) and ``beta_b``, so ``u_bk`` is metal k's share of the
+extras at that mass-to-charge (24Mg+ sits 0.015 Da below C2+: an ion on the low flank is more
+likely the metal's). ``a_k = sum_b p_bk`` and ``mu_k = lambda_k a_k`` are unchanged, so the
+decoder reads the evidence as before; only the own ion's expected evidence, ``sum_b p_bk u_bk``,
+changes. The own ions are taken out with one share of own ions per metal, measured on its pure
+ranges, alike in every range and bin (own ions and extras of one metal fall alike over its
+lines): :func:`own_fractions`, :func:`extras_shares`.
+
 Quantisation: ``rho`` takes :data:`N_LEVELS` values (per cell of the geometry's lookup grid) and
-every increment ``u_rk rho`` is rounded to a multiple of 1/:data:`UNITS`, so that float32 sums
+every increment ``u_bk rho`` is rounded to a multiple of 1/:data:`UNITS`, so that float32 sums
 are exact (below ``2**24 / UNITS`` per site) and do not depend on the order of the additions, the
 number of threads or the block size.
 
@@ -37,8 +47,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ['EvidenceTable', 'LateralSpread', 'fit_lateral_spread', 'extras_shares', 'evidence_table', 'N_LEVELS',
-           'UNITS']
+__all__ = ['EvidenceTable', 'LateralSpread', 'fit_lateral_spread', 'own_fractions', 'remove_own', 'extras_shares',
+           'evidence_table', 'run_evidence_table', 'N_LEVELS', 'UNITS']
 
 #: levels of the radial likelihood ratio rho
 N_LEVELS = 64
@@ -123,15 +133,19 @@ def _own_share(d2, s2, even, max_iter: int = 100) -> float:
     return pi
 
 
-def extras_shares(share, d_nm, range_index, locator, spread: LateralSpread, min_ions: int = 50) -> np.ndarray:
-    """Each metal's share among the *extras* of each range (``u_rk`` of the module docstring).
+def own_fractions(share, d_nm, range_index, locator, spread: LateralSpread, min_ions: int = 50) -> np.ndarray:
+    """Share of each mixed range's metal ions that are own ions (on the axes), ``c_r``.
 
-    A range's share of a metal from the spectrum fit counts the metal's own ions too, which sit on
-    the rod axes; the extras (linker fragments, background, crosstalk) are spread over the cell. The
-    sample's ions of each metal-bearing range are split by their distance to the nearest axis into
-    a Gaussian part of the fitted width (own ions, given to the range's metals by their shares) and
-    an even part; the metal's share of the even part is ``u_rk``. Ranges with fewer than
-    ``min_ions`` ions, or without a fitted width, keep the spectrum's shares.
+    A metal's own ions and its extras (crosstalk) fall alike over its lines, so the own share of its
+    ions, ``c_k``, is one number per metal, measured where it is clearest: on the metal's pure
+    ranges (one metal holds at least 0.9 of the ions). Their ions are split by their distance to the
+    nearest axis into a Gaussian part of the fitted width (a share ``g`` of the range: own ions, all
+    metal) and an even part, and ``c_k = sum_r n_r g_r / sum_r n_r s_r`` (``s_r`` the range's metal
+    share, ``n_r`` its sampled ions); above 1 when space sees more metal than the spectrum. A mixed
+    range (metal share below 0.98) gets ``c_r = sum_k s_rk c_k / s_r``. A metal without pure ranges
+    takes the value of all pure ranges together; with none at all, a mixed range is fitted on its
+    own ions (at least ``min_ions``). Pure ranges, and anything without a fitted width: 0 (the
+    spectrum's shares are kept).
 
     Parameters
     ----------
@@ -146,27 +160,100 @@ def extras_shares(share, d_nm, range_index, locator, spread: LateralSpread, min_
 
     Returns
     -------
-    (n_ranges, K) ndarray of float
+    (n_ranges,) ndarray of float
     """
     share = np.asarray(share, dtype=np.float64)
-    out = share.copy()
+    n_r, K = share.shape
+    c = np.zeros(n_r)
     if not spread.fitted:
-        return out
+        return c
     edges, dens = _even_density(locator)
     d2 = np.asarray(d_nm, dtype=np.float64) ** 2
     ok = np.isfinite(d2) & (d2 < edges[-1])
     d2, ri = d2[ok], np.asarray(range_index)[ok]
     s2 = spread.sigma_nm ** 2
-    for r in np.flatnonzero((share > 0).any(axis=1) & (share.sum(axis=1) < 0.98)):
+
+    def gauss_share(r):
         dr = d2[ri == r]
-        if dr.size < min_ions:
-            continue
-        g = _own_share(dr, s2, _even_at(edges, dens, dr))
-        tot = float(share[r].sum())
-        own = g * share[r] / tot  # the Gaussian part, given to the range's metals by their shares
-        extras = np.maximum(share[r] - own, 0.02 * share[r])
-        out[r] = extras / max(1.0 - g, 1e-3)
-    return np.clip(out, 0.0, 1.0)
+        return (_own_share(dr, s2, _even_at(edges, dens, dr)), dr.size) if dr.size >= min_ions else (None, 0)
+
+    own, metal = np.zeros(K), np.zeros(K)  # per metal: sampled own ions and metal ions of its pure ranges
+    for r in np.flatnonzero((share >= 0.9).any(axis=1)):
+        g, n = gauss_share(r)
+        if g is not None:
+            k = int(np.argmax(share[r]))
+            own[k] += n * g
+            metal[k] += n * float(share[r].sum())
+    pooled = own.sum() / metal.sum() if metal.sum() > 0 else None
+    c_k = np.where(metal > 0, own / np.maximum(metal, 1e-300), np.nan if pooled is None else pooled)
+    for r in np.flatnonzero((share > 0).any(axis=1) & (share.sum(axis=1) < 0.98)):
+        if pooled is not None:
+            c[r] = float((share[r] * c_k).sum() / share[r].sum())
+        else:
+            g, _ = gauss_share(r)
+            c[r] = 0.0 if g is None else g / float(share[r].sum())
+    return c
+
+
+def remove_own(share, c) -> np.ndarray:
+    """Each metal's share among the extras from its share among all ions, ``u = (1 - c) s / (1 - c
+    sum_k s_k)``: of the metal ions (share ``sum_k s_k``) a share ``c`` are own ions, which the
+    extras do not hold. Rows may be ranges or mass bins (``c`` of each row's range). The metal
+    keeps at least 2 % of its share among the extras (``1 - c >= 0.02``), and the extras are at
+    least 0.1 % of the ions.
+
+    Parameters
+    ----------
+    share : (n, K) array of float
+        Metal shares among all ions.
+    c : (n,) array of float
+        Own ions' share of the metal ions (:func:`own_fractions`).
+
+    Returns
+    -------
+    (n, K) ndarray of float, in [0, 1]
+    """
+    s = np.asarray(share, dtype=np.float64)
+    c = np.asarray(c, dtype=np.float64)[:, None]
+    extras = np.maximum(1.0 - c, 0.02) * s
+    return np.clip(extras / np.maximum(1.0 - c * s.sum(axis=1, keepdims=True), 1e-3), 0.0, 1.0)
+
+
+def extras_shares(share, d_nm, range_index, locator, spread: LateralSpread, min_ions: int = 50,
+                  bins=None) -> np.ndarray:
+    """Each metal's share among the *extras* of each range, or of each mass bin (``u`` of the module
+    docstring).
+
+    A range's share of a metal from the spectrum fit counts the metal's own ions too, which sit on
+    the rod axes; the extras (linker fragments, background, crosstalk) are spread over the cell. The
+    share ``c_r`` of the range's metal ions that are own ions comes from the ions' distance to the
+    nearest axis, measured per metal on its pure ranges (:func:`own_fractions`), and is taken out
+    (:func:`remove_own`). A metal's own ions and its extras fall alike over the mass bins of a
+    range (both are its ions), so the same ``c_r`` serves every bin of the range. Pure ranges, and
+    everything without a fitted width, keep the spectrum's shares.
+
+    Parameters
+    ----------
+    share : (n_ranges, K) array of float
+        Metal shares of each range from the spectrum fit.
+    d_nm : (n,) array of float, nm
+        Distance of each sampled ion (of a metal-bearing range) to its nearest rod axis.
+    range_index : (n,) array of int
+        Range of each of those ions.
+    locator : RodLocator
+    spread : LateralSpread
+    bins : RangeBins, optional
+        Mass bins of the ranges (:func:`probeseq.ranging.rangebins.range_bins`): the shares of every
+        bin are returned.
+
+    Returns
+    -------
+    (n_ranges, K) or (n_bins, K) ndarray of float
+    """
+    c = own_fractions(share, d_nm, range_index, locator, spread, min_ions)
+    if bins is None:
+        return remove_own(share, c)
+    return remove_own(bins.share, c[bins.bin_range])
 
 
 def fit_lateral_spread(d_nm, locator, max_iter: int = 200) -> LateralSpread:
@@ -226,9 +313,10 @@ class EvidenceTable:
 
     Attributes
     ----------
-    increments : (n_ranges * N_LEVELS, K) ndarray of float64
-        Increment of each metal's evidence for an ion of range r at radial level q (row
-        ``r * N_LEVELS + q``): ``u_rk rho_q`` rounded to 1/UNITS.
+    increments : (n_bins * N_LEVELS, K) ndarray of float64
+        Increment of each metal's evidence for an ion of mass bin b at radial level q (row
+        ``b * N_LEVELS + q``): ``u_bk rho_q`` rounded to 1/UNITS. With one bin per range, b is
+        the range.
     cell_level : (n_grid * n_grid,) ndarray of int32
         Radial level of every cell of the geometry's lookup grid.
     rho_levels : (N_LEVELS,) ndarray of float64
@@ -239,6 +327,14 @@ class EvidenceTable:
     capture : (K,) ndarray of float64
         Share of each metal's ions inside its ranges (``a_k``), the metals' visibility.
     spread : LateralSpread
+    bin_start : (n_ranges + 1,) ndarray of int64
+        First mass bin of each range (:class:`probeseq.ranging.rangebins.RangeBins`); range r owns
+        bins ``bin_start[r] .. bin_start[r + 1] - 1``.
+    bin_scale : (n_ranges,) ndarray of float64, 1/Da
+        Bins per Da of each range (0: one bin); an ion's bin in its range is
+        ``floor((m - bin_low[r]) * bin_scale[r])`` (float64), clipped to the range's bins.
+    bin_low : (n_ranges,) ndarray of float64, Da
+        Low edge of each range.
     """
 
     increments: np.ndarray
@@ -247,10 +343,19 @@ class EvidenceTable:
     own_scale: np.ndarray
     capture: np.ndarray
     spread: LateralSpread
+    bin_start: np.ndarray
+    bin_scale: np.ndarray
+    bin_low: np.ndarray
+
+    @property
+    def n_bins(self) -> int:
+        return int(self.bin_start[-1])
 
     def to_dict(self) -> dict:
+        nb = np.diff(self.bin_start)
         return {"lateral_spread": self.spread.to_dict(), "capture": self.capture.tolist(),
-                "own_scale": self.own_scale.tolist(), "radial": bool(self.spread.fitted)}
+                "own_scale": self.own_scale.tolist(), "radial": bool(self.spread.fitted),
+                "mass_bins": {"ranges_cut": int((nb > 1).sum()), "bins": self.n_bins}}
 
 
 def _levels(rho: np.ndarray):
@@ -264,13 +369,14 @@ def _levels(rho: np.ndarray):
     return q, values
 
 
-def evidence_table(share, capture, seen, locator, spread: LateralSpread) -> EvidenceTable:
+def evidence_table(share, capture, seen, locator, spread: LateralSpread, bins=None) -> EvidenceTable:
     """The per-ion increments of the evidence array.
 
     Parameters
     ----------
-    share : (n_ranges, K) array of float
-        Share of each metal among each range's ions (``u_rk``; rows of non-metal ranges are 0).
+    share : (n_ranges, K) or (n_bins, K) array of float
+        Share of each metal among the extras of each range (``u_rk``; rows of non-metal ranges are
+        0), or of each mass bin when ``bins`` is given.
     capture : (K,) array of float
         Share of each metal's ions inside its ranges (``a_k``).
     seen : (K,) array of float
@@ -279,13 +385,23 @@ def evidence_table(share, capture, seen, locator, spread: LateralSpread) -> Evid
     locator : RodLocator
     spread : LateralSpread
         The own ions' lateral width; not ``fitted``: no radial factor (rho = 1 everywhere).
+    bins : RangeBins, optional
+        The mass bins of the ranges (:func:`probeseq.ranging.rangebins.range_bins`); default one
+        bin per range.
 
     Returns
     -------
     EvidenceTable
     """
     share = np.asarray(share, dtype=np.float64)
-    n_ranges, K = share.shape
+    n_rows, K = share.shape
+    if bins is None:
+        start, scale, low = np.arange(n_rows + 1, dtype=np.int64), np.zeros(n_rows), np.zeros(n_rows)
+    else:
+        start, scale, low = (np.asarray(bins.start, np.int64), np.asarray(bins.scale, np.float64),
+                             np.asarray(bins.lows, np.float64))
+        if int(start[-1]) != n_rows:
+            raise ValueError(f"share has {n_rows} rows, the bins {int(start[-1])}")
     d2 = _grid_d2(locator)
     cut = float(locator.cutoff_nm) ** 2 if np.isfinite(locator.cutoff_nm) else np.inf
     inside = d2 < cut
@@ -301,9 +417,58 @@ def evidence_table(share, capture, seen, locator, spread: LateralSpread) -> Evid
         level = np.full(d2.size, N_LEVELS - 1, np.int32)
         values = np.ones(N_LEVELS)
         e_own = 1.0
-    inc = np.rint(share[:, None, :] * values[None, :, None] * UNITS) / UNITS  # (n_ranges, N_LEVELS, K)
+    inc = np.rint(share[:, None, :] * values[None, :, None] * UNITS) / UNITS  # (n_rows, N_LEVELS, K)
     capture = np.clip(np.asarray(capture, dtype=np.float64), 0.02, 1.0)
     own_scale = np.asarray(seen, dtype=np.float64) * e_own / capture
-    return EvidenceTable(increments=np.ascontiguousarray(inc.reshape(n_ranges * N_LEVELS, K)),
+    return EvidenceTable(increments=np.ascontiguousarray(inc.reshape(n_rows * N_LEVELS, K)),
                          cell_level=np.ascontiguousarray(level.astype(np.int32)), rho_levels=values,
-                         own_scale=own_scale, capture=capture, spread=spread)
+                         own_scale=own_scale, capture=capture, spread=spread, bin_start=np.ascontiguousarray(start),
+                         bin_scale=np.ascontiguousarray(scale), bin_low=np.ascontiguousarray(low))
+
+
+def run_evidence_table(rr, assignment, d_nm, range_index, locator, bins=None) -> EvidenceTable:
+    """The evidence table of a run from its ranging and the sample's metal-bearing ions.
+
+    The own ions' lateral width is fitted on the ions of pure metal ranges; each metal's share
+    among the extras comes per mass bin of the ranges (:func:`probeseq.ranging.rangebins.range_bins`)
+    with the own ions taken out per range (:func:`extras_shares`); ``a_k`` and the evidence of an
+    own ion, ``sum_b p_bk u_bk``, follow from each metal's share of its ions in each range
+    (:func:`probeseq.ranging.channels.metal_range_shares`) split over the range's bins as the fitted
+    spectrum puts the metal's ions there.
+
+    Parameters
+    ----------
+    rr : RangingResult
+    assignment : ChannelAssignment
+        Channels of the ranged ions (:func:`probeseq.ranging.channels.assign_channels` of the ions
+        the spectrum was fitted on).
+    d_nm : (n,) array of float, nm
+        Distance to the nearest rod axis of each sampled ion of a metal-bearing range.
+    range_index : (n,) array of int
+        Range of each of those ions.
+    locator : RodLocator
+    bins : RangeBins, optional
+        The mass bins (default :func:`probeseq.ranging.rangebins.range_bins` of ``rr``;
+        :func:`probeseq.ranging.rangebins.one_bin_per_range` reads whole ranges).
+
+    Returns
+    -------
+    EvidenceTable
+    """
+    from ..ranging.channels import metal_range_shares
+    from ..ranging.rangebins import range_bins
+
+    w = np.asarray(assignment.metal_weights, float)[:-1]  # (n_ranges, K)
+    ri = np.asarray(range_index)
+    d = np.asarray(d_nm, dtype=np.float64)
+    pure = np.concatenate([(w >= 0.9).any(axis=1), [False]])[ri]  # (nearly) one metal
+    spread = fit_lateral_spread(d[pure], locator)
+    if bins is None:
+        bins = range_bins(rr, w)
+    u = extras_shares(w, d, ri, locator, spread, bins=bins)
+    p = metal_range_shares(rr, assignment)  # share of each metal's ions in each range (NaN: no fitted ions)
+    known = np.isfinite(p).all(axis=0)
+    p_bin = np.nan_to_num(p)[bins.bin_range] * bins.metal_split  # ... in each bin
+    capture = np.where(known, np.nan_to_num(p).sum(axis=0), 1.0)
+    seen = np.where(known, (p_bin * u).sum(axis=0), 1.0)  # an own ion's evidence, no radial factor
+    return evidence_table(u, capture, seen, locator, spread, bins=bins)

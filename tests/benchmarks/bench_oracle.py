@@ -291,14 +291,22 @@ def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--runs", type=int, default=40, help="simulated runs (default 40)")
     ap.add_argument("--workers", type=int, default=2, help="worker processes (default 2)")
+    ap.add_argument("--seeds", default="", help="only these runs of the suite, a comma list of seeds "
+                    f"(from {FIRST_SEED} on, e.g. 950002,950014)")
     args = ap.parse_args(argv)
+    seeds = [int(v) for v in args.seeds.split(",") if v.strip()]
+    if seeds:
+        args.runs = max(args.runs, max(seeds) - FIRST_SEED + 1)
     print("oracle: posterior decode of the same sites given the true ion-to-site assignment and the true model")
     print("        (peak shapes of every metal's species and isotopes, transition matrix, copied rods' master chain).")
-    print(f"{args.runs} runs, seeds {FIRST_SEED}-{FIRST_SEED + args.runs - 1}, {args.workers} workers; "
-          "* = carbon-rich fragments; accuracies are shares of sites decoded right\n")
+    which = (f"seeds {','.join(map(str, seeds))}" if seeds else
+             f"{args.runs} runs, seeds {FIRST_SEED}-{FIRST_SEED + args.runs - 1}")
+    print(f"{which}, {args.workers} workers; * = carbon-rich fragments; accuracies are shares of sites decoded right\n")
     print(f"{'#':>3} {'seed':>7} {'arrangement':<30} {'metals':<10} {'pack':<4} {'eta t/tool':>11} "
           f"{'or.all':>7} {'or.mat':>7} {'tool':>7} {'ratio':>7} {'matched/inside':>14} {'d_comp':>7} {'t_s':>5}")
     cases = suite(args.runs)
+    if seeds:
+        cases = [kw for kw in cases if kw["seed"] in set(seeds)]
     t0 = time.perf_counter()
     results = [None] * len(cases)
     with ProcessPoolExecutor(max_workers=max(1, args.workers)) as ex:
