@@ -64,10 +64,11 @@ def test_report_png_downscales_only_from_finer_files(tmp_path):
 
 
 def test_two_processes_only_with_a_free_cpu_and_jobs_allowing_it():
-    from probeseq.outputs.figurejobs import two_processes_pay
+    from probeseq.outputs.figurejobs import others_running, two_processes_pay
 
-    assert two_processes_pay(None, cpus=2, load=0.3)  # a free CPU, jobs not limited
+    assert two_processes_pay(None, cpus=2, load=0.0)  # a free CPU, jobs not limited
     assert two_processes_pay(2, cpus=4, load=2.0)
-    assert not two_processes_pay(None, cpus=2, load=1.8)  # both CPUs busy: the fork would not pay
+    assert not two_processes_pay(None, cpus=2, load=1.0)  # the other CPU is busy: the fork would not pay
     assert not two_processes_pay(1, cpus=8, load=0.0)  # --jobs 1 keeps everything in one process
     assert not two_processes_pay(None, cpus=1, load=0.0)
+    assert others_running() >= 0.0

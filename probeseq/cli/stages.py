@@ -8,6 +8,8 @@ Each command is a thin wrapper: parse, call one library function, write, summari
 
 from __future__ import annotations
 
+import io
+import os
 import shlex
 import sys
 import time
@@ -116,60 +118,196 @@ def _metals(text):
     return check_metals(mets, "--metals")
 
 
-class _Reporter:
-    """Progress on standard error (unless quiet); ``log.txt`` keeps its own copy (:func:`probeseq.study.batch.analyze_run`).
+#: a stage's live line shows its time left once this fraction is done and ...
+ETA_MIN_FRACTION = 0.02
 
-    Each stage prints one line when it starts; on a terminal a ticker keeps the line's elapsed
-    time running while the stage works, so a long step never looks frozen.
+
+#: ... this many seconds have passed since it started
+ETA_MIN_SECONDS = 1.0
+
+
+def _duration(seconds: float, precise: bool = False) -> str:
+    """Elapsed time for a progress line: ``42 s`` (``4.2 s`` when ``precise`` and under 10 s),
+    ``3 min 05 s`` above 90 s, ``2 h 05 min`` above 90 min."""
+    s = max(0.0, float(seconds))
+    if precise and s < 10:
+        return f"{s:.1f} s"
+    if s < 90:
+        return f"{s:.0f} s"
+    if s < 5400:
+        m, r = divmod(int(round(s)), 60)
+        return f"{m} min {r:02d} s"
+    h, m = divmod(int(round(s / 60)), 60)
+    return f"{h} h {m:02d} min"
+
+
+def _about(seconds: float) -> str:
+    """A time left, rounded as far as an estimate deserves: whole seconds under 10 s, 5 s steps
+    to 90 s, whole minutes to 90 min, tenths of an hour beyond."""
+    s = max(0.0, float(seconds))
+    if s < 9.5:
+        return f"{max(1, round(s))} s"
+    if s < 90:
+        return f"{5 * max(2, round(s / 5))} s"
+    if s < 5400:
+        return f"{max(2, round(s / 60))} min"
+    return f"{s / 3600:.1f} h"
+
+
+def live_status(elapsed: float, fraction: Optional[float], sep: str = "\u00b7") -> str:
+    """The live end of a stage's progress line on a terminal.
+
+    Parameters
+    ----------
+    elapsed : float, s
+        Time since the stage started.
+    fraction : float in [0, 1] or None
+        How far the stage is (None: it has not said).
+    sep : str
+        Between the percentage and the elapsed time.
+
+    Returns
+    -------
+    str
+        `` (3 s)`` without a fraction; with one, the percentage done, ``sep`` and the elapsed
+        time, then the time left ``elapsed * (1 - fraction) / fraction`` once at least
+        :data:`ETA_MIN_FRACTION` is done and :data:`ETA_MIN_SECONDS` have passed, as in
+        ``  40 % - 2 s, about 3 s left`` (:func:`_about` rounds it).
+    """
+    if fraction is None:
+        return f" ({_duration(elapsed)})"
+    f = min(1.0, max(0.0, float(fraction)))
+    text = f"  {int(100 * f + 1e-9)} % {sep} {_duration(elapsed)}"
+    if ETA_MIN_FRACTION <= f < 1 and elapsed >= ETA_MIN_SECONDS:
+        text += f", about {_about(elapsed * (1 - f) / f)} left"
+    return text
+
+
+def _separator(stream) -> str:
+    """A middle dot when the stream's encoding has one, else a hyphen."""
+    try:
+        "\u00b7".encode(getattr(stream, "encoding", None) or "ascii")
+        return "\u00b7"
+    except (LookupError, UnicodeError):
+        return "-"
+
+
+def _fit_width(line: str, status: str, width: int) -> str:
+    """``line + status`` cut to ``width - 1`` characters (the message shortened first, so the
+    status stays in view); as it is when ``width`` is unknown (0)."""
+    text = line + status
+    if width <= 0 or len(text) < width:
+        return text
+    room = width - 1 - len(status)
+    if room >= 24:
+        return line[:room - 3] + "..." + status
+    return text[:width - 1]
+
+
+class _Reporter:
+    """Progress lines on standard error (unless quiet); ``log.txt`` keeps its own copy
+    (:func:`probeseq.study.batch.analyze_run`).
+
+    Each stage prints one line ``[   3.1 s] stage: message`` when it starts. Off a terminal (a
+    log file, a pipe) that is all. On a terminal a ticker redraws the current stage's line with
+    its elapsed time and, once the stage reports how far it is (:meth:`advance`, the progress
+    protocol of :mod:`probeseq.pipeline.options`), the percentage done and an estimate of the time
+    left (:func:`live_status`); when the next stage starts, the line is left with the stage's
+    elapsed time.
+
+    Parameters
+    ----------
+    quiet : bool
+        Write nothing.
+    verbose : bool
+        Kept for the caller's summary; the progress lines are the same.
+    stream : text stream, optional
+        Where to write; default ``sys.stderr`` as it is when the reporter is made. The live line is
+        drawn only when ``stream.isatty()``.
+    clock : callable, optional
+        Seconds of a monotonic clock (default :func:`time.perf_counter`).
+    tick_s : float, s
+        Interval between redraws of the live line.
     """
 
-    def __init__(self, quiet: bool, verbose: bool):
+    def __init__(self, quiet: bool, verbose: bool, *, stream=None, clock=None, tick_s: float = 0.5):
         import threading
 
         self.quiet, self.verbose = quiet, verbose
-        self.t0 = time.perf_counter()
-        self._tty = (not quiet) and sys.stderr.isatty()
-        self._current = None
+        self.stream = sys.stderr if stream is None else stream
+        self._now = clock or time.perf_counter
+        self.tick_s = float(tick_s)
+        self.t0 = self._now()
+        self._tty = (not quiet) and bool(getattr(self.stream, "isatty", lambda: False)())
+        self._sep = _separator(self.stream)
+        self._current = None  # [stage, line, start (clock s), fraction or None]
         self._lock = threading.Lock()
         self._stop = threading.Event()
         self._thread = None
 
     def _tick(self):
-        while not self._stop.wait(0.5):
-            with self._lock:
-                if self._current is None:
-                    continue
-                line, start = self._current
-                sys.stderr.write(f"\r{line} ({time.perf_counter() - start:.0f} s)")
-                sys.stderr.flush()
+        while not self._stop.wait(self.tick_s):
+            self.redraw()
+
+    def _width(self) -> int:
+        try:
+            return os.get_terminal_size(self.stream.fileno()).columns
+        except (AttributeError, OSError, ValueError, io.UnsupportedOperation):
+            return 0
+
+    def _draw(self, status: str):
+        """Redraw the current stage's line ending in ``status`` (lock held, terminal only)."""
+        self.stream.write("\r\x1b[K" + _fit_width(self._current[1], status, self._width()))
+        self.stream.flush()
+
+    def redraw(self):
+        """Redraw the current stage's live line (what the ticker does; nothing off a terminal)."""
+        with self._lock:
+            if self._tty and self._current is not None:
+                _, _, start, fraction = self._current
+                self._draw(live_status(self._now() - start, fraction, self._sep))
+
+    def _close_line(self):
+        """Leave the current stage's line with its elapsed time and end it (lock held)."""
+        if self._tty and self._current is not None:
+            self._draw(f" ({_duration(self._now() - self._current[2], precise=True)})")
+            self.stream.write("\n")
+        self._current = None
 
     def __call__(self, stage: str, message: str):
-        line = f"[{time.perf_counter() - self.t0:7.1f} s] {stage}: {message}"
+        line = f"[{self._now() - self.t0:7.1f} s] {stage}: {message}"
         if self.quiet:
             return
         with self._lock:
             if self._tty:
-                if self._current is not None:
-                    sys.stderr.write("\n")
-                sys.stderr.write(line)
-                self._current = (line, time.perf_counter())
+                self._close_line()
+                self._current = [stage, line, self._now(), None]
+                self._draw("")  # cut to the terminal's width, so that a redraw overwrites all of it
                 if self._thread is None:
                     import threading
 
                     self._thread = threading.Thread(target=self._tick, daemon=True)
                     self._thread.start()
             else:
-                sys.stderr.write(line + "\n")
-            sys.stderr.flush()
+                self.stream.write(line + "\n")
+            self.stream.flush()
+
+    def advance(self, stage: str, done: int, total: int):
+        """``done`` of ``total`` units of ``stage`` are done: shown on the stage's live line at the
+        next redraw (terminal only; ignored for a stage other than the current one)."""
+        if not self._tty or total <= 0:
+            return
+        with self._lock:
+            if self._current is not None and self._current[0] == stage:
+                self._current[3] = min(1.0, max(0.0, done / total))
 
     def done(self):
         """End the ticker (call before printing the summary)."""
         self._stop.set()
         with self._lock:
-            if self._tty and self._current is not None:
-                sys.stderr.write("\n")
-                sys.stderr.flush()
-            self._current = None
+            self._close_line()
+            if self._tty:
+                self.stream.flush()
 
 
 # ---------------------------------------------------------------------- range
@@ -334,10 +472,16 @@ def decode(
 
 
 def _write_decoded_tables(folder, cols, dec):
-    """``tracks.csv``, ``runs.csv`` and ``decoded.h5`` (paths, posteriors, flags), as 'analyze' writes them."""
-    from ..outputs.results import RUNS_COLUMNS, RUNS_FORMATS, _write_table, runs_table, save_decoded, write_tracks
+    """The tracks table, ``runs.csv`` and ``decoded.h5`` (paths, posteriors, flags), as 'analyze' writes
+    them with ``--tracks-table auto``."""
+    from ..outputs.results import (RUNS_COLUMNS, RUNS_FORMATS, _write_table, runs_table, save_decoded,
+                                   tracks_table_files, write_tracks, write_tracks_h5)
 
-    write_tracks(folder / "tracks.csv", cols, dec)
+    files = tracks_table_files("auto", int(cols.mask.sum()))
+    if "tracks.csv" in files:
+        write_tracks(folder / "tracks.csv", cols, dec)
+    else:
+        write_tracks_h5(folder / "tracks.h5", cols, dec)
     _write_table(folder / "runs.csv", runs_table(cols, dec), RUNS_COLUMNS, RUNS_FORMATS)
     save_decoded(dec, folder / "decoded.h5")
 
@@ -376,6 +520,11 @@ def analyze(
     length_unit: LengthUnit = None, position_dataset: PosDataset = None, mass_dataset: MassDataset = None,
     allow_outside: Annotated[bool, typer.Option(help="Let a run folder's run.toml name files outside the run "
                                                      "folder (refused by default).")] = False,
+    tracks_table: Annotated[str, typer.Option(metavar="auto|csv|hdf5|both",
+                                              help="How the tracks table (one row per decoded site) is written: "
+                                                   "auto = tracks.csv up to 2,000,000 sites, tracks.h5 (the same "
+                                                   "columns in HDF5) above; 'probeseq export OUTDIR --format csv' "
+                                                   "writes the CSV at any time.")] = "auto",
     strict: Strict = False, force: Force = False, quiet: Quiet = False, verbose: Verbose = False,
     scheduler: SchedulerOpt = None,
 ):
@@ -401,7 +550,7 @@ def analyze(
     common = dict(options=opts, metals=mets, lattice=lattice, a=a, repeat=repeat, sites_per_repeat=sites_per_repeat,
                   ranges=ranges, length_unit=length_unit, position_dataset=position_dataset,
                   mass_dataset=mass_dataset, strict=strict, allow_outside=allow_outside, force=force,
-                  command_line=_command_line())
+                  command_line=_command_line(), tracks_table=tracks_table)
     src = Path(ions)
     if src.is_dir() and not (src / "run.toml").exists() and run_folders(src):
         batch_out = Path(out) if out is not None else Path(f"analysis_{safe_file_name(src.resolve().name)}")
@@ -416,6 +565,9 @@ def analyze(
         rep.done()
     for line in summary_lines(ra.result, verbose=verbose):
         say(line)
+    if not (ra.outdir / "tracks.csv").exists():
+        say(f"tracks table: {ra.outdir / 'tracks.h5'} (HDF5, {int(ra.result.columns.mask.sum()):,} decoded sites); "
+            f"'probeseq export {ra.outdir} --format csv' writes it as CSV")
 
 
 def _batch(src: Path, out: Path, common: dict, verbose: bool, scheduler: Optional[str]):

@@ -582,6 +582,17 @@ def _fit_independent(prep, params: DecoderParams, rng, k: int, max_iter: int, to
     return ind
 
 
+def _screen_starts(screen_step, screen, rng, k: int, n_starts: int, max_iter: int, tol: float, visibility):
+    """EM of every start on the screening subset (the first from moment estimates, the others
+    random); returns (each start's log-likelihood, the best start's trace)."""
+    starts = []
+    for i in range(n_starts):
+        p0 = _initial_params(screen, rng, k, random=i > 0, visibility=visibility)
+        starts.append(run_em(screen_step, p0, max_iter=max_iter, tol=tol * screen.n_obs))
+    start_ll = [tr.loglik for tr in starts]
+    return start_ll, starts[int(np.argmax(start_ll))]
+
+
 def fit_decoder(
     columns: RodColumns,
     n_starts: int = 4,
@@ -593,6 +604,7 @@ def fit_decoder(
     rod_efficiency=None,
     radial_efficiency: bool = True,
     visibility=None,
+    on_iteration=None,
 ) -> DecodeResult:
     """Fit the rod model to all rods by EM, then decode every rod.
 
@@ -633,6 +645,10 @@ def fit_decoder(
     visibility : (K,) array_like of float in (0, 1], optional
         Relative visibility ``a_k`` of each metal (:class:`DecoderParams`). None: the count stage's
         ``columns.params["visibility"]`` when present, else 1 for every metal.
+    on_iteration : callable, optional
+        Progress of the EM on all rods, the longest step: ``on_iteration(done, max_iter)`` after
+        each of its updates (:func:`probeseq.decoding.hmm.run_em`). The fit usually converges
+        before ``max_iter``, so ``done / max_iter`` understates how far it is.
 
     Returns
     -------
@@ -672,17 +688,8 @@ def fit_decoder(
         make_step = _hmm_step
     tol_abs = tol * prep.n_obs
 
-    # screening of the starts
-    screen_step = make_step(screen)
-    starts = []
-    for i in range(n_starts):
-        p0 = _initial_params(screen, rng, k, random=i > 0, visibility=vis)
-        tr = run_em(screen_step, p0, max_iter=min(SCREEN_ITER, max_iter), tol=tol * screen.n_obs)
-        starts.append(tr)
-    start_ll = [tr.loglik for tr in starts]
-    best = starts[int(np.argmax(start_ll))]
-
-    trace = run_em(make_step(prep), best.params, max_iter=max_iter, tol=tol_abs)
+    start_ll, best = _screen_starts(make_step(screen), screen, rng, k, n_starts, min(SCREEN_ITER, max_iter), tol, vis)
+    trace = run_em(make_step(prep), best.params, max_iter=max_iter, tol=tol_abs, on_iteration=on_iteration)
     params = trace.params
     _note_unconverged(trace, "hidden-Markov fit", "returning the best fit", max_iter, tol_abs, notes)
 

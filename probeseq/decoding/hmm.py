@@ -497,6 +497,7 @@ def run_em(
     max_iter: int,
     tol: float,
     min_iter: int = 1,
+    on_iteration: Callable[[int, int], None] | None = None,
 ) -> EMTrace:
     """Generic EM loop.
 
@@ -514,6 +515,10 @@ def run_em(
         evaluations is below ``tol``.
     min_iter : int
         Updates made before convergence is tested.
+    on_iteration : callable, optional
+        Progress hook, called as ``on_iteration(done, max_iter)`` after each update, ``done``
+        counting the updates made so far (1 to ``max_iter``); the evaluation that ends the loop
+        (converged, or ``max_iter`` reached) calls it no more. Its return value is ignored.
 
     Returns
     -------
@@ -539,6 +544,8 @@ def run_em(
             break
         current = nxt
         n_iter += 1
+        if on_iteration is not None:
+            on_iteration(n_iter, max_iter)
     last = history[-1] - history[-2] if len(history) >= 2 else float("nan")
     return EMTrace(
         params=best_params,

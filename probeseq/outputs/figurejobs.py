@@ -19,13 +19,14 @@ import io
 import os
 import pickle
 import tempfile
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
 from ..utils.marks import PNG_PIL_KWARGS
 
-__all__ = ["FigureJob", "run_figure_jobs", "report_png", "two_processes_pay"]
+__all__ = ["FigureJob", "run_figure_jobs", "report_png", "two_processes_pay", "others_running", "warm_up", "prewarm"]
 
 
 @dataclass(frozen=True)
@@ -99,22 +100,48 @@ def report_png(fig, png_file, dpi: float, stated_dpi: float | None = None) -> by
     return buf.getvalue()
 
 
-def warm_up():
-    """Pay matplotlib's one-time costs of a process (imports of the three backends, the font files,
-    the mathtext parser, the PDF font subsetter) on a tiny figure drawn into memory."""
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
+def warm_up(exts=("png", "svg")):
+    """Pay matplotlib's one-time costs of a process (imports of the backends of ``exts``, the font
+    files, the mathtext parser) on a tiny figure drawn into memory; once per process and set of
+    formats (about 1 s in a fresh process, 0.25 s more with "pdf": its font subsetter)."""
+    exts = tuple(sorted(set(exts)))
+    with _WARM_LOCK:
+        if exts in _WARMED:
+            return
+        from matplotlib.backends.backend_agg import FigureCanvasAgg
+        from matplotlib.figure import Figure
 
-    fig = Figure(figsize=(1.0, 1.0))
-    FigureCanvasAgg(fig)
-    ax = fig.add_subplot()
-    ax.semilogy([1.0, 2.0], [1.0, 100.0])
-    ax.set_title(r"$\mathregular{Co^{2+}}$ warm-up", fontsize=7)
-    from .figures import save_figure
+        fig = Figure(figsize=(1.0, 1.0))
+        FigureCanvasAgg(fig)
+        ax = fig.add_subplot()
+        ax.semilogy([1.0, 2.0], [1.0, 100.0])
+        ax.set_title(r"$\mathregular{Co^{2+}}$ warm-up", fontsize=7)
+        from .figures import save_figure
 
-    with tempfile.TemporaryDirectory(prefix="probeseq-warm-") as d:
-        for ext in ("png", "svg", "pdf"):
-            save_figure(fig, Path(d) / f"warm.{ext}", dpi=30)
+        with tempfile.TemporaryDirectory(prefix="probeseq-warm-") as d:
+            for ext in exts:
+                save_figure(fig, Path(d) / f"warm.{ext}", dpi=30)
+        _WARMED.add(exts)
+
+
+_WARM_LOCK = threading.Lock()
+_WARMED: set = set()
+
+
+def prewarm(exts=("png", "svg")) -> threading.Thread:
+    """Start :func:`warm_up` in a background thread and return it (the caller may go on with work
+    that releases the GIL, such as the compiled kernels of the analysis, meanwhile). A later
+    :func:`warm_up` or :func:`run_figure_jobs` waits for it through a lock instead of repeating it.
+    A failure in the thread is ignored: the figures' own drawing reports it."""
+    def run():
+        try:
+            warm_up(exts)
+        except Exception:  # the figure jobs meet and report the same problem
+            pass
+
+    t = threading.Thread(target=run, name="probeseq-figure-warm-up", daemon=True)
+    t.start()
+    return t
 
 
 def _one(job: FigureJob, folder: Path, report_dpi):
@@ -150,13 +177,13 @@ def two_processes_pay(n_jobs: int | None, cpus: int | None = None, load: float |
     cpus : int, optional
         CPUs this process may run on (default: its affinity set).
     load : float, optional
-        Runnable processes now, the one-minute load average (default: ``os.getloadavg()``).
+        Runnable processes other than this one, now (default: :func:`others_running`).
 
     Returns
     -------
     bool
-        True when at least two CPUs may be used and at least one of them is free: the load
-        average is below ``cpus - 0.5`` (this process itself counts as about one).
+        True when at least two CPUs may be used and at least one of them is free: fewer than
+        ``cpus - 1`` other processes are runnable.
     """
     if n_jobs is not None and n_jobs < 2:
         return False
@@ -168,11 +195,34 @@ def two_processes_pay(n_jobs: int | None, cpus: int | None = None, load: float |
     if cpus < 2:
         return False
     if load is None:
+        load = others_running()
+    return load < cpus - 1
+
+
+def others_running(samples: int = 5, interval_s: float = 0.002) -> float:
+    """Runnable processes and threads on the machine other than this one: the median over a few
+    readings of the kernel's count of runnable tasks (``/proc/loadavg``, fourth field) less one.
+
+    Where that count cannot be read, the one-minute load average less one (at least 0).
+    """
+    import statistics
+    import time
+
+    counts = []
+    for n in range(samples):
         try:
-            load = os.getloadavg()[0]
-        except (AttributeError, OSError):  # no load average on this system: assume a free CPU
-            load = 0.0
-    return load < cpus - 0.5
+            with open("/proc/loadavg", encoding="ascii") as fh:
+                counts.append(int(fh.read().split()[3].split("/")[0]) - 1)
+        except (OSError, ValueError, IndexError):
+            break
+        if n + 1 < samples:
+            time.sleep(interval_s)
+    if counts:
+        return float(max(0.0, statistics.median(counts)))
+    try:
+        return max(0.0, os.getloadavg()[0] - 1.0)
+    except (AttributeError, OSError):  # no load figures on this system: assume a free CPU
+        return 0.0
 
 
 def _work(jobs, folder, report_dpi, counter, out_path):
@@ -237,7 +287,7 @@ def run_figure_jobs(jobs, folder, report_dpi=None, parallel: bool | None = None)
     except (ValueError, OSError):  # no fork on this system
         counter = None
     if counter is not None:
-        warm_up()  # once, before the fork, instead of once in each process
+        warm_up(tuple({"png"} | {e for j in jobs for e in j.exts}))  # once, before the fork, not in each process
         fd, out_path = tempfile.mkstemp(prefix="probeseq-figures-", suffix=".pkl")
         os.close(fd)
         os.unlink(out_path)

@@ -1,4 +1,17 @@
 """The options of an analysis and its typed result (the content of results.json).
+
+Progress protocol
+-----------------
+Every stage function takes ``progress``, a callable (or None) called as
+``progress(stage, message)`` once when each stage starts (``stage`` a short name such as
+``"decoding"``, ``message`` one line of text); a plain two-argument function is enough.
+A progress object may also have a method ``advance(stage, done, total)``: the long stages then
+report how far they are, ``done`` of ``total`` units of the stage that last started (chunks of
+the fused pass over the ions, EM updates of the decoder on all rods out of its iteration cap),
+``done`` rising to at most ``total``. It is looked up with ``getattr``, so callbacks without it
+keep working, and it may be called often (once per chunk or iteration): it should return at
+once. Stages report through :class:`_Clock` (``clock.stage(name, message)`` and
+``clock.advance(name, done, total)``), never by calling ``progress`` themselves.
 """
 
 from __future__ import annotations
@@ -28,6 +41,9 @@ __all__ = ['AnalysisOptions', 'AnalysisResult']
 MAX_BOOT = 100_000
 
 
+#: ``progress(stage, message)`` as each stage starts; an object that also has
+#: ``advance(stage, done, total)`` is told the fraction done of the long stages (see the
+#: module's "Progress protocol")
 Progress = Optional[Callable[[str, str], None]]
 
 
@@ -226,15 +242,36 @@ class AnalysisResult:
 
 
 class _Clock:
+    """Times the stages (``timings``, s) and reports them to a :data:`Progress` callback.
+
+    Parameters
+    ----------
+    progress : callable(stage, message), optional
+        With an ``advance(stage, done, total)`` method, it is also told the fraction done.
+    """
+
     def __init__(self, progress: Progress):
         self.t0 = time.perf_counter()
         self.timings = {}
         self.progress = progress
+        self._advance = getattr(progress, "advance", None)
 
     def stage(self, name: str, message: str):
+        """Report that stage ``name`` starts; returns a context manager that records its wall time."""
         if self.progress is not None:
             self.progress(name, message)
         return _Timed(self, name)
+
+    @property
+    def reports_fractions(self) -> bool:
+        """Whether the progress callback takes ``advance`` calls (when not, stages may skip counting)."""
+        return self._advance is not None
+
+    def advance(self, name: str, done: int, total: int):
+        """Report ``done`` of ``total`` units (chunks, iterations) of stage ``name`` to
+        ``progress.advance``; nothing when the callback has no such method or ``total`` < 1."""
+        if self._advance is not None and total >= 1:
+            self._advance(name, int(done), int(total))
 
 
 class _Timed:

@@ -14,7 +14,7 @@ from ..exceptions import DataQualityWarning, InputError
 from ..io.ions import IonList, check_position_extent
 from ..lattice.model import Lattice
 from ..lattice.rodcolumns import RodColumns
-from ..ranging.channels import metal_range_shares, metal_visibility
+from ..ranging.channels import metal_visibility
 from .options import AnalysisOptions, Progress, _check_ions, _Clock
 
 if TYPE_CHECKING:  # type names only: these modules are heavy to import
@@ -103,6 +103,8 @@ def count_ions(ions: IonList, metals, lattice: Lattice, *, ranges=None, options:
         Uses ``seed`` (registration, column plan and the per-ion metal draws), ``species`` and the
         registration overrides ``rotation_deg``, ``scale``, ``offset_nm``.
     progress : callable(stage, message), optional
+        With ``advance(stage, done, total)`` it is also told the chunks of the counting pass done
+        (the progress protocol of :mod:`probeseq.pipeline.options`).
 
     Returns
     -------
@@ -131,6 +133,7 @@ def _count_ions(ions, metals, lattice, opts, ranges, clock, sample_ions) -> Coun
         return ((s, x[s:e], y[s:e], z[s:e], m[s:e]) for s, e in bounds)
 
     rr, cols, n_metal, _, _ = _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, 1.0,
+                                             n_blocks=len(bounds),
                                              message=f"ranging, drawing and binning all {n} ions in one pass")
     summary = ions.summary()
     summary["sampled_ions"] = int(len(sample))
@@ -184,16 +187,33 @@ def _same_float(x, y, z):
     return x.astype(dt), y.astype(dt), z.astype(dt)
 
 
-def _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, factor, *, strict: bool = False,
-                   where: str = "", message: str = ""):
-    """Fits on the sample, then the pass over ``blocks()``; returns (rr, cols, n_metal, tally, ext)."""
+def _fit_and_count(sample, metals, lattice, opts, ranges, clock, blocks, factor, *, n_blocks: int = 0,
+                   strict: bool = False, where: str = "", message: str = ""):
+    """Fits on the sample, then the pass over ``blocks()`` (``n_blocks`` of them, reported to the
+    clock as each is done); returns (rr, cols, n_metal, tally, ext)."""
     rr, thin, geom, ev = _fit_on_sample(sample, metals, lattice, opts, ranges, clock)
     with clock.stage("binning", message):
         plan = _start_pass(rr, metals, thin, geom, opts.seed, ev)
         # the kernel puts each metal ion through the geometry's reconstruction correction
-        counts, tally, ext, evidence = _run_pass(plan, None, factor, strict, blocks, where=where)
+        reported = _advancing(blocks, clock, "binning", n_blocks)  # chunks done of n_blocks, to the clock
+        counts, tally, ext, evidence = _run_pass(plan, None, factor, strict, reported, where=where)
         cols, n_metal = _finish_pass(geom, counts, metals, tally, thin, ev, evidence)
     return rr, cols, n_metal, tally, ext
+
+
+def _advancing(blocks, clock, stage: str, n_blocks: int):
+    """``blocks`` (a callable giving an iterator of blocks), reporting ``clock.advance(stage, i,
+    n_blocks)`` once the consumer has finished block ``i`` (asks for the next, or ends); ``blocks``
+    itself when the clock's callback takes no fractions or the count is unknown."""
+    if not clock.reports_fractions or n_blocks < 1:
+        return blocks
+
+    def advancing():
+        for i, block in enumerate(blocks(), 1):
+            yield block
+            clock.advance(stage, min(i, n_blocks), n_blocks)
+
+    return advancing
 
 
 def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
@@ -236,22 +256,14 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
 
 
 def _evidence_table(rr, ca_fit, geom, reg, xyz, range_index, opts):
-    """The soft-evidence increments of the pass (:mod:`probeseq.lattice.evidence`), or None when
-    not asked for. The own ions' lateral width is fitted on the sample's ions of pure metal ranges."""
+    """The soft-evidence increments of the pass (:func:`probeseq.lattice.evidence.run_evidence_table`:
+    per mass bin of the ranges, with the lateral width fitted on the sample's ions of pure metal
+    ranges), or None when not asked for."""
     if not opts.soft_evidence:
         return None
-    from ..lattice.evidence import evidence_table, extras_shares, fit_lateral_spread
+    from ..lattice.evidence import run_evidence_table
 
-    w = np.asarray(ca_fit.metal_weights, float)[:-1]  # (n_ranges, K)
-    pure = np.concatenate([(w >= 0.9).any(axis=1), [False]])[range_index]  # (nearly) one metal
-    d = reg.axis_distance_nm(*xyz)
-    spread = fit_lateral_spread(d[pure], geom.locator)
-    u = extras_shares(w, d, range_index, geom.locator, spread)
-    p = metal_range_shares(rr, ca_fit)  # share of each metal's ions in each range (NaN: no fitted ions)
-    known = np.isfinite(p).all(axis=0)
-    capture = np.where(known, np.nan_to_num(p).sum(axis=0), 1.0)
-    seen = np.where(known, (np.nan_to_num(p) * u).sum(axis=0), 1.0)  # an own ion's evidence, no radial factor
-    return evidence_table(u, capture, seen, geom.locator, spread)
+    return run_evidence_table(rr, ca_fit, reg.axis_distance_nm(*xyz), range_index, geom.locator)
 
 
 def _correct(sample: IonList, sel, reg, lattice, opts):
@@ -408,6 +420,8 @@ def decode_stage(columns: RodColumns, options: AnalysisOptions | None = None, *,
     options : AnalysisOptions, optional
         Uses ``n_starts`` (EM starts), ``seed`` and ``uncertain_below``.
     progress : callable(stage, message), optional
+        With ``advance(stage, done, total)`` it is also told the EM updates on all rods done, out
+        of the iteration cap (the progress protocol of :mod:`probeseq.pipeline.options`).
 
     Returns
     -------
@@ -424,8 +438,10 @@ def _decode_stage(cols, opts, clock):
     from ..decoding.decode import fit_decoder
 
     with clock.stage("decoding", f"fitting the rod model to {cols.n_rods} rods x {cols.n_sites} sites"):
+        # the EM on all rods reports its updates out of the iteration cap (it usually converges sooner)
+        em = (lambda done, total: clock.advance("decoding", done, total)) if clock.reports_fractions else None
         dec = fit_decoder(cols, n_starts=opts.n_starts, random_state=opts.seed,
-                          uncertain_below=opts.uncertain_below)
+                          uncertain_below=opts.uncertain_below, on_iteration=em)
     groups = None
     if not cols.resolvable:
         from ..decoding.groups import analyze_groups
@@ -542,6 +558,8 @@ def count_file(path, metals, lattice: Lattice, *, ranges=None, options: Analysis
     length_unit, position_dataset, mass_dataset, strict
         As for :func:`probeseq.io.readers.read_ions`.
     progress : callable(stage, message), optional
+        With ``advance(stage, done, total)`` it is also told the chunks of the counting pass done
+        (the progress protocol of :mod:`probeseq.pipeline.options`).
     stream_above, chunk_size, sample_ions : int
         As for :func:`analyze_file`.
 
@@ -660,6 +678,7 @@ def _count_stream(path, metals, lattice, opts, ranges, clock, *, length_unit, po
 
         rr, cols, n_metal, tally, ext = _fit_and_count(
             sample, metals, lattice, opts, ranges, clock, blocks, src.factor, strict=strict, where=str(path),
+            n_blocks=len(src.block_bounds(int(chunk_size))),
             message=f"ranging, drawing and binning all {n} ions in chunks of {chunk_size}")
         # the sample was checked on reading; the rows outside it are checked by their extent
         check_position_extent({"x": (float(ext[0]), float(ext[1])), "y": (float(ext[2]), float(ext[3])),

@@ -162,9 +162,11 @@ def _lag_sums(x, m, i, j, lags, probabilities: bool = False):
     sums over sites follow numpy's pairwise summation (:func:`_pairwise_plan`), so they equal
     ``(a * b).sum(axis=1)`` on the masked (n_pairs, n_sites) arrays without building them.
     """
-    i = np.asarray(i, dtype=np.int64)
-    j = np.asarray(j, dtype=np.int64)
-    lags = np.asarray(lags, dtype=np.int64)
+    # contiguous copies of the small index arrays: one compiled kernel for every caller (a column
+    # of a pair table would be a strided view and build a second one, about 1.5 s)
+    i = np.ascontiguousarray(i, dtype=np.int64)
+    j = np.ascontiguousarray(j, dtype=np.int64)
+    lags = np.ascontiguousarray(lags, dtype=np.int64)
     n_sites = x.shape[1]
     out = np.zeros((len(i), len(lags), 5))
     cnt = np.zeros((len(i), len(lags)))
@@ -172,8 +174,48 @@ def _lag_sums(x, m, i, j, lags, probabilities: bool = False):
         plans = [_pairwise_plan(n_sites - abs(int(d))) if abs(int(d)) < n_sites else np.zeros((0, 2), np.int64)
                  for d in lags]
         start = np.concatenate([[0], np.cumsum([len(q) for q in plans])]).astype(np.int64)
-        _lag_sums_kernel(x, m, i, j, lags, bool(probabilities), np.concatenate(plans), start, out, cnt)
+        plan = np.concatenate(plans)
+        # each pair's sums are its own: the pairs are split between threads (the kernel releases
+        # the GIL), with results identical to one thread
+        _in_threads(lambda a, b: _lag_sums_kernel(x, m, i[a:b], j[a:b], lags, bool(probabilities), plan, start,
+                                                  out[a:b], cnt[a:b]), len(i), min_per_thread=256)
     return out, cnt
+
+
+def _stat_threads() -> int:
+    """Threads of the statistics' compiled loops and FFTs: the kernels' thread budget (``--jobs``),
+    at most 2 (more gains little on these memory-bound loops)."""
+    from .. import runtime
+
+    return max(1, min(2, runtime.kernel_threads()))
+
+
+def _in_threads(fn, n: int, min_per_thread: int = 1) -> None:
+    """Call ``fn(a, b)`` on consecutive parts ``[a, b)`` of ``range(n)``, one per thread, the first in
+    this thread; parts have at least ``min_per_thread`` items (fewer items: one call)."""
+    k = max(1, min(_stat_threads(), n // max(1, min_per_thread)))
+    if k == 1:
+        fn(0, n)
+        return
+    import threading
+
+    edges = [n * t // k for t in range(k + 1)]
+    errors = []
+
+    def part(t):
+        try:
+            fn(edges[t], edges[t + 1])
+        except BaseException as e:  # re-raised in the calling thread
+            errors.append(e)
+
+    threads = [threading.Thread(target=part, args=(t,)) for t in range(1, k)]
+    for th in threads:
+        th.start()
+    part(0)
+    for th in threads:
+        th.join()
+    if errors:
+        raise errors[0]
 
 
 def _pairwise_plan(n: int) -> np.ndarray:
@@ -318,9 +360,16 @@ def _corr_from_sums(s):
 
 
 def _rod_ffts(x, m):
-    """Real FFTs along sites of the masked values, their squares and the mask, per rod (float64)."""
+    """Real FFTs along sites of the masked values, their squares and the mask, per rod (float64).
+
+    scipy.fft with the statistics' threads (:func:`_stat_threads`): the same pocketfft transforms as
+    numpy.fft, bit for bit, split over rows."""
+    import scipy.fft
+
+    w = _stat_threads()
     a = np.where(m, np.asarray(x, dtype=np.float64), 0.0)
-    return np.fft.rfft(a, axis=1), np.fft.rfft(a * a, axis=1), np.fft.rfft(m.astype(float), axis=1)
+    return (scipy.fft.rfft(a, axis=1, workers=w), scipy.fft.rfft(a * a, axis=1, workers=w),
+            scipy.fft.rfft(m.astype(float), axis=1, workers=w))
 
 
 def _corrected_from_sums(s):
@@ -379,8 +428,10 @@ def _centred(raw):
 
 def _pair_block_size(n_sites: int) -> int:
     """Neighbour pairs per block of the circular null: about ``_BLOCK_BYTES`` of temporaries."""
-    # per pair, in float64 words of n_sites: 6 circular sums, 6 gathered half spectra and one
-    # cross spectrum (complex, n_sites // 2 + 1 each), and for up to 2 rods 3 spectra and 3 inputs
+    # per pair, in float64 words of n_sites: 6 circular sums, 6 gathered half spectra, one cross
+    # spectrum (complex, n_sites // 2 + 1 each), and for up to 2 rods 3 spectra and 3 inputs; the
+    # other 5 cross spectra (one irfft call for all six) are not counted, so the block's
+    # temporaries are about 1.25 x _BLOCK_BYTES (smaller blocks transform each rod more often)
     per_pair = 8 * n_sites * (6 + 6 + 1 + 2 * 3 + 2 * 3)
     return int(max(8, min(4096, _BLOCK_BYTES // max(per_pair, 1))))
 
@@ -402,14 +453,16 @@ def _shift_null(x, m, i, j, lags, n_null, tmin, rng):
     for c0 in range(0, n_null, chunk):
         c1 = min(n_null, c0 + chunk)
         shifts[:, c0:c1] = rng.integers(tmin, n - tmin + 1, size=(c1 - c0, p, 1))[:, :, 0].T
+    import scipy.fft
+
+    workers = _stat_threads()
     acc = np.zeros((n_null, len(lags), 3))
     block = _pair_block_size(n)
     nf = n // 2 + 1
     bmax = min(block, p)
-    raw = np.empty((6, bmax, n))
     spec_i = np.empty((3, bmax, nf), dtype=np.complex128)  # conj spectra of the first rods
     spec_j = np.empty((3, bmax, nf), dtype=np.complex128)  # spectra of the second rods
-    cross = np.empty((bmax, nf), dtype=np.complex128)
+    cross = np.empty((6, bmax, nf), dtype=np.complex128)
     for b0 in range(0, p, block):
         b1 = min(p, b0 + block)
         nb = b1 - b0
@@ -421,9 +474,9 @@ def _shift_null(x, m, i, j, lags, n_null, tmin, rng):
             np.take(f, jj, axis=0, out=spec_j[c, :nb])
         # the six sums of _circular_raw (N, Sx, Sy, Sxx, Syy, Sxy) for every shift of each pair
         for c, (u, v) in enumerate(((2, 2), (0, 2), (2, 0), (1, 2), (2, 1), (0, 0))):
-            np.multiply(spec_i[u, :nb], spec_j[v, :nb], out=cross[:nb])
-            np.fft.irfft(cross[:nb], n=n, axis=1, out=raw[c, :nb])
-        np.rint(raw[0, :nb], out=raw[0, :nb])
+            np.multiply(spec_i[u, :nb], spec_j[v, :nb], out=cross[c, :nb])
+        raw = scipy.fft.irfft(cross[:, :nb], n=n, axis=2, workers=workers)  # (6, nb, n), one call
+        np.rint(raw[0], out=raw[0])
         _null_accumulate(raw, nb, shifts[b0:b1], lags, acc)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)

@@ -167,17 +167,31 @@ def resolve_run(source, *, metals=None, lattice=None, a: float | None = None, re
 
 
 class _RunLog:
-    """Progress callback that keeps every line for ``log.txt`` and passes each on to ``forward``."""
+    """Progress callback that keeps every line for ``log.txt`` and passes each on to ``forward``.
 
-    def __init__(self, forward: Optional[Callable[[str, str], None]] = None):
+    ``on_stage`` maps a stage name to a callable run (once) when that stage starts.
+    """
+
+    def __init__(self, forward: Optional[Callable[[str, str], None]] = None, on_stage: dict | None = None):
         self.t0 = time.perf_counter()
         self.lines = []
         self.forward = forward
+        self.on_stage = dict(on_stage or {})
 
     def __call__(self, stage: str, message: str):
         self.lines.append(f"[{time.perf_counter() - self.t0:7.1f} s] {stage}: {message}")
         if self.forward is not None:
             self.forward(stage, message)
+        hook = self.on_stage.pop(stage, None)
+        if hook is not None:
+            hook()
+
+    def advance(self, stage: str, done: int, total: int):
+        """Pass the fraction done on to ``forward.advance``, when it has one; ``log.txt`` keeps
+        only the stage lines (the progress protocol of :mod:`probeseq.pipeline.options`)."""
+        fwd = getattr(self.forward, "advance", None)
+        if fwd is not None:
+            fwd(stage, done, total)
 
 
 @dataclass(frozen=True)
@@ -203,7 +217,7 @@ def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a:
                 length_unit: str | None = None, position_dataset: str | None = None,
                 mass_dataset: str | None = None, strict: bool = False, allow_outside: bool = False,
                 force: bool = False, progress: Optional[Callable[[str, str], None]] = None,
-                command_line: str | None = None) -> RunAnalysis:
+                command_line: str | None = None, tracks_table: str = "auto") -> RunAnalysis:
     """Analyse one ion file or run folder and write its output folder (complete or not at all).
 
     The output folder is checked before any work (:func:`probeseq.outputs.folder.check_outdir`: it may
@@ -233,6 +247,9 @@ def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a:
         ``progress(stage, message)`` as each stage starts.
     command_line : str, optional
         The command that asked for this analysis (recorded in the provenance and the manifest).
+    tracks_table : {"auto", "csv", "hdf5", "both"}
+        How the tracks table is written (:func:`probeseq.pipeline.analysis.write_analysis`): ``auto``
+        gives tracks.csv up to 2,000,000 decoded sites and tracks.h5 above.
 
     Returns
     -------
@@ -252,7 +269,15 @@ def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a:
                       ranges=ranges, allow_outside=allow_outside)
     outdir = Path(out) if out is not None else Path(f"analysis_{run.safe_name}")
     check_outdir(outdir, force, run.inputs)
-    log = _RunLog(progress)
+    from ..outputs.results import tracks_table_files
+
+    tracks_table_files(tracks_table, 0)  # a bad choice is one error before any work
+    from ..outputs.figurejobs import prewarm
+
+    # matplotlib's one-time costs (about 1 s) paid in a thread from the binning on, while the compiled
+    # kernels (which release the GIL) work; not earlier, where it would slow the start-up and the fits
+    warm = []
+    log = _RunLog(progress, on_stage={"binning": lambda: warm.append(prewarm())})
     rs = RangeSet.from_toml(run.ranges) if run.ranges is not None else None
     prov = {"command_line": command_line, "sample": run.sample, "run_name": run.name,
             "ranges_file": None if run.ranges is None else str(run.ranges)}
@@ -264,7 +289,10 @@ def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a:
         (folder / "log.txt").write_text("\n".join(log.lines + [""] + summary_lines(res)) + "\n", encoding="utf-8")
 
     log("writing", f"{outdir}")
-    write_analysis(res, outdir, force=force, extra=extra, progress=log, inputs=list(run.inputs))
+    for t in warm:
+        t.join()  # no fork (the table child, the figures' child) while the thread holds matplotlib's locks
+    write_analysis(res, outdir, force=force, extra=extra, progress=log, inputs=list(run.inputs),
+                   tracks_table=tracks_table)
     return RunAnalysis(result=res, outdir=outdir, source=run)
 
 
@@ -433,7 +461,8 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
                   mass_dataset: str | None = None, strict: bool = False, allow_outside: bool = False,
                   force: bool = False, workers: int | None = None, scheduler: str | None = None,
                   progress: Optional[Callable[[BatchOutcome], None]] = None,
-                  started: Optional[Callable] = None, command_line: str | None = None) -> list:
+                  started: Optional[Callable] = None, command_line: str | None = None,
+                  tracks_table: str = "auto") -> list:
     """Analyse every run folder of ``folder`` into ``out/<run folder name>``, one task per run.
 
     Each run goes through :func:`analyze_run` with the same options, which take precedence over
@@ -450,7 +479,7 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
         Folder whose sub-folders holding ``run.toml`` are the runs.
     out : str or Path
         Output folder of the batch.
-    options, metals, lattice, a, repeat, sites_per_repeat, ranges, length_unit, position_dataset, mass_dataset, strict, allow_outside, force, command_line
+    options, metals, lattice, a, repeat, sites_per_repeat, ranges, length_unit, position_dataset, mass_dataset, strict, allow_outside, force, command_line, tracks_table
         As for :func:`analyze_run`, for every run.
     workers : int, optional
         Local worker processes (at most the number of processors and of runs; ignored with a
@@ -497,6 +526,9 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
     out = Path(out)
     check_outdir(out, force, [src, *subs, *([Path(ranges)] if ranges is not None else []), *_lattice_file(lattice)])
     # one error before any work, not one failure per run
+    from ..outputs.results import tracks_table_files
+
+    tracks_table_files(tracks_table, 0)
     metals = _metal_tuple(metals)
     if lattice is not None:
         _build_lattice(lattice, a, repeat, sites_per_repeat, "--lattice")
@@ -516,7 +548,7 @@ def analyze_batch(folder, out, *, options=None, metals=None, lattice=None, a: fl
     kwargs = dict(options=options or AnalysisOptions(), metals=metals, lattice=lat, a=a,
                   repeat=repeat, sites_per_repeat=sites_per_repeat, ranges=sent(ranges), length_unit=length_unit,
                   position_dataset=position_dataset, mass_dataset=mass_dataset, strict=strict,
-                  allow_outside=allow_outside, force=force, command_line=command_line)
+                  allow_outside=allow_outside, force=force, command_line=command_line, tracks_table=tracks_table)
     jobs = [(sent(sub), sent(out / sub.name), kwargs) for sub in subs]
 
     def lost(i, reason):
