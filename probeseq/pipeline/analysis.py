@@ -232,7 +232,8 @@ def _analyze_stream(path, metals, lattice, opts, ranges, progress, provenance, t
     return replace(res, ions_summary={**res.ions_summary, "sha256": sha["hex"]}), t_wait
 
 
-def write_figures(result: AnalysisResult, folder, progress: Progress = None, failures: list | None = None) -> dict:
+def write_figures(result: AnalysisResult, folder, progress: Progress = None, failures: list | None = None,
+                  parallel: bool | None = None) -> dict:
     """Save the figures of an analysis in ``folder`` (vector and PNG) and return the report's PNGs by name.
 
     The figures are drawn in this process and a forked child at once
@@ -246,7 +247,8 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None, fai
     refitted with the ions' distance to the rod axes), ``reconstruction.png/.svg`` (the depth
     scale, plane curvature, magnification and detection efficiency calibrated on the lattice). A figure that cannot be drawn is skipped with a warning.
     Its one-line message is also appended to ``failures`` when a list is given (``write_analysis``
-    adds them to the warnings of ``results.json`` and the report).
+    adds them to the warnings of ``results.json`` and the report). ``parallel`` as in
+    :func:`probeseq.outputs.figurejobs.run_figure_jobs` (default: judged now).
     """
     from ..outputs.figurejobs import FigureJob, run_figure_jobs
     from ..outputs.figures import plot_group_variance, plot_rod_to_rod, plot_run_lengths
@@ -290,7 +292,7 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None, fai
         jobs.append(FigureJob("density", lambda: write_density_figure(result.figure_ions, result.ranging,
                                                                       result.columns, folder / "density.png")))
     figs = {}
-    for name, (status, value) in run_figure_jobs(jobs, folder, report_dpi).items():
+    for name, (status, value) in run_figure_jobs(jobs, folder, report_dpi, parallel=parallel).items():
         if status == "failed":
             warnings.warn(value, DataQualityWarning, stacklevel=2)
             if failures is not None:
@@ -346,9 +348,14 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
     command = result.provenance.get("command_line")
     with staged_outdir(outdir, force=force, inputs=inputs, command=command) as st:
         write_json(st / "results.json", _results_dict(result, files))
+        # whether the figures go to two processes is judged before the table child starts (which
+        # would otherwise count as the other CPU's load)
+        from ..outputs.figurejobs import two_processes_pay
+
+        parallel = two_processes_pay(runtime.jobs()) if report else False
         tables = runtime.Background(_write_child_files, result, st, files)
         try:
-            _write_rest(result, st, report, progress, extra, files)
+            _write_rest(result, st, report, progress, extra, files, parallel)
             tables.join(", ".join(files + ("runs.csv", "columns.h5", "decoded.h5")))
         finally:
             tables.kill()
@@ -378,7 +385,7 @@ def _write_child_files(result, st, files):
     save_decoded(result.decoded, st / "decoded.h5")
 
 
-def _write_rest(result, st, report, progress, extra, files):
+def _write_rest(result, st, report, progress, extra, files, parallel=None):
     """Everything of an output folder but what the child writes meanwhile (:func:`_write_child_files`)."""
     result.ranging.to_toml(st / "ranges.toml")
     _write_replicates(result.statistics, st / "bootstrap.h5")
@@ -387,7 +394,7 @@ def _write_rest(result, st, report, progress, extra, files):
         from ..outputs.report import write_report
 
         failures = []
-        figs = write_figures(result, st / "figures", progress, failures)
+        figs = write_figures(result, st / "figures", progress, failures, parallel)
         if failures:  # one warnings list: results.json and the report both carry the figures not drawn
             result = replace(result, warnings=tuple(dict.fromkeys(tuple(result.warnings) + tuple(failures))))
             write_json(st / "results.json", _results_dict(result, files))
