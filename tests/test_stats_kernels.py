@@ -238,9 +238,12 @@ def test_pairwise_plan_covers_every_value_once():
         assert (plan[:, 0] < 0).sum() == len(pieces) - 1
 
 
-def test_blocked_shift_null_matches_all_pairs_at_once(rng, monkeypatch):
-    # ~2000 pairs: the offsets are drawn in several replicate chunks, as in the unblocked form
-    n_side, n_sites = 32, 60
+@pytest.mark.parametrize("n_sites", [60, 59, 74])
+def test_blocked_shift_null_matches_all_pairs_at_once(rng, monkeypatch, n_sites):
+    # ~2000 pairs: the offsets are drawn in several replicate chunks, as in the unblocked form;
+    # 60 sites is a fast FFT length, 59 (prime) and 74 (2 x 37) take the padded linear sums folded
+    # back to circular ones
+    n_side = 32
     x = rng.random((n_side * n_side, n_sites))
     m = rng.random(x.shape) > 0.1
     nb = grid_pairs(n_side)[:-1]
@@ -253,6 +256,9 @@ def test_blocked_shift_null_matches_all_pairs_at_once(rng, monkeypatch):
     # the smallest blocks (8 pairs, a partial last block) give the same answer
     monkeypatch.setattr(agreement_mod, "_BLOCK_BYTES", 1)
     assert agreement_mod._pair_block_size(n_sites) == 8 and len(nb) % 8
+    import scipy.fft
+
+    assert (scipy.fft.next_fast_len(n_sites, real=True) == n_sites) == (n_sites == 60)
     np.testing.assert_allclose(agreement_mod._shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5)), got,
                                rtol=RTOL, atol=0)
 
