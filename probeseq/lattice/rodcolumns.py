@@ -193,7 +193,7 @@ def save_columns(columns: RodColumns, path) -> None:
 
     import h5py
 
-    from ..utils.marks import to_jsonable
+    from ..utils.marks import h5_compression, to_jsonable
 
     with h5py.File(path, "w") as f:
         g = f.create_group("columns")
@@ -214,7 +214,7 @@ def save_columns(columns: RodColumns, path) -> None:
                                  ("evidence", columns.evidence, "soft evidence per site (see probeseq.lattice.evidence)")):
             if data is None:
                 continue
-            d = g.create_dataset(name, data=data, **({"compression": "gzip", "compression_opts": 1} if data.size > 4096 else {}))
+            d = g.create_dataset(name, data=data, **h5_compression(int(data.size)))
             d.attrs["unit"] = unit
 
 

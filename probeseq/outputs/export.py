@@ -312,7 +312,7 @@ def _figure_rods(columns, sel, rods_given: bool, windowed: bool, max_rods: int):
 def _write_hdf5(of: OutputFolder, sel, path):
     import h5py
 
-    from ..utils.marks import MARK, to_jsonable
+    from ..utils.marks import MARK, h5_compression, to_jsonable
 
     col, dec = of.columns, of.decoded
     rods = np.flatnonzero(sel.any(1))
@@ -327,7 +327,7 @@ def _write_hdf5(of: OutputFolder, sel, path):
         f.attrs["written_by"] = MARK
 
         def put(name, data, unit, desc):
-            d = f.create_dataset(name, data=data, **({"compression": "gzip", "compression_opts": 1} if np.size(data) > 4096 else {}))
+            d = f.create_dataset(name, data=data, **h5_compression(int(np.size(data))))
             d.attrs["unit"] = unit
             d.attrs["description"] = desc
 

@@ -203,6 +203,8 @@ def save_decoded(decoded, path):
     """Viterbi paths, posteriors, mask and uncertainty flags of a decoding (HDF5 ``/decoded``)."""
     import h5py
 
+    from ..utils.marks import h5_compression
+
     with h5py.File(path, "w") as f:
         g = f.create_group("decoded")
         g.attrs["metals"] = json.dumps(list(decoded.metals))
@@ -213,7 +215,7 @@ def save_decoded(decoded, path):
                                  ("uncertain", np.ascontiguousarray(decoded.uncertain).view(np.uint8), "1 = best posterior below uncertain_below"),
                                  ("stationary", np.asarray(decoded.stationary, float), "probability"),
                                  ("transmat", np.asarray(decoded.transmat, float), "probability")):
-            d = g.create_dataset(name, data=data, **({"compression": "gzip", "compression_opts": 1} if data.size > 4096 else {}))
+            d = g.create_dataset(name, data=data, **h5_compression(int(data.size)))
             d.attrs["unit"] = unit
 
 

@@ -353,12 +353,16 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
         from ..outputs.figurejobs import two_processes_pay
 
         parallel = two_processes_pay(runtime.jobs()) if report else False
-        tables = runtime.Background(_write_child_files, result, st, files)
+        # two forked children write the tables and the arrays while this process draws the figures
+        children = [(runtime.Background(_write_tables, result, st, files), ", ".join(files + ("runs.csv",))),
+                    (runtime.Background(_write_arrays, result, st), "columns.h5, decoded.h5")]
         try:
             _write_rest(result, st, report, progress, extra, files, parallel)
-            tables.join(", ".join(files + ("runs.csv", "columns.h5", "decoded.h5")))
+            for child, what in children:
+                child.join(what)
         finally:
-            tables.kill()
+            for child, _ in children:
+                child.kill()
     return Path(outdir)
 
 
@@ -369,11 +373,10 @@ def _results_dict(result, files) -> dict:
     return d
 
 
-def _write_child_files(result, st, files):
-    """The tracks table, runs.csv, columns.h5 and decoded.h5, in a forked child while this process
-    draws the figures (the compiled table formatter is loaded there once, about 1 s in a fresh
-    process, and the compressed HDF5 writes take about 1.5 s at 10^7 ions)."""
-    from ..lattice.rodcolumns import save_columns
+def _write_tables(result, st, files):
+    """The tracks table and runs.csv, in a forked child while this process draws the figures (the
+    compiled table formatter is loaded there once, about 1 s in a fresh process; the tracks table
+    of a 10^8-ion run takes about 14 s)."""
     from ..outputs.results import write_tracks_h5
 
     if "tracks.csv" in files:
@@ -381,12 +384,19 @@ def _write_child_files(result, st, files):
     if "tracks.h5" in files:
         write_tracks_h5(st / "tracks.h5", result.columns, result.decoded)
     _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS, RUNS_FORMATS)
+
+
+def _write_arrays(result, st):
+    """columns.h5 and decoded.h5, in a second forked child (about 1.5 s at 10^7 ions)."""
+    from ..lattice.rodcolumns import save_columns
+
     save_columns(result.columns, st / "columns.h5")
     save_decoded(result.decoded, st / "decoded.h5")
 
 
 def _write_rest(result, st, report, progress, extra, files, parallel=None):
-    """Everything of an output folder but what the child writes meanwhile (:func:`_write_child_files`)."""
+    """Everything of an output folder but what the children write meanwhile (:func:`_write_tables`,
+    :func:`_write_arrays`)."""
     result.ranging.to_toml(st / "ranges.toml")
     _write_replicates(result.statistics, st / "bootstrap.h5")
     if report:
