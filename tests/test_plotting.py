@@ -338,3 +338,34 @@ def test_group_variance_figure(analysed):
     assert ax.get_xlabel() == "rods per group n"
     with pytest.raises(InputError, match="no groups-of-rods result"):
         plot_group_variance(None)
+
+
+# ---------------------------------------------------------------------------------- text without mathtext
+def test_ions_and_powers_of_ten_are_plain_unicode_text():
+    from probeseq.utils.textformat import _plain_tick, typeset_ion
+
+    assert typeset_ion("C2H2", 1) == "C\u2082H\u2082\u207a"
+    assert typeset_ion("Zn", 2) == "Zn\u00b2\u207a"
+    assert typeset_ion("H2O", 1) == "H\u2082O\u207a"
+    assert _plain_tick(r"$\mathdefault{10^{-3}}$") == "10\u207b\u00b3"
+    assert _plain_tick(r"$\mathdefault{2\times10^{1}}$") == "2\u00d710\u00b9"
+    assert _plain_tick(r"$\mathdefault{10^{0}}$") == "10\u2070"
+    assert _plain_tick("") == "" and _plain_tick("0.5") == "0.5"
+
+
+def test_log_axes_and_spectrum_labels_need_no_mathtext(analysed, monkeypatch, tmp_path):
+    # every mathtext string costs ~13 ms to parse per format and size: the figures use none
+    import matplotlib.mathtext
+
+    from probeseq.ranging.plot import plot_ranging
+
+    def refuse(self, s, *a, **k):
+        raise AssertionError(f"mathtext parsed: {s!r}")
+
+    monkeypatch.setattr(matplotlib.mathtext.MathTextParser, "parse", refuse)
+    fig = plot_run_lengths(analysed.statistics)
+    fig.savefig(tmp_path / "runs.png", dpi=50)
+    ticks = [t.get_text() for ax in fig.axes for t in ax.get_yticklabels()]
+    assert any(t.startswith("10") and t != "10" for t in ticks), ticks
+    plot_ranging(analysed.ranging, tmp_path / "spectrum")
+    assert (tmp_path / "spectrum.png").stat().st_size > 0

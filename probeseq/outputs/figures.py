@@ -31,6 +31,7 @@ import numpy as np
 
 from ..exceptions import InputError
 from ..utils.palette import EMPTY, METAL_COLOURS, OTHER, metal_colour
+from ..utils.textformat import plain_log_ticks
 
 __all__ = ['SIZE_PRESETS_MM', 'FIGURE_FORMATS', 'CONFIDENCE_LEVELS', 'PRIOR_TOLERANCE', 'figure_width_in', 'plot_run_lengths', 'plot_rod_to_rod', 'plot_group_variance', 'save_figure']
 
@@ -221,6 +222,7 @@ def plot_run_lengths(statistics, path=None, *, size="two-column", dpi=300, max_l
                 q = law[0]
                 ax.plot(grid, q ** grid, style, color=col, linewidth=1.0, label=lab)
         ax.set_yscale("log")
+        plain_log_ticks(ax.yaxis)
         pos = km[keep]
         floor = max(float(pos.min()) / 3.0 if pos.size else 1e-3, 1e-4)
         ax.set_ylim(floor, 1.5)
@@ -356,6 +358,7 @@ def plot_group_variance(groups, path=None, *, size="one-column", dpi=300):
                 label=f"fit \u03c3\u00b2(\u03c1 + (1\u2212\u03c1)/n), \u03c1 = {rho:.2f}")
     ax.set_xscale("log")
     ax.set_yscale("log")
+    plain_log_ticks(ax.yaxis)
     ax.set_xticks(n)
     ax.set_xticklabels([f"{int(x)}" for x in n])
     ax.minorticks_off()

@@ -8,25 +8,18 @@ here only, and figures are drawn on the Agg canvas (no display needed).
 
 from __future__ import annotations
 
-import re
 from pathlib import Path
 
 import numpy as np
 
 from ..utils.palette import OTHER, metal_colour
+from ..utils.textformat import plain_log_ticks, typeset_ion
 
-__all__ = ['plot_ranging', 'plot_spectrum', 'place_peak_labels', 'save_figure', 'mathtext_ion', 'OTHER_ALPHA']
-
-def mathtext_ion(formula: str, charge: int) -> str:
-    """Ion label for matplotlib mathtext: ``('C2H2', 1) -> '$\\mathrm{C_{2}H_{2}}^{+}$'``."""
-    body = re.sub(r"(\d+)", r"_{\1}", formula)
-    sup = "+" if charge == 1 else f"{charge}+"
-    return f"$\\mathrm{{{body}}}^{{{sup}}}$"
-
+__all__ = ['plot_ranging', 'plot_spectrum', 'place_peak_labels', 'save_figure', 'OTHER_ALPHA']
 
 def _range_label(r, min_share=0.05):
     parts = [(f, z) for (f, z), p in r.species_shares() if p >= min_share] or [(r.formula, r.charge)]
-    return "/".join(mathtext_ion(f, z) for f, z in parts)
+    return "/".join(typeset_ion(f, z) for f, z in parts)
 
 
 #: opacity of the bands of non-metal ("other") ranges; higher than the metals' 0.35 because grey is pale
@@ -162,6 +155,7 @@ def plot_spectrum(spectrum, ranges=None, metals=(), *, label_at=None, unmatched_
     e, c = spectrum.edges_da, spectrum.counts
     _stairs(ax, c, e, color="black", linewidth=0.6)
     ax.set_yscale("log")
+    plain_log_ticks(ax.yaxis)
     top = max(float(c.max()), 1.0)
     ax.set_ylim(0.5, top * 8)
     # a little room on the left so the first peak's label clears the axis
@@ -265,8 +259,6 @@ def plot_overlaps(result, path=None, *, max_panels: int = 6):
 
     import matplotlib.pyplot as plt
 
-    from .isotopes import ion_label
-
     ref = sorted((d for d in result.overlap_refinement if d.get("used")), key=lambda d: -d["ions"])[:max_panels]
     if not ref or result.fit_rows is None:
         return None
@@ -287,11 +279,12 @@ def plot_overlaps(result, path=None, *, max_panels: int = 6):
         j = int(np.argmin(np.abs(lows - lo)))
         mu = A[j] * result.amounts
         order = [s for s in np.argsort(mu)[::-1] if mu[s] > 0.01 * max(mu.sum(), 1e-12)][:4]
-        lines = [f"{ion_label(*result.species[s])}: {mu[s]:.0f} ions" for s in order]
+        lines = [f"{typeset_ion(*result.species[s])}: {mu[s]:.0f} ions" for s in order]
         lines.append(f"metal share {d['metal_share_space']:.2f} \u00b1 {d['metal_share_space_err']:.2f} (space)")
         lines.append(f"spectrum alone {d['metal_share_spectrum']:.2f}")
         ax.text(0.02, 0.98, "\n".join(lines), transform=ax.transAxes, va="top", fontsize=6)
         ax.set_yscale("log")
+        plain_log_ticks(ax.yaxis)
         ax.set_xlabel("mass-to-charge (Da)", fontsize=7)
         ax.tick_params(labelsize=6)
     for ax in list(axes.flat)[n:]:

@@ -9,13 +9,18 @@
   underflows, as ``"< 1e-300"``.
 * **Intervals as "low to high"**, which stays readable when a bound is negative
   (``"-0.02 to -0.01"``, never ``"-0.02--0.01"``).
+* **Ions and powers of ten in figures as plain Unicode text** (``"C₂H₂⁺"``, ``"10⁻³"``), not
+  matplotlib mathtext: every mathtext string is parsed once per figure format and size, about
+  13 ms each, which was a sixth of the figures' time (measured on a 10^7-ion run's figures).
 """
 
 from __future__ import annotations
 
 import math
+import re
 
-__all__ = ['ANALYTIC_P_FLOOR', 'p_floor', 'format_p', 'p_phrase', 'format_interval']
+__all__ = ['ANALYTIC_P_FLOOR', 'p_floor', 'format_p', 'p_phrase', 'format_interval', 'superscript',
+           'subscript', 'typeset_ion', 'plain_log_ticks']
 
 #: analytic p-values below this are printed as "< 1e-300" (double precision underflows near here)
 ANALYTIC_P_FLOOR = 1e-300
@@ -113,3 +118,64 @@ def format_interval(low, high, fmt=None, missing: str = "n/a") -> str:
         return missing
     f = fmt or (lambda v: f"{float(v):.3g}")
     return f"{f(low)} to {f(high)}"
+
+
+_SUP = str.maketrans("0123456789+-=()n", "\u2070\u00b9\u00b2\u00b3\u2074\u2075\u2076\u2077\u2078\u2079"
+                                       "\u207a\u207b\u207c\u207d\u207e\u207f")
+_SUB = str.maketrans("0123456789+-=()", "\u2080\u2081\u2082\u2083\u2084\u2085\u2086\u2087\u2088\u2089"
+                                       "\u208a\u208b\u208c\u208d\u208e")
+
+
+def superscript(text: str) -> str:
+    """Digits, signs and brackets as Unicode superscripts: ``"-3" -> "⁻³"``, ``"2+" -> "²⁺"``
+    (other characters are kept as they are)."""
+    return str(text).translate(_SUP)
+
+
+def subscript(text: str) -> str:
+    """Digits, signs and brackets as Unicode subscripts: ``"2" -> "₂"``."""
+    return str(text).translate(_SUB)
+
+
+def typeset_ion(formula: str, charge: int) -> str:
+    """An ion as typeset plain text for figures: ``("C2H2", 1) -> "C₂H₂⁺"``, ``("Zn", 2) -> "Zn²⁺"``
+    (the label in files and messages is ``probeseq.ranging.isotopes.ion_label``, ``"Zn++"``).
+
+    The counts of atoms in ``formula`` become subscripts and the charge state a superscript
+    (``+`` for a single charge, ``2+`` for a double one, as chemists write it).
+    """
+    body = re.sub(r"\d+", lambda m: subscript(m.group(0)), str(formula))
+    return body + superscript("+" if int(charge) == 1 else f"{int(charge)}+")
+
+
+_MATH_POWER = re.compile(r"^\$\\mathdefault\{(?:(?P<m>[-\d.]+)\\times\s*)?(?P<b>\d+)\^\{(?P<e>[-\d]+)\}\}\$$")
+_MATH_PLAIN = re.compile(r"^\$\\mathdefault\{(?P<t>[^${}\\]*)\}\$$")
+
+
+def _plain_tick(label: str) -> str:
+    """A log-axis tick label of matplotlib's scientific formatter as plain text
+    (``"$\\mathdefault{10^{-3}}$" -> "10⁻³"``, ``"$\\mathdefault{2\\times10^{1}}$" -> "2×10¹"``);
+    a label of another form is returned unchanged."""
+    m = _MATH_POWER.match(label)
+    if m:
+        lead = f"{m.group('m')}\u00d7" if m.group("m") else ""
+        return f"{lead}{m.group('b')}{superscript(m.group('e'))}"
+    m = _MATH_PLAIN.match(label)
+    return m.group("t") if m else label
+
+
+def plain_log_ticks(axis) -> None:
+    """Label the ticks of a logarithmic matplotlib axis (``ax.xaxis`` or ``ax.yaxis``, after
+    ``set_xscale("log")``) as plain text (``10²``, ``2×10¹``) instead of mathtext: the same ticks
+    and labels as matplotlib's default log formatter, written without the mathtext parser."""
+    from matplotlib.ticker import LogFormatterSciNotation
+
+    class _PlainLogFormatter(LogFormatterSciNotation):
+        def __call__(self, x, pos=None):
+            return _plain_tick(super().__call__(x, pos))
+
+    major, minor = axis.get_major_formatter(), axis.get_minor_formatter()
+    axis.set_major_formatter(_PlainLogFormatter(base=getattr(major, "_base", 10.0),
+                                                labelOnlyBase=getattr(major, "labelOnlyBase", True)))
+    axis.set_minor_formatter(_PlainLogFormatter(base=getattr(minor, "_base", 10.0),
+                                                labelOnlyBase=getattr(minor, "labelOnlyBase", False)))
