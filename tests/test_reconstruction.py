@@ -134,6 +134,43 @@ def test_correction_round_trip_and_record():
     np.testing.assert_array_equal(ident.apply(x, y, z)[2], z)
 
 
+def _to_file_reference(corr, xc, yc, zc, n_iter):
+    """The inverse map written with np.interp (linear extrapolation at both ends), numpy only."""
+    def lerp(v, xp, fp):
+        out = np.interp(v, xp, fp)
+        lo, hi = v < xp[0], v > xp[-1]
+        out[lo] = fp[0] + (v[lo] - xp[0]) * (fp[1] - fp[0]) / (xp[1] - xp[0])
+        out[hi] = fp[-1] + (v[hi] - xp[-1]) * (fp[-1] - fp[-2]) / (xp[-1] - xp[-2])
+        return out
+
+    g = corr.grid_z_nm
+    w = lerp(zc, corr.depth_nm, g)
+    zf = w.copy()
+    for _ in range(n_iter):
+        zf = w + corr.curvature_per_nm * ((xc - lerp(zf, g, corr.axis_nm[:, 0])) ** 2
+                                          + (yc - lerp(zf, g, corr.axis_nm[:, 1])) ** 2)
+    m = lerp(zf, g, corr.magnification)
+    return (xc - lerp(zf, g, corr.shift_nm[:, 0])) * m, (yc - lerp(zf, g, corr.shift_nm[:, 1])) * m, zf
+
+
+def test_inverse_map_matches_a_numpy_reference_inside_and_beyond_the_tables():
+    g = np.linspace(-3, 25, 57)
+    corr = ReconstructionCorrection(grid_z_nm=g, depth_nm=g / 0.97 + 0.002 * (g + 3) ** 2,
+                                    magnification=1 + 0.004 * np.sin(g / 4),
+                                    shift_nm=np.column_stack([0.02 * g, -0.01 * g + 0.003 * g ** 1.0]),
+                                    axis_nm=np.column_stack([0.3 + 0.01 * g, -0.2 + 0 * g]), curvature_per_nm=-0.004)
+    rng = np.random.default_rng(7)
+    # calibrated depths below, inside and above the table (both extrapolations), and table nodes
+    zc = np.concatenate([rng.uniform(-12, 45, 3000), corr.depth_nm])
+    xc, yc = rng.uniform(-9, 9, zc.size), rng.uniform(-9, 9, zc.size)
+    for n_iter in (0, 1, 4):
+        got = corr.to_file(xc, yc, zc, n_iter=n_iter)
+        want = _to_file_reference(corr, xc, yc, zc, n_iter)
+        np.testing.assert_allclose(np.column_stack(got), np.column_stack(want), rtol=1e-12, atol=1e-12)
+    # NaN stays NaN
+    assert np.isnan(corr.to_file(np.array([0.0]), np.array([0.0]), np.array([np.nan]))[2][0])
+
+
 def test_bad_tables_are_refused():
     g = np.linspace(0, 10, 11)
     with pytest.raises(InputError, match="increase"):

@@ -136,22 +136,19 @@ class ReconstructionCorrection:
         """File positions of calibrated positions (the inverse of :meth:`apply`), nm, float64.
 
         The depth map is inverted by interpolation on its tables and the curvature and
-        lateral terms by a few fixed-point steps (they change slowly with depth).
+        lateral terms by a few fixed-point steps (they change slowly with depth). One compiled
+        pass over the points (:func:`_to_file_kernel`): about 12 table look-ups per point, where
+        twelve ``np.interp`` calls over all of them took 13 s for the 4e7 sites of a 10^8-ion run.
         """
-        xc, yc, zc = (np.asarray(a, float) for a in (x, y, z))
+        xc, yc, zc = (np.ascontiguousarray(np.asarray(a, float).ravel()) for a in (x, y, z))
         if self.is_identity:
             return xc.copy(), yc.copy(), zc.copy()
-        g, t = self.grid_z_nm, self.depth_nm
-        w = _interp_extrap(zc, t, g)  # T^-1
-        zf = w.copy()
-        for _ in range(n_iter):
-            ax = _interp_extrap(zf, g, self.axis_nm[:, 0])
-            ay = _interp_extrap(zf, g, self.axis_nm[:, 1])
-            zf = w + self.curvature_per_nm * ((xc - ax) ** 2 + (yc - ay) ** 2)
-        m = _interp_extrap(zf, g, self.magnification)
-        xf = (xc - _interp_extrap(zf, g, self.shift_nm[:, 0])) * m
-        yf = (yc - _interp_extrap(zf, g, self.shift_nm[:, 1])) * m
-        return xf, yf, zf
+        out = tuple(np.empty(xc.shape) for _ in range(3))
+        z0, inv_h, depth, mag, shift, axis, kappa = self._tables()
+        _to_file_kernel(xc, yc, zc, out[0], out[1], out[2], z0, inv_h, np.ascontiguousarray(self.grid_z_nm, float),
+                        np.ascontiguousarray(depth, float), np.ascontiguousarray(mag, float), shift, axis,
+                        float(kappa), int(n_iter))
+        return out
 
     # ------------------------------------------------------------ records
     def to_dict(self) -> dict:
@@ -179,18 +176,6 @@ class ReconstructionCorrection:
                        report={k: v for k, v in d.items() if k != "tables"})
         except (KeyError, TypeError, ValueError) as exc:
             raise InputError(f"reconstruction correction: malformed record ({exc})") from None
-
-
-def _interp_extrap(v, xp, fp):
-    """``np.interp`` with linear extrapolation beyond both ends (xp increasing)."""
-    v = np.asarray(v, float)
-    out = np.interp(v, xp, fp)
-    lo, hi = v < xp[0], v > xp[-1]
-    if lo.any():
-        out[lo] = fp[0] + (v[lo] - xp[0]) * (fp[1] - fp[0]) / (xp[1] - xp[0])
-    if hi.any():
-        out[hi] = fp[-1] + (v[hi] - xp[-1]) * (fp[-1] - fp[-2]) / (xp[-1] - xp[-2])
-    return out
 
 
 def _read_only(a: np.ndarray) -> np.ndarray:
@@ -238,6 +223,49 @@ def _apply_kernel(x, y, z, ox, oy, oz, z0, inv_h, depth, mag, shift, axis, kappa
         ox[k] = fdt(xc)
         oy[k] = fdt(yc)
         oz[k] = fdt(zc)
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _inverse_depth(v, grid, depth):
+    """File depth whose calibrated depth is ``v``: the depth table read backwards (``depth``
+    increasing; binary search, linear extrapolation beyond both ends, as ``np.interp`` inside)."""
+    n = depth.size
+    lo, hi = 0, n - 1
+    while hi - lo > 1:  # depth[lo] <= v < depth[hi], or the end cells
+        mid = (lo + hi) >> 1
+        if depth[mid] <= v:
+            lo = mid
+        else:
+            hi = mid
+    i = lo if lo < n - 1 else n - 2
+    d = depth[i + 1] - depth[i]
+    t = (v - depth[i]) / d if d != 0.0 else 0.0
+    return grid[i] + t * (grid[i + 1] - grid[i])
+
+
+@numba.njit(cache=True, nogil=True)
+def _to_file_kernel(x, y, z, ox, oy, oz, z0, inv_h, grid, depth, mag, shift, axis, kappa, n_iter):
+    """The inverse map of :meth:`ReconstructionCorrection.to_file`, one pass over the points
+    (float64; the lateral and curvature terms by ``n_iter`` fixed-point steps)."""
+    n = depth.size
+    for k in range(x.size):
+        xc, yc = x[k], y[k]
+        w = _inverse_depth(z[k], grid, depth)
+        zf = w
+        for _ in range(n_iter):
+            i, t = _lerp_index(zf, z0, inv_h, n)
+            ax = axis[i, 0] + t * (axis[i + 1, 0] - axis[i, 0])
+            ay = axis[i, 1] + t * (axis[i + 1, 1] - axis[i, 1])
+            znew = w + kappa * ((xc - ax) * (xc - ax) + (yc - ay) * (yc - ay))
+            if znew == zf:  # a fixed point to the last bit: further steps change nothing
+                break
+            zf = znew
+        i, t = _lerp_index(zf, z0, inv_h, n)
+        m = mag[i] + t * (mag[i + 1] - mag[i])
+        ox[k] = (xc - (shift[i, 0] + t * (shift[i + 1, 0] - shift[i, 0]))) * m
+        oy[k] = (yc - (shift[i, 1] + t * (shift[i + 1, 1] - shift[i, 1]))) * m
+        oz[k] = zf
+
 
 def file_site_positions(columns, rods, sites):
     """Where sites of a :class:`~probeseq.lattice.rodcolumns.RodColumns` lie in the ion file's frame.
