@@ -285,6 +285,27 @@ def _stats_from_paths(seq, metals=("Co", "Zn"), **kw):
                                     pitch_nm=0.2, viterbi=seq, **kw)
 
 
+def test_intervals_of_chain_statistics_surround_the_fitted_estimate():
+    # the decoder's fitted matrix (more persistent than the decoded paths' counts) is reported; the
+    # rod bootstrap re-estimates from counts, so its replicates must be placed around that estimate
+    rng = np.random.default_rng(3)
+    f, lam = np.array([0.5, 0.5]), 0.8
+    seq = markov_chains(rng, 300, 200, f, lam)
+    fitted = true_transmat(f, 0.9)
+    plain = _stats_from_paths(seq, random_state=1)
+    st = _stats_from_paths(seq, random_state=1, transmat=fitted)
+    for name in ("mean_run_length_sites.Co", "mean_run_length_sites.Zn", "persistence", "run_length_ratio.Zn"):
+        est, lo, hi = st.interval(name)
+        assert lo < est < hi, (name, est, lo, hi)
+        # same spread as the counts' own bootstrap, moved by the difference of the two estimates
+        e0, lo0, hi0 = plain.interval(name)
+        assert abs(est - e0) > 0.05 * abs(e0)
+        np.testing.assert_allclose(hi - lo, hi0 - lo0, rtol=1e-9)
+    np.testing.assert_allclose(st.estimates["mean_run_length_sites.Co"], 1 / (1 - fitted[0, 0]))
+    # statistics of the occupancy alone are not moved
+    np.testing.assert_array_equal(st.replicates["composition.Zn"], plain.replicates["composition.Zn"])
+
+
 def test_bootstrap_intervals_cover_truth_and_estimates_are_unbiased():
     f, lam = np.array([0.7, 0.3]), 0.8
     a = true_transmat(f, lam)
