@@ -6,8 +6,9 @@ import numpy as np
 import pytest
 from scipy import stats
 
+from probeseq.decoding import chain, passes
 from probeseq.decoding.chain import runs_table
-from probeseq.decoding.decode import decode, fit_decoder, sample_model
+from probeseq.decoding.decode import _check_columns, decode, fit_decoder, sample_model
 from probeseq.decoding.model import DecoderParams, emission_baseline, emission_factors, split_counts
 from probeseq.exceptions import ConvergenceWarning, DataQualityWarning, InputError
 from probeseq.lattice.rodcolumns import RodColumns
@@ -354,3 +355,52 @@ def test_non_convergence_warns_with_last_change_and_returns_best():
     assert not res.converged and res.n_iter == 1
     assert np.isfinite(res.loglik) and res.loglik == pytest.approx(max(res.loglik_history))
     assert any("did not converge" in w for w in res.warnings)
+
+
+def _mean_posterior_numpy(p, rod, start, length, post):
+    """Each run's posterior sum by numpy.add.reduceat over every site from its start to the next run's."""
+    n_rods, n_sites = p.shape
+    site_post = np.take_along_axis(post, np.maximum(p, 0)[:, :, None].astype(np.intp), axis=2)[:, :, 0]
+    site_post[p < 0] = 0
+    sums = np.add.reduceat(site_post.reshape(-1), rod * n_sites + start, dtype=np.float64)
+    return sums / np.maximum(length, 1)
+
+
+@pytest.mark.parametrize("dtype, path_dtype", [(np.float32, np.int8), (np.float64, np.int64)])
+def test_run_mean_posteriors_are_numpys(rng, dtype, path_dtype):
+    n_rods, n_sites, k = 12, 3000, 3
+    path = np.repeat(rng.integers(0, k, (n_rods, n_sites // 20 + 1)), 20, axis=1)[:, :n_sites]
+    path[rng.random(path.shape) < 0.1] = rng.integers(0, k)  # short runs too
+    mask = np.ones((n_rods, n_sites), bool)  # observed, then long masked stretches and whole masked rods
+    mask[:, 400:2900] = False
+    mask[4:7] = False
+    post = (rng.random((n_rods, n_sites, k)) * 2.0 ** rng.integers(-40, 0, (n_rods, n_sites, k))).astype(dtype)
+    runs = chain.list_runs(path.astype(path_dtype), mask, post)
+    p = chain.masked_paths(path.astype(path_dtype), mask)
+    ref = _mean_posterior_numpy(p, runs["rod"], runs["first_site"], runs["length"], post)
+    assert runs["mean_posterior"].tobytes() == ref.tobytes()
+    assert (runs["length"] > 128).any() and runs["rod"].size > 100
+    with pytest.raises(IndexError):
+        passes.run_posterior_sums(np.full((2, 3), k, path_dtype), post[:2, :3], np.array([0]), np.array([0]))
+
+
+def test_count_totals_read_only_observed_sites(rng):
+    counts = rng.poisson(0.6, (20, 50, 3)).astype(np.float32)
+    counts[rng.random(counts.shape) < 0.1] += np.float32(1 / 3)
+    mask = rng.random((20, 50)) < 0.7
+    ref = (mask[:, :, None] * counts.astype(np.float64)).sum(axis=(0, 1))
+    bad = counts.copy()
+    bad[~mask] = np.nan
+    bad[np.nonzero(~mask)[0][0], np.nonzero(~mask)[1][0]] = -1.0
+    per_metal, non_finite, negative = passes.count_totals(bad, mask)
+    np.testing.assert_allclose(per_metal, ref, rtol=1e-14)
+    assert not non_finite and not negative
+    whole = np.floor(counts)
+    assert passes.count_totals(whole, mask)[0].tolist() == (mask[:, :, None] * whole).sum(axis=(0, 1)).tolist()
+    assert _check_columns(make_columns(bad, mask)) == []  # bad values at masked sites only: accepted
+    r, t = np.argwhere(mask)[0]
+    for value, word in ((np.inf, "non-finite"), (-0.5, "negative")):
+        worse = bad.copy()
+        worse[r, t, 1] = value
+        with pytest.raises(InputError, match=word):
+            fit_decoder(make_columns(worse, mask))

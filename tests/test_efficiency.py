@@ -11,7 +11,7 @@ import pytest
 from scipy import stats
 from test_decode import make_columns
 
-from probeseq.decoding import rodchain
+from probeseq.decoding import efficiency, passes, rodchain
 from probeseq.decoding.decode import decode, fit_decoder, sample_model
 from probeseq.decoding.efficiency import MIN_RODS, eta_mstep, fit_radial_efficiency
 from probeseq.decoding.hmm import run_em
@@ -460,3 +460,182 @@ def test_bad_rod_efficiency_is_rejected():
             fit_decoder(cols, rod_efficiency=bad)
     with pytest.raises(InputError, match="below 1"):
         decode(cols, P2, rod_efficiency=[1, 1, 1.6, 1])  # eta h = 1.04
+
+
+# ------------------------------------------------------------------------------------------
+# (f) the compiled passes (probeseq.decoding.passes) against plain numpy, bit for bit
+# ------------------------------------------------------------------------------------------
+
+
+def _wild(rng, shape):
+    """Positive floats over 60 binary orders of magnitude: the order of a sum shows in its bits."""
+    return rng.random(shape) * 2.0 ** rng.integers(-30, 30, shape)
+
+
+@pytest.mark.parametrize("n", [0, 1, 7, 8, 9, 127, 128, 129, 136, 1000, 5956, 20011])
+def test_pairwise_sum_is_numpys_sum(rng, n):
+    a = _wild(rng, n + 5)
+    ranges, values = passes.pairwise_stack()
+    for lo in (0, 3):
+        got = passes.pairwise_sum(a, lo, n, ranges, values)
+        assert got.hex() == a[lo:lo + n].sum().hex()
+    if n >= 1000:  # a running sum of these values differs from numpy's: the check above can fail
+        seq = 0.0
+        for v in a[:n]:
+            seq += v
+        assert seq != a[:n].sum()
+
+
+def test_outline_is_interpolated_as_numpy_does(rng):
+    # one observed site per rod at depth 0 + offset_r: the rod's sums are that site's rho_n exactly
+    oz = np.sort(rng.normal(0, 5, 12))
+    oz[4] = oz[3]  # a repeated depth
+    rad, cen = rng.uniform(5, 15, 12), rng.normal(0, 2, (12, 2))
+    depth = np.concatenate([rng.normal(0, 7, 300), oz, [oz[0] - 1, oz[-1] + 1]])  # nodes, both ends, beyond
+    xy, tilt = rng.normal(0, 6, (depth.size, 2)), np.array([0.03, -0.02])
+    outline = {"z_nm": oz.tolist(), "radius_nm": rad.tolist(), "center_nm": cen.tolist()}
+    cols = RodColumns(counts=np.ones((depth.size, 1, 2)), mask=np.ones((depth.size, 1), bool), metals=("Co", "Zn"),
+                      rod_xy_nm=xy, tilt=tilt, z_ref_nm=1.5, site_z_nm=np.zeros(1), pitch_nm=0.3,
+                      params={"columns": {"outline": outline}}, site_z_offset_nm=depth)
+    got = efficiency._rod_sums(cols, efficiency._stored_outline(cols.params))[:, 1]
+    ax = xy + tilt * (depth - 1.5)[:, None]
+    want = np.hypot(ax[:, 0] - np.interp(depth, oz, cen[:, 0]), ax[:, 1] - np.interp(depth, oz, cen[:, 1]))
+    want /= np.interp(depth, oz, rad)
+    assert got.tobytes() == want.tobytes()
+
+
+def _rod_sums_numpy(columns, outline):
+    """The per-rod sums of the radial fit with numpy's reductions over every site of the rod."""
+    oz, orad, ocen = outline
+    z = columns.site_z_nm[None, :] + columns.site_z_offset_nm[:, None]
+    dz = z - columns.z_ref_nm
+    xy = columns.rod_xy_nm
+    if oz.size == 1:
+        dx = xy[:, 0, None] - ocen[0, 0] + columns.tilt[0] * dz
+        dy = xy[:, 1, None] - ocen[0, 1] + columns.tilt[1] * dz
+        rho = np.hypot(dx, dy) / orad[0]
+    else:
+        dx = xy[:, 0, None] + columns.tilt[0] * dz - np.interp(z, oz, ocen[:, 0])
+        dy = xy[:, 1, None] + columns.tilt[1] * dz - np.interp(z, oz, ocen[:, 1])
+        rho = np.hypot(dx, dy) / np.interp(z, oz, orad)
+    m = columns.mask
+    y = np.where(m, columns.counts.sum(axis=2, dtype=np.float64), 0.0)
+    rho = np.where(m, rho, 0.0)
+    x = rho * rho
+    return np.stack([m.sum(1).astype(float), rho.sum(1), x.sum(1), (x * x).sum(1), y.sum(1), (x * y).sum(1)], axis=1)
+
+
+@pytest.mark.parametrize("k, dtype, n_sites", [(2, np.float32, 300), (3, np.float64, 150), (9, np.float32, 40),
+                                               (2, np.float64, 9000)])
+def test_radial_sums_are_numpys(rng, k, dtype, n_sites):
+    n_rods = 23
+    counts = rng.poisson(0.5, (n_rods, n_sites, k)).astype(dtype)
+    counts[rng.random(counts.shape) < 0.1] += rng.random() * 10.0 ** -rng.integers(0, 6)  # split ions
+    mask = rng.random((n_rods, n_sites)) < 0.7
+    mask[3] = False
+    counts[~mask & (rng.random(mask.shape) < 0.05)] = np.nan  # never read
+    site_z = np.cumsum(rng.random(n_sites)) * 0.3
+    zo = rng.uniform(site_z[10], site_z[-10], 9)  # sites beyond both ends too
+    zo[5] = zo[4]  # a repeated depth
+    zo[2] = site_z[n_sites // 3] + 0.1  # the depth of a site of rod 5 (offset 0.1): exactly at a node
+    outlines = {"nodes": {"z_nm": zo.tolist(), "radius_nm": rng.uniform(5, 20, 9).tolist(),
+                          "center_nm": rng.normal(0, 2, (9, 2)).tolist()},
+                "one": {"z_nm": [3.0], "radius_nm": [11.0], "center_nm": [[0.5, -0.2]]}}
+    offset = np.where(np.arange(n_rods) == 5, 0.1, rng.normal(0, 0.05, n_rods))
+    for params in ({"columns": {"outline": outlines["nodes"]}}, {"columns": {"outline": outlines["one"]}}, {}):
+        cols = RodColumns(counts=counts, mask=mask, metals=tuple("ABCDEFGHI"[:k]),
+                          rod_xy_nm=rng.normal(0, 8, (n_rods, 2)), tilt=np.array([0.02, -0.01]), z_ref_nm=4.0,
+                          site_z_nm=site_z, pitch_nm=0.3, params=params, site_z_offset_nm=offset)
+        outline = efficiency._stored_outline(cols.params) or efficiency._fallback_outline(cols)
+        got = efficiency._rod_sums(cols, outline)
+        assert got.tobytes() == _rod_sums_numpy(cols, outline).tobytes()
+        assert np.isfinite(got).all() and got[3].tolist() == [0.0] * 6  # a rod without observed sites
+
+
+def test_whole_counts_and_observed_sites_per_rod(rng):
+    counts = rng.poisson(0.7, (30, 80, 3)).astype(float)
+    counts[rng.random(counts.shape) < 0.2] += 0.25
+    counts[0, 0, 0] = 2.0 - 1e-10  # whole up to the tolerance of the split-ion reading
+    mask = rng.random((30, 80)) < 0.6
+    mask[0, 0] = True
+    counts[~mask] = -7.0  # never read
+    ref = np.where(mask[:, :, None], np.floor(counts + 1e-9), 0.0).sum(axis=(1, 2))
+    np.testing.assert_array_equal(efficiency.whole_counts(counts, mask), ref)
+    c32 = counts.astype(np.float32)
+    ref32 = np.where(mask[:, :, None], np.floor(c32.astype(np.float64) + 1e-9), 0.0).sum(axis=(1, 2))
+    np.testing.assert_array_equal(efficiency.whole_counts(c32, mask), ref32)
+    n_obs, whole = passes.rod_whole_counts(counts, mask)
+    np.testing.assert_array_equal(n_obs, mask.sum(axis=1))
+    np.testing.assert_array_equal(whole, ref)
+    data = _rod_data(np.clip(counts, 0, None), mask)
+    eff = _with_efficiency(data, np.linspace(0.8, 1.2, 30)).eff
+    np.testing.assert_array_equal(eff.n_sites, mask[data.rods].sum(axis=1))
+
+
+def _distinct_numpy(counts, mask, group):
+    """Distinct (count vector, group) rows by sorting every observed site."""
+    x = counts[mask].astype(np.float64)
+    g = np.repeat(group, mask.sum(axis=1))
+    rows, mult = np.unique(np.column_stack([x, g]), axis=0, return_counts=True)
+    return rows[:, :-1], rows[:, -1].astype(np.int64), mult.astype(float)
+
+
+@pytest.mark.parametrize("fractional", [False, True])
+def test_distinct_rows_of_rods_are_numpys(rng, fractional):
+    counts = rng.poisson(0.8, (40, 120, 3)).astype(np.float32)
+    if fractional:
+        counts[rng.random(counts.shape) < 0.05] += np.float32(0.5)
+    mask = rng.random((40, 120)) < 0.6
+    group = rng.integers(0, 7, 40)
+    data = _rod_data(counts, mask)
+    ref = _distinct_numpy(counts, mask, group)
+    for rows in (data.distinct_rows, data.distinct_rows[::-1], data.distinct_rows[1:]):  # the last: one missing
+        got = efficiency.distinct_rows_of_rods(counts, mask, group, 7, rows, block=9)
+        for a, b in zip(got, ref):
+            assert a.dtype == b.dtype
+            np.testing.assert_array_equal(a, b)
+    table, order = passes.group_row_counts(counts, mask, group, data.distinct_rows, 7)
+    assert (table is None) == fractional
+    if not fractional:
+        assert table.sum() == mask.sum() and table.shape == (len(data.distinct_rows), 7)
+
+
+def test_independent_step_with_efficiency_is_unchanged_by_the_pass(rng):
+    counts, _ = sample_model(P2, 30, 200, random_state=3, rod_efficiency=np.linspace(0.6, 1.2, 30))
+    mask = rng.random((30, 200)) < 0.8
+    h = np.round(np.linspace(0.6, 1.2, 30), 1)  # rods sharing an efficiency
+    state = (np.array([0.4, 0.6]), 0.55, np.array([0.08, 0.05]))
+    # the numpy engine's data find the distinct rows by sorting; the compiled engine's by the pass
+    ll_np, nxt_np = independent_step(_with_efficiency(_prepare(counts, mask), h))(state)
+    ll_c, nxt_c = independent_step(_with_efficiency(_rod_data(counts, mask), h))(state)
+    assert ll_c.hex() == ll_np.hex()
+    assert float(nxt_c[1]).hex() == float(nxt_np[1]).hex()
+    np.testing.assert_array_equal(nxt_c[2], nxt_np[2])
+
+
+def test_passes_do_not_depend_on_the_thread_count(rng):
+    cols, _ = _radial_specimen(rng, n_sites=300)
+    counts, mask = cols.counts, cols.mask
+    outline = efficiency._stored_outline(cols.params)
+    group = np.arange(cols.n_rods) % 5
+    rows = _rod_data(counts, mask).distinct_rows
+    path = np.where(mask, np.arange(counts.shape[1]) % 2, -1)  # a run per site: many parts of runs
+    post = rng.random(counts.shape)
+    rod, start = np.nonzero(mask)
+
+    def passes_once():
+        return (efficiency._rod_sums(cols, outline), passes.count_totals(counts, mask)[0],
+                passes.rod_whole_counts(counts, mask)[1], passes.group_row_counts(counts, mask, group, rows, 5)[0],
+                passes.run_posterior_sums(path, post, rod, start))
+
+    n0 = rodchain.set_threads(None)
+    try:
+        rodchain.set_threads(1)
+        one = passes_once()
+        rodchain.set_threads(2)
+        two = passes_once()
+    finally:
+        rodchain.set_threads(n0)
+    assert cols.n_rods >= 8 * passes._ROD_PART and rod.size >= 2 * passes._RUN_PART
+    for a, b in zip(one, two):
+        assert a.tobytes() == b.tobytes()

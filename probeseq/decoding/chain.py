@@ -27,6 +27,7 @@ import numba
 import numpy as np
 
 from ..exceptions import InputError
+from .passes import run_posterior_sums
 
 __all__ = ['runs_table', 'stationary_distribution', 'persistence', 'persistence_per_state', 'mean_run_lengths', 'independent_run_lengths', 'list_runs', 'masked_paths', 'signed_states', 'RUN_LENGTH_DEFINITIONS']
 
@@ -247,23 +248,16 @@ def _fill_runs(p, rod, start, length, state, left, right, write):
 
 
 def _mean_posterior(p, rod, start, length, posteriors) -> np.ndarray:
-    """Mean posterior of each run's metal over the run's sites (float64)."""
-    n_rods, n_sites = p.shape
+    """Mean posterior of each run's metal over the run's sites (float64).
+
+    Every valid site after a run's start and before the next run's start is in the run, the
+    others count 0: one sum per run from its start to the next start, in one compiled pass
+    (:func:`probeseq.decoding.passes.run_posterior_sums`, the sums of ``numpy.add.reduceat``)."""
     post = np.asarray(posteriors)
     if post.ndim != 3 or post.shape[:2] != p.shape:
         raise InputError(f"posteriors must be (n_rods, n_sites, K) matching the paths {p.shape}, "
                          f"got shape {post.shape}")
-    valid = p >= 0
-    site_post = np.take_along_axis(post, np.maximum(p, 0)[:, :, None].astype(np.intp), axis=2)[:, :, 0]
-    site_post[~valid] = 0
-    # every valid site after a run's start and before the next run's start is in the run, the
-    # others hold 0: one sum per run from its start to the next start (in float64)
-    s_idx = rod * n_sites + start
-    if s_idx.size:
-        sums = np.add.reduceat(site_post.reshape(-1), s_idx, dtype=np.float64)
-    else:
-        sums = np.zeros(0)
-    return sums / np.maximum(length, 1)
+    return run_posterior_sums(p, post, rod, start) / np.maximum(length, 1)
 
 
 def list_runs(paths, mask=None, posteriors=None) -> dict:

@@ -18,7 +18,6 @@ from .chain import RUN_LENGTH_DEFINITIONS, runs_table
 from .efficiency import RadialEfficiency, fit_radial_efficiency
 from .hmm import run_em, viterbi
 from .model import (
-    _BLOCK_RODS,
     ETA_BOUNDS,
     LOW_COUNT_MIN,
     LOW_COUNT_SHARE,
@@ -41,6 +40,7 @@ from .model import (
 )
 
 from .independent import independent_step
+from .passes import count_totals
 from .starts import evidence_start
 from .starts import initial_params as _initial_params
 
@@ -265,17 +265,11 @@ def _check_columns(columns) -> list:
         raise InputError(f"columns.counts: decoding needs at least two metal channels, got {c.shape[2]}")
     if not m.any():
         raise InputError(f"columns.mask: all {m.size} sites are masked; nothing to decode")
-    if not (np.isfinite(c).all() and c.min() >= 0):
-        cm = c[m]
-        if not np.all(np.isfinite(cm)):
-            raise InputError("columns.counts: found non-finite values at unmasked sites")
-        if np.any(cm < 0):
-            raise InputError("columns.counts: found negative counts at unmasked sites")
-        c = np.where(m[:, :, None], c, 0.0)
-    per_metal = np.zeros(c.shape[2])
-    for b0 in range(0, c.shape[0], _BLOCK_RODS):  # blocks of rods: no count-sized temporaries
-        mb = m[b0:b0 + _BLOCK_RODS].reshape(-1)
-        per_metal += mb.astype(float) @ c[b0:b0 + _BLOCK_RODS].reshape(-1, c.shape[2])
+    per_metal, non_finite, negative = count_totals(c, m)  # one pass, observed sites only
+    if non_finite:
+        raise InputError("columns.counts: found non-finite values at unmasked sites")
+    if negative:
+        raise InputError("columns.counts: found negative counts at unmasked sites")
     have = [columns.metals[i] for i in np.flatnonzero(per_metal > 0)]
     if len(have) < 2:
         raise InputError(

@@ -51,6 +51,7 @@ import numpy as np
 from ..exceptions import InputError
 from ..lattice.rodcolumns import RodColumns
 from ..utils.marks import finite_or_none
+from .passes import group_row_counts, rod_radial_sums, rod_whole_counts
 
 __all__ = ['RadialEfficiency', 'fit_radial_efficiency', 'eta_mstep', 'MIN_RODS', 'SIGNIFICANCE', 'H_CLIP']
 
@@ -64,9 +65,6 @@ SIGNIFICANCE = 3.0
 
 #: range every rod's relative efficiency is clipped to when the fit is used
 H_CLIP = (0.2, 1.5)
-
-
-_BLOCK = 1024  # rods per block of the passes over the counts
 
 
 @dataclass(frozen=True)
@@ -191,35 +189,15 @@ def _fallback_outline(columns: RodColumns):
 
 
 def _rod_sums(columns: RodColumns, outline) -> np.ndarray:
-    """Per rod: observed sites, sums of rho_n, x = rho_n^2, x^2, y (site total counts), x y.
+    """Per rod: observed sites, sums of rho_n, x = rho_n^2, x^2, y (site total counts), x y over
+    them, in one compiled pass (:func:`probeseq.decoding.passes.rod_radial_sums`).
 
     Returns
     -------
     (n_rods, 6) ndarray of float
     """
-    oz, orad, ocen = outline
-    out = np.zeros((columns.n_rods, 6))
-    for b0 in range(0, columns.n_rods, _BLOCK):
-        m = columns.mask[b0:b0 + _BLOCK]
-        b1 = b0 + m.shape[0]
-        z = columns.site_z_nm[None, :] + columns.site_z_offset_nm[b0:b1, None]
-        dz = z - columns.z_ref_nm
-        xy = columns.rod_xy_nm[b0:b1]
-        if oz.size == 1:  # one centre and radius for all depths
-            dx = xy[:, 0, None] - ocen[0, 0] + columns.tilt[0] * dz
-            dy = xy[:, 1, None] - ocen[0, 1] + columns.tilt[1] * dz
-            rho = np.hypot(dx, dy) / orad[0]
-        else:
-            dx = xy[:, 0, None] + columns.tilt[0] * dz - np.interp(z, oz, ocen[:, 0])
-            dy = xy[:, 1, None] + columns.tilt[1] * dz - np.interp(z, oz, ocen[:, 1])
-            rho = np.hypot(dx, dy) / np.interp(z, oz, orad)
-        y = columns.counts[b0:b1].sum(axis=2, dtype=np.float64)
-        mf = m.astype(float)
-        rho = np.where(m, rho, 0.0)
-        y = np.where(m, y, 0.0)
-        x = rho * rho
-        out[b0:b1] = np.stack([mf.sum(1), rho.sum(1), x.sum(1), (x * x).sum(1), y.sum(1), (x * y).sum(1)], axis=1)
-    return out
+    return rod_radial_sums(columns.counts, columns.mask, columns.site_z_nm, columns.site_z_offset_nm,
+                           columns.z_ref_nm, columns.rod_xy_nm, columns.tilt, outline)
 
 
 def _regression(s: np.ndarray):
@@ -355,7 +333,7 @@ def with_rod_terms(data, h_rows):
     if h_rows is None:
         return data
     if hasattr(data, "counts"):
-        n_sites, n_whole = data.mask[data.rods].sum(axis=1), whole_counts(data.counts, data.mask)[data.rods]
+        n_sites, n_whole = (a[data.rods] for a in rod_whole_counts(data.counts, data.mask))
     else:
         n_sites, n_whole = data.obs.sum(axis=0), whole_counts(data.x, data.obs, time_major=True)
     return replace(data, eff=rod_terms(h_rows, data.rods, n_sites, n_whole))
@@ -375,11 +353,7 @@ def whole_counts(counts, mask, time_major: bool = False) -> np.ndarray:
     """
     if time_major:
         return np.where(mask[:, :, None], np.floor(counts + 1e-9), 0.0).sum(axis=(0, 2))
-    out = np.zeros(counts.shape[0])
-    for b0 in range(0, out.size, _BLOCK):
-        c = np.floor(counts[b0:b0 + _BLOCK].astype(np.float64) + 1e-9)
-        out[b0:b0 + _BLOCK] = np.where(mask[b0:b0 + _BLOCK, :, None], c, 0.0).sum(axis=(1, 2))
-    return out
+    return rod_whole_counts(counts, mask)[1]
 
 
 def eta_mstep(h, n_sites, detected, bounds) -> float:
@@ -456,3 +430,43 @@ def distinct_rows_by_group(blocks, n_groups: int):
     uniq, inv = np.unique(rows, axis=0, return_inverse=True)
     mult = np.bincount(inv.reshape(-1), weights=cnt, minlength=len(uniq))
     return uniq[:, :-1], uniq[:, -1].astype(np.int64), mult
+
+
+def distinct_rows_of_rods(counts, mask, row_group, n_groups: int, rows, block: int = 2048):
+    """:func:`distinct_rows_by_group` of the observed sites of a count array, rod by rod.
+
+    With whole counts whose distinct vectors are known (``rows``, e.g. those the compiled
+    engine's summary found), one compiled pass counts the sites of every (vector, group) pair
+    (:func:`probeseq.decoding.passes.group_row_counts`); otherwise the observed sites are taken a
+    block of rods at a time through :func:`distinct_rows_by_group`. Both give the same arrays.
+
+    Parameters
+    ----------
+    counts : (n_rows, n_sites, K) ndarray of float32 or float64, counts per site
+    mask : (n_rows, n_sites) ndarray of bool
+    row_group : (n_rows,) ndarray of int
+        Efficiency group (index of its ``h`` value) of every row.
+    n_groups : int
+    rows : (U, K) ndarray of float
+        Distinct count vectors of the observed sites (a superset does too; with one missing, or
+        counts that are not whole, the blocks of rods are sorted instead).
+    block : int
+        Rods per block of that fallback.
+
+    Returns
+    -------
+    rows : (U', K) ndarray of float
+        Distinct (count vector, group) pairs' vectors, sorted lexicographically by vector
+        (first channel first), then group.
+    group : (U',) ndarray of int64
+    mult : (U',) ndarray of float
+        Observed sites of each pair.
+    """
+    table, order = group_row_counts(counts, mask, row_group, rows, n_groups)
+    if table is not None:
+        ix, grp = np.nonzero(table)  # row-major: vector, then group
+        return np.asarray(rows, dtype=np.float64)[order[ix]], grp.astype(np.int64), table[ix, grp].astype(float)
+    blocks = ((counts[b0:b0 + block][mask[b0:b0 + block]].astype(np.float64),
+               np.repeat(row_group[b0:b0 + block], mask[b0:b0 + block].sum(axis=1)))
+              for b0 in range(0, counts.shape[0], block))
+    return distinct_rows_by_group(blocks, n_groups)

@@ -8,7 +8,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.special import gammaln
 
-from .efficiency import distinct_rows_by_group, eta_mstep
+from .efficiency import distinct_rows_by_group, distinct_rows_of_rods, eta_mstep
 from .model import (ETA_BOUNDS, MIN_RATE, _BLOCK_RODS, _RodData, _split_expected_counts, _split_terms,
                     _unique_rows, split_counts)
 
@@ -98,12 +98,11 @@ def _independent_step_eff(prep, visibility=None):
     h_vals, h_group = np.unique(prep.eff.h_rows, return_inverse=True)
     h_group = h_group.reshape(-1)
     if isinstance(prep, _RodData):
-        blocks = ((prep.counts[b0:b0 + _BLOCK_RODS][prep.mask[b0:b0 + _BLOCK_RODS]].astype(np.float64),
-                   np.repeat(h_group[b0:b0 + _BLOCK_RODS], prep.mask[b0:b0 + _BLOCK_RODS].sum(axis=1)))
-                  for b0 in range(0, prep.counts.shape[0], _BLOCK_RODS))
+        x, grp, mult = distinct_rows_of_rods(prep.counts, prep.mask, h_group, h_vals.size, prep.distinct_rows,
+                                             _BLOCK_RODS)
     else:
         blocks = [(prep.x_obs, h_group[prep.rods][np.nonzero(prep.obs)[1]])]  # x_obs is time-major
-    x, grp, mult = distinct_rows_by_group(blocks, h_vals.size)
+        x, grp, mult = distinct_rows_by_group(blocks, h_vals.size)
     hu = h_vals[grp]
     n_int, pi, pi_none = _split(prep, x)
     n = prep.n_obs
