@@ -14,6 +14,7 @@ from probeseq.exceptions import InputError
 from probeseq.simulation.simulate import markov_sequences
 from probeseq.statistics import agreement as agreement_mod
 from probeseq.statistics import runs as runs_mod
+from probeseq.statistics import shiftnull
 from probeseq.statistics import summary as summary_mod
 from probeseq.statistics.agreement import rod_agreement
 from probeseq.statistics.markov import transition_counts_from_paths, transition_matrix
@@ -238,29 +239,167 @@ def test_pairwise_plan_covers_every_value_once():
         assert (plan[:, 0] < 0).sum() == len(pieces) - 1
 
 
-@pytest.mark.parametrize("n_sites", [60, 59, 74])
-def test_blocked_shift_null_matches_all_pairs_at_once(rng, monkeypatch, n_sites):
+def null_inputs(rng, n_sites, masks, n_side=32):
+    """Values, masks and the pairs of a square grid: ``masks`` 'sites' (each site used with
+    probability 0.9: many short runs) or 'runs' (rod ends cut, a few gaps, two rods unused)."""
+    x = rng.random((n_side * n_side, n_sites))
+    if masks == "sites":
+        m = rng.random(x.shape) > 0.1
+    else:
+        s = np.arange(n_sites)
+        lo = rng.integers(0, n_sites // 6 + 1, len(x))
+        hi = n_sites - rng.integers(0, n_sites // 6 + 1, len(x))
+        m = (s >= lo[:, None]) & (s < hi[:, None]) & (rng.random(x.shape) > 0.03)
+        m[[5, 40]] = False
+    nb = grid_pairs(n_side)[:-1]
+    return x, m, nb[:, 0].copy(), nb[:, 1].copy()
+
+
+def ref_null_sums(x, m, i, j, lags, shifts):
+    """Direct centred sums of every pair at every drawn shift + lag, summed over pairs in long
+    double: (n_null, n_lags, 3)."""
+    xa = np.where(m, x, 0.0).astype(np.longdouble)
+    mm = m.astype(np.longdouble)
+    p, n = len(i), x.shape[1]
+    raw = np.empty((p, n, 6), dtype=np.longdouble)
+    for t in range(n):  # site s of rod i against site (s + t) mod n of rod j
+        mj, aj = np.roll(mm[j], -t, axis=1), np.roll(xa[j], -t, axis=1)
+        for c, (u, v) in enumerate(((mm[i], mj), (xa[i], mj), (mm[i], aj), (xa[i] ** 2, mj), (mm[i], aj ** 2),
+                                    (xa[i], aj))):
+            raw[:, t, c] = (u * v).sum(axis=1)
+    nn = np.maximum(raw[..., 0], 1)
+    sx, sy = raw[..., 1], raw[..., 2]
+    cen = np.stack([raw[..., 5] - sx * sy / nn, np.maximum(raw[..., 3] - sx * sx / nn, 0),
+                    np.maximum(raw[..., 4] - sy * sy / nn, 0)], axis=-1)
+    t = (shifts.T[:, :, None] + np.asarray(lags)[None, None, :]) % n  # (n_null, p, n_lags)
+    return cen[np.arange(p)[None, :, None], t].sum(axis=1)
+
+
+@pytest.mark.parametrize("n_sites,masks", [(60, "sites"), (59, "sites"), (74, "runs"), (59, "runs"), (60, "runs"),
+                                           (3, "sites")])
+@pytest.mark.parametrize("method", ["runs", "transforms"])
+def test_shift_null_sums_match_direct_sums(rng, n_sites, masks, method):
+    # both ways to the mask sums, on many-run and few-run masks (unused rods included), fast (60)
+    # and slow (59 prime, 74 = 2 x 37: linear sums folded back) transform lengths, and shifts
+    # that wrap (lags past the rod's end) and do not
+    x, m, i, j = null_inputs(rng, n_sites, masks, n_side=12)
+    n_null = 23
+    for lags, lo, hi in ((np.arange(-3, 4), n_sites // 10 + 3, n_sites - n_sites // 10 - 3),
+                         (np.array([-2, 0, 5]), 0, n_sites)):
+        shifts = rng.integers(lo, max(lo, hi - 1) + 1, size=(len(i), n_null)).astype(np.int32)
+        want = ref_null_sums(x, m, i, j, lags, shifts).astype(float)
+        got = shiftnull.shift_null_sums(x, m, i, j, lags, shifts, method=method)
+        assert got.shape == (n_null, len(lags), 3)
+        # the sums straddle 0 (cross sums) or are large (squares): compared at the scale of the
+        # sums of squares; rounding is about 1e-15 of it, a wrong shift or run 1e-2 or more
+        scale = want[..., 1:].max()
+        np.testing.assert_allclose(got, want, rtol=0, atol=1e-12 * scale)
+        # threads and block sizes change no bit
+        again = shiftnull.shift_null_sums(x, m, i, j, lags, shifts, threads=2, block_bytes=1, method=method)
+        np.testing.assert_array_equal(again, got)
+
+
+@pytest.mark.parametrize("n_sites,masks", [(60, "sites"), (59, "sites"), (74, "runs")])
+def test_blocked_shift_null_matches_all_pairs_at_once(rng, monkeypatch, n_sites, masks):
     # ~2000 pairs: the offsets are drawn in several replicate chunks, as in the unblocked form;
     # 60 sites is a fast FFT length, 59 (prime) and 74 (2 x 37) take the padded linear sums folded
     # back to circular ones
-    n_side = 32
-    x = rng.random((n_side * n_side, n_sites))
-    m = rng.random(x.shape) > 0.1
-    nb = grid_pairs(n_side)[:-1]
-    i, j = nb[:, 0].copy(), nb[:, 1].copy()
+    x, m, i, j = null_inputs(rng, n_sites, masks)
     lags = np.arange(-3, 4)
     want = ref_shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5))
-    assert int(4e6 // (len(nb) * 21)) < 199
-    got = agreement_mod._shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5))
-    np.testing.assert_allclose(got, want, rtol=RTOL, atol=0)
-    # the smallest blocks (8 pairs, a partial last block) give the same answer
-    monkeypatch.setattr(agreement_mod, "_BLOCK_BYTES", 1)
-    assert agreement_mod._pair_block_size(n_sites) == 8 and len(nb) % 8
+    assert int(4e6 // (len(i) * 21)) < 199
     import scipy.fft
 
     assert (scipy.fft.next_fast_len(n_sites, real=True) == n_sites) == (n_sites == 60)
-    np.testing.assert_allclose(agreement_mod._shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5)), got,
-                               rtol=RTOL, atol=0)
+    # the null correlations straddle 0: their rounding (the reference's FFTs included, about
+    # 1e-14 of the largest |value| from exact sums) is compared with the largest value
+    atol = 1e-12 * np.abs(want).max()
+    got = agreement_mod._shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5))
+    np.testing.assert_allclose(got, want, rtol=RTOL, atol=atol)
+    # the smallest blocks, one thread or two, and a cache of one rod (most rods transformed again
+    # for each block) give the same answer, bit for bit; either way to the mask sums, up to rounding
+    monkeypatch.setattr(agreement_mod, "_BLOCK_BYTES", 1)
+    for threads in (1, 2):
+        monkeypatch.setattr(agreement_mod, "_stat_threads", lambda t=threads: t)
+        np.testing.assert_array_equal(agreement_mod._shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5)),
+                                      got)
+    monkeypatch.setattr(shiftnull, "_CACHE_BYTES", 1)
+    np.testing.assert_array_equal(agreement_mod._shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5)), got)
+    forced = shiftnull.shift_null_sums
+    for method in ("runs", "transforms"):
+        monkeypatch.setattr(agreement_mod, "shift_null_sums", lambda *a, _m=method, **k: forced(*a, **k, method=_m))
+        np.testing.assert_allclose(agreement_mod._shift_null(x, m, i, j, lags, 199, 7, np.random.default_rng(5)), got,
+                                   rtol=RTOL, atol=atol)
+
+
+def test_mask_runs_match_numpy(rng):
+    m = rng.random((40, 37)) > 0.4
+    m[3] = False
+    m[4] = True
+    m[5, ::2] = True
+    ptr, lo, hi = shiftnull.mask_runs(m)
+    for r in range(len(m)):
+        pad = np.concatenate([[False], m[r], [False]]).astype(np.int8)
+        want_lo = np.flatnonzero(np.diff(pad) == 1)
+        want_hi = np.flatnonzero(np.diff(pad) == -1)
+        np.testing.assert_array_equal(lo[ptr[r]:ptr[r + 1]], want_lo)
+        np.testing.assert_array_equal(hi[ptr[r]:ptr[r + 1]], want_hi)
+
+
+@pytest.mark.parametrize("t0,w", [(0, 31), (4, 20), (30, 1)])
+def test_sums_from_runs_match_numpy(rng, t0, w):
+    # one pair's N, Sx, Sy, Sxx, Syy at shifts t0 .. t0 + w - 1 from the rods' runs and prefix sums
+    n = 31
+    x = rng.random((2, n)).astype(np.float32)
+    m = rng.random((2, n)) > 0.3
+    m[0, :3] = True
+    m[1, -2:] = True  # runs touching the rods' ends
+    ptr, lo, hi = shiftnull.mask_runs(m)
+    pre, cen = np.empty((2, 5, n + 1)), np.empty((2, 2))
+    shiftnull._rod_inputs(x, m, np.arange(2), np.empty((2, 1, n)), pre, cen, np.arange(2))
+    out = np.full((6, w), np.nan)
+    shiftnull._sums_from_runs(n, t0, lo, hi, ptr[0], ptr[1], ptr[1], ptr[2], pre[0], pre[1], cen[0], cen[1], out)
+    a = np.where(m, x.astype(float), 0.0)
+    for u in range(w):
+        mj, aj = np.roll(m[1], -(t0 + u)), np.roll(a[1], -(t0 + u))
+        want = [np.sum(m[0] * mj), np.sum(a[0] * mj), np.sum(m[0] * aj), np.sum(a[0] ** 2 * mj), np.sum(m[0] * aj ** 2)]
+        np.testing.assert_allclose(out[:5, u], want, rtol=1e-13, atol=1e-13)
+    assert np.isnan(out[5]).all()
+
+
+def test_pair_schedule_gives_every_pair_its_rods_and_transforms_lattice_rods_once(rng):
+    n_side = 20
+    nb = grid_pairs(n_side)
+    perm = rng.permutation(n_side * n_side)  # rods numbered without regard to the lattice
+    i, j = perm[nb[:, 0]], perm[nb[:, 1]]
+    order = shiftnull._pair_order(i, j, n_side * n_side)
+    np.testing.assert_array_equal(np.sort(order), np.arange(len(i)))
+    for max_slots, once in ((10**6, True), (5, False)):
+        capacity, blocks = shiftnull._schedule(i, j, order, n_side * n_side, 16, max_slots)
+        assert capacity <= max_slots
+        held = {}
+        done = []
+        for sel, new, new_slots, si, sj in blocks:
+            held.update(zip(new_slots.tolist(), new.tolist()))
+            assert [held[s] for s in si.tolist()] == i[sel].tolist()
+            assert [held[s] for s in sj.tolist()] == j[sel].tolist()
+            done.append(sel)
+        np.testing.assert_array_equal(np.concatenate(done), order)
+        n_new = sum(len(b[1]) for b in blocks)
+        assert (n_new == n_side * n_side) == once
+        if once:
+            assert capacity < 4 * n_side  # a band of the lattice, not every rod
+
+
+def test_mask_sums_from_runs_are_chosen_for_few_runs_only(rng):
+    n = 2000
+    s = np.arange(n)
+    few = (s >= 100) & (s < 1900) & ((s < 700) | (s >= 760))
+    many = rng.random(n) > 0.1
+    i, j = np.arange(0, 99), np.arange(1, 100)
+    for m, want in ((np.tile(few, (100, 1)), True), (np.tile(many, (100, 1)), False)):
+        ptr = shiftnull.mask_runs(m)[0]
+        assert shiftnull._use_runs(ptr, i, j, n, shiftnull.transform_length(n)) == want
 
 
 def test_agreement_on_strided_float32_values_equals_float64_copy(rng):

@@ -30,10 +30,11 @@ the chain quantities are defined once, in :mod:`probeseq.decoding.chain`, and li
 Large runs (tens of thousands of rods of thousands of sites) are handled without copies of the
 per-site arrays: paths stay in their small integer dtype, the posteriors are read through the one
 slice that is needed, and the per-rod and per-pair sums run in compiled loops (numba) or, for the
-circular-shift null, in blocks of neighbour pairs whose temporaries are bounded by
-``_BLOCK_BYTES``. Sums keep the order of floating-point operations of plain numpy code
+circular-shift null (:mod:`.shiftnull`), in blocks of neighbour pairs whose temporaries are bounded
+by ``_BLOCK_BYTES``. Sums keep the order of floating-point operations of plain numpy code
 (``ndarray.sum``'s pairwise summation, bincount's running sums), so results do not depend on the
-block size.
+block size; the null's sums, by FFT and prefix sums, equal the direct ones up to rounding and do
+not depend on the block size or the threads either.
 """
 
 from __future__ import annotations
@@ -47,6 +48,7 @@ import numpy as np
 
 from ..decoding.chain import signed_states as _signed_states
 from ..exceptions import InputError
+from .shiftnull import in_threads, shift_null_sums
 
 __all__ = ['RodAgreement', 'rod_agreement', 'neighbour_pairs']
 
@@ -191,31 +193,9 @@ def _stat_threads() -> int:
 
 
 def _in_threads(fn, n: int, min_per_thread: int = 1) -> None:
-    """Call ``fn(a, b)`` on consecutive parts ``[a, b)`` of ``range(n)``, one per thread, the first in
-    this thread; parts have at least ``min_per_thread`` items (fewer items: one call)."""
-    k = max(1, min(_stat_threads(), n // max(1, min_per_thread)))
-    if k == 1:
-        fn(0, n)
-        return
-    import threading
-
-    edges = [n * t // k for t in range(k + 1)]
-    errors = []
-
-    def part(t):
-        try:
-            fn(edges[t], edges[t + 1])
-        except BaseException as e:  # re-raised in the calling thread
-            errors.append(e)
-
-    threads = [threading.Thread(target=part, args=(t,)) for t in range(1, k)]
-    for th in threads:
-        th.start()
-    part(0)
-    for th in threads:
-        th.join()
-    if errors:
-        raise errors[0]
+    """Call ``fn(a, b)`` on consecutive parts ``[a, b)`` of ``range(n)``, one per thread of
+    :func:`_stat_threads` (:func:`.shiftnull.in_threads`)."""
+    in_threads(fn, n, _stat_threads(), min_per_thread)
 
 
 def _pairwise_plan(n: int) -> np.ndarray:
@@ -427,23 +407,18 @@ def _centred(raw):
     return np.stack([cxy, cxx, cyy], axis=-1)
 
 
-def _pair_block_size(n_sites: int) -> int:
-    """Neighbour pairs per block of the circular null: about ``_BLOCK_BYTES`` of temporaries."""
-    # per pair, in float64 words of n_sites: 6 circular sums, 6 gathered half spectra, one cross
-    # spectrum (complex, n_sites // 2 + 1 each), and for up to 2 rods 3 spectra and 3 inputs; the
-    # other 5 cross spectra (one irfft call for all six) are not counted, so the block's
-    # temporaries are about 1.25 x _BLOCK_BYTES (smaller blocks transform each rod more often)
-    per_pair = 8 * n_sites * (6 + 6 + 1 + 2 * 3 + 2 * 3)
-    return int(max(8, min(4096, _BLOCK_BYTES // max(per_pair, 1))))
-
-
 def _shift_null(x, m, i, j, lags, n_null, tmin, rng):
     """Null statistics: each pair's second rod shifted by its own random offset in [tmin, n - tmin].
 
-    The circular cross sums of every shift (:func:`_circular_raw`) are computed for a block of
-    pairs at a time and only the shifted lags drawn for each replicate are kept, summed over the
-    pairs in pair order; the random offsets are drawn first, in the same calls and order as
-    replicate chunks of ``4e6 / (3 n_pairs n_lags)`` replicates.
+    The random offsets are drawn first, in the same calls and order as replicate chunks of
+    ``4e6 / (3 n_pairs n_lags)`` replicates; the centred circular sums of each pair at its offsets
+    plus the lags are summed over pairs by :func:`.shiftnull.shift_null_sums` (blocks of pairs whose
+    temporaries are bounded by ``_BLOCK_BYTES``, :func:`_stat_threads` threads).
+
+    Returns
+    -------
+    (n_null,) ndarray of float
+        Largest pooled correlation over lags of each replicate.
     """
     p = len(i)
     n = x.shape[1]
@@ -454,75 +429,10 @@ def _shift_null(x, m, i, j, lags, n_null, tmin, rng):
     for c0 in range(0, n_null, chunk):
         c1 = min(n_null, c0 + chunk)
         shifts[:, c0:c1] = rng.integers(tmin, n - tmin + 1, size=(c1 - c0, p, 1))[:, :, 0].T
-    import scipy.fft
-
-    workers = _stat_threads()
-    acc = np.zeros((n_null, len(lags), 3))
-    # transform length: n itself when pocketfft factors it fast; otherwise (a large prime factor,
-    # e.g. 5956 = 4 x 1489, takes its slow Bluestein path) the linear cross sums over a fast length
-    # of at least 2n, folded back to circular ones (three times faster at 11,000 x 5,956 sites)
-    n_fft = n if scipy.fft.next_fast_len(n, real=True) == n else scipy.fft.next_fast_len(2 * n, real=True)
-    block = _pair_block_size(n_fft)
-    nf = n_fft // 2 + 1
-    bmax = min(block, p)
-    spec_i = np.empty((3, bmax, nf), dtype=np.complex128)  # conj spectra of the first rods
-    spec_j = np.empty((3, bmax, nf), dtype=np.complex128)  # spectra of the second rods
-    cross = np.empty((6, bmax, nf), dtype=np.complex128)
-    for b0 in range(0, p, block):
-        b1 = min(p, b0 + block)
-        nb = b1 - b0
-        rods, inv = np.unique(np.concatenate([i[b0:b1], j[b0:b1]]), return_inverse=True)
-        ii, jj = inv[:nb], inv[nb:]
-        for c, f in enumerate(_rod_ffts(x[rods], m[rods], n_fft)):  # values, squares, mask
-            np.take(f, ii, axis=0, out=spec_i[c, :nb])
-            np.conjugate(spec_i[c, :nb], out=spec_i[c, :nb])
-            np.take(f, jj, axis=0, out=spec_j[c, :nb])
-        # the six sums of _circular_raw (N, Sx, Sy, Sxx, Syy, Sxy) for every shift of each pair
-        for c, (u, v) in enumerate(((2, 2), (0, 2), (2, 0), (1, 2), (2, 1), (0, 0))):
-            np.multiply(spec_i[u, :nb], spec_j[v, :nb], out=cross[c, :nb])
-        raw = scipy.fft.irfft(cross[:, :nb], n=n_fft, axis=2, workers=workers)  # (6, nb, n_fft), one call
-        if n_fft != n:  # shift t: lag t plus lag t - n (stored at n_fft - n + t)
-            raw = raw[:, :, :n] + raw[:, :, n_fft - n:]
-        np.rint(raw[0], out=raw[0])
-        _null_accumulate(raw, nb, shifts[b0:b1], lags, acc)
+    acc = shift_null_sums(x, m, i, j, lags, shifts, threads=_stat_threads(), block_bytes=_BLOCK_BYTES)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         return np.nanmax(_corr_from_sums(acc), axis=1)
-
-
-@numba.njit(cache=True, nogil=True)
-def _null_accumulate(raw, n_pairs, shifts, lags, acc):
-    """Add the centred circular sums (:func:`_centred`) of each pair at its drawn shift + lag.
-
-    raw[:, :n_pairs] (6, n_pairs, n) holds N, Sx, Sy, Sxx, Syy, Sxy of every circular shift of each
-    pair of the block, shifts (n_pairs, n_null) the drawn offsets; acc (n_null, n_lags, 3) is summed
-    over pairs in order.
-    """
-    n = raw.shape[2]
-    n_null = shifts.shape[1]
-    for q in range(n_pairs):
-        r_n, r_sx, r_sy = raw[0, q], raw[1, q], raw[2, q]
-        r_sxx, r_syy, r_sxy = raw[3, q], raw[4, q], raw[5, q]
-        for r in range(n_null):
-            s = shifts[q, r]
-            a = acc[r]
-            for li in range(len(lags)):
-                t = s + lags[li]
-                if t >= n:
-                    t -= n
-                elif t < 0:
-                    t += n
-                nn = r_n[t]
-                if nn < 1.0:
-                    nn = 1.0
-                sx = r_sx[t]
-                sy = r_sy[t]
-                cxy = r_sxy[t] - sx * sy / nn
-                cxx = r_sxx[t] - sx * sx / nn
-                cyy = r_syy[t] - sy * sy / nn
-                a[li, 0] += cxy
-                a[li, 1] += cxx if not cxx < 0.0 else 0.0
-                a[li, 2] += cyy if not cyy < 0.0 else 0.0
 
 
 @numba.njit(cache=True, nogil=True)
