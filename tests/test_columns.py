@@ -384,13 +384,19 @@ def test_error_bad_inputs(case):
 
 
 def test_figure(case, tmp_path):
+    import matplotlib
+    import matplotlib.pyplot as plt
+
     from probeseq.lattice.plot import plot_rod_density
 
     name, lat, t, (x, y, z, *_), reg = case
     col = build_columns(x, y, z, np.ones((x.size, 1)), ("Co",), lat, registration=reg)
+    backend, figs = matplotlib.get_backend(), plt.get_fignums()
     for suffix in (".png", ".svg"):
         p = plot_rod_density(x, y, z, col, tmp_path / f"d{suffix}")
         assert p.stat().st_size > 5000
+    # drawn without pyplot: the user's backend is not switched and no figure is left open
+    assert matplotlib.get_backend() == backend and plt.get_fignums() == figs
     with pytest.raises(InputError, match="suffix"):
         plot_rod_density(x, y, z, col, tmp_path / "d.pdf")
 

@@ -84,6 +84,16 @@ def test_light_metal_under_carbon_fragments_is_recovered_and_flagged():
     assert any("Mg" in w and "24" in w for w in res.warnings)
     notes = res.ranging.to_toml()
     assert "distance to the rod axes" in notes
+    # the figure of the refitted ranges: one panel per range, drawn without pyplot (nothing left open)
+    import matplotlib.pyplot as plt
+
+    from probeseq.ranging.plot import plot_overlaps
+
+    figs = plt.get_fignums()
+    fig = plot_overlaps(res.ranging)
+    assert fig is not None and plt.get_fignums() == figs
+    n_used = sum(1 for r in d["ranging"]["overlap_refinement"] if r.get("used"))
+    assert sum(ax.get_visible() for ax in fig.axes) == min(6, n_used)
 
 
 def test_a_metal_whose_every_line_overlaps_and_space_cannot_split_is_named():

@@ -26,8 +26,10 @@ def decoded_rods(columns) -> np.ndarray:
     if not columns.n_sites:
         return np.zeros(columns.n_rods, bool)
     mask = np.asarray(columns.mask, bool)
-    counts = np.asarray(columns.counts, float).sum(axis=-1)
-    return mask.any(axis=1) & ((counts * mask).sum(axis=1) > 0)
+    # counts are non-negative: a used site holds an ion when its largest count is positive (read in
+    # the counts' own dtype, no float64 copy of the whole array)
+    seen = np.asarray(columns.counts).max(axis=-1) > 0
+    return mask.any(axis=1) & (seen & mask).any(axis=1)
 
 
 def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, title: str | None = None):
@@ -58,10 +60,7 @@ def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, tit
     Path
         The file written.
     """
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.collections import EllipseCollection
     from matplotlib.colors import LinearSegmentedColormap, PowerNorm
 
@@ -103,7 +102,11 @@ def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, tit
     nbin = np.minimum(np.ceil((hi - lo) / h).astype(int), 2000)
     H, xe, ye = np.histogram2d(xc, yc, bins=nbin, range=[[lo[0], hi[0]], [lo[1], hi[1]]])
     cmap = LinearSegmentedColormap.from_list("density", [EMPTY, METAL_COLOURS[0], METAL_COLOURS[-1]])
-    fig, ax = plt.subplots(figsize=(6.4, 6.0), dpi=150)
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(6.4, 6.0), dpi=150)  # not pyplot: no global figure, the user's backend untouched
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
     # square-root colour scale: the faint spots of edge rods (few ions) stay visible beside dense ones
     im = ax.imshow(H.T / (h * h), origin="lower", extent=(xe[0], xe[-1], ye[0], ye[-1]), cmap=cmap,
                    interpolation="nearest", aspect="equal", norm=PowerNorm(0.5))
@@ -135,7 +138,6 @@ def plot_rod_density(x, y, z, columns, path, *, bin_nm: float | None = None, tit
 
     path.parent.mkdir(parents=True, exist_ok=True)
     fig.savefig(path, **figure_save_kwargs(path))
-    plt.close(fig)
     return path
 
 

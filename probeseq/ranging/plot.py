@@ -257,7 +257,8 @@ def plot_overlaps(result, path=None, *, max_panels: int = 6):
     """
     import math
 
-    import matplotlib.pyplot as plt
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
 
     ref = sorted((d for d in result.overlap_refinement if d.get("used")), key=lambda d: -d["ions"])[:max_panels]
     if not ref or result.fit_rows is None:
@@ -266,7 +267,9 @@ def plot_overlaps(result, path=None, *, max_panels: int = 6):
     n = len(ref)
     ncol = min(3, n)
     nrow = math.ceil(n / ncol)
-    fig, axes = plt.subplots(nrow, ncol, figsize=(2.6 * ncol, 2.2 * nrow), squeeze=False)
+    fig = Figure(figsize=(2.6 * ncol, 2.2 * nrow))  # not pyplot: nothing kept open in a batch of runs
+    FigureCanvasAgg(fig)
+    axes = fig.subplots(nrow, ncol, squeeze=False)
     sp = result.spectrum
     c, counts = sp.centres_da, sp.counts
     lows = result.ranges.lows_da
