@@ -72,3 +72,66 @@ def test_two_processes_only_with_a_free_cpu_and_jobs_allowing_it():
     assert not two_processes_pay(1, cpus=8, load=0.0)  # --jobs 1 keeps everything in one process
     assert not two_processes_pay(None, cpus=1, load=0.0)
     assert others_running() >= 0.0
+
+
+def test_figures_drawn_ahead_in_a_child_are_moved_in_and_cleaned_up(tmp_path):
+    import os
+
+    from probeseq.outputs.figurejobs import FiguresAhead
+
+    pids = []
+
+    def jobs(folder):
+        def mark():
+            (folder / "pid.txt").write_text(str(os.getpid()))
+            return _figure()
+
+        return [FigureJob("a", mark, ("png",)), FigureJob("bad", _boom, ("png",)),
+                FigureJob("none", lambda: None, ("png",))]
+
+    ahead = FiguresAhead(jobs, lambda fig: (60.0, 60.0))
+    assert ahead.started
+    private = ahead.folder
+    dest = tmp_path / "figures"
+    done = ahead.collect(dest)
+    pids.append(int((dest / "pid.txt").read_text()))
+    assert pids[0] != os.getpid()  # drawn by the child, not here
+    assert sorted(done) == ["a", "bad"] and done["a"][0] == "ok" and done["bad"][0] == "failed"
+    assert _dpi_of(done["a"][1])[1][0] == pytest.approx(60.0, abs=0.1)
+    assert sorted(p.name for p in dest.iterdir()) == ["a.png", "pid.txt"]
+    assert not private.exists()  # its temporary folder is gone, nothing else is left behind
+    # an analysis that fails: discard stops the child and removes the folder
+    other = FiguresAhead(jobs, None)
+    other.discard()
+    assert not other.folder.exists()
+
+
+def test_an_analysis_moves_in_the_figures_drawn_ahead(tmp_path, monkeypatch):
+    # the count stage's figures come from the child started when the counts were done
+    import tempfile
+    from pathlib import Path
+
+    import probeseq.pipeline.analysis as an
+    from probeseq.simulation.simulate import simulate_run
+    from probeseq.study.batch import analyze_run
+
+    started = []
+    real = an.figures_ahead
+
+    def spy(counted):
+        a = real(counted)
+        started.append(a is not None and a.started)
+        return a
+
+    monkeypatch.setattr(an, "figures_ahead", spy)
+    monkeypatch.setattr("probeseq.outputs.figurejobs.two_processes_pay", lambda *a, **k: True)
+    run = simulate_run(pattern="long-block", top_radius_nm=5, depth_nm=18, seed=21)
+    from probeseq.io.readers import write_ions
+
+    src = tmp_path / "run.h5"
+    write_ions(run.ions, src)
+    out = analyze_run(src, tmp_path / "out", metals=("Co", "Zn"), lattice=run.lattice)
+    assert started == [True]
+    figs = {p.name for p in (out.outdir / "figures").iterdir()}
+    assert {"spectrum.png", "spectrum.svg", "density.png", "tracks.png"} <= figs
+    assert not list(Path(tempfile.gettempdir()).glob("probeseq-figures-ahead-*"))

@@ -27,7 +27,7 @@ from typing import Callable
 from ..utils.marks import PNG_PIL_KWARGS
 from ..utils.textformat import plain_log_ticks
 
-__all__ = ["FigureJob", "run_figure_jobs", "report_png", "two_processes_pay", "others_running", "warm_up", "prewarm"]
+__all__ = ["FigureJob", "FiguresAhead", "run_figure_jobs", "report_png", "two_processes_pay", "others_running", "warm_up", "prewarm"]
 
 
 @dataclass(frozen=True)
@@ -314,3 +314,96 @@ def run_figure_jobs(jobs, folder, report_dpi=None, parallel: bool | None = None)
             if os.path.exists(p):
                 os.unlink(p)
     return {jobs[i].name: results[i] for i in sorted(results) if results[i] is not None}
+
+
+def _draw_ahead(jobs, folder, report_dpi, out_path):
+    """Draw every job in order (the child of :class:`FiguresAhead`); results pickled to ``out_path``
+    after each figure, by name. The child runs at the lowest priority: it takes only the CPU the
+    analysis leaves idle, and never slows the parent's parallel kernels (a loop split over two
+    threads waits for the slower one, so a third process at equal priority cost the decoding
+    more than the figures' own time)."""
+    try:
+        os.nice(19)
+    except (AttributeError, OSError):  # no priorities here: draw at the same priority
+        pass
+    done = {}
+    for job in jobs:
+        done[job.name] = _one(job, folder, report_dpi)
+        tmp = f"{out_path}.part"
+        with open(tmp, "wb") as fh:
+            pickle.dump(done, fh)
+        os.replace(tmp, out_path)
+
+
+class FiguresAhead:
+    """Figures that need only the count stage's results (the spectrum, the density), drawn in a
+    forked child while the parent decodes: the CPU the decoding and statistics leave idle (their
+    serial parts) draws them, and the output stage only moves their files in.
+
+    Parameters
+    ----------
+    make_jobs : callable
+        ``make_jobs(folder)`` gives the FigureJob s, saving into ``folder`` (:attr:`folder`, a private
+        temporary folder).
+    report_dpi : callable, optional
+        As in :func:`run_figure_jobs`.
+
+    Notes
+    -----
+    Nothing is started when this process cannot fork a child (no fork, or a daemonic process such
+    as a dask worker): :meth:`collect` then returns nothing and the figures are drawn as usual. A
+    figure the child did not finish is drawn by the output stage too.
+    """
+
+    def __init__(self, make_jobs, report_dpi=None):
+        import multiprocessing as mp
+
+        from .. import runtime
+
+        self.folder = Path(tempfile.mkdtemp(prefix="probeseq-figures-ahead-"))
+        self.jobs = list(make_jobs(self.folder))
+        self._out = self.folder / "figures-ahead.pkl"
+        self._child = None
+        try:
+            mp.get_context("fork")
+        except ValueError:
+            return
+        if mp.current_process().daemon or not self.jobs:
+            return
+        warm_up(tuple({"png"} | {e for j in self.jobs for e in j.exts}))  # before the fork, once
+        self._child = runtime.Background(_draw_ahead, self.jobs, self.folder, report_dpi, str(self._out))
+
+    @property
+    def started(self) -> bool:
+        """Whether a child draws the figures."""
+        return self._child is not None and self._child.proc is not None
+
+    def collect(self, folder) -> dict:
+        """Wait for the child, move its files into ``folder`` and return ``{name: (status, value)}``
+        of the figures it finished (the values of :func:`run_figure_jobs`); the temporary folder is
+        removed."""
+        import shutil
+
+        done = {}
+        try:
+            if self.started:
+                self._child.proc.join()
+                if self._out.exists():
+                    with open(self._out, "rb") as fh:
+                        done = {k: v for k, v in pickle.load(fh).items() if v is not None}
+                folder = Path(folder)
+                folder.mkdir(parents=True, exist_ok=True)
+                for p in sorted(self.folder.iterdir()):
+                    if p.name not in (self._out.name, f"{self._out.name}.part"):
+                        shutil.move(str(p), str(folder / p.name))
+        finally:
+            self.discard()
+        return done
+
+    def discard(self) -> None:
+        """Stop the child if it still runs and remove the temporary folder (after an error)."""
+        import shutil
+
+        if self._child is not None:
+            self._child.kill()
+        shutil.rmtree(self.folder, ignore_errors=True)

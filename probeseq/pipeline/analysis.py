@@ -111,6 +111,9 @@ def _run(counts_stage, metals, lattice, opts, progress, provenance, meta) -> Ana
         t_counts = time.perf_counter()
         counted = counts_stage(clock)
         clock.timings["to_counts"] = round(time.perf_counter() - t_counts, 4)
+        on_counts = getattr(progress, "counted", None)  # optional: told the count stage's result
+        if on_counts is not None:
+            on_counts(counted)
         cols = counted.columns
         dec, groups = _decode_stage(cols, opts, clock)
         with clock.stage("statistics", f"statistics with {opts.n_boot} bootstrap resamples over rods"):
@@ -232,8 +235,53 @@ def _analyze_stream(path, metals, lattice, opts, ranges, progress, provenance, t
     return replace(res, ions_summary={**res.ions_summary, "sha256": sha["hex"]}), t_wait
 
 
+def count_stage_figure_jobs(ranging, columns: RodColumns, figure_ions, folder) -> list:
+    """The figures that need only the count stage's results, as :class:`FigureJob` s saving into
+    ``folder``: ``spectrum``, ``overlaps`` (when ranges were refitted) and ``density`` (when
+    ``figure_ions`` are given). :func:`figures_ahead` draws them while the decoding runs."""
+    from ..outputs.figurejobs import FigureJob
+
+    folder = Path(folder)
+
+    def spectrum():
+        from ..ranging.plot import plot_ranging
+
+        return plot_ranging(ranging, folder / "spectrum")
+
+    def overlaps():
+        from ..ranging.plot import plot_overlaps
+
+        return plot_overlaps(ranging, folder / "overlaps")
+
+    jobs = [FigureJob("spectrum", spectrum), FigureJob("overlaps", overlaps)]
+    if figure_ions is not None:
+        jobs.append(FigureJob("density", lambda: write_density_figure(figure_ions, ranging, columns,
+                                                                      folder / "density.png")))
+    return jobs
+
+
+def figures_ahead(counted):
+    """Start drawing the count stage's figures (:func:`count_stage_figure_jobs` of ``counted``, a
+    :class:`CountResult`) in a forked child, when a second CPU is free, while this process decodes;
+    hand the result to :func:`write_analysis` (``ahead=``). None when it does not pay (one CPU,
+    ``--jobs 1``) or this process cannot fork."""
+    from ..outputs.figurejobs import FiguresAhead, two_processes_pay
+    from ..outputs.report import report_dpi
+
+    # not judged on the load now: this process's own threads (the pass just ended) count as load, and
+    # the figures are drawn by the time the output stage needs them whatever the load
+    if not two_processes_pay(runtime.jobs(), load=0.0):
+        return None
+    ahead = FiguresAhead(lambda folder: count_stage_figure_jobs(counted.ranging, counted.columns,
+                                                                counted.figure_ions, folder), report_dpi)
+    if not ahead.started:
+        ahead.discard()
+        return None
+    return ahead
+
+
 def write_figures(result: AnalysisResult, folder, progress: Progress = None, failures: list | None = None,
-                  parallel: bool | None = None) -> dict:
+                  parallel: bool | None = None, drawn_ahead: dict | None = None) -> dict:
     """Save the figures of an analysis in ``folder`` (vector and PNG) and return the report's PNGs by name.
 
     The figures are drawn in this process and a forked child at once
@@ -248,7 +296,9 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None, fai
     scale, plane curvature, magnification and detection efficiency calibrated on the lattice). A figure that cannot be drawn is skipped with a warning.
     Its one-line message is also appended to ``failures`` when a list is given (``write_analysis``
     adds them to the warnings of ``results.json`` and the report). ``parallel`` as in
-    :func:`probeseq.outputs.figurejobs.run_figure_jobs` (default: judged now).
+    :func:`probeseq.outputs.figurejobs.run_figure_jobs` (default: judged now). ``drawn_ahead``:
+    figures already in ``folder``, drawn while the analysis ran (``{name: (status, value)}`` of
+    :meth:`probeseq.outputs.figurejobs.FiguresAhead.collect`); only the others are drawn.
     """
     from ..outputs.figurejobs import FigureJob, run_figure_jobs
     from ..outputs.figures import plot_group_variance, plot_rod_to_rod, plot_run_lengths
@@ -258,16 +308,7 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None, fai
     folder = Path(folder)
     if progress:
         progress("figures", "drawing the figures (tracks, run lengths, rod-to-rod, spectrum, density)")
-
-    def spectrum():
-        from ..ranging.plot import plot_ranging
-
-        return plot_ranging(result.ranging, folder / "spectrum")
-
-    def overlaps():
-        from ..ranging.plot import plot_overlaps
-
-        return plot_overlaps(result.ranging, folder / "overlaps")
+    done = dict(drawn_ahead or {})
 
     def reconstruction():
         from ..lattice.plot import plot_reconstruction
@@ -279,20 +320,20 @@ def write_figures(result: AnalysisResult, folder, progress: Progress = None, fai
     jobs = [FigureJob("tracks", lambda: plot_tracks(result.columns, result.decoded, size="two-column"),
                       ("svg", "png")),
             FigureJob("reconstruction", reconstruction),
-            FigureJob("run_lengths", lambda: plot_run_lengths(result.statistics), ("svg", "png")),
-            FigureJob("spectrum", spectrum)]
+            FigureJob("run_lengths", lambda: plot_run_lengths(result.statistics), ("svg", "png"))]
     if result.statistics.rod_to_rod is not None:
         jobs.append(FigureJob("rod_to_rod", lambda: plot_rod_to_rod(result.statistics,
                                                                    copy_threshold=result.options.copy_threshold),
                               ("svg", "png")))
     if result.groups is not None:
         jobs.append(FigureJob("groups", lambda: plot_group_variance(result.groups), ("svg", "png")))
-    jobs.append(FigureJob("overlaps", overlaps))
-    if result.figure_ions is not None:
-        jobs.append(FigureJob("density", lambda: write_density_figure(result.figure_ions, result.ranging,
-                                                                      result.columns, folder / "density.png")))
+    early = count_stage_figure_jobs(result.ranging, result.columns, result.figure_ions, folder)
+    jobs[3:3] = [j for j in early if j.name == "spectrum"]  # the order measured before: spectrum 4th
+    jobs += [j for j in early if j.name != "spectrum"]
+    jobs = [j for j in jobs if j.name not in done]
     figs = {}
-    for name, (status, value) in run_figure_jobs(jobs, folder, report_dpi, parallel=parallel).items():
+    drawn = run_figure_jobs(jobs, folder, report_dpi, parallel=parallel) if jobs else {}
+    for name, (status, value) in {**done, **drawn}.items():
         if status == "failed":
             warnings.warn(value, DataQualityWarning, stacklevel=2)
             if failures is not None:
@@ -327,7 +368,8 @@ def write_density_figure(ions: IonList, ranging, columns: RodColumns, path):
 
 
 def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: Callable | None = None,
-                   report: bool = True, progress: Progress = None, inputs=(), tracks_table: str = "auto") -> Path:
+                   report: bool = True, progress: Progress = None, inputs=(), tracks_table: str = "auto",
+                   ahead=None) -> Path:
     """Write an analysis output folder (staged: complete or not at all).
 
     Files: ``results.json``, the tracks table (``tracks.csv`` and/or ``tracks.h5``, see
@@ -339,7 +381,8 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
     ``tracks_table`` is one of :data:`probeseq.outputs.results.TRACKS_TABLE_CHOICES`: ``auto``
     writes ``tracks.csv`` up to 2,000,000 decoded sites and the same table as ``tracks.h5`` above
     (a CSV of a 10^8-ion run is about 2 GB of text; ``probeseq export OUTDIR --format csv`` still
-    writes it). ``results.json`` names the file(s) under ``outputs.tracks_table``.
+    writes it). ``results.json`` names the file(s) under ``outputs.tracks_table``. ``ahead``: the
+    figures drawn while the analysis ran (:func:`figures_ahead`), moved in rather than drawn again.
     """
     from ..outputs.folder import staged_outdir, write_json
     from ..outputs.results import tracks_table_files
@@ -352,17 +395,21 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
         # would otherwise count as the other CPU's load)
         from ..outputs.figurejobs import two_processes_pay
 
+        # the figures drawn during the analysis first: their child is then no load on the judgement below
+        drawn = ahead.collect(st / "figures") if (ahead is not None and report) else {}
         parallel = two_processes_pay(runtime.jobs()) if report else False
         # two forked children write the tables and the arrays while this process draws the figures
         children = [(runtime.Background(_write_tables, result, st, files), ", ".join(files + ("runs.csv",))),
                     (runtime.Background(_write_arrays, result, st), "columns.h5, decoded.h5")]
         try:
-            _write_rest(result, st, report, progress, extra, files, parallel)
+            _write_rest(result, st, report, progress, extra, files, parallel, drawn)
             for child, what in children:
                 child.join(what)
         finally:
             for child, _ in children:
                 child.kill()
+            if ahead is not None:
+                ahead.discard()
     return Path(outdir)
 
 
@@ -394,7 +441,7 @@ def _write_arrays(result, st):
     save_decoded(result.decoded, st / "decoded.h5")
 
 
-def _write_rest(result, st, report, progress, extra, files, parallel=None):
+def _write_rest(result, st, report, progress, extra, files, parallel=None, drawn=None):
     """Everything of an output folder but what the children write meanwhile (:func:`_write_tables`,
     :func:`_write_arrays`)."""
     result.ranging.to_toml(st / "ranges.toml")
@@ -404,7 +451,7 @@ def _write_rest(result, st, report, progress, extra, files, parallel=None):
         from ..outputs.report import write_report
 
         failures = []
-        figs = write_figures(result, st / "figures", progress, failures, parallel)
+        figs = write_figures(result, st / "figures", progress, failures, parallel, drawn)
         if failures:  # one warnings list: results.json and the report both carry the figures not drawn
             result = replace(result, warnings=tuple(dict.fromkeys(tuple(result.warnings) + tuple(failures))))
             write_json(st / "results.json", _results_dict(result, files))

@@ -169,14 +169,22 @@ def resolve_run(source, *, metals=None, lattice=None, a: float | None = None, re
 class _RunLog:
     """Progress callback that keeps every line for ``log.txt`` and passes each on to ``forward``.
 
-    ``on_stage`` maps a stage name to a callable run (once) when that stage starts.
+    ``on_stage`` maps a stage name to a callable run (once) when that stage starts; ``on_counts``
+    is called with the count stage's result (:class:`probeseq.pipeline.stages.CountResult`).
     """
 
-    def __init__(self, forward: Optional[Callable[[str, str], None]] = None, on_stage: dict | None = None):
+    def __init__(self, forward: Optional[Callable[[str, str], None]] = None, on_stage: dict | None = None,
+                 on_counts: Optional[Callable] = None):
         self.t0 = time.perf_counter()
         self.lines = []
         self.forward = forward
         self.on_stage = dict(on_stage or {})
+        self.on_counts = on_counts
+
+    def counted(self, count_result):
+        """The count stage is done (the progress protocol of :mod:`probeseq.pipeline.options`)."""
+        if self.on_counts is not None:
+            self.on_counts(count_result)
 
     def __call__(self, stage: str, message: str):
         self.lines.append(f"[{time.perf_counter() - self.t0:7.1f} s] {stage}: {message}")
@@ -261,7 +269,7 @@ def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a:
         Bad inputs or options (one line), or a failed fit.
     """
     from ..outputs.folder import check_outdir
-    from ..pipeline.analysis import analyze_file, write_analysis
+    from ..pipeline.analysis import analyze_file, figures_ahead, write_analysis
     from ..pipeline.options import AnalysisOptions
     from ..ranging.ranges import RangeSet
 
@@ -276,14 +284,28 @@ def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a:
 
     # matplotlib's one-time costs (about 1 s) paid in a thread from the binning on, while the compiled
     # kernels (which release the GIL) work; not earlier, where it would slow the start-up and the fits
-    warm = []
-    log = _RunLog(progress, on_stage={"binning": lambda: warm.append(prewarm())})
+    warm, ahead = [], []
+
+    def draw_ahead(counted):
+        # the spectrum and density figures need only the counts: a child draws them while this process
+        # decodes (no fork while the warm-up thread holds matplotlib's locks)
+        for t in warm:
+            t.join()
+        ahead.append(figures_ahead(counted))
+
+    log = _RunLog(progress, on_stage={"binning": lambda: warm.append(prewarm())}, on_counts=draw_ahead)
     rs = RangeSet.from_toml(run.ranges) if run.ranges is not None else None
     prov = {"command_line": command_line, "sample": run.sample, "run_name": run.name,
             "ranges_file": None if run.ranges is None else str(run.ranges)}
-    res = analyze_file(run.ions, run.metals, run.lattice, ranges=rs, options=options or AnalysisOptions(),
-                       progress=log, provenance=prov, length_unit=length_unit, position_dataset=position_dataset,
-                       mass_dataset=mass_dataset, strict=strict)
+    try:
+        res = analyze_file(run.ions, run.metals, run.lattice, ranges=rs, options=options or AnalysisOptions(),
+                           progress=log, provenance=prov, length_unit=length_unit, position_dataset=position_dataset,
+                           mass_dataset=mass_dataset, strict=strict)
+    except BaseException:
+        for a in ahead:
+            if a is not None:
+                a.discard()
+        raise
 
     def extra(folder):
         (folder / "log.txt").write_text("\n".join(log.lines + [""] + summary_lines(res)) + "\n", encoding="utf-8")
@@ -291,8 +313,13 @@ def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a:
     log("writing", f"{outdir}")
     for t in warm:
         t.join()  # no fork (the table child, the figures' child) while the thread holds matplotlib's locks
-    write_analysis(res, outdir, force=force, extra=extra, progress=log, inputs=list(run.inputs),
-                   tracks_table=tracks_table)
+    try:
+        write_analysis(res, outdir, force=force, extra=extra, progress=log, inputs=list(run.inputs),
+                       tracks_table=tracks_table, ahead=ahead[0] if ahead else None)
+    finally:
+        for a in ahead:
+            if a is not None:
+                a.discard()
     return RunAnalysis(result=res, outdir=outdir, source=run)
 
 
