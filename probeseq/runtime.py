@@ -306,7 +306,7 @@ class Background:
             fn(*args)
             return
         ensure()
-        self.proc = ctx.Process(target=fn, args=args, daemon=True)
+        self.proc = ctx.Process(target=_child_main, args=(fn, *args), daemon=True)
         self.proc.start()
 
     def join(self, what: str):
@@ -322,6 +322,23 @@ class Background:
         if self.proc is not None and self.proc.is_alive():
             self.proc.terminate()
             self.proc.join()
+
+
+def _child_main(fn, *args):
+    """A :class:`Background` child: the default actions of the stop signals first. The child
+    inherits the command's handlers, which turn SIGTERM/SIGHUP into an exception; when the parent
+    stops it (:meth:`Background.kill`) or the terminal stops the whole group, it should end
+    quietly, not print a traceback beside the command's one-line message."""
+    import signal
+
+    for name in ("SIGTERM", "SIGHUP", "SIGINT"):
+        sig = getattr(signal, name, None)
+        if sig is not None:
+            try:
+                signal.signal(sig, signal.SIG_DFL)
+            except (OSError, ValueError):
+                pass
+    fn(*args)
 
 
 def default_threads() -> int:

@@ -108,19 +108,17 @@ def test_figures_drawn_ahead_in_a_child_are_moved_in_and_cleaned_up(tmp_path):
 
 def test_an_analysis_moves_in_the_figures_drawn_ahead(tmp_path, monkeypatch):
     # the count stage's figures come from the child started when the counts were done
-    import tempfile
-    from pathlib import Path
-
     import probeseq.pipeline.analysis as an
     from probeseq.simulation.simulate import simulate_run
     from probeseq.study.batch import analyze_run
 
-    started = []
+    started, folders = [], []
     real = an.figures_ahead
 
     def spy(counted):
         a = real(counted)
         started.append(a is not None and a.started)
+        folders.append(a.folder)
         return a
 
     monkeypatch.setattr(an, "figures_ahead", spy)
@@ -134,4 +132,4 @@ def test_an_analysis_moves_in_the_figures_drawn_ahead(tmp_path, monkeypatch):
     assert started == [True]
     figs = {p.name for p in (out.outdir / "figures").iterdir()}
     assert {"spectrum.png", "spectrum.svg", "density.png", "tracks.png"} <= figs
-    assert not list(Path(tempfile.gettempdir()).glob("probeseq-figures-ahead-*"))
+    assert not folders[0].exists()  # the child's temporary folder is removed

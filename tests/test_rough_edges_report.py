@@ -327,9 +327,19 @@ def test_density_figure_explains_z_ref_units_and_marks_only_decoded_rods(result,
     used = decoded_rods(emptied)
     assert not used[empty] and used.sum() == int(cols.mask.any(1).sum()) - 1
     kept = []
-    monkeypatch.setattr(plt, "close", lambda fig=None: kept.append(fig))
+    from matplotlib.figure import Figure
+
+    real_savefig = Figure.savefig
+
+    def keep(self, *a, **k):  # the figure as it is saved (drawn without pyplot)
+        kept.append(self)
+        return real_savefig(self, *a, **k)
+
+    monkeypatch.setattr(Figure, "savefig", keep)
     x, y, z = tiny.ions.x, tiny.ions.y, tiny.ions.z
+    figs_before = plt.get_fignums()
     plot_rod_density(x, y, z, emptied, tmp_path / "d.png")
+    assert plt.get_fignums() == figs_before
     fig = kept[-1]
     ax = fig.axes[0]
     assert f"z_ref = {emptied.z_ref_nm:.1f} nm" in ax.get_xlabel() and "along the rods" in ax.get_xlabel()
@@ -338,7 +348,6 @@ def test_density_figure_explains_z_ref_units_and_marks_only_decoded_rods(result,
     legend = [t.get_text() for t in ax.get_legend().get_texts()]
     assert f"rod axis, decoded ({int(used.sum())})" in legend and any("not decoded" in t for t in legend)
     monkeypatch.undo()
-    plt.close(fig)
 
 
 # ---------------------------------------------------------------------------------- 6: rendered page
