@@ -404,3 +404,27 @@ def test_count_totals_read_only_observed_sites(rng):
         worse[r, t, 1] = value
         with pytest.raises(InputError, match=word):
             fit_decoder(make_columns(worse, mask))
+
+
+def test_large_runs_refine_the_start_on_a_share_of_the_rods(run_2metal, monkeypatch):
+    # with more than REFINE_FACTOR * SCREEN_SITES observed sites, the best start is refined by EM on
+    # 1/REFINE_FACTOR of the whole rods before the EM on all of them; the fit is the same to tolerance
+    import probeseq.decoding.decode as dmod
+
+    cols, _, plain = run_2metal
+    calls = []
+    real = dmod._screen_data
+
+    def spy(data, max_sites, segment, rng):
+        calls.append((max_sites, segment))
+        return real(data, max_sites, segment, rng)
+
+    monkeypatch.setattr(dmod, "_screen_data", spy)
+    monkeypatch.setattr(dmod, "SCREEN_SITES", 2000)  # 60,000 sites: well above 16 x 2000
+    refined = fit_decoder(cols, random_state=0)
+    n_obs = int(cols.mask.sum())
+    assert calls[1] == (n_obs // dmod.REFINE_FACTOR, cols.n_sites)  # whole rods, not segments
+    tol = 1e-6 * n_obs
+    assert abs(refined.loglik - plain.loglik) < 10 * tol + 1e-6 * abs(plain.loglik)
+    np.testing.assert_allclose(refined.transmat, plain.transmat, atol=2e-3)
+    assert abs(refined.eta - plain.eta) < 2e-3

@@ -20,6 +20,7 @@ from .hmm import run_em, viterbi
 from .model import (
     ETA_BOUNDS,
     LOW_COUNT_MIN,
+    REFINE_FACTOR,
     LOW_COUNT_SHARE,
     SCREEN_ITER,
     SCREEN_SEGMENT,
@@ -683,7 +684,11 @@ def fit_decoder(
     tol_abs = tol * prep.n_obs
 
     start_ll, best = _screen_starts(make_step(screen), screen, rng, k, n_starts, min(SCREEN_ITER, max_iter), tol, vis)
-    trace = run_em(make_step(prep), best.params, max_iter=max_iter, tol=tol_abs, on_iteration=on_iteration)
+    start = best.params
+    if compiled and prep.n_obs > REFINE_FACTOR * SCREEN_SITES:  # refined on a share of the rods first
+        mid = _screen_data(prep, prep.n_obs // REFINE_FACTOR, columns.n_sites, rng)
+        start = run_em(make_step(mid), start, max_iter=max_iter, tol=tol * mid.n_obs).params
+    trace = run_em(make_step(prep), start, max_iter=max_iter, tol=tol_abs, on_iteration=on_iteration)
     params = trace.params
     _note_unconverged(trace, "hidden-Markov fit", "returning the best fit", max_iter, tol_abs, notes)
 
