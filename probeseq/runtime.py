@@ -341,6 +341,40 @@ def _child_main(fn, *args):
     fn(*args)
 
 
+def in_parts(fn, n: int, threads: int, *, parts_per_thread: int = 1, min_items: int = 1) -> None:
+    """Call ``fn(lo, hi)`` on consecutive parts ``[lo, hi)`` of ``range(n)``, side by side on
+    ``threads`` Python threads (for compiled kernels that release the GIL).
+
+    Parameters
+    ----------
+    fn : callable
+        ``fn(lo, hi)``; each part should write only its own outputs, so that results do not depend
+        on the number of threads or on the order the parts run in.
+    n : int
+        Items to split (rods, runs, pairs).
+    threads : int
+        Threads to use; 1 (or a single part) calls ``fn(0, n)`` here.
+    parts_per_thread : int
+        Parts per thread (more parts even out items of unequal cost).
+    min_items : int
+        Fewest items per part.
+
+    An exception in any part is raised here after every part has ended.
+    """
+    from concurrent.futures import ThreadPoolExecutor
+
+    threads = max(1, int(threads))
+    k = max(1, min(parts_per_thread * threads, n // max(1, int(min_items))))
+    if threads == 1 or k == 1:
+        fn(0, n)
+        return
+    edges = [n * i // k for i in range(k + 1)]
+    with ThreadPoolExecutor(max_workers=min(threads, k)) as pool:
+        jobs = [pool.submit(fn, edges[i], edges[i + 1]) for i in range(k)]
+    for job in jobs:
+        job.result()
+
+
 def default_threads() -> int:
     """Worker threads of the counting pass: two when the process may run on two or more CPUs,
     else one."""

@@ -79,8 +79,6 @@ def test_figures_drawn_ahead_in_a_child_are_moved_in_and_cleaned_up(tmp_path):
 
     from probeseq.outputs.figurejobs import FiguresAhead
 
-    pids = []
-
     def jobs(folder):
         def mark():
             (folder / "pid.txt").write_text(str(os.getpid()))
@@ -94,8 +92,7 @@ def test_figures_drawn_ahead_in_a_child_are_moved_in_and_cleaned_up(tmp_path):
     private = ahead.folder
     dest = tmp_path / "figures"
     done = ahead.collect(dest)
-    pids.append(int((dest / "pid.txt").read_text()))
-    assert pids[0] != os.getpid()  # drawn by the child, not here
+    assert int((dest / "pid.txt").read_text()) != os.getpid()  # drawn by the child, not here
     assert sorted(done) == ["a", "bad"] and done["a"][0] == "ok" and done["bad"][0] == "failed"
     assert _dpi_of(done["a"][1])[1][0] == pytest.approx(60.0, abs=0.1)
     assert sorted(p.name for p in dest.iterdir()) == ["a.png", "pid.txt"]

@@ -220,3 +220,24 @@ def test_preload_once_and_background_work(tmp_path):
     assert out["hex"] == "ab12"
     runtime.background_checksum(lambda p: open(p, "rb").read(), tmp_path / "missing", out)
     assert isinstance(out["hex"], InputError) and "\n" not in str(out["hex"])
+
+
+def test_in_parts_covers_the_range_once_and_raises_a_part_error():
+    from probeseq import runtime
+
+    for n, threads, ppt, mi in ((10, 2, 1, 1), (100, 2, 4, 7), (5, 3, 4, 10), (0, 2, 1, 1), (7, 1, 4, 1)):
+        seen = []
+        runtime.in_parts(lambda lo, hi: seen.append((lo, hi)), n, threads, parts_per_thread=ppt, min_items=mi)
+        seen.sort()
+        assert seen[0][0] == 0 and seen[-1][1] == n  # consecutive parts covering range(n)
+        assert all(a[1] == b[0] for a, b in zip(seen, seen[1:]))
+        assert len(seen) <= max(1, threads * ppt)
+        if threads > 1 and n // mi >= 2:
+            assert len(seen) >= 2  # split, not one call
+
+    def bad(lo, hi):
+        if lo > 0:
+            raise ValueError("part failed")
+
+    with pytest.raises(ValueError, match="part failed"):
+        runtime.in_parts(bad, 10, 2)

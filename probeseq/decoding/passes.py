@@ -22,8 +22,6 @@ the same additions in the same order. Sums of whole counts are exact in any orde
 from __future__ import annotations
 
 import math
-from concurrent.futures import ThreadPoolExecutor
-
 import numba
 import numpy as np
 
@@ -52,35 +50,13 @@ def _mask_arg(mask) -> np.ndarray:
 
 
 def in_parts(kernel, n: int, *args, part: int = _ROD_PART) -> None:
-    """Run ``kernel(lo, hi, *args)`` over consecutive parts ``[lo, hi)`` of ``range(n)`` on the
-    kernels' threads (:func:`probeseq.runtime.kernel_threads`).
-
-    The kernels here are serial and release the GIL, so Python threads run them side by side (a
-    ``parallel=True`` kernel does the same work but takes seconds longer to compile). Each part
-    writes only its own rows of the outputs, so the results do not depend on the number of
-    threads or on the order the parts run in. Four parts per thread (of at least ``part`` items)
-    even out rods of different lengths.
-
-    Parameters
-    ----------
-    kernel : compiled function
-        Called as ``kernel(lo, hi, *args)``.
-    n : int
-        Items (rods or runs).
-    *args
-        The kernel's other arguments, the same for every part.
-    part : int
-        Fewest items per part.
-    """
-    threads = runtime.kernel_threads()
-    n_parts = max(1, min(4 * threads, n // max(1, part)))
-    if threads == 1 or n_parts == 1:
-        kernel(0, n, *args)
-        return
-    edges = [n * i // n_parts for i in range(n_parts + 1)]
-    with ThreadPoolExecutor(max_workers=threads) as pool:
-        for job in [pool.submit(kernel, edges[i], edges[i + 1], *args) for i in range(n_parts)]:
-            job.result()
+    """Run ``kernel(lo, hi, *args)`` over consecutive parts of ``range(n)`` on the kernels' threads
+    (:func:`probeseq.runtime.kernel_threads`), four parts per thread of at least ``part`` items
+    (:func:`probeseq.runtime.in_parts`). The kernels here are serial and release the GIL (a
+    ``parallel=True`` kernel does the same work but takes seconds longer to compile); each part
+    writes only its own rows, so results do not depend on the number of threads."""
+    runtime.in_parts(lambda lo, hi: kernel(lo, hi, *args), n, runtime.kernel_threads(), parts_per_thread=4,
+                     min_items=part)
 
 
 @numba.njit(cache=True, nogil=True, inline="always")

@@ -46,9 +46,10 @@ from dataclasses import dataclass
 import numba
 import numpy as np
 
+from .. import runtime
 from ..decoding.chain import signed_states as _signed_states
 from ..exceptions import InputError
-from .shiftnull import in_threads, shift_null_sums
+from .shiftnull import shift_null_sums
 
 __all__ = ['RodAgreement', 'rod_agreement', 'neighbour_pairs']
 
@@ -187,15 +188,13 @@ def _lag_sums(x, m, i, j, lags, probabilities: bool = False):
 def _stat_threads() -> int:
     """Threads of the statistics' compiled loops and FFTs: the kernels' thread budget (``--jobs``),
     at most 2 (more gains little on these memory-bound loops)."""
-    from .. import runtime
-
     return max(1, min(2, runtime.kernel_threads()))
 
 
 def _in_threads(fn, n: int, min_per_thread: int = 1) -> None:
     """Call ``fn(a, b)`` on consecutive parts ``[a, b)`` of ``range(n)``, one per thread of
-    :func:`_stat_threads` (:func:`.shiftnull.in_threads`)."""
-    in_threads(fn, n, _stat_threads(), min_per_thread)
+    :func:`_stat_threads` (:func:`probeseq.runtime.in_parts`)."""
+    runtime.in_parts(fn, n, _stat_threads(), min_items=min_per_thread)
 
 
 def _pairwise_plan(n: int) -> np.ndarray:

@@ -37,14 +37,15 @@ into preallocated buffers; temporaries of a block are bounded by the caller's ``
 
 from __future__ import annotations
 
-import threading
 from collections import deque
 from types import SimpleNamespace
 
 import numba
 import numpy as np
 
-__all__ = ['in_threads', 'shift_null_sums', 'transform_length']
+from .. import runtime
+
+__all__ = ['shift_null_sums', 'transform_length']
 
 # memory of the cache of rod spectra (and prefix sums) that waits for the rods' later pairs
 _CACHE_BYTES = 512 * 2**20
@@ -61,32 +62,6 @@ _CROSS_ONLY = np.array([[0, 0]], dtype=np.int64)
 
 # pairs transformed per call (their cross spectra and transforms stay in cache)
 _CHUNK = 8
-
-
-def in_threads(fn, n: int, threads: int, min_per_thread: int = 1) -> None:
-    """Call ``fn(a, b)`` on consecutive parts ``[a, b)`` of ``range(n)``, one per thread, the first in
-    this thread; parts have at least ``min_per_thread`` items (fewer items: one call)."""
-    k = max(1, min(int(threads), n // max(1, min_per_thread)))
-    if k == 1:
-        fn(0, n)
-        return
-    edges = [n * t // k for t in range(k + 1)]
-    errors = []
-
-    def part(t):
-        try:
-            fn(edges[t], edges[t + 1])
-        except BaseException as e:  # re-raised in the calling thread
-            errors.append(e)
-
-    workers = [threading.Thread(target=part, args=(t,)) for t in range(1, k)]
-    for th in workers:
-        th.start()
-    part(0)
-    for th in workers:
-        th.join()
-    if errors:
-        raise errors[0]
 
 
 def transform_length(n_sites: int) -> int:
@@ -508,8 +483,8 @@ def _null_block(c, new, new_slots, si, sj, ri, rj, sh) -> None:
                         c.pre, c.cen, sh[c0:c1], c.lags, win, acc)
 
     if len(new):
-        in_threads(rods, len(new), c.threads)
-    in_threads(lambda a, b: [pairs(part) for part in range(a, b)], 2, c.threads)
+        runtime.in_parts(rods, len(new), c.threads)
+    runtime.in_parts(lambda a, b: [pairs(part) for part in range(a, b)], 2, c.threads)
 
 
 def _window(shifts, lags, n_sites: int):
