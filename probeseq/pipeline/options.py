@@ -11,7 +11,10 @@ the fused pass over the ions, EM updates of the decoder on all rods out of its i
 ``done`` rising to at most ``total``. It is looked up with ``getattr``, so callbacks without it
 keep working, and it may be called often (once per chunk or iteration): it should return at
 once. Stages report through :class:`_Clock` (``clock.stage(name, message)`` and
-``clock.advance(name, done, total)``), never by calling ``progress`` themselves.
+``clock.advance(name, done, total)``), never by calling ``progress`` themselves. A progress
+object may also have ``counted(result)``: the analysis calls it once with the count stage's
+:class:`~probeseq.pipeline.stages.CountResult`, before the decoding (the command line draws the
+figures that need only the counts meanwhile, :func:`probeseq.pipeline.analysis.figures_ahead`).
 """
 
 from __future__ import annotations
