@@ -48,7 +48,8 @@ from dataclasses import dataclass
 import numpy as np
 
 __all__ = ['EvidenceTable', 'LateralSpread', 'fit_lateral_spread', 'own_fractions', 'remove_own', 'extras_shares',
-           'evidence_table', 'run_evidence_table', 'N_LEVELS', 'UNITS']
+           'evidence_table', 'run_evidence_table', 'lateral_capture', 'run_lateral_spread', 'N_LEVELS',
+           'UNITS']
 
 #: levels of the radial likelihood ratio rho
 N_LEVELS = 64
@@ -323,7 +324,8 @@ class EvidenceTable:
         The radial likelihood ratio of each level (mean 1 over the cell area).
     own_scale : (K,) ndarray of float64
         Expected evidence a detected own ion of each metal adds (``sum_r p_rk u_rk E_g[rho] /
-        a_k``), for the M-step of the extra rates.
+        a_k``, ``E_g`` over the whole Gaussian, rho being 0 where the ion lands nearer another
+        rod), for the M-step of the extra rates.
     capture : (K,) ndarray of float64
         Share of each metal's ions inside its ranges (``a_k``), the metals' visibility.
     spread : LateralSpread
@@ -335,6 +337,10 @@ class EvidenceTable:
         ``floor((m - bin_low[r]) * bin_scale[r])`` (float64), clipped to the range's bins.
     bin_low : (n_ranges,) ndarray of float64, Da
         Low edge of each range.
+    lateral_capture : float
+        Share of a rod's own ions that land nearest their own rod within the cutoff
+        (:func:`lateral_capture`; 1 without a fitted width): the counts hold the rest at a
+        neighbouring rod or not at all, so it is part of the metals' visibility in the counts.
     """
 
     increments: np.ndarray
@@ -346,6 +352,7 @@ class EvidenceTable:
     bin_start: np.ndarray
     bin_scale: np.ndarray
     bin_low: np.ndarray
+    lateral_capture: float = 1.0
 
     @property
     def n_bins(self) -> int:
@@ -355,7 +362,8 @@ class EvidenceTable:
         nb = np.diff(self.bin_start)
         return {"lateral_spread": self.spread.to_dict(), "capture": self.capture.tolist(),
                 "own_scale": self.own_scale.tolist(), "radial": bool(self.spread.fitted),
-                "mass_bins": {"ranges_cut": int((nb > 1).sum()), "bins": self.n_bins}}
+                "mass_bins": {"ranges_cut": int((nb > 1).sum()), "bins": self.n_bins},
+                "lateral_capture": float(self.lateral_capture)}
 
 
 def _levels(rho: np.ndarray):
@@ -367,6 +375,39 @@ def _levels(rho: np.ndarray):
     q = np.clip(np.rint(np.sqrt(rho / top) * (N_LEVELS - 1)), 0, N_LEVELS - 1).astype(np.int32)
     values = (np.arange(N_LEVELS) / (N_LEVELS - 1)) ** 2 * top
     return q, values
+
+
+def lateral_capture(locator, spread: LateralSpread, d2=None) -> float:
+    """Share of a rod's own ions that land nearest their own rod, within the cutoff.
+
+    The own ions spread about the axis as a two-dimensional Gaussian of width ``sigma``; where the
+    rods are close (or the blur is wide) some land nearer a neighbour and are counted there. The
+    share kept is the integral of the Gaussian over the rod's cell, summed on the locator's grid:
+    every grid cell adds its Gaussian density at the distance to its nearest axis times its area,
+    over all the rods of the unit cell, divided by their number.
+
+    Parameters
+    ----------
+    locator : RodLocator
+    spread : LateralSpread
+        The own ions' lateral width (not ``fitted``: 1).
+    d2 : (n_grid * n_grid,) ndarray of float, nm^2, optional
+        :func:`_grid_d2` of the locator when already computed.
+
+    Returns
+    -------
+    float in (0, 1]
+    """
+    if not spread.fitted:
+        return 1.0
+    if d2 is None:
+        d2 = _grid_d2(locator)
+    cut = float(locator.cutoff_nm) ** 2 if np.isfinite(locator.cutoff_nm) else np.inf
+    s2 = float(spread.sigma_nm) ** 2
+    nb = int(locator.lattice.rods_per_cell)
+    area = abs(float(np.linalg.det(locator.lattice.cell_matrix))) / d2.size / nb  # per grid cell and rod, nm^2
+    g = np.where(d2 < cut, np.exp(-d2 / (2 * s2)), 0.0) / (2 * np.pi * s2)
+    return float(min(max(g.sum() * area, 1e-3), 1.0))
 
 
 def evidence_table(share, capture, seen, locator, spread: LateralSpread, bins=None) -> EvidenceTable:
@@ -411,19 +452,47 @@ def evidence_table(share, capture, seen, locator, spread: LateralSpread, bins=No
         mean = float(values[level[inside]].mean()) if inside.any() else 1.0
         values = values / mean  # the quantised rho averages to 1 over the cell
         # E_g[rho] over the own ions' Gaussian: weight each cell by g
+        # (over the whole Gaussian: an own ion landing nearer another rod adds nothing at its site,
+        # and the counts' visibility holds the share that lands nearest its rod, ``lateral``)
         gi = np.where(inside, g, 0.0)
-        e_own = float((gi * values[level]).sum() / max(gi.sum(), 1e-300))
+        lateral = lateral_capture(locator, spread, d2)
+        e_own = lateral * float((gi * values[level]).sum() / max(gi.sum(), 1e-300))
     else:
         level = np.full(d2.size, N_LEVELS - 1, np.int32)
         values = np.ones(N_LEVELS)
         e_own = 1.0
+        lateral = 1.0
     inc = np.rint(share[:, None, :] * values[None, :, None] * UNITS) / UNITS  # (n_rows, N_LEVELS, K)
     capture = np.clip(np.asarray(capture, dtype=np.float64), 0.02, 1.0)
     own_scale = np.asarray(seen, dtype=np.float64) * e_own / capture
     return EvidenceTable(increments=np.ascontiguousarray(inc.reshape(n_rows * N_LEVELS, K)),
                          cell_level=np.ascontiguousarray(level.astype(np.int32)), rho_levels=values,
                          own_scale=own_scale, capture=capture, spread=spread, bin_start=np.ascontiguousarray(start),
-                         bin_scale=np.ascontiguousarray(scale), bin_low=np.ascontiguousarray(low))
+                         bin_scale=np.ascontiguousarray(scale), bin_low=np.ascontiguousarray(low),
+                         lateral_capture=float(lateral))
+
+
+def run_lateral_spread(assignment, d_nm, range_index, locator) -> LateralSpread:
+    """The own ions' lateral width fitted on the sampled ions of the (nearly) pure metal ranges
+    (one metal holds at least 0.9 of the range's ions).
+
+    Parameters
+    ----------
+    assignment : ChannelAssignment
+        Channels of the ranged ions (its ``metal_weights``).
+    d_nm : (n,) array of float, nm
+        Distance to the nearest rod axis of each sampled ion of a metal-bearing range.
+    range_index : (n,) array of int
+        Range of each of those ions.
+    locator : RodLocator
+
+    Returns
+    -------
+    LateralSpread
+    """
+    w = np.asarray(assignment.metal_weights, float)[:-1]
+    pure = np.concatenate([(w >= 0.9).any(axis=1), [False]])[np.asarray(range_index)]
+    return fit_lateral_spread(np.asarray(d_nm, dtype=np.float64)[pure], locator)
 
 
 def run_evidence_table(rr, assignment, d_nm, range_index, locator, bins=None) -> EvidenceTable:
@@ -461,8 +530,7 @@ def run_evidence_table(rr, assignment, d_nm, range_index, locator, bins=None) ->
     w = np.asarray(assignment.metal_weights, float)[:-1]  # (n_ranges, K)
     ri = np.asarray(range_index)
     d = np.asarray(d_nm, dtype=np.float64)
-    pure = np.concatenate([(w >= 0.9).any(axis=1), [False]])[ri]  # (nearly) one metal
-    spread = fit_lateral_spread(d[pure], locator)
+    spread = run_lateral_spread(assignment, d, ri, locator)
     if bins is None:
         bins = range_bins(rr, w)
     u = extras_shares(w, d, ri, locator, spread, bins=bins)

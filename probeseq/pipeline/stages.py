@@ -48,8 +48,10 @@ class CountResult:
         The ranged mass spectrum (fitted on at most :data:`RANGING_IONS` ions of the sample).
     columns : RodColumns
         Counts (n_rods, n_sites, n_metals), whole ions per site, with their geometry;
-        ``params["visibility"]`` holds each metal's relative visibility (the share of its ions
-        counted as it, :func:`probeseq.ranging.channels.metal_visibility`), which the decoder uses.
+        ``params["visibility"]`` holds each metal's visibility in the counts (the share of its
+        ions counted as it, :func:`probeseq.ranging.channels.metal_visibility`, times the share
+        of the own ions that land nearest their rod,
+        :func:`probeseq.lattice.evidence.lateral_capture`), which the decoder uses.
     n_metal_ions : int
         Ions of the whole run that fall in a range holding a metal.
     sample : IonList
@@ -252,18 +254,23 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
                 thin = metal_visibility(rr, ca_fit)
             geom = plan_columns(x, y, z, reg, random_state=opts.seed, correction=corr)
             ev = _evidence_table(rr, ca_fit, geom, reg, (x, y, z), ca.range_index[sel], opts)
-    return rr, thin, geom, ev
+    if isinstance(ev, float):  # drawn metals: only the lateral capture, into the visibility
+        return rr, thin * ev, geom, None
+    return rr, thin * ev.lateral_capture, geom, ev
 
 
 def _evidence_table(rr, ca_fit, geom, reg, xyz, range_index, opts):
     """The soft-evidence increments of the pass (:func:`probeseq.lattice.evidence.run_evidence_table`:
     per mass bin of the ranges, with the lateral width fitted on the sample's ions of pure metal
-    ranges), or None when not asked for."""
-    if not opts.soft_evidence:
-        return None
-    from ..lattice.evidence import run_evidence_table
+    ranges), or, when not asked for, the share of the own ions that land nearest their rod
+    (:func:`probeseq.lattice.evidence.lateral_capture`, a float: part of the counts' visibility
+    either way)."""
+    from ..lattice.evidence import lateral_capture, run_evidence_table, run_lateral_spread
 
-    return run_evidence_table(rr, ca_fit, reg.axis_distance_nm(*xyz), range_index, geom.locator)
+    d = reg.axis_distance_nm(*xyz)
+    if not opts.soft_evidence:
+        return lateral_capture(geom.locator, run_lateral_spread(ca_fit, d, range_index, geom.locator))
+    return run_evidence_table(rr, ca_fit, d, range_index, geom.locator)
 
 
 def _correct(sample: IonList, sel, reg, lattice, opts):
@@ -392,7 +399,7 @@ def _finish_pass(geom, counts, metals, tally, thin, ev=None, evidence=None):
     if ev is not None:
         extra["evidence"] = {"capture": dict(zip(metals, ev.capture.tolist())),
                              "own_scale": dict(zip(metals, ev.own_scale.tolist())),
-                             "lateral_spread": ev.spread.to_dict()}
+                             "lateral_spread": ev.spread.to_dict(), "lateral_capture": float(ev.lateral_capture)}
     cols = columns_from_counts(geom, counts, metals, stats, extra_params=extra,
                                evidence=evidence if ev is not None else None)
     return cols, n_metal
