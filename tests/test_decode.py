@@ -384,6 +384,40 @@ def test_run_mean_posteriors_are_numpys(rng, dtype, path_dtype):
         passes.run_posterior_sums(np.full((2, 3), k, path_dtype), post[:2, :3], np.array([0]), np.array([0]))
 
 
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_pair_agreement_matches_numpy(rng, dtype):
+    """The compiled agreement of rod pairs (the copy test's) against the numpy formula: mean over
+    the sites both observe of sum_k P_i(k) P_j(k), NaN for pairs sharing none; and the mean
+    posterior over the observed sites."""
+    n_rods, n_sites, k = 30, 70, 3
+    post = rng.dirichlet(np.ones(k), (n_rods, n_sites)).astype(dtype)
+    mask = rng.random((n_rods, n_sites)) < 0.6
+    mask[5] = False  # a rod with nothing observed: its pairs share no site
+    pairs = rng.integers(0, n_rods, (200, 2))
+    pairs[0] = (5, 7)
+    agree, mean = passes.pair_agreement(post, mask, pairs)
+    p64 = post.astype(np.float64)
+    for q, (i, j) in enumerate(pairs):
+        both = mask[i] & mask[j]
+        if not both.any():
+            assert np.isnan(agree[q])
+            continue
+        assert agree[q] == pytest.approx(float((p64[i] * p64[j]).sum(-1)[both].mean()), rel=1e-12)
+    assert np.isnan(agree[0])
+    np.testing.assert_allclose(mean, p64[mask].mean(axis=0), rtol=1e-12)
+    # whatever the number of threads
+    from probeseq import runtime
+
+    before = runtime.kernel_threads()
+    try:
+        runtime.configure(1)
+        a1, m1 = passes.pair_agreement(post, mask, pairs)
+    finally:
+        runtime.configure(before)
+    np.testing.assert_array_equal(a1, agree)
+    np.testing.assert_array_equal(m1, mean)
+
+
 def test_count_totals_read_only_observed_sites(rng):
     counts = rng.poisson(0.6, (20, 50, 3)).astype(np.float32)
     counts[rng.random(counts.shape) < 0.1] += np.float32(1 / 3)

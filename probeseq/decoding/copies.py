@@ -305,20 +305,11 @@ def copies_suspected(columns: RodColumns, decoded) -> tuple:
     detail : dict
         ``agreement``, ``chance``, ``kappa``, ``z``, ``n_pairs``.
     """
+    from .passes import pair_agreement
+
     nb = np.asarray(columns.neighbours, np.int64).reshape(-1, 2)
-    post, mask = decoded.posteriors, np.asarray(decoded.mask, bool)
-    m = np.zeros(post.shape[-1])
-    for b in range(0, mask.shape[0], _BLOCK):
-        m += np.asarray(post[b:b + _BLOCK], float)[mask[b:b + _BLOCK]].sum(0)
-    m /= max(int(mask.sum()), 1)
+    per_pair, m = pair_agreement(decoded.posteriors, decoded.mask, nb)  # one compiled pass each
     chance = float(m @ m)
-    per_pair = np.full(nb.shape[0], np.nan)
-    for b in range(0, nb.shape[0], _BLOCK):
-        i, j = nb[b:b + _BLOCK, 0], nb[b:b + _BLOCK, 1]
-        both = mask[i] & mask[j]
-        a = (np.asarray(post[i], float) * np.asarray(post[j], float)).sum(-1)
-        n = both.sum(1)
-        per_pair[b:b + _BLOCK] = np.where(n > 0, (a * both).sum(1) / np.maximum(n, 1), np.nan)
     per_pair = per_pair[np.isfinite(per_pair)]
     if per_pair.size < 2:
         return False, {"agreement": None, "chance": chance, "kappa": None, "z": None, "n_pairs": int(per_pair.size)}

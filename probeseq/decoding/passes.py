@@ -4,8 +4,9 @@ Outside the EM and the decode recursions (:mod:`probeseq.decoding.rodchain`), th
 reads the whole count array a few more times: to check it (:func:`count_totals`), to fit the
 radial efficiency (:func:`rod_radial_sums`), for the per-rod whole counts of the efficiency terms
 (:func:`rod_whole_counts`), for the distinct count vectors of the independent-sites model with a
-per-rod efficiency (:func:`group_row_counts`) and for the mean posteriors of the decoded runs
-(:func:`run_posterior_sums`). Each is one pass here, rod by rod, with memory of one rod's
+per-rod efficiency (:func:`group_row_counts`), for the mean posteriors of the decoded runs
+(:func:`run_posterior_sums`) and for the agreement of neighbouring rods' posteriors that decides
+whether copies are looked for (:func:`pair_agreement`). Each is one pass here, rod by rod, with memory of one rod's
 length per thread (no temporaries of the count array's size, no sort, no cast copy).
 
 The kernels are serial and release the GIL; :func:`in_parts` runs them over parts of the rods
@@ -28,7 +29,7 @@ import numpy as np
 from .. import runtime
 
 __all__ = ['in_parts', 'pairwise_stack', 'pairwise_sum', 'count_totals',
-           'rod_radial_sums', 'rod_whole_counts', 'group_row_counts', 'run_posterior_sums']
+           'rod_radial_sums', 'rod_whole_counts', 'group_row_counts', 'run_posterior_sums', 'pair_agreement']
 
 _EPS = 1e-9  # a value counts as the whole number below it when within this (split ions: model.split_counts)
 
@@ -501,3 +502,68 @@ def run_posterior_sums(paths, posteriors, rod, start):
     if bad.any():
         raise IndexError(f"a decoded path holds a metal index beyond the {post.shape[2]} posteriors per site")
     return out
+
+
+@numba.njit(cache=True, nogil=True)
+def _pair_kernel(lo, hi, post, mask, nb, agree, n_both):
+    """Pairs ``lo:hi`` of :func:`pair_agreement`."""
+    n_sites = post.shape[1]
+    k = post.shape[2]
+    for q in range(lo, hi):
+        i = nb[q, 0]
+        j = nb[q, 1]
+        s = 0.0
+        n = 0
+        for t in range(n_sites):
+            if mask[i, t] and mask[j, t]:
+                a = 0.0
+                for c in range(k):
+                    a += np.float64(post[i, t, c]) * np.float64(post[j, t, c])
+                s += a
+                n += 1
+        agree[q] = s
+        n_both[q] = n
+
+
+@numba.njit(cache=True, nogil=True)
+def _posterior_sum_kernel(lo, hi, post, mask, out):
+    """Rods ``lo:hi`` of :func:`pair_agreement`'s mean posterior: per rod, the sum over its observed
+    sites."""
+    n_sites = post.shape[1]
+    k = post.shape[2]
+    for r in range(lo, hi):
+        for t in range(n_sites):
+            if mask[r, t]:
+                for c in range(k):
+                    out[r, c] += np.float64(post[r, t, c])
+
+
+def pair_agreement(posteriors, mask, pairs):
+    """Agreement of the posteriors of pairs of rods, and the mean posterior, in one pass each.
+
+    Parameters
+    ----------
+    posteriors : (n_rods, n_sites, K) ndarray of float32 or float64
+    mask : (n_rods, n_sites) array of bool
+        Observed sites.
+    pairs : (n_pairs, 2) array of int
+        Rod indices of each pair.
+
+    Returns
+    -------
+    agreement : (n_pairs,) ndarray of float64
+        Mean over the sites both rods observe of ``sum_k P_i(k) P_j(k)`` (NaN where they share none).
+    mean : (K,) ndarray of float64
+        Mean posterior over all observed sites (rods summed in rod order).
+    """
+    post = posteriors if posteriors.dtype in (np.float32, np.float64) else posteriors.astype(np.float64)
+    m = _mask_arg(mask)
+    nb = np.ascontiguousarray(pairs, dtype=np.int64).reshape(-1, 2)
+    agree = np.zeros(nb.shape[0])
+    n_both = np.zeros(nb.shape[0], dtype=np.int64)
+    in_parts(_pair_kernel, nb.shape[0], post, m, nb, agree, n_both)
+    per_rod = np.zeros((post.shape[0], post.shape[2]))
+    in_parts(_posterior_sum_kernel, post.shape[0], post, m, per_rod)
+    mean = per_rod.sum(axis=0) / max(int(np.count_nonzero(m)), 1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(n_both > 0, agree / np.maximum(n_both, 1), np.nan), mean
