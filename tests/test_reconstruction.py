@@ -171,6 +171,49 @@ def test_inverse_map_matches_a_numpy_reference_inside_and_beyond_the_tables():
     assert np.isnan(corr.to_file(np.array([0.0]), np.array([0.0]), np.array([np.nan]))[2][0])
 
 
+def test_site_positions_in_the_file_frame_follow_the_rod_axes_through_the_inverse_map():
+    """file_site_positions (one compiled pass over the sites, on the kernels' threads): the site's
+    point on its tilted rod axis, then the inverse map, against numpy and the np.interp reference."""
+    from types import SimpleNamespace
+
+    from probeseq import runtime
+    from probeseq.lattice.correction import file_site_positions
+
+    g = np.linspace(-3, 25, 57)
+    corr = ReconstructionCorrection(grid_z_nm=g, depth_nm=g / 0.97 + 0.002 * (g + 3) ** 2,
+                                    magnification=1 + 0.004 * np.sin(g / 4),
+                                    shift_nm=np.column_stack([0.02 * g, -0.01 * g]),
+                                    axis_nm=np.column_stack([0.3 + 0.01 * g, -0.2 + 0 * g]), curvature_per_nm=-0.004)
+    rng = np.random.default_rng(8)
+    n_rods, n_sites = 40, 120
+    cols = SimpleNamespace(site_z_nm=np.linspace(0.1, 24.0, n_sites), site_z_offset_nm=rng.uniform(-0.1, 0.1, n_rods),
+                           rod_xy_nm=rng.uniform(-8, 8, (n_rods, 2)), tilt=np.array([0.02, -0.03]), z_ref_nm=11.0,
+                           params={"reconstruction": corr.to_dict()})
+    r = rng.integers(0, n_rods, 150_000)
+    s = rng.integers(0, n_sites, r.size)
+    z = cols.site_z_nm[s] + cols.site_z_offset_nm[r]
+    xy = cols.rod_xy_nm[r] + cols.tilt[None, :] * (z - cols.z_ref_nm)[:, None]
+    table_corr = ReconstructionCorrection.from_dict(cols.params["reconstruction"])
+    want = _to_file_reference(table_corr, xy[:, 0], xy[:, 1], z, 4)
+    got_xy, got_z = file_site_positions(cols, r, s)
+    np.testing.assert_allclose(np.column_stack([got_xy, got_z]), np.column_stack(want), rtol=1e-12, atol=1e-12)
+    np.testing.assert_array_equal(np.column_stack([got_xy, got_z]),
+                                  np.column_stack(table_corr.to_file(xy[:, 0], xy[:, 1], z)))
+    before = runtime.kernel_threads()
+    try:
+        runtime.configure(1)
+        one_xy, one_z = file_site_positions(cols, r, s)
+    finally:
+        runtime.configure(before)
+    np.testing.assert_array_equal(one_xy, got_xy)
+    np.testing.assert_array_equal(one_z, got_z)
+    # without a correction: the axis points themselves
+    cols.params = {}
+    plain_xy, plain_z = file_site_positions(cols, r, s)
+    np.testing.assert_array_equal(plain_z, z)
+    np.testing.assert_array_equal(plain_xy, xy)
+
+
 def test_bad_tables_are_refused():
     g = np.linspace(0, 10, 11)
     with pytest.raises(InputError, match="increase"):

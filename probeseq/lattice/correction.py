@@ -243,28 +243,50 @@ def _inverse_depth(v, grid, depth):
     return grid[i] + t * (grid[i + 1] - grid[i])
 
 
+@numba.njit(cache=True, nogil=True, inline="always")
+def _to_file_point(xc, yc, zc, z0, inv_h, grid, depth, mag, shift, axis, kappa, n_iter):
+    """The inverse map at one calibrated point: its file position (x, y, z), float64."""
+    n = depth.size
+    w = _inverse_depth(zc, grid, depth)
+    zf = w
+    for _ in range(n_iter):
+        i, t = _lerp_index(zf, z0, inv_h, n)
+        ax = axis[i, 0] + t * (axis[i + 1, 0] - axis[i, 0])
+        ay = axis[i, 1] + t * (axis[i + 1, 1] - axis[i, 1])
+        znew = w + kappa * ((xc - ax) * (xc - ax) + (yc - ay) * (yc - ay))
+        if znew == zf:  # a fixed point to the last bit: further steps change nothing
+            break
+        zf = znew
+    i, t = _lerp_index(zf, z0, inv_h, n)
+    m = mag[i] + t * (mag[i + 1] - mag[i])
+    return ((xc - (shift[i, 0] + t * (shift[i + 1, 0] - shift[i, 0]))) * m,
+            (yc - (shift[i, 1] + t * (shift[i + 1, 1] - shift[i, 1]))) * m, zf)
+
+
 @numba.njit(cache=True, nogil=True)
 def _to_file_kernel(x, y, z, ox, oy, oz, z0, inv_h, grid, depth, mag, shift, axis, kappa, n_iter):
     """The inverse map of :meth:`ReconstructionCorrection.to_file`, one pass over the points
     (float64; the lateral and curvature terms by ``n_iter`` fixed-point steps)."""
-    n = depth.size
     for k in range(x.size):
-        xc, yc = x[k], y[k]
-        w = _inverse_depth(z[k], grid, depth)
-        zf = w
-        for _ in range(n_iter):
-            i, t = _lerp_index(zf, z0, inv_h, n)
-            ax = axis[i, 0] + t * (axis[i + 1, 0] - axis[i, 0])
-            ay = axis[i, 1] + t * (axis[i + 1, 1] - axis[i, 1])
-            znew = w + kappa * ((xc - ax) * (xc - ax) + (yc - ay) * (yc - ay))
-            if znew == zf:  # a fixed point to the last bit: further steps change nothing
-                break
-            zf = znew
-        i, t = _lerp_index(zf, z0, inv_h, n)
-        m = mag[i] + t * (mag[i + 1] - mag[i])
-        ox[k] = (xc - (shift[i, 0] + t * (shift[i + 1, 0] - shift[i, 0]))) * m
-        oy[k] = (yc - (shift[i, 1] + t * (shift[i + 1, 1] - shift[i, 1]))) * m
-        oz[k] = zf
+        ox[k], oy[k], oz[k] = _to_file_point(x[k], y[k], z[k], z0, inv_h, grid, depth, mag, shift, axis, kappa,
+                                             n_iter)
+
+
+@numba.njit(cache=True, nogil=True)
+def _site_file_kernel(lo, hi, r, s, site_z, z_off, rod_xy, tilt, z_ref, identity, ox, oy, oz, z0, inv_h, grid, depth,
+                      mag, shift, axis, kappa, n_iter):
+    """Sites ``lo:hi`` of :func:`file_site_positions`: each site's point on its rod axis (calibrated
+    frame) and, unless ``identity``, its file position (:func:`_to_file_point`), float64."""
+    for k in range(lo, hi):
+        ri = r[k]
+        zc = site_z[s[k]] + z_off[ri]
+        dz = zc - z_ref
+        xc = rod_xy[ri, 0] + tilt[0] * dz
+        yc = rod_xy[ri, 1] + tilt[1] * dz
+        if identity:
+            ox[k], oy[k], oz[k] = xc, yc, zc
+        else:
+            ox[k], oy[k], oz[k] = _to_file_point(xc, yc, zc, z0, inv_h, grid, depth, mag, shift, axis, kappa, n_iter)
 
 
 def file_site_positions(columns, rods, sites):
@@ -287,12 +309,23 @@ def file_site_positions(columns, rods, sites):
     z : (n,) ndarray of float, nm
         The site's depth on its rod axis, file frame.
     """
-    r = np.asarray(rods, np.int64)
-    s = np.asarray(sites, np.int64)
-    z = columns.site_z_nm[s] + columns.site_z_offset_nm[r]
-    xy = columns.rod_xy_nm[r] + columns.tilt[None, :] * (z - columns.z_ref_nm)[:, None]
+    from .. import runtime
+
+    r = np.ascontiguousarray(rods, np.int64).ravel()
+    s = np.ascontiguousarray(sites, np.int64).ravel()
     corr = ReconstructionCorrection.from_dict(columns.params.get("reconstruction"))
+    xy = np.empty((r.size, 2))
+    z = np.empty(r.size)
+    x_out, y_out = xy[:, 0], xy[:, 1]  # strided views: the kernel writes into the (n, 2) array
     if corr.is_identity:
-        return xy, z
-    xf, yf, zf = corr.to_file(xy[:, 0], xy[:, 1], z)
-    return np.column_stack([xf, yf]), zf
+        tables = (0.0, 1.0, np.zeros(2), np.zeros(2), np.ones(2), np.zeros((2, 2)), np.zeros((2, 2)), 0.0)
+    else:
+        z0, inv_h, depth, mag, shift, axis, kappa = corr._tables()
+        tables = (z0, inv_h, np.ascontiguousarray(corr.grid_z_nm, float), np.ascontiguousarray(depth, float),
+                  np.ascontiguousarray(mag, float), shift, axis, float(kappa))
+    args = (r, s, np.ascontiguousarray(columns.site_z_nm, float), np.ascontiguousarray(columns.site_z_offset_nm, float),
+            np.ascontiguousarray(columns.rod_xy_nm, float), np.ascontiguousarray(columns.tilt, float),
+            float(columns.z_ref_nm), bool(corr.is_identity), x_out, y_out, z, *tables, 4)
+    runtime.in_parts(lambda lo, hi: _site_file_kernel(lo, hi, *args), r.size, runtime.kernel_threads(),
+                     min_items=1 << 16)
+    return xy, z
