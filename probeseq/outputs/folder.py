@@ -51,7 +51,7 @@ MANIFEST_NAME = "probeseq-manifest.json"
 STAGING_TAG = ".probeseq-"
 
 
-_STAGING_KINDS = ("staging", "previous", "lock", "part")
+_STAGING_KINDS = ("staging", "previous", "lock", "part", "ahead")
 
 
 # ---------------------------------------------------------------------- names and marks
@@ -364,7 +364,27 @@ def recover_outdir(outdir) -> Path:
         shutil.rmtree(s, ignore_errors=True)
     for p in previous:
         _remove_owned(p)
+    for a in _leftovers(target, "ahead"):  # those of ended processes only: a running one writes there
+        if not _process_alive(a.name.rsplit("-", 2)[-2]):
+            shutil.rmtree(a, ignore_errors=True)
     return target
+
+
+def _process_alive(pid: str) -> bool:
+    """Whether the process with this id (text) still runs (False for a malformed id)."""
+    try:
+        n = int(pid)
+    except ValueError:
+        return False
+    if n == os.getpid():
+        return True
+    try:
+        os.kill(n, 0)
+    except ProcessLookupError:
+        return False
+    except OSError:  # it exists but is not ours
+        return True
+    return True
 
 
 def _exchange(a: Path, b: Path) -> bool:
@@ -449,6 +469,22 @@ def staged_outdir(outdir, force: bool = False, inputs=(), command: str | None = 
             raise
     finally:
         lock.release()
+
+
+def ahead_folder(outdir) -> Path:
+    """A new hidden folder beside ``outdir`` for outputs written before the output stage (the
+    tables of :class:`probeseq.pipeline.analysis.TablesAhead`), on the same file system, so the
+    output stage moves its files in rather than copying them. Its name holds this process's id:
+    one left by a killed run is removed by the next run into ``outdir`` (:func:`recover_outdir`
+    removes those whose process has ended)."""
+    target = Path(outdir)
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise InputError(f"--out {target}: cannot create its folder ({e.strerror})") from None
+    folder = _side(target, "ahead", f"{os.getpid()}-{uuid.uuid4().hex[:8]}")
+    folder.mkdir()
+    return folder
 
 
 @contextmanager

@@ -13,6 +13,7 @@ The stages are public so the stage commands run exactly what ``analyze`` runs:
 
 from __future__ import annotations
 
+import os
 import platform
 import sys
 import threading
@@ -116,12 +117,18 @@ def _run(counts_stage, metals, lattice, opts, progress, provenance, meta) -> Ana
             on_counts(counted)
         cols = counted.columns
         dec, groups = _decode_stage(cols, opts, clock)
+        # the copies pooled now (they need only the single-rod decoding): the final decoding is then
+        # known before the statistics, which read the single-rod decoding
+        final, copies = _pool_copies(cols, dec, clock)
+        on_decoded = getattr(progress, "decoded", None)  # optional: told the final decoding
+        if on_decoded is not None:
+            on_decoded(cols, final)
         with clock.stage("statistics", f"statistics with {opts.n_boot} bootstrap resamples over rods"):
             st = compute_statistics(dec, cols, n_boot=opts.n_boot, random_state=opts.seed)
         with clock.stage("classification", "classifying the arrangement"):
             cl = classify(st, dec.lr_pvalue, long_block_sites=opts.long_block_sites, alpha=opts.alpha,
                           copy_threshold=opts.copy_threshold)
-        dec, copies = _pool_copies(cols, dec, clock)
+        dec = final
         caught = [str(w.message).splitlines()[0] for w in wlist]
     clock.timings["total"] = round(time.perf_counter() - clock.t0, 4)
     prov = {"tool": "probeseq", "version": __version__, "python": sys.version.split()[0],
@@ -288,6 +295,112 @@ def figures_ahead(counted):
     return ahead
 
 
+def tables_ahead(columns: RodColumns, decoded, outdir, tracks_table: str = "auto"):
+    """Start writing the tables and arrays of ``outdir`` (:class:`TablesAhead`) once the decoding
+    is final, while this process computes the statistics; hand the result to
+    :func:`write_analysis` (``tables=``). None for runs under :data:`AHEAD_MIN_SITES` decoded sites
+    (they write in well under a second) or where this process cannot fork."""
+    from ..outputs.results import tracks_table_files
+
+    n = int(np.count_nonzero(columns.mask))
+    if n < AHEAD_MIN_SITES:
+        return None
+    ahead = TablesAhead(columns, decoded, outdir, tracks_table_files(tracks_table, n))
+    if not ahead.started:
+        ahead.discard()
+        return None
+    return ahead
+
+
+class TablesAhead:
+    """The tracks table, ``runs.csv``, ``columns.h5`` and ``decoded.h5`` of an output folder,
+    written by a forked child at the lowest priority into a hidden folder beside it
+    (:func:`probeseq.outputs.folder.ahead_folder`) while this process computes the statistics: they
+    need only the count array and the final decoding. :func:`write_analysis` moves them in
+    (:meth:`collect`) and writes whatever the child did not finish itself.
+
+    Parameters
+    ----------
+    columns : RodColumns
+    decoded : DecodeResult
+        The final decoding (copies pooled).
+    outdir : path
+        The output folder to be.
+    files : tuple of str
+        The tracks table's files (:func:`probeseq.outputs.results.tracks_table_files`).
+    """
+
+    def __init__(self, columns: RodColumns, decoded, outdir, files):
+        import multiprocessing as mp
+
+        from ..outputs.folder import ahead_folder
+
+        self.files = tuple(files)
+        self.folder = ahead_folder(outdir)
+        self._child = None
+        try:
+            mp.get_context("fork")
+        except ValueError:
+            return
+        if mp.current_process().daemon:
+            return
+        self._child = runtime.Background(_write_ahead, columns, decoded, self.folder, self.files)
+
+    @property
+    def started(self) -> bool:
+        """Whether a child writes the tables."""
+        return self._child is not None and self._child.proc is not None
+
+    @property
+    def names(self) -> tuple:
+        """The files the child writes."""
+        return self.files + ("runs.csv", "columns.h5", "decoded.h5")
+
+    def collect(self, folder, files) -> set:
+        """Wait for the child and move its files into ``folder`` when it wrote every one of them
+        for the same tracks-table ``files``; returns the names moved (none when it failed). The
+        hidden folder is removed."""
+        moved = set()
+        try:
+            if self.started and tuple(files) == self.files:
+                self._child.proc.join()
+                if self._child.proc.exitcode == 0 and all((self.folder / n).is_file() for n in self.names):
+                    for n in self.names:
+                        os.replace(self.folder / n, Path(folder) / n)
+                        moved.add(n)
+        finally:
+            self.discard()
+        return moved
+
+    def discard(self) -> None:
+        """Stop the child if it still runs and remove the hidden folder (after an error)."""
+        import shutil
+
+        if self._child is not None:
+            self._child.kill()
+        shutil.rmtree(self.folder, ignore_errors=True)
+
+
+def _write_ahead(columns, decoded, folder, files):
+    """The child of :class:`TablesAhead`: at the lowest priority (it takes the CPU the statistics
+    leave idle and never slows their parallel kernels), the arrays, then the tables."""
+    try:
+        os.nice(19)
+    except (AttributeError, OSError):  # no priorities here: write at the same priority
+        pass
+    from ..lattice.rodcolumns import save_columns
+    from ..outputs.results import runs_table, write_tracks_h5
+
+    folder = Path(folder)
+    save_columns(columns, folder / "columns.h5")
+    save_decoded(decoded, folder / "decoded.h5")
+    if "tracks.csv" in files:
+        write_tracks(folder / "tracks.csv", columns, decoded)
+    if "tracks.h5" in files:
+        write_tracks_h5(folder / "tracks.h5", columns, decoded)
+    _write_table(folder / "runs.csv", runs_table(columns, decoded), RUNS_COLUMNS, RUNS_FORMATS)
+
+
 def write_figures(result: AnalysisResult, folder, progress: Progress = None, failures: list | None = None,
                   parallel: bool | None = None, drawn_ahead: dict | None = None) -> dict:
     """Save the figures of an analysis in ``folder`` (vector and PNG) and return the report's PNGs by name.
@@ -377,7 +490,7 @@ def write_density_figure(ions: IonList, ranging, columns: RodColumns, path):
 
 def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: Callable | None = None,
                    report: bool = True, progress: Progress = None, inputs=(), tracks_table: str = "auto",
-                   ahead=None) -> Path:
+                   ahead=None, tables=None) -> Path:
     """Write an analysis output folder (staged: complete or not at all).
 
     Files: ``results.json``, the tracks table (``tracks.csv`` and/or ``tracks.h5``, see
@@ -390,7 +503,8 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
     writes ``tracks.csv`` up to 2,000,000 decoded sites and the same table as ``tracks.h5`` above
     (a CSV of a 10^8-ion run is about 2 GB of text; ``probeseq export OUTDIR --format csv`` still
     writes it). ``results.json`` names the file(s) under ``outputs.tracks_table``. ``ahead``: the
-    figures drawn while the analysis ran (:func:`figures_ahead`), moved in rather than drawn again.
+    figures drawn while the analysis ran (:func:`figures_ahead`), moved in rather than drawn again;
+    ``tables``: the tables and arrays written meanwhile (:func:`tables_ahead`), likewise.
     """
     from ..outputs.folder import staged_outdir, write_json
     from ..outputs.results import tracks_table_files
@@ -405,10 +519,14 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
 
         # the figures drawn during the analysis first: their child is then no load on the judgement below
         drawn = ahead.collect(st / "figures") if (ahead is not None and report) else {}
+        # the tables written meanwhile are moved in (whatever their child did not finish is written here)
+        moved = tables.collect(st, files) if tables is not None else set()
         parallel = two_processes_pay(runtime.jobs()) if report else False
         # two forked children write the tables and the arrays while this process draws the figures
-        children = [(runtime.Background(_write_tables, result, st, files), ", ".join(files + ("runs.csv",))),
-                    (runtime.Background(_write_arrays, result, st), "columns.h5, decoded.h5")]
+        children = []
+        if not moved:
+            children = [(runtime.Background(_write_tables, result, st, files), ", ".join(files + ("runs.csv",))),
+                        (runtime.Background(_write_arrays, result, st), "columns.h5, decoded.h5")]
         try:
             _write_rest(result, st, report, progress, extra, files, parallel, drawn)
             for child, what in children:
@@ -418,6 +536,8 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
                 child.kill()
             if ahead is not None:
                 ahead.discard()
+            if tables is not None:
+                tables.discard()
     return Path(outdir)
 
 

@@ -15,6 +15,9 @@ once. Stages report through :class:`_Clock` (``clock.stage(name, message)`` and
 object may also have ``counted(result)``: the analysis calls it once with the count stage's
 :class:`~probeseq.pipeline.stages.CountResult`, before the decoding (the command line draws the
 figures that need only the counts meanwhile, :func:`probeseq.pipeline.analysis.figures_ahead`).
+Likewise ``decoded(columns, decoded)``: called once with the count array and the final decoding
+(copies pooled), before the statistics (the command line writes the tables and arrays
+meanwhile, :func:`probeseq.pipeline.analysis.tables_ahead`).
 """
 
 from __future__ import annotations

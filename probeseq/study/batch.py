@@ -170,21 +170,28 @@ class _RunLog:
     """Progress callback that keeps every line for ``log.txt`` and passes each on to ``forward``.
 
     ``on_stage`` maps a stage name to a callable run (once) when that stage starts; ``on_counts``
-    is called with the count stage's result (:class:`probeseq.pipeline.stages.CountResult`).
+    is called with the count stage's result (:class:`probeseq.pipeline.stages.CountResult`),
+    ``on_decoded`` with the count array and the final decoding.
     """
 
     def __init__(self, forward: Optional[Callable[[str, str], None]] = None, on_stage: dict | None = None,
-                 on_counts: Optional[Callable] = None):
+                 on_counts: Optional[Callable] = None, on_decoded: Optional[Callable] = None):
         self.t0 = time.perf_counter()
         self.lines = []
         self.forward = forward
         self.on_stage = dict(on_stage or {})
         self.on_counts = on_counts
+        self.on_decoded = on_decoded
 
     def counted(self, count_result):
         """The count stage is done (the progress protocol of :mod:`probeseq.pipeline.options`)."""
         if self.on_counts is not None:
             self.on_counts(count_result)
+
+    def decoded(self, columns, decoded):
+        """The decoding is final (the progress protocol of :mod:`probeseq.pipeline.options`)."""
+        if self.on_decoded is not None:
+            self.on_decoded(columns, decoded)
 
     def __call__(self, stage: str, message: str):
         self.lines.append(f"[{time.perf_counter() - self.t0:7.1f} s] {stage}: {message}")
@@ -269,7 +276,7 @@ def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a:
         Bad inputs or options (one line), or a failed fit.
     """
     from ..outputs.folder import check_outdir
-    from ..pipeline.analysis import analyze_file, figures_ahead, write_analysis
+    from ..pipeline.analysis import analyze_file, figures_ahead, tables_ahead, write_analysis
     from ..pipeline.options import AnalysisOptions
     from ..ranging.ranges import RangeSet
 
@@ -293,7 +300,16 @@ def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a:
             t.join()
         ahead.append(figures_ahead(counted))
 
-    log = _RunLog(progress, on_stage={"binning": lambda: warm.append(prewarm())}, on_counts=draw_ahead)
+    written = []
+
+    def write_ahead(columns, decoded):
+        # the tables and arrays need only the final decoding: a child writes them during the statistics
+        for t in warm:
+            t.join()
+        written.append(tables_ahead(columns, decoded, outdir, tracks_table))
+
+    log = _RunLog(progress, on_stage={"binning": lambda: warm.append(prewarm())}, on_counts=draw_ahead,
+                  on_decoded=write_ahead)
     rs = RangeSet.from_toml(run.ranges) if run.ranges is not None else None
     prov = {"command_line": command_line, "sample": run.sample, "run_name": run.name,
             "ranges_file": None if run.ranges is None else str(run.ranges)}
@@ -302,7 +318,7 @@ def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a:
                            progress=log, provenance=prov, length_unit=length_unit, position_dataset=position_dataset,
                            mass_dataset=mass_dataset, strict=strict)
     except BaseException:
-        for a in ahead:
+        for a in ahead + written:
             if a is not None:
                 a.discard()
         raise
@@ -315,9 +331,10 @@ def analyze_run(source, out=None, *, options=None, metals=None, lattice=None, a:
         t.join()  # no fork (the table child, the figures' child) while the thread holds matplotlib's locks
     try:
         write_analysis(res, outdir, force=force, extra=extra, progress=log, inputs=list(run.inputs),
-                       tracks_table=tracks_table, ahead=ahead[0] if ahead else None)
+                       tracks_table=tracks_table, ahead=ahead[0] if ahead else None,
+                       tables=written[0] if written else None)
     finally:
-        for a in ahead:
+        for a in ahead + written:
             if a is not None:
                 a.discard()
     return RunAnalysis(result=res, outdir=outdir, source=run)
