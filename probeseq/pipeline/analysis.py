@@ -352,6 +352,11 @@ class TablesAhead:
         return self._child is not None and self._child.proc is not None
 
     @property
+    def running(self) -> bool:
+        """Whether the child is still writing."""
+        return self.started and self._child.proc.is_alive()
+
+    @property
     def names(self) -> tuple:
         """The files the child writes."""
         return self.files + ("runs.csv", "columns.h5", "decoded.h5")
@@ -519,16 +524,18 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
 
         # the figures drawn during the analysis first: their child is then no load on the judgement below
         drawn = ahead.collect(st / "figures") if (ahead is not None and report) else {}
-        # the tables written meanwhile are moved in (whatever their child did not finish is written here)
-        moved = tables.collect(st, files) if tables is not None else set()
         parallel = two_processes_pay(runtime.jobs()) if report else False
-        # two forked children write the tables and the arrays while this process draws the figures
+        if tables is not None and tables.running:
+            parallel = False  # the figures in this process: the tables' child keeps the other CPU
+        # two forked children write the tables and the arrays while this process draws the figures,
+        # unless a child writes them already (their files are moved in afterwards)
         children = []
-        if not moved:
-            children = [(runtime.Background(_write_tables, result, st, files), ", ".join(files + ("runs.csv",))),
-                        (runtime.Background(_write_arrays, result, st), "columns.h5, decoded.h5")]
+        if tables is None:
+            children = _table_children(result, st, files)
         try:
             _write_rest(result, st, report, progress, extra, files, parallel, drawn)
+            if tables is not None and not tables.collect(st, files):  # it failed: written here after all
+                children = _table_children(result, st, files)
             for child, what in children:
                 child.join(what)
         finally:
@@ -539,6 +546,12 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
             if tables is not None:
                 tables.discard()
     return Path(outdir)
+
+
+def _table_children(result, st, files) -> list:
+    """Two forked children writing the tables and the arrays: ``[(child, what it writes)]``."""
+    return [(runtime.Background(_write_tables, result, st, files), ", ".join(files + ("runs.csv",))),
+            (runtime.Background(_write_arrays, result, st), "columns.h5, decoded.h5")]
 
 
 def _results_dict(result, files) -> dict:
