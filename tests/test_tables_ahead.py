@@ -38,7 +38,7 @@ def _spy(monkeypatch, record):
         return a
 
     monkeypatch.setattr(an, "tables_ahead", spy)
-    monkeypatch.setattr(an, "AHEAD_MIN_SITES", 0)  # a small run: written ahead all the same here
+    monkeypatch.setattr(an, "TABLES_AHEAD_MIN_SITES", 0)  # a small run: written ahead all the same here
 
 
 def test_tables_written_ahead_are_those_written_after(tmp_path, monkeypatch, source):

@@ -295,15 +295,22 @@ def figures_ahead(counted):
     return ahead
 
 
+#: decoded sites below which :func:`tables_ahead` starts no child: at 4.3e6 sites (1.1e7 ions) the
+#: statistics take about 2 s, too short for a child at the lowest priority, which then held the
+#: figures to one process (output stage 6.5-8.4 s with it, 5.1-6.7 s without, alternating runs);
+#: at 4e7 sites (10^8 ions) the statistics take 8-10 s and the child saves 12-15 s
+TABLES_AHEAD_MIN_SITES = 10_000_000
+
+
 def tables_ahead(columns: RodColumns, decoded, outdir, tracks_table: str = "auto"):
     """Start writing the tables and arrays of ``outdir`` (:class:`TablesAhead`) once the decoding
     is final, while this process computes the statistics; hand the result to
-    :func:`write_analysis` (``tables=``). None for runs under :data:`AHEAD_MIN_SITES` decoded sites
-    (they write in well under a second) or where this process cannot fork."""
+    :func:`write_analysis` (``tables=``). None for runs under :data:`TABLES_AHEAD_MIN_SITES`
+    decoded sites or where this process cannot fork."""
     from ..outputs.results import tracks_table_files
 
     n = int(np.count_nonzero(columns.mask))
-    if n < AHEAD_MIN_SITES:
+    if n < TABLES_AHEAD_MIN_SITES:
         return None
     ahead = TablesAhead(columns, decoded, outdir, tracks_table_files(tracks_table, n))
     if not ahead.started:
