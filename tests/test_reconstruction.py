@@ -46,6 +46,17 @@ def test_depth_scale_and_its_change_recovered():
     # the local scale rises with depth as simulated, not a constant
     assert cal.scale[inner][-1] - cal.scale[inner][0] > 0.03
     assert cal.contrast_after > 5 * cal.contrast_before
+    # the windows are scanned on the kernels' threads: the same calibration on one thread
+    from probeseq import runtime
+
+    before = runtime.kernel_threads()
+    try:
+        runtime.configure(1)
+        one = calibrate_depth(x, y, z, pitch_nm=run.lattice.pitch_nm, random_state=0)
+    finally:
+        runtime.configure(before)
+    np.testing.assert_array_equal(one.window_scale, cal.window_scale)
+    np.testing.assert_array_equal(one.depth_nm, cal.depth_nm)
 
 
 def test_plane_curvature_recovered():

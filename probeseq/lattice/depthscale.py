@@ -314,11 +314,15 @@ def calibrate_depth(x, y, z, *, pitch_nm: float, plane_gradient=(0.0, 0.0), axis
     ratios = 1.0 / np.arange(1.0 / WIDE_RANGE[1], 1.0 / WIDE_RANGE[0], 1.0 / (3 * WINDOW_PLANES))
     kappas = np.linspace(-SAG_PITCHES, SAG_PITCHES, 7) * P / max(radius_nm, 1e-6) ** 2
     wide = np.empty((len(subs), ratios.size))
-    out = np.empty((ratios.size, kappas.size))
-    for j, s in enumerate(subs):
-        s = s[:WIDE_IONS] if s.size > WIDE_IONS else s
-        _power_grid(u[s] - zc[j], rho2[s], ratios, kappas, P, out)
-        wide[j] = out.max(axis=1)  # n R^2 at the best curvature
+
+    def wide_scan(lo, hi):
+        out = np.empty((ratios.size, kappas.size))
+        for j in range(lo, hi):
+            s = subs[j][:WIDE_IONS] if subs[j].size > WIDE_IONS else subs[j]
+            _power_grid(u[s] - zc[j], rho2[s], ratios, kappas, P, out)
+            wide[j] = out.max(axis=1)  # n R^2 at the best curvature
+
+    _over_windows(wide_scan, len(subs))
     best = wide.max(1)
     periodic = best >= RAYLEIGH_MIN
     windows = dict(window_z_nm=zc)
@@ -375,22 +379,36 @@ def _local_scan(u, rho2, subs, zc, P, found, radius, periodic):
     la = 1.0 / ratios  # evenly spaced
     scale = np.full(len(subs), np.nan)
     power = np.zeros(len(subs))
-    col = np.empty((ratios.size, 1))
-    for j, s in enumerate(subs):
-        if not periodic[j]:
-            continue
-        _power_grid(u[s] - zc[j], rho2[s], ratios, np.array([kappa]), P, col)
-        c = col[:, 0]
-        a = int(np.argmax(c))
-        power[j] = c[a]
-        if power[j] < RAYLEIGH_MIN:
-            continue
-        d = 0.0
-        if 0 < a < ratios.size - 1:  # parabolic peak in the inverse ratio
-            den = c[a - 1] - 2 * c[a] + c[a + 1]
-            d = 0.5 * (c[a - 1] - c[a + 1]) / den if den < 0 else 0.0
-        scale[j] = 1.0 / (la[a] + d * (la[1] - la[0]))
+    kap = np.array([kappa])
+
+    def fine_scan(lo, hi):
+        col = np.empty((ratios.size, 1))
+        for j in range(lo, hi):
+            if not periodic[j]:
+                continue
+            s = subs[j]
+            _power_grid(u[s] - zc[j], rho2[s], ratios, kap, P, col)
+            c = col[:, 0]
+            a = int(np.argmax(c))
+            power[j] = c[a]
+            if power[j] < RAYLEIGH_MIN:
+                continue
+            d = 0.0
+            if 0 < a < ratios.size - 1:  # parabolic peak in the inverse ratio
+                den = c[a - 1] - 2 * c[a] + c[a + 1]
+                d = 0.5 * (c[a - 1] - c[a + 1]) / den if den < 0 else 0.0
+            scale[j] = 1.0 / (la[a] + d * (la[1] - la[0]))
+
+    _over_windows(fine_scan, len(subs))
     return scale, power, kappa
+
+
+def _over_windows(fn, n: int) -> None:
+    """``fn(lo, hi)`` over the depth windows on the kernels' threads (each window's scan is its
+    own: the results do not depend on the number of threads)."""
+    from .. import runtime
+
+    runtime.in_parts(fn, n, runtime.kernel_threads(), min_items=4)
 
 
 def _chain(u, rho2, a_idx, b_idx, zc, scale, kappa, P, ok):
