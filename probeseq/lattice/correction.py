@@ -226,9 +226,9 @@ def _apply_kernel(x, y, z, ox, oy, oz, z0, inv_h, depth, mag, shift, axis, kappa
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
-def _inverse_depth(v, grid, depth):
-    """File depth whose calibrated depth is ``v``: the depth table read backwards (``depth``
-    increasing; binary search, linear extrapolation beyond both ends, as ``np.interp`` inside)."""
+def _depth_cell(v, depth):
+    """Cell of the depth table holding ``v`` (``depth[i] <= v < depth[i + 1]``, clamped to the end
+    cells), by binary search."""
     n = depth.size
     lo, hi = 0, n - 1
     while hi - lo > 1:  # depth[lo] <= v < depth[hi], or the end cells
@@ -237,17 +237,48 @@ def _inverse_depth(v, grid, depth):
             lo = mid
         else:
             hi = mid
-    i = lo if lo < n - 1 else n - 2
+    return lo if lo < n - 1 else n - 2
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _depth_cell_near(v, depth, g):
+    """The cell of :func:`_depth_cell`, walked to from the cell ``g`` of a nearby depth (the sites of
+    a rod come in depth order, so the walk is a step or two)."""
+    n = depth.size
+    g = min(max(g, 0), n - 2)
+    while g > 0 and depth[g] > v:
+        g -= 1
+    while g < n - 2 and depth[g + 1] <= v:
+        g += 1
+    return g
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _depth_value(v, grid, depth, i):
+    """File depth of calibrated depth ``v`` in cell ``i`` of the depth table (linear; beyond both
+    ends the end cells extrapolate, as ``np.interp`` does inside)."""
     d = depth[i + 1] - depth[i]
     t = (v - depth[i]) / d if d != 0.0 else 0.0
     return grid[i] + t * (grid[i + 1] - grid[i])
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
+def _inverse_depth(v, grid, depth):
+    """File depth whose calibrated depth is ``v``: the depth table read backwards (``depth``
+    increasing; binary search, linear extrapolation beyond both ends, as ``np.interp`` inside)."""
+    return _depth_value(v, grid, depth, _depth_cell(v, depth))
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
 def _to_file_point(xc, yc, zc, z0, inv_h, grid, depth, mag, shift, axis, kappa, n_iter):
     """The inverse map at one calibrated point: its file position (x, y, z), float64."""
-    n = depth.size
-    w = _inverse_depth(zc, grid, depth)
+    return _to_file_at(xc, yc, zc, _inverse_depth(zc, grid, depth), z0, inv_h, mag, shift, axis, kappa, n_iter)
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _to_file_at(xc, yc, zc, w, z0, inv_h, mag, shift, axis, kappa, n_iter):
+    """:func:`_to_file_point` given ``w``, the file depth of ``zc`` by the depth table alone."""
+    n = mag.size
     zf = w
     for _ in range(n_iter):
         i, t = _lerp_index(zf, z0, inv_h, n)
@@ -277,6 +308,7 @@ def _site_file_kernel(lo, hi, r, s, site_z, z_off, rod_xy, tilt, z_ref, identity
                       mag, shift, axis, kappa, n_iter):
     """Sites ``lo:hi`` of :func:`file_site_positions`: each site's point on its rod axis (calibrated
     frame) and, unless ``identity``, its file position (:func:`_to_file_point`), float64."""
+    g = 0  # the depth cell of the previous site: the next one is a step or two away
     for k in range(lo, hi):
         ri = r[k]
         zc = site_z[s[k]] + z_off[ri]
@@ -286,7 +318,9 @@ def _site_file_kernel(lo, hi, r, s, site_z, z_off, rod_xy, tilt, z_ref, identity
         if identity:
             ox[k], oy[k], oz[k] = xc, yc, zc
         else:
-            ox[k], oy[k], oz[k] = _to_file_point(xc, yc, zc, z0, inv_h, grid, depth, mag, shift, axis, kappa, n_iter)
+            g = _depth_cell_near(zc, depth, g)
+            ox[k], oy[k], oz[k] = _to_file_at(xc, yc, zc, _depth_value(zc, grid, depth, g), z0, inv_h, mag, shift,
+                                              axis, kappa, n_iter)
 
 
 def file_site_positions(columns, rods, sites):
