@@ -106,3 +106,20 @@ def test_the_final_decoding_is_handed_over_before_the_statistics(source):
     _, cols, dec = events[at[0]]
     assert cols is res.columns and dec is res.decoded  # the final decoding, as the result holds it
     assert events.index("decoding") < at[0] < events.index("statistics")
+
+
+def test_no_hidden_folder_means_no_child(tmp_path, monkeypatch, source):
+    """Where the hidden folder cannot be made, nothing is started and the output stage writes
+    everything as usual."""
+    import probeseq.outputs.folder as folder
+
+    def refuse(outdir):
+        raise PermissionError(13, "Permission denied")
+
+    src, lattice = source
+    made = []
+    _spy(monkeypatch, made)
+    monkeypatch.setattr(folder, "ahead_folder", refuse)
+    out = analyze_run(src, tmp_path / "out", metals=("Co", "Zn"), lattice=lattice).outdir
+    assert made == [None]
+    assert {"columns.h5", "decoded.h5", "tracks.csv", "runs.csv"} <= {p.name for p in out.iterdir()}

@@ -27,7 +27,7 @@ import numpy as np
 
 from .. import runtime
 from .._version import __version__
-from ..exceptions import DataQualityWarning
+from ..exceptions import DataQualityWarning, InputError
 from ..io.ions import IonList
 from ..lattice.model import Lattice
 from ..lattice.rodcolumns import RodColumns
@@ -312,7 +312,10 @@ def tables_ahead(columns: RodColumns, decoded, outdir, tracks_table: str = "auto
     n = int(np.count_nonzero(columns.mask))
     if n < TABLES_AHEAD_MIN_SITES:
         return None
-    ahead = TablesAhead(columns, decoded, outdir, tracks_table_files(tracks_table, n))
+    try:
+        ahead = TablesAhead(columns, decoded, outdir, tracks_table_files(tracks_table, n))
+    except (OSError, InputError):  # no hidden folder beside the output folder: the output stage writes
+        return None                # everything itself (and says what is wrong with the folder)
     if not ahead.started:
         ahead.discard()
         return None
