@@ -242,8 +242,8 @@ def _depth_cell(v, depth):
 
 @numba.njit(cache=True, nogil=True, inline="always")
 def _depth_cell_near(v, depth, g):
-    """The cell of :func:`_depth_cell`, walked to from the cell ``g`` of a nearby depth (the sites of
-    a rod come in depth order, so the walk is a step or two)."""
+    """The cell of :func:`_depth_cell`, walked to from the cell ``g`` (a step or two when ``g`` is
+    a good guess; any ``g`` gives the same cell)."""
     n = depth.size
     g = min(max(g, 0), n - 2)
     while g > 0 and depth[g] > v:
@@ -251,6 +251,15 @@ def _depth_cell_near(v, depth, g):
     while g < n - 2 and depth[g + 1] <= v:
         g += 1
     return g
+
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _depth_cell_guess(v, depth, inv_span):
+    """The cell of :func:`_depth_cell` from a linear guess (the depth table is close to linear in
+    its cells, so the walk of :func:`_depth_cell_near` from the guess is a step or two)."""
+    f = (v - depth[0]) * inv_span
+    g = int(f) if (f == f and -1e9 < f < 1e9) else 0
+    return _depth_cell_near(v, depth, g)
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
@@ -285,9 +294,10 @@ def _to_file_at(xc, yc, zc, w, z0, inv_h, mag, shift, axis, kappa, n_iter):
         ax = axis[i, 0] + t * (axis[i + 1, 0] - axis[i, 0])
         ay = axis[i, 1] + t * (axis[i + 1, 1] - axis[i, 1])
         znew = w + kappa * ((xc - ax) * (xc - ax) + (yc - ay) * (yc - ay))
-        if znew == zf:  # a fixed point to the last bit: further steps change nothing
-            break
+        done = abs(znew - zf) <= 1e-13 * (1.0 + abs(zf))  # a fixed point to 1e-13 (relative; nm)
         zf = znew
+        if done:
+            break
     i, t = _lerp_index(zf, z0, inv_h, n)
     m = mag[i] + t * (mag[i + 1] - mag[i])
     return ((xc - (shift[i, 0] + t * (shift[i + 1, 0] - shift[i, 0]))) * m,
@@ -308,7 +318,8 @@ def _site_file_kernel(lo, hi, r, s, site_z, z_off, rod_xy, tilt, z_ref, identity
                       mag, shift, axis, kappa, n_iter):
     """Sites ``lo:hi`` of :func:`file_site_positions`: each site's point on its rod axis (calibrated
     frame) and, unless ``identity``, its file position (:func:`_to_file_point`), float64."""
-    g = 0  # the depth cell of the previous site: the next one is a step or two away
+    n = depth.size
+    inv_span = (n - 1) / (depth[n - 1] - depth[0]) if depth[n - 1] > depth[0] else 0.0
     for k in range(lo, hi):
         ri = r[k]
         zc = site_z[s[k]] + z_off[ri]
@@ -318,7 +329,7 @@ def _site_file_kernel(lo, hi, r, s, site_z, z_off, rod_xy, tilt, z_ref, identity
         if identity:
             ox[k], oy[k], oz[k] = xc, yc, zc
         else:
-            g = _depth_cell_near(zc, depth, g)
+            g = _depth_cell_guess(zc, depth, inv_span)
             ox[k], oy[k], oz[k] = _to_file_at(xc, yc, zc, _depth_value(zc, grid, depth, g), z0, inv_h, mag, shift,
                                               axis, kappa, n_iter)
 
