@@ -324,6 +324,59 @@ class Background:
             self.proc.join()
 
 
+def can_fork_child() -> bool:
+    """Whether this process may fork a :class:`Background` child that runs beside it (fork is
+    available and this is not a daemonic process, such as a dask worker)."""
+    import multiprocessing as mp
+
+    try:
+        mp.get_context("fork")
+    except ValueError:
+        return False
+    return not mp.current_process().daemon
+
+
+class FolderChild:
+    """A :class:`Background` child that writes into a private ``folder`` while this process goes
+    on (the work ahead of the output stage: :class:`probeseq.outputs.figurejobs.FiguresAhead`,
+    :class:`probeseq.pipeline.analysis.TablesAhead`). Subclasses set :attr:`folder` and call
+    :meth:`start`; nothing is started where :func:`can_fork_child` says no."""
+
+    folder = None
+    _child = None
+
+    def start(self, fn, *args) -> None:
+        """Fork the child running ``fn(*args)`` (nothing where this process cannot fork)."""
+        if can_fork_child():
+            self._child = Background(fn, *args)
+
+    @property
+    def started(self) -> bool:
+        """Whether a child was started."""
+        return self._child is not None and self._child.proc is not None
+
+    @property
+    def running(self) -> bool:
+        """Whether the child is still at work."""
+        return self.started and self._child.proc.is_alive()
+
+    def wait(self) -> bool:
+        """Wait for the child; whether it ended well (False when none was started)."""
+        if not self.started:
+            return False
+        self._child.proc.join()
+        return self._child.proc.exitcode == 0
+
+    def discard(self) -> None:
+        """Stop the child if it still runs and remove the folder (after an error, or once collected)."""
+        import shutil
+
+        if self._child is not None:
+            self._child.kill()
+        if self.folder is not None:
+            shutil.rmtree(self.folder, ignore_errors=True)
+
+
 def _child_main(fn, *args):
     """A :class:`Background` child: the default actions of the stop signals first. The child
     inherits the command's handlers, which turn SIGTERM/SIGHUP into an exception; when the parent

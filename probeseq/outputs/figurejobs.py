@@ -24,6 +24,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Callable
 
+from ..runtime import FolderChild
 from ..utils.marks import PNG_PIL_KWARGS
 from ..utils.textformat import plain_log_ticks
 
@@ -335,7 +336,7 @@ def _draw_ahead(jobs, folder, report_dpi, out_path):
         os.replace(tmp, out_path)
 
 
-class FiguresAhead:
+class FiguresAhead(FolderChild):
     """Figures that need only the count stage's results (the spectrum, the density), drawn in a
     forked child while the parent decodes: the CPU the decoding and statistics leave idle (their
     serial parts) draws them, and the output stage only moves their files in.
@@ -356,27 +357,15 @@ class FiguresAhead:
     """
 
     def __init__(self, make_jobs, report_dpi=None):
-        import multiprocessing as mp
-
         from .. import runtime
 
         self.folder = Path(tempfile.mkdtemp(prefix="probeseq-figures-ahead-"))
         self.jobs = list(make_jobs(self.folder))
         self._out = self.folder / "figures-ahead.pkl"
-        self._child = None
-        try:
-            mp.get_context("fork")
-        except ValueError:
-            return
-        if mp.current_process().daemon or not self.jobs:
+        if not self.jobs or not runtime.can_fork_child():
             return
         warm_up(tuple({"png"} | {e for j in self.jobs for e in j.exts}))  # before the fork, once
-        self._child = runtime.Background(_draw_ahead, self.jobs, self.folder, report_dpi, str(self._out))
-
-    @property
-    def started(self) -> bool:
-        """Whether a child draws the figures."""
-        return self._child is not None and self._child.proc is not None
+        self.start(_draw_ahead, self.jobs, self.folder, report_dpi, str(self._out))
 
     def collect(self, folder) -> dict:
         """Wait for the child, move its files into ``folder`` and return ``{name: (status, value)}``
@@ -387,7 +376,7 @@ class FiguresAhead:
         done = {}
         try:
             if self.started:
-                self._child.proc.join()
+                self.wait()
                 if self._out.exists():
                     with open(self._out, "rb") as fh:
                         done = {k: v for k, v in pickle.load(fh).items() if v is not None}
@@ -399,11 +388,3 @@ class FiguresAhead:
         finally:
             self.discard()
         return done
-
-    def discard(self) -> None:
-        """Stop the child if it still runs and remove the temporary folder (after an error)."""
-        import shutil
-
-        if self._child is not None:
-            self._child.kill()
-        shutil.rmtree(self.folder, ignore_errors=True)

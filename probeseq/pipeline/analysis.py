@@ -322,7 +322,7 @@ def tables_ahead(columns: RodColumns, decoded, outdir, tracks_table: str = "auto
     return ahead
 
 
-class TablesAhead:
+class TablesAhead(runtime.FolderChild):
     """The tracks table, ``runs.csv``, ``columns.h5`` and ``decoded.h5`` of an output folder,
     written by a forked child at the lowest priority into a hidden folder beside it
     (:func:`probeseq.outputs.folder.ahead_folder`) while this process computes the statistics: they
@@ -341,30 +341,11 @@ class TablesAhead:
     """
 
     def __init__(self, columns: RodColumns, decoded, outdir, files):
-        import multiprocessing as mp
-
         from ..outputs.folder import ahead_folder
 
         self.files = tuple(files)
         self.folder = ahead_folder(outdir)
-        self._child = None
-        try:
-            mp.get_context("fork")
-        except ValueError:
-            return
-        if mp.current_process().daemon:
-            return
-        self._child = runtime.Background(_write_ahead, columns, decoded, self.folder, self.files)
-
-    @property
-    def started(self) -> bool:
-        """Whether a child writes the tables."""
-        return self._child is not None and self._child.proc is not None
-
-    @property
-    def running(self) -> bool:
-        """Whether the child is still writing."""
-        return self.started and self._child.proc.is_alive()
+        self.start(_write_ahead, columns, decoded, self.folder, self.files)
 
     @property
     def names(self) -> tuple:
@@ -377,23 +358,13 @@ class TablesAhead:
         hidden folder is removed."""
         moved = set()
         try:
-            if self.started and tuple(files) == self.files:
-                self._child.proc.join()
-                if self._child.proc.exitcode == 0 and all((self.folder / n).is_file() for n in self.names):
-                    for n in self.names:
-                        os.replace(self.folder / n, Path(folder) / n)
-                        moved.add(n)
+            if tuple(files) == self.files and self.wait() and all((self.folder / n).is_file() for n in self.names):
+                for n in self.names:
+                    os.replace(self.folder / n, Path(folder) / n)
+                    moved.add(n)
         finally:
             self.discard()
         return moved
-
-    def discard(self) -> None:
-        """Stop the child if it still runs and remove the hidden folder (after an error)."""
-        import shutil
-
-        if self._child is not None:
-            self._child.kill()
-        shutil.rmtree(self.folder, ignore_errors=True)
 
 
 def _write_ahead(columns, decoded, folder, files):
