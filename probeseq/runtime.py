@@ -297,16 +297,11 @@ class Background:
         import multiprocessing as mp
 
         self.proc = None
-        try:
-            ctx = mp.get_context("fork")
-        except ValueError:
-            fn(*args)
-            return
-        if mp.current_process().daemon:
+        if not can_fork_child():
             fn(*args)
             return
         ensure()
-        self.proc = ctx.Process(target=_child_main, args=(fn, *args), daemon=True)
+        self.proc = mp.get_context("fork").Process(target=_child_main, args=(fn, *args), daemon=True)
         self.proc.start()
 
     def join(self, what: str):

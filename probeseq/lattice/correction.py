@@ -228,8 +228,20 @@ def _apply_kernel(x, y, z, ox, oy, oz, z0, inv_h, depth, mag, shift, axis, kappa
 @numba.njit(cache=True, nogil=True, inline="always")
 def _depth_cell(v, depth):
     """Cell of the depth table holding ``v`` (``depth[i] <= v < depth[i + 1]``, clamped to the end
-    cells), by binary search."""
+    cells). The calibrated depth is close to linear in the file depth, so a linear guess is within a
+    step or two (tried first); otherwise a binary search."""
     n = depth.size
+    span = depth[n - 1] - depth[0]
+    f = (v - depth[0]) * ((n - 1) / span) if span > 0 else 0.0
+    g = int(f) if -1.0 < f < n else 0  # (False for NaN)
+    g = min(max(g, 0), n - 2)
+    for _ in range(3):
+        if g > 0 and depth[g] > v:
+            g -= 1
+        elif g < n - 2 and depth[g + 1] <= v:
+            g += 1
+        else:
+            return g
     lo, hi = 0, n - 1
     while hi - lo > 1:  # depth[lo] <= v < depth[hi], or the end cells
         mid = (lo + hi) >> 1
@@ -238,28 +250,6 @@ def _depth_cell(v, depth):
         else:
             hi = mid
     return lo if lo < n - 1 else n - 2
-
-
-@numba.njit(cache=True, nogil=True, inline="always")
-def _depth_cell_near(v, depth, g):
-    """The cell of :func:`_depth_cell`, walked to from the cell ``g`` (a step or two when ``g`` is
-    a good guess; any ``g`` gives the same cell)."""
-    n = depth.size
-    g = min(max(g, 0), n - 2)
-    while g > 0 and depth[g] > v:
-        g -= 1
-    while g < n - 2 and depth[g + 1] <= v:
-        g += 1
-    return g
-
-
-@numba.njit(cache=True, nogil=True, inline="always")
-def _depth_cell_guess(v, depth, inv_span):
-    """The cell of :func:`_depth_cell` from a linear guess (the depth table is close to linear in
-    its cells, so the walk of :func:`_depth_cell_near` from the guess is a step or two)."""
-    f = (v - depth[0]) * inv_span
-    g = int(f) if (f == f and -1e9 < f < 1e9) else 0
-    return _depth_cell_near(v, depth, g)
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
@@ -274,20 +264,15 @@ def _depth_value(v, grid, depth, i):
 @numba.njit(cache=True, nogil=True, inline="always")
 def _inverse_depth(v, grid, depth):
     """File depth whose calibrated depth is ``v``: the depth table read backwards (``depth``
-    increasing; binary search, linear extrapolation beyond both ends, as ``np.interp`` inside)."""
+    increasing; linear extrapolation beyond both ends, as ``np.interp`` inside)."""
     return _depth_value(v, grid, depth, _depth_cell(v, depth))
 
 
 @numba.njit(cache=True, nogil=True, inline="always")
 def _to_file_point(xc, yc, zc, z0, inv_h, grid, depth, mag, shift, axis, kappa, n_iter):
     """The inverse map at one calibrated point: its file position (x, y, z), float64."""
-    return _to_file_at(xc, yc, zc, _inverse_depth(zc, grid, depth), z0, inv_h, mag, shift, axis, kappa, n_iter)
-
-
-@numba.njit(cache=True, nogil=True, inline="always")
-def _to_file_at(xc, yc, zc, w, z0, inv_h, mag, shift, axis, kappa, n_iter):
-    """:func:`_to_file_point` given ``w``, the file depth of ``zc`` by the depth table alone."""
-    n = mag.size
+    n = depth.size
+    w = _inverse_depth(zc, grid, depth)
     zf = w
     for _ in range(n_iter):
         i, t = _lerp_index(zf, z0, inv_h, n)
@@ -318,8 +303,6 @@ def _site_file_kernel(lo, hi, r, s, site_z, z_off, rod_xy, tilt, z_ref, identity
                       mag, shift, axis, kappa, n_iter):
     """Sites ``lo:hi`` of :func:`file_site_positions`: each site's point on its rod axis (calibrated
     frame) and, unless ``identity``, its file position (:func:`_to_file_point`), float64."""
-    n = depth.size
-    inv_span = (n - 1) / (depth[n - 1] - depth[0]) if depth[n - 1] > depth[0] else 0.0
     for k in range(lo, hi):
         ri = r[k]
         zc = site_z[s[k]] + z_off[ri]
@@ -329,9 +312,8 @@ def _site_file_kernel(lo, hi, r, s, site_z, z_off, rod_xy, tilt, z_ref, identity
         if identity:
             ox[k], oy[k], oz[k] = xc, yc, zc
         else:
-            g = _depth_cell_guess(zc, depth, inv_span)
-            ox[k], oy[k], oz[k] = _to_file_at(xc, yc, zc, _depth_value(zc, grid, depth, g), z0, inv_h, mag, shift,
-                                              axis, kappa, n_iter)
+            ox[k], oy[k], oz[k] = _to_file_point(xc, yc, zc, z0, inv_h, grid, depth, mag, shift, axis, kappa,
+                                                 n_iter)
 
 
 def file_site_positions(columns, rods, sites):

@@ -448,10 +448,7 @@ def staged_outdir(outdir, force: bool = False, inputs=(), command: str | None = 
     """
     target = Path(outdir)
     check_outdir(target, force, inputs)  # before creating anything
-    try:
-        target.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as e:
-        raise InputError(f"--out {target}: cannot create its folder ({e.strerror})") from None
+    _make_parent(target)
     lock = _Lock(target).acquire(f"--out {target}")
     try:
         recover_outdir(target)
@@ -471,6 +468,14 @@ def staged_outdir(outdir, force: bool = False, inputs=(), command: str | None = 
         lock.release()
 
 
+def _make_parent(target: Path) -> None:
+    """Create the folder that will hold ``target`` (a one-line error when it cannot be made)."""
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise InputError(f"--out {target}: cannot create its folder ({e.strerror})") from None
+
+
 def ahead_folder(outdir) -> Path:
     """A new hidden folder beside ``outdir`` for outputs written before the output stage (the
     tables of :class:`probeseq.pipeline.analysis.TablesAhead`), on the same file system, so the
@@ -478,10 +483,7 @@ def ahead_folder(outdir) -> Path:
     one left by a killed run is removed by the next run into ``outdir`` (:func:`recover_outdir`
     removes those whose process has ended)."""
     target = Path(outdir)
-    try:
-        target.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as e:
-        raise InputError(f"--out {target}: cannot create its folder ({e.strerror})") from None
+    _make_parent(target)
     folder = _side(target, "ahead", f"{os.getpid()}-{uuid.uuid4().hex[:8]}")
     folder.mkdir()
     return folder

@@ -374,17 +374,8 @@ def _write_ahead(columns, decoded, folder, files):
         os.nice(19)
     except (AttributeError, OSError):  # no priorities here: write at the same priority
         pass
-    from ..lattice.rodcolumns import save_columns
-    from ..outputs.results import runs_table, write_tracks_h5
-
-    folder = Path(folder)
-    save_columns(columns, folder / "columns.h5")
-    save_decoded(decoded, folder / "decoded.h5")
-    if "tracks.csv" in files:
-        write_tracks(folder / "tracks.csv", columns, decoded)
-    if "tracks.h5" in files:
-        write_tracks_h5(folder / "tracks.h5", columns, decoded)
-    _write_table(folder / "runs.csv", runs_table(columns, decoded), RUNS_COLUMNS, RUNS_FORMATS)
+    _write_arrays(columns, decoded, Path(folder))
+    _write_tables(columns, decoded, Path(folder), files)
 
 
 def write_figures(result: AnalysisResult, folder, progress: Progress = None, failures: list | None = None,
@@ -531,8 +522,9 @@ def write_analysis(result: AnalysisResult, outdir, force: bool = False, extra: C
 
 def _table_children(result, st, files) -> list:
     """Two forked children writing the tables and the arrays: ``[(child, what it writes)]``."""
-    return [(runtime.Background(_write_tables, result, st, files), ", ".join(files + ("runs.csv",))),
-            (runtime.Background(_write_arrays, result, st), "columns.h5, decoded.h5")]
+    cols, dec = result.columns, result.decoded
+    return [(runtime.Background(_write_tables, cols, dec, st, files), ", ".join(files + ("runs.csv",))),
+            (runtime.Background(_write_arrays, cols, dec, st), "columns.h5, decoded.h5")]
 
 
 def _results_dict(result, files) -> dict:
@@ -542,25 +534,25 @@ def _results_dict(result, files) -> dict:
     return d
 
 
-def _write_tables(result, st, files):
+def _write_tables(columns, decoded, st, files):
     """The tracks table and runs.csv, in a forked child while this process draws the figures (the
     compiled table formatter is loaded there once, about 1 s in a fresh process; the tracks table
-    of a 10^8-ion run takes about 14 s)."""
-    from ..outputs.results import write_tracks_h5
+    of a 10^8-ion run takes about 9 s)."""
+    from ..outputs.results import runs_table, write_tracks_h5
 
     if "tracks.csv" in files:
-        write_tracks(st / "tracks.csv", result.columns, result.decoded)
+        write_tracks(st / "tracks.csv", columns, decoded)
     if "tracks.h5" in files:
-        write_tracks_h5(st / "tracks.h5", result.columns, result.decoded)
-    _write_table(st / "runs.csv", result.runs_table(), RUNS_COLUMNS, RUNS_FORMATS)
+        write_tracks_h5(st / "tracks.h5", columns, decoded)
+    _write_table(st / "runs.csv", runs_table(columns, decoded), RUNS_COLUMNS, RUNS_FORMATS)
 
 
-def _write_arrays(result, st):
+def _write_arrays(columns, decoded, st):
     """columns.h5 and decoded.h5, in a second forked child (about 1.5 s at 10^7 ions)."""
     from ..lattice.rodcolumns import save_columns
 
-    save_columns(result.columns, st / "columns.h5")
-    save_decoded(result.decoded, st / "decoded.h5")
+    save_columns(columns, st / "columns.h5")
+    save_decoded(decoded, st / "decoded.h5")
 
 
 def _write_rest(result, st, report, progress, extra, files, parallel=None, drawn=None):

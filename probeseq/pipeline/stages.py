@@ -253,24 +253,23 @@ def _fit_on_sample(sample: IonList, metals, lattice, opts, ranges, clock):
                                                         channel=ca.channel[::stride])
                 thin = metal_visibility(rr, ca_fit)
             geom = plan_columns(x, y, z, reg, random_state=opts.seed, correction=corr)
-            ev = _evidence_table(rr, ca_fit, geom, reg, (x, y, z), ca.range_index[sel], opts)
-    if isinstance(ev, float):  # drawn metals: only the lateral capture, into the visibility
-        return rr, thin * ev, geom, None
-    return rr, thin * ev.lateral_capture, geom, ev
+            lateral, ev = _evidence_table(rr, ca_fit, geom, reg, (x, y, z), ca.range_index[sel], opts)
+    # a metal's own ion is counted at its site when it lands nearest its rod: part of the visibility
+    return rr, thin * lateral, geom, ev
 
 
 def _evidence_table(rr, ca_fit, geom, reg, xyz, range_index, opts):
-    """The soft-evidence increments of the pass (:func:`probeseq.lattice.evidence.run_evidence_table`:
-    per mass bin of the ranges, with the lateral width fitted on the sample's ions of pure metal
-    ranges), or, when not asked for, the share of the own ions that land nearest their rod
-    (:func:`probeseq.lattice.evidence.lateral_capture`, a float: part of the counts' visibility
-    either way)."""
+    """(the share of the own ions that land nearest their rod,
+    :func:`probeseq.lattice.evidence.lateral_capture`; the soft-evidence increments of the pass,
+    :func:`probeseq.lattice.evidence.run_evidence_table`, or None when not asked for), both from
+    the lateral width fitted on the sample's ions of pure metal ranges."""
     from ..lattice.evidence import lateral_capture, run_evidence_table, run_lateral_spread
 
     d = reg.axis_distance_nm(*xyz)
     if not opts.soft_evidence:
-        return lateral_capture(geom.locator, run_lateral_spread(ca_fit, d, range_index, geom.locator))
-    return run_evidence_table(rr, ca_fit, d, range_index, geom.locator)
+        return lateral_capture(geom.locator, run_lateral_spread(ca_fit, d, range_index, geom.locator)), None
+    ev = run_evidence_table(rr, ca_fit, d, range_index, geom.locator)
+    return ev.lateral_capture, ev
 
 
 def _correct(sample: IonList, sel, reg, lattice, opts):
