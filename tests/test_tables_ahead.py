@@ -123,3 +123,22 @@ def test_no_hidden_folder_means_no_child(tmp_path, monkeypatch, source):
     out = analyze_run(src, tmp_path / "out", metals=("Co", "Zn"), lattice=lattice).outdir
     assert made == [None]
     assert {"columns.h5", "decoded.h5", "tracks.csv", "runs.csv"} <= {p.name for p in out.iterdir()}
+
+
+def test_input_beside_the_output_folder_is_left_byte_identical(tmp_path, monkeypatch, source):
+    """The hidden folder is made beside the output folder, here the input's own folder: the input
+    file is byte-identical afterwards, also after a second run with --force, and nothing hidden is
+    left there."""
+    import shutil
+
+    src0, lattice = source
+    src = tmp_path / "run.h5"
+    shutil.copyfile(src0, src)
+    before = src.read_bytes()
+    made = []
+    _spy(monkeypatch, made)
+    for force in (False, True):
+        analyze_run(src, tmp_path / "out", metals=("Co", "Zn"), lattice=lattice, force=force)
+    assert made and all(m is not None and m.started for m in made)
+    assert src.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["out", "run.h5"]
