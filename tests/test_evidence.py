@@ -410,3 +410,32 @@ def test_lateral_capture_is_the_share_of_own_ions_nearest_their_rod(packing, a, 
     assert got == pytest.approx(mc, abs=3e-3)  # the Monte Carlo's own error is about 5e-4
     # nothing is lost without a fitted width
     assert lateral_capture(loc, dataclasses.replace(spread, fitted=False)) == 1.0
+
+
+def test_a_metal_without_extras_keeps_the_same_least_share_in_ranges_and_in_the_decode():
+    # The decode weighs a range shared with fragments against a pure range of the metal by u_r / mu:
+    # both floors stand for the same least share of the metal's ions taken as extras, so with no
+    # extras at all (c = 1; evidence of own ions only) the shared range keeps EXTRAS_LEAST_SHARE of
+    # the metal's share among the extras and the extras' evidence per site is EXTRAS_LEAST_SHARE of
+    # the mean evidence. A change of either floor alone breaks this.
+    from probeseq.decoding.model import DecoderParams, _rod_data
+    from probeseq.decoding.starts import evidence_start
+    from probeseq.lattice.evidence import EXTRAS_LEAST_SHARE
+
+    s = np.array([[0.3, 0.0], [0.0, 1.0]])
+    u = remove_own(s, np.ones(2))
+    assert u[0, 0] == pytest.approx(EXTRAS_LEAST_SHARE * 0.3 / 0.7, rel=1e-12)
+    assert u[1, 1] == pytest.approx(1.0)  # a pure range keeps its whole share whatever the floor
+    rng = np.random.default_rng(5)
+    state = rng.integers(0, 2, size=(40, 50))
+    eta = 0.6
+    detected = rng.random((40, 50)) < eta
+    ev = np.zeros((40, 50, 2))
+    ev[detected, state[detected]] = 1.0  # own ions only, evidence 1 each
+    data = _rod_data(ev, np.ones((40, 50), bool), own_scale=np.ones(2))
+    # the chain and efficiency of the counts' fit, with the composition and eta of the sample
+    f = np.bincount(state.ravel(), minlength=2) / state.size
+    p = DecoderParams(transmat=np.tile(f, (2, 1)), eta=float(detected.mean()), extra_rate=np.full(2, 0.01))
+    mu = evidence_start(data, p, None).extra_rate
+    mean = ev.reshape(-1, 2).mean(axis=0)
+    assert mu == pytest.approx(EXTRAS_LEAST_SHARE * mean, rel=1e-9)

@@ -9,6 +9,7 @@ import math
 
 import numpy as np
 
+from ..lattice.evidence import EXTRAS_LEAST_SHARE
 from .model import MIN_RATE, DecoderParams, _Prepared, _RodData
 
 __all__ = ['initial_params', 'evidence_start']
@@ -47,7 +48,9 @@ def initial_params(prep: _Prepared, rng, k: int, random: bool, visibility=None) 
 def evidence_start(data: _RodData, params: DecoderParams, visibility) -> DecoderParams:
     """Parameters for the soft-evidence fit from a fit of the counts: the same chain and instrument
     efficiency, the metals' visibility ``visibility`` (their capture), and the extra evidence per
-    site by moments, ``mu_k = mean(E_k) - eta a_k f_k s_k`` (``s_k`` the evidence of an own ion).
+    site by moments, ``mu_k = mean(E_k) - eta a_k f_k s_k`` (``s_k`` the evidence of an own ion), at
+    least ``EXTRAS_LEAST_SHARE`` of ``mean(E_k)``, the floor of the metal's extras in the ranges'
+    shares (:func:`probeseq.lattice.evidence.remove_own`).
 
     The sites are then decoded from the soft evidence with these parameters: the chain and the
     efficiency come from the counts, whose model is exact for whole ions (a fit of the soft evidence
@@ -57,6 +60,6 @@ def evidence_start(data: _RodData, params: DecoderParams, visibility) -> Decoder
     mean = data.sum_n / max(data.n_obs, 1)
     vis = np.ones(mean.size) if visibility is None else np.asarray(visibility, dtype=float)
     own = params.eta * vis * params.stationary * data.own_scale
-    mu = np.maximum(mean - own, np.maximum(0.05 * mean, MIN_RATE))
+    mu = np.maximum(mean - own, np.maximum(EXTRAS_LEAST_SHARE * mean, MIN_RATE))
     eta = float(min(params.eta, 0.95 / float(vis.max())))
     return DecoderParams(transmat=params.transmat, eta=eta, extra_rate=mu, visibility=visibility)
