@@ -111,3 +111,23 @@ def test_oracle_on_a_tiny_copied_run():
     # pooling the rods beats decoding each rod alone with the master chain's matrix
     alone = oracle.chain_posteriors(oracle.site_log_emissions(run), run.config.transmat, run.config.composition_array)
     assert oracle.oracle_accuracy(run, post) > oracle.oracle_accuracy(run, alone) + 0.1
+
+
+def test_data_limit_is_the_oracle_where_no_line_is_shared_and_below_it_where_fragments_hide_a_metal():
+    # Co and Zn lines share no range with the default fragments: knowing which ion is a site's own
+    # adds almost nothing, so the decode that must tell own ions from the rest by their density
+    # reaches the oracle. Mg's lines sit under carbon-rich fragments' lines: there it cannot.
+    from probeseq.simulation.simulate import simulate_run
+
+    kw = dict(pattern="short-repeat", top_radius_nm=5.0, depth_nm=12.0, eta=0.6, sigma_xy_nm=0.12)
+    run = simulate_run(metals=("Co", "Zn"), composition=(0.45, 0.55), seed=12, **kw)
+    inside = run.seq >= 0
+    a = oracle.oracle_accuracy(run, oracle.oracle_posteriors(run), inside)
+    b = oracle.oracle_accuracy(run, oracle.data_limit_posteriors(run), inside)
+    assert abs(a - b) < 0.01, (a, b)
+    run = simulate_run(metals=("Mg", "Zn"), composition=(0.45, 0.55), fragments="carbon-rich", seed=12, **kw)
+    inside = run.seq >= 0
+    a = oracle.oracle_accuracy(run, oracle.oracle_posteriors(run), inside)
+    b = oracle.oracle_accuracy(run, oracle.data_limit_posteriors(run), inside)
+    c = oracle.oracle_accuracy(run, oracle.data_limit_posteriors(run, lateral=False, axial=False), inside)
+    assert b < a - 0.005 and c < b - 0.005, (a, b, c)  # the ions' place near the axis is part of the evidence

@@ -145,6 +145,10 @@ def test_track_cells_codes_follow_posterior_mask_and_empty_sites():
     # 0.3 from the prior -> Zn level 1; site 5: masked
     assert PRIOR_TOLERANCE < 0.3
     assert code[0].tolist() == [0, 1, 2, -1, 1 * n_lv + 1, -2]
+    # the colour is the site call (largest posterior, as tracks.csv's state), not the Viterbi path
+    dec_path_co = SimpleNamespace(viterbi=np.array([[0, 0, 0, 0, 0, -1]]), posteriors=post, mask=mask,
+                                  stationary=np.array([0.5, 0.5]))
+    assert track_cells(cols, dec_path_co, [0])[0].tolist() == [0, 1, 2, -1, 1 * n_lv + 1, -2]
 
 
 def test_merged_cells_cover_exactly_the_coloured_sites(grid):

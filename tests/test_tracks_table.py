@@ -86,3 +86,21 @@ def test_bad_choice_is_one_line_before_any_work(analysed, capsys):
     err = capsys.readouterr().err
     assert code != 0 and "--tracks-table 'parquet'" in err and len(err.strip().splitlines()) == 1
     assert not out.exists()
+
+
+def test_state_is_the_site_call_not_the_path():
+    # tracks.csv's state is each site's metal of largest posterior, with that posterior; the
+    # Viterbi path (here replaced by a path of the first metal everywhere) does not enter it
+    from dataclasses import replace
+
+    from probeseq.outputs.results import tracks_table
+    from probeseq.pipeline import AnalysisOptions, analyze
+
+    run = simulate_run(pattern="short-repeat", metals=("Co", "Zn"), top_radius_nm=6, depth_nm=12, eta=0.4, seed=78)
+    res = analyze(run.ions, run.config.metals, run.lattice, options=AnalysisOptions(seed=1, n_boot=20))
+    dec = replace(res.decoded, viterbi=np.where(res.decoded.mask, 0, -1).astype(res.decoded.viterbi.dtype))
+    t = tracks_table(res.columns, dec, state_codes=True)
+    post = res.decoded.posteriors[t["rod"], t["site"]]
+    assert (t["state"] == post.argmax(axis=1)).all()
+    assert (t["state"] == 1).mean() > 0.2  # the all-Co path was not used
+    np.testing.assert_array_equal(t["posterior"], post.max(axis=1))

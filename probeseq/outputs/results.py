@@ -49,6 +49,13 @@ def tracks_table(columns: RodColumns, decoded, select=None, rods: slice | None =
         Only these rods (a block of the table; see :func:`write_tracks`).
     state_codes : bool
         ``state`` as the metal's index (int8) instead of its name.
+
+    Notes
+    -----
+    ``state`` is the site call: the metal of largest posterior at the site (the first metal on a
+    tie), the decode with the fewest expected wrong sites, and ``posterior`` its posterior. The runs
+    (:func:`runs_table`) are those of the most probable path (Viterbi), a sequence the fitted chain
+    can make as a whole; the two differ at some uncertain sites.
     """
     sel = columns.mask if select is None else select
     if rods is None:
@@ -57,10 +64,12 @@ def tracks_table(columns: RodColumns, decoded, select=None, rods: slice | None =
         r, s = np.nonzero(sel[rods])
         r += rods.indices(sel.shape[0])[0]
     xy, z = file_site_positions(columns, r, s)  # in the ion file's frame
-    state = decoded.viterbi[r, s]
+    post = np.asarray(decoded.posteriors[r, s])
+    state = post.argmax(axis=1) if post.size else np.zeros(r.size, np.int64)  # the site call
     names = state.astype(np.int8) if state_codes else np.asarray(columns.metals, dtype=object)[state]
     return {"rod": r, "rod_x_nm": xy[:, 0], "rod_y_nm": xy[:, 1], "site": s, "z_nm": z,
-            "state": names, "posterior": decoded.posteriors[r, s, state]}
+            "state": names, "posterior": np.take_along_axis(post, state[:, None], axis=1)[:, 0] if post.size
+            else np.zeros(r.size, np.float32)}
 
 
 def runs_table(columns: RodColumns, decoded) -> dict:

@@ -140,9 +140,9 @@ def track_cells(columns, decoded, ids, sites=slice(None), inside=None,
     """
     vit, post, mask, prior = _check_decoded(columns, decoded)
     ids = np.asarray(ids, dtype=np.int64)
-    v = vit[ids, sites]
-    m = mask[ids, sites] & (v >= 0)
     p = post[ids, sites]
+    v = np.where(vit[ids, sites] >= 0, p.argmax(axis=2), -1)  # the site call, as tracks.csv's state
+    m = mask[ids, sites] & (v >= 0)
     vs = np.clip(v, 0, None)
     pv = np.take_along_axis(p, vs[:, :, None], axis=2)[:, :, 0]
     lows = np.array([lv[0] for lv in CONFIDENCE_LEVELS])

@@ -57,7 +57,8 @@ from scipy.special import log_ndtr, logsumexp
 from probeseq.simulation.emission import METAL_FORMS, ion_lines
 
 __all__ = ["FWHM_PER_SIGMA", "metal_lines", "peak_log_density", "metal_log_likelihood", "site_log_emissions",
-           "chain_posteriors", "copied_posteriors", "oracle_posteriors", "oracle_correct", "oracle_accuracy"]
+           "chain_posteriors", "copied_posteriors", "oracle_posteriors", "oracle_correct", "oracle_accuracy",
+           "data_limit_posteriors"]
 
 #: FWHM / sigma of a Gaussian as the simulator writes it: 2 sqrt(2 ln 2) (recalled from memory) rounded to 2.3548
 FWHM_PER_SIGMA = 2.3548
@@ -373,3 +374,110 @@ def oracle_accuracy(run, posteriors=None, sites=None) -> float:
     sel = np.asarray(run.seq) >= 0 if sites is None else np.asarray(sites, bool) & (np.asarray(run.seq) >= 0)
     n = int(sel.sum())
     return float(ok[sel].sum() / n) if n else float("nan")
+
+
+def data_limit_posteriors(run, mass_bin_da: float = 0.002, smooth_da: float = 0.003, axial: bool = True,
+                          lateral: bool = True):
+    """Site posteriors of the decode that knows the true model of every kind of ion but not which ion
+    is which: the limit of what an analysis of the ion file can reach (a diagnostic beside the oracle).
+
+    The oracle is given which ion is a site's own ion, so linker fragments and background never
+    count as evidence. An analysis of the ion file sees every ion in a site's cell and slab; this
+    decode does too, with the true lattice (each ion goes to the nearest true rod axis at its depth
+    and the nearest true site by depth), the true chain or copy model, and the true densities of
+    the two kinds of ion it must tell apart:
+
+    * a site's own ion: detected with probability ``eta``, mass-to-charge density ``p_k(y)``
+      (:func:`metal_log_likelihood`), lateral offset a 2-D Gaussian and axial offset a Gaussian
+      about its site, with widths measured on the run's own ions (truth);
+    * every other ion in the cell and slab (fragments, background, neighbours' own ions): a
+      Poisson number per site with mass-to-charge density ``lambda(y)`` (a histogram of the run's
+      such ions in ``mass_bin_da`` bins smoothed by a Gaussian of ``smooth_da``, per site) spread
+      evenly over the cell area ``A`` and the slab of one pitch ``p``.
+
+    Then (the usual mixture of one Bernoulli own ion and Poisson extras, in which the extras'
+    product cancels between metals)
+
+    ``P(o_rt | k) ~ 1 - eta c + eta sum_i p_k(y_i) g(d_i) A phi(dz_i) p / lambda(y_i)``,
+
+    with ``c`` the share of own ions that land in their own cell and slab. Posteriors by the same
+    forward-backward (or master chain) as the oracle's.
+
+    Parameters
+    ----------
+    run : SimRun
+    mass_bin_da, smooth_da : float, Da
+    axial, lateral : bool
+        Use the own ion's axial (lateral) offset; False: the decode ignores it (the factor is 1), to
+        measure what that part of the evidence is worth.
+
+    Returns
+    -------
+    (n_rods, n_sites, K) ndarray of float
+    """
+    from scipy.ndimage import gaussian_filter1d
+    from scipy.spatial import cKDTree
+
+    cfg = run.config
+    seq = np.asarray(run.seq)
+    n_rods, n_sites = seq.shape
+    k = len(cfg.metals)
+    inside = seq >= 0
+    rods = run.truth["rods"]
+    x0 = np.array([r["x0"] for r in rods])
+    y0 = np.array([r["y0"] for r in rods])
+    dx = np.array([r["dxdz"] for r in rods])
+    dy = np.array([r["dydz"] for r in rods])
+    ions = run.ions
+    x, y, z = (np.asarray(v, float) for v in (ions.x, ions.y, ions.z))
+    mz = np.asarray(ions.mass_to_charge, float)
+    # nearest true axis at the ion's depth: candidates from the mean tilt, then exact distances
+    tree = cKDTree(np.column_stack([x0, y0]))
+    _, cand = tree.query(np.column_stack([x - dx.mean() * z, y - dy.mean() * z]), k=min(4, len(rods)))
+    cand = np.atleast_2d(cand.T).T
+    ddx = x[:, None] - x0[cand] - dx[cand] * z[:, None]
+    ddy = y[:, None] - y0[cand] - dy[cand] * z[:, None]
+    d2 = ddx ** 2 + ddy ** 2
+    best = d2.argmin(axis=1)
+    rod = cand[np.arange(x.size), best]
+    d2 = d2[np.arange(x.size), best]
+    # nearest site by depth (the rod's site depths ascend)
+    sz = np.asarray(run.site_z_nm, float)
+    site = np.empty(x.size, np.int64)
+    for r in np.unique(rod):
+        sel = np.flatnonzero(rod == r)
+        zs = sz[r]
+        j = np.clip(np.searchsorted(zs, z[sel]), 1, n_sites - 1)
+        site[sel] = np.where(np.abs(z[sel] - zs[j - 1]) <= np.abs(z[sel] - zs[j]), j - 1, j)
+    dz = z - sz[rod, site]
+    own_rod, own_site = np.asarray(run.ion_rod), np.asarray(run.ion_site)
+    is_own = own_rod >= 0
+    home = is_own & (own_rod == rod) & (own_site == site)  # own ions in their own cell and slab
+    c = float(home.sum() / max(is_own.sum(), 1))
+    # own ions' lateral and axial widths (Rayleigh and normal estimates on the ones at home)
+    s2_xy = float(d2[home].mean() / 2.0)
+    s_z = float(dz[home].std())
+    pitch = float(np.nanmedian(np.diff(sz, axis=1)))
+    area = float((run.truth.get("distortion") or {}).get("scale", 1.0)) ** 2 / run.lattice.rod_density_per_nm2
+    ratio = np.ones(x.size)
+    if lateral:
+        ratio *= np.exp(-d2 / (2 * s2_xy)) / (2 * np.pi * s2_xy) * area
+    if axial:
+        ratio *= np.exp(-dz ** 2 / (2 * s_z ** 2)) / (math.sqrt(2 * math.pi) * s_z) * pitch
+    # the extras' mass-to-charge density per site
+    extra = ~home & inside[rod, site]
+    lo, hi = float(mz.min()) - 1.0, float(mz.max()) + 1.0
+    nb = int(math.ceil((hi - lo) / mass_bin_da))
+    hist = np.bincount(((mz[extra] - lo) / mass_bin_da).astype(np.int64), minlength=nb)[:nb].astype(float)
+    dens = gaussian_filter1d(hist, smooth_da / mass_bin_da) / (mass_bin_da * inside.sum())
+    lam = np.maximum(dens[np.clip(((mz - lo) / mass_bin_da).astype(np.int64), 0, nb - 1)], 1e-9)
+    use = inside[rod, site]
+    w = np.exp(metal_log_likelihood(cfg, mz[use])) * (ratio[use] / lam[use])[:, None]
+    acc = np.zeros((n_rods, n_sites, k))
+    np.add.at(acc, (rod[use], site[use]), w)
+    log_em = np.zeros((n_rods, n_sites, k))
+    log_em[inside] = np.log(1.0 - cfg.eta * c + cfg.eta * acc[inside])
+    f = cfg.composition_array
+    if cfg.pattern == "copied":
+        return copied_posteriors(log_em, cfg.transmat, f, cfg.copy_error, f)
+    return chain_posteriors(log_em, cfg.transmat, f)
