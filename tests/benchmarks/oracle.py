@@ -377,7 +377,7 @@ def oracle_accuracy(run, posteriors=None, sites=None) -> float:
 
 
 def data_limit_posteriors(run, mass_bin_da: float = 0.002, smooth_da: float = 0.003, axial: bool = True,
-                          lateral: bool = True):
+                          lateral: bool = True, crosstalk_known: bool = False):
     """Site posteriors of the decode that knows the true model of every kind of ion but not which ion
     is which: the limit of what an analysis of the ion file can reach (a diagnostic beside the oracle).
 
@@ -410,6 +410,9 @@ def data_limit_posteriors(run, mass_bin_da: float = 0.002, smooth_da: float = 0.
     axial, lateral : bool
         Use the own ion's axial (lateral) offset; False: the decode ignores it (the factor is 1), to
         measure what that part of the evidence is worth.
+    crosstalk_known : bool
+        Own ions that land nearer another rod or site are given back to their own site (with their
+        offsets from it): the bound on what any model of crosstalk between neighbours can gain.
 
     Returns
     -------
@@ -454,6 +457,16 @@ def data_limit_posteriors(run, mass_bin_da: float = 0.002, smooth_da: float = 0.
     is_own = own_rod >= 0
     home = is_own & (own_rod == rod) & (own_site == site)  # own ions in their own cell and slab
     c = float(home.sum() / max(is_own.sum(), 1))
+    if crosstalk_known:
+        away = np.flatnonzero(is_own & ~home)
+        rod, site = rod.copy(), site.copy()
+        rod[away], site[away] = own_rod[away], own_site[away]
+        d2 = d2.copy()
+        d2[away] = ((x[away] - x0[rod[away]] - dx[rod[away]] * z[away]) ** 2
+                    + (y[away] - y0[rod[away]] - dy[rod[away]] * z[away]) ** 2)
+        dz = z - sz[rod, site]
+        home = is_own.copy()
+        c = 1.0
     # own ions' lateral and axial widths (Rayleigh and normal estimates on the ones at home)
     s2_xy = float(d2[home].mean() / 2.0)
     s_z = float(dz[home].std())
