@@ -36,9 +36,10 @@ are exact (below ``2**24 / UNITS`` per site) and do not depend on the order of t
 number of threads or the block size.
 
 The lateral width ``sigma`` is fitted on the sample's ions of pure metal ranges: their squared
-distance to the nearest axis is a mixture of the own ions' ``Exp(mean 2 sigma^2)`` (a 2-D Gaussian)
-and the extras' distribution, uniform over the cell area (taken from the lookup grid), fitted by
-EM (:func:`fit_lateral_spread`).
+distance to the nearest axis is a mixture of the own ions (2-D Gaussians of width ``sigma`` about
+the cell's rod and, where rods are close, about its neighbours, whose ions stray into the cell)
+and the extras, spread evenly over the cell (both from the lookup grid, :class:`_RadialModel`);
+the width maximises the profile likelihood (:func:`fit_lateral_spread`).
 """
 
 from __future__ import annotations
@@ -114,33 +115,6 @@ def _cell_d2(locator) -> np.ndarray:
     return d2[d2 < cut]
 
 
-def _even_density(locator):
-    """The density of d^2 of points spread evenly over a rod's cell (a histogram from the grid):
-    returns (bin edges, density)."""
-    cell = _cell_d2(locator)
-    edges = np.linspace(0.0, cell.max() * (1 + 1e-9), 41)
-    h, _ = np.histogram(cell, bins=edges)
-    return edges, h / (h.sum() * np.diff(edges))
-
-
-def _even_at(edges, dens, d2):
-    return np.maximum(dens[np.clip(np.searchsorted(edges, d2, side="right") - 1, 0, dens.size - 1)], 1e-12)
-
-
-def _own_share(d2, s2, even, max_iter: int = 100) -> float:
-    """EM for the share of the Gaussian (own-ion) part of a mixture with a fixed width."""
-    g = np.exp(-d2 / (2 * s2)) / (2 * s2 * -np.expm1(-float(d2.max(initial=1.0)) / (2 * s2)))
-    pi = 0.5
-    for _ in range(max_iter):
-        own = pi * g
-        w = own / (own + (1 - pi) * even)
-        new = float(w.mean())
-        if abs(new - pi) < 1e-7:
-            return new
-        pi = new
-    return pi
-
-
 def own_fractions(share, d_nm, range_index, locator, spread: LateralSpread, min_ions: int = 50) -> np.ndarray:
     """Share of each mixed range's metal ions that are own ions (on the axes), ``c_r``.
 
@@ -175,15 +149,17 @@ def own_fractions(share, d_nm, range_index, locator, spread: LateralSpread, min_
     c = np.zeros(n_r)
     if not spread.fitted:
         return c
-    edges, dens = _even_density(locator)
+    model = _radial_model(locator)
     d2 = np.asarray(d_nm, dtype=np.float64) ** 2
-    ok = np.isfinite(d2) & (d2 < edges[-1])
+    ok = np.isfinite(d2) & (d2 < model.top)
     d2, ri = d2[ok], np.asarray(range_index)[ok]
     s2 = spread.sigma_nm ** 2
 
     def gauss_share(r):
         dr = d2[ri == r]
-        return (_own_share(dr, s2, _even_at(edges, dens, dr)), dr.size) if dr.size >= min_ions else (None, 0)
+        if dr.size < min_ions:
+            return None, 0
+        return _mixture_share(model.own_at(dr, s2), model.even_at(dr), 100)[0], dr.size
 
     own, metal = np.zeros(K), np.zeros(K)  # per metal: sampled own ions and metal ions of its pure ranges
     for r in np.flatnonzero((share >= 0.9).any(axis=1)):
@@ -264,8 +240,117 @@ def extras_shares(share, d_nm, range_index, locator, spread: LateralSpread, min_
     return remove_own(bins.share, c[bins.bin_range])
 
 
+def _near_d2(locator, n: int = 12, chunk: int = 8192) -> np.ndarray:
+    """Squared distances (nm^2) from the centre of every cell of the locator's grid to its ``n``
+    nearest rod axes, nearest first, (n_grid * n_grid, n), in :func:`_grid_d2`'s order."""
+    G = int(locator.n_grid)
+    c = (np.arange(G) + 0.5) / G
+    u, v = np.meshgrid(c, c, indexing="ij")
+    u, v = u.reshape(-1), v.reshape(-1)
+    frac, g = np.asarray(locator.code_frac, np.float64), np.asarray(locator.metric, np.float64)
+    n = min(int(n), frac.shape[0])
+    out = np.empty((u.size, n))
+    for a in range(0, u.size, chunk):
+        du = u[a:a + chunk, None] - frac[None, :, 0]
+        dv = v[a:a + chunk, None] - frac[None, :, 1]
+        d2 = g[0, 0] * du * du + 2 * g[0, 1] * du * dv + g[1, 1] * dv * dv
+        out[a:a + chunk] = np.sort(np.partition(d2, n - 1, axis=1)[:, :n], axis=1)
+    return out
+
+
+class _RadialModel:
+    """Densities of the squared distance to the nearest axis, d^2, of the ions of one rod's cell:
+    the even part (spread over the cell) and the own part, the own ions of *every* rod that land in
+    the cell (its own rod's Gaussian, whose share of the circle at d that lies in the cell is the
+    even part's density times ``pi / A``, plus the neighbours' Gaussians, summed on the grid in
+    bins of d^2). Where rods are far apart the neighbours' part is nil and the own part is the
+    Gaussian truncated by the cell; where they are close it holds the ions that stray in from the
+    neighbours, which a Gaussian of the own rod alone reads as a narrower, weaker own part."""
+
+    N_BINS = 40
+
+    def __init__(self, locator):
+        near = _near_d2(locator)
+        cut = float(locator.cutoff_nm) ** 2 if np.isfinite(locator.cutoff_nm) else np.inf
+        inside = near[:, 0] < cut
+        self.near = near[inside]
+        self.top = float(self.near[:, 0].max()) * (1 + 1e-9) if inside.any() else 1.0
+        self.edges = np.linspace(0.0, self.top, self.N_BINS + 1)
+        self.bin = np.clip(np.searchsorted(self.edges, self.near[:, 0], side="right") - 1, 0, self.N_BINS - 1)
+        cnt = np.bincount(self.bin, minlength=self.N_BINS)
+        width = np.diff(self.edges)
+        self.even = cnt / (cnt.sum() * width)  # density of d^2 over the cell
+        # the neighbours' squared distances of every grid cell, as a histogram per d^2 bin of the
+        # nearest (fine bins: a width costs one matrix-vector product)
+        other = self.near[:, 1:]
+        self.other_at = np.linspace(0.0, float(other.max(initial=1.0)), 1025)
+        ob = np.clip(np.searchsorted(self.other_at, other, side="right") - 1, 0, 1023)
+        self.other_at = 0.5 * (self.other_at[:-1] + self.other_at[1:])
+        self.other_hist = np.bincount((self.bin[:, None] * 1024 + ob).ravel(),
+                                      minlength=self.N_BINS * 1024).reshape(self.N_BINS, 1024).astype(np.float64)
+        nb = self.nb = int(locator.lattice.rods_per_cell)
+        self.area_cell = abs(float(np.linalg.det(locator.lattice.cell_matrix))) / nb  # nm^2 per rod
+        self.cell_area_per_grid = self.area_cell * nb / (int(locator.n_grid) ** 2)
+
+    def bin_of(self, d2):
+        return np.clip(np.searchsorted(self.edges, d2, side="right") - 1, 0, self.N_BINS - 1)
+
+    def even_at(self, d2):
+        return np.maximum(self.even[self.bin_of(d2)], 1e-12)
+
+    def own_at(self, d2, s2: float):
+        """Density of d^2 of the own ions in the cell (own rod and neighbours), normalised over the
+        cell; ``d2`` (n,) nm^2, ``s2`` the Gaussian's variance, nm^2."""
+        b = self.bin_of(d2)
+        cover = self.even[b] * self.area_cell / np.pi  # share of the circle at d inside the cell
+        own = np.exp(-d2 / (2 * s2)) / (2 * s2) * np.minimum(cover, 1.0)
+        width = np.diff(self.edges)
+        others = self.other_hist @ np.exp(-self.other_at / (2 * s2)) / (2 * np.pi * s2) * self.cell_area_per_grid
+        # the grid spans the unit cell, ``nb`` rods' cells: per rod, a share 1 / nb of the sum
+        o_bins = others / (width * self.nb)  # density of d^2
+        # normalisation over the cell: the own rod's part from the same binned cover, plus the others'
+        cover_b = np.minimum(self.even * self.area_cell / np.pi, 1.0)
+        lo, hi = self.edges[:-1], self.edges[1:]
+        own_mass = float((cover_b * (np.exp(-lo / (2 * s2)) - np.exp(-hi / (2 * s2)))).sum())
+        z = own_mass + float((o_bins * width).sum())
+        return np.maximum((own + o_bins[b]) / max(z, 1e-300), 1e-300)
+
+
+_RADIAL_MODELS: list = []  # (locator, model) of the last few locators (they are cached and reused)
+
+
+def _radial_model(locator) -> _RadialModel:
+    """The :class:`_RadialModel` of ``locator``, built once per locator object."""
+    for loc, model in _RADIAL_MODELS:
+        if loc is locator:
+            return model
+    model = _RadialModel(locator)
+    _RADIAL_MODELS.append((locator, model))
+    del _RADIAL_MODELS[:-4]
+    return model
+
+
+def _mixture_share(own, even, max_iter: int = 200, pi: float = 0.5, weight=None) -> tuple:
+    """EM for the share of the own part of a two-part mixture with fixed densities (of points with
+    multiplicities ``weight``, default 1); returns (share, log-likelihood)."""
+    wt = np.ones(np.shape(own)) if weight is None else np.asarray(weight, dtype=np.float64)
+    n = float(wt.sum())
+    for _ in range(max_iter):
+        new = float((wt * (pi * own / (pi * own + (1 - pi) * even))).sum() / n)
+        if abs(new - pi) < 1e-8:
+            pi = new
+            break
+        pi = new
+    return pi, float((wt * np.log(pi * own + (1 - pi) * even)).sum())
+
+
 def fit_lateral_spread(d_nm, locator, max_iter: int = 200) -> LateralSpread:
     """Fit the own ions' lateral width from distances to the nearest axis.
+
+    The ions of pure metal ranges are a mixture of own ions (of the cell's rod and, where rods are
+    close, of its neighbours, :class:`_RadialModel`) and an even part; the width is the maximum of
+    the profile likelihood (the own share by EM at each width), found by a bounded search on the
+    log width within :data:`SIGMA_BOUNDS_NM`.
 
     Parameters
     ----------
@@ -274,12 +359,14 @@ def fit_lateral_spread(d_nm, locator, max_iter: int = 200) -> LateralSpread:
     locator : RodLocator
         The geometry's locator (grid, rod positions, metric and cutoff).
     max_iter : int
-        EM iterations at most.
+        EM iterations at most for the own share at each width.
 
     Returns
     -------
     LateralSpread
     """
+    from scipy.optimize import minimize_scalar
+
     cell = _cell_d2(locator)
     d2 = np.asarray(d_nm, dtype=np.float64) ** 2
     d2 = d2[np.isfinite(d2)]
@@ -288,31 +375,33 @@ def fit_lateral_spread(d_nm, locator, max_iter: int = 200) -> LateralSpread:
     default = LateralSpread(0.15, 0.0, int(d2.size), False)
     if d2.size < 200 or cell.size < 16:
         return default
-    # the even part's density of d^2, from the grid: a histogram on bins of d^2
-    edges, dens = _even_density(locator)
-    even = _even_at(edges, dens, d2)
-    s2 = 0.02
-    pi = 0.5
-    top = float(cell.max())  # d^2 is cut there: the Gaussian part is a truncated exponential in d^2
-    for _ in range(max_iter):
-        own = pi * np.exp(-d2 / (2 * s2)) / (2 * s2 * -np.expm1(-top / (2 * s2)))
-        tot = own + (1 - pi) * even
-        w = own / tot
-        pi_new = float(w.mean())
-        m = float((w * d2).sum() / max(w.sum(), 1e-12))
-        # the truncated mean is 2 s^2 - top q / (1 - q), q = exp(-top / 2 s^2): solve by iteration
-        s2_new = s2
-        for _ in range(20):
-            q = np.exp(-top / (2 * s2_new))
-            s2_new = 0.5 * (m + top * q / (1 - q))
-        s2_new = min(max(s2_new, SIGMA_BOUNDS_NM[0] ** 2), SIGMA_BOUNDS_NM[1] ** 2)
-        done = abs(s2_new - s2) < 1e-7 and abs(pi_new - pi) < 1e-6
-        s2, pi = s2_new, pi_new
-        if done:
-            break
-    if not (0.02 < pi and np.isfinite(s2)):
+    model = _radial_model(locator)
+    # the distances as a fine histogram of d^2 (2048 bins across the cell): the likelihood costs the
+    # same for any number of ions and moves by far less than its own error
+    count, edges = np.histogram(d2, bins=2048, range=(0.0, model.top))
+    keep = count > 0
+    at = 0.5 * (edges[:-1] + edges[1:])[keep]
+    count = count[keep].astype(np.float64)
+    even = model.even_at(at)
+    state = {"pi": 0.5}
+
+    def negll(log_s):
+        pi, ll = _mixture_share(model.own_at(at, float(np.exp(2 * log_s))), even, max_iter, state["pi"], count)
+        state["pi"] = pi
+        return -ll
+
+    lo, hi = np.log(SIGMA_BOUNDS_NM[0]), np.log(min(SIGMA_BOUNDS_NM[1], np.sqrt(model.top)))
+    grid = np.linspace(lo, hi, 16)
+    vals = [negll(x) for x in grid]
+    i = int(np.argmin(vals))
+    a, b = grid[max(i - 1, 0)], grid[min(i + 1, grid.size - 1)]
+    res = minimize_scalar(negll, bounds=(a, b), method="bounded", options={"xatol": 1e-4})
+    log_s = float(res.x) if res.fun <= vals[i] else float(grid[i])
+    pi, _ = _mixture_share(model.own_at(at, float(np.exp(2 * log_s))), even, max_iter, weight=count)
+    s = float(np.exp(log_s))
+    if not (0.02 < pi and np.isfinite(s)):
         return default
-    return LateralSpread(float(np.sqrt(s2)), pi, int(d2.size), True)
+    return LateralSpread(s, pi, int(d2.size), True)
 
 
 @dataclass(frozen=True, eq=False)
