@@ -376,6 +376,59 @@ def oracle_accuracy(run, posteriors=None, sites=None) -> float:
     return float(ok[sel].sum() / n) if n else float("nan")
 
 
+def _candidate_sites(run, n_candidates: int = 4) -> dict:
+    """Every ion's ``n_candidates`` nearest true rod axes at its depth (nearest first) and, on each,
+    the depth-nearest site: ``x, y, z, mz`` (n,), ``axes`` (x0, y0, dxdz, dydz per rod), ``cand``,
+    ``d2`` (nm^2) and ``site``, each (n, n_candidates), and the sites' depths ``sz``."""
+    from scipy.spatial import cKDTree
+
+    rods = run.truth["rods"]
+    x0, y0, dx, dy = (np.array([r[key] for r in rods], dtype=float) for key in ("x0", "y0", "dxdz", "dydz"))
+    x, y, z = (np.asarray(v, float) for v in (run.ions.x, run.ions.y, run.ions.z))
+    mz = np.asarray(run.ions.mass_to_charge, float)
+    n_c = min(int(n_candidates), len(rods))
+    # candidates from the mean tilt, then exact distances, nearest first
+    _, cand = cKDTree(np.column_stack([x0, y0])).query(np.column_stack([x - dx.mean() * z, y - dy.mean() * z]), k=n_c)
+    cand = cand.reshape(x.size, n_c)
+    d2 = (x[:, None] - x0[cand] - dx[cand] * z[:, None]) ** 2 + (y[:, None] - y0[cand] - dy[cand] * z[:, None]) ** 2
+    order = np.argsort(d2, axis=1, kind="stable")
+    cand = np.take_along_axis(cand, order, axis=1)
+    d2 = np.take_along_axis(d2, order, axis=1)
+    sz = np.asarray(run.site_z_nm, float)
+    n_sites = sz.shape[1]
+    site = np.empty(cand.shape, np.int64)
+    for c in range(n_c):
+        r = cand[:, c]
+        j = np.empty(r.size, np.int64)
+        for rr in np.unique(r):
+            sel = np.flatnonzero(r == rr)
+            j[sel] = np.clip(np.searchsorted(sz[rr], z[sel]), 1, n_sites - 1)
+        site[:, c] = np.where(np.abs(z - sz[r, j - 1]) <= np.abs(z - sz[r, j]), j - 1, j)
+    return {"x": x, "y": y, "z": z, "mz": mz, "axes": (x0, y0, dx, dy), "cand": cand, "d2": d2, "site": site,
+            "sz": sz}
+
+
+def _own_offsets(g: dict, rod, site, idx):
+    """Squared lateral distance (nm^2) and depth offset (nm) of the ions ``idx`` from the sites
+    ``(rod, site)`` (arrays over ``idx``), on the true axes of :func:`_candidate_sites`' ``g``."""
+    x0, y0, dx, dy = g["axes"]
+    z = g["z"][idx]
+    d2 = (g["x"][idx] - x0[rod] - dx[rod] * z) ** 2 + (g["y"][idx] - y0[rod] - dy[rod] * z) ** 2
+    return d2, z - g["sz"][rod, site]
+
+
+def _extras_density(mz, which, n_sites: int, mass_bin_da: float, smooth_da: float) -> np.ndarray:
+    """Density per site and Da of the mass-to-charge of the ions ``which`` (a histogram of
+    ``mass_bin_da`` bins smoothed by a Gaussian of ``smooth_da``), at every ion's value."""
+    from scipy.ndimage import gaussian_filter1d
+
+    lo, hi = float(mz.min()) - 1.0, float(mz.max()) + 1.0
+    nb = int(math.ceil((hi - lo) / mass_bin_da))
+    hist = np.bincount(((mz[which] - lo) / mass_bin_da).astype(np.int64), minlength=nb)[:nb].astype(float)
+    dens = gaussian_filter1d(hist, smooth_da / mass_bin_da) / (mass_bin_da * n_sites)
+    return np.maximum(dens[np.clip(((mz - lo) / mass_bin_da).astype(np.int64), 0, nb - 1)], 1e-12)
+
+
 def data_limit_posteriors(run, mass_bin_da: float = 0.002, smooth_da: float = 0.003, axial: bool = True,
                           lateral: bool = True, crosstalk_known: bool = False):
     """Site posteriors of the decode that knows the true model of every kind of ion but not which ion
@@ -418,40 +471,10 @@ def data_limit_posteriors(run, mass_bin_da: float = 0.002, smooth_da: float = 0.
     -------
     (n_rods, n_sites, K) ndarray of float
     """
-    from scipy.ndimage import gaussian_filter1d
-    from scipy.spatial import cKDTree
-
-    cfg = run.config
-    seq = np.asarray(run.seq)
-    n_rods, n_sites = seq.shape
-    k = len(cfg.metals)
-    inside = seq >= 0
-    rods = run.truth["rods"]
-    x0 = np.array([r["x0"] for r in rods])
-    y0 = np.array([r["y0"] for r in rods])
-    dx = np.array([r["dxdz"] for r in rods])
-    dy = np.array([r["dydz"] for r in rods])
-    ions = run.ions
-    x, y, z = (np.asarray(v, float) for v in (ions.x, ions.y, ions.z))
-    mz = np.asarray(ions.mass_to_charge, float)
-    # nearest true axis at the ion's depth: candidates from the mean tilt, then exact distances
-    tree = cKDTree(np.column_stack([x0, y0]))
-    _, cand = tree.query(np.column_stack([x - dx.mean() * z, y - dy.mean() * z]), k=min(4, len(rods)))
-    cand = np.atleast_2d(cand.T).T
-    ddx = x[:, None] - x0[cand] - dx[cand] * z[:, None]
-    ddy = y[:, None] - y0[cand] - dy[cand] * z[:, None]
-    d2 = ddx ** 2 + ddy ** 2
-    best = d2.argmin(axis=1)
-    rod = cand[np.arange(x.size), best]
-    d2 = d2[np.arange(x.size), best]
-    # nearest site by depth (the rod's site depths ascend)
-    sz = np.asarray(run.site_z_nm, float)
-    site = np.empty(x.size, np.int64)
-    for r in np.unique(rod):
-        sel = np.flatnonzero(rod == r)
-        zs = sz[r]
-        j = np.clip(np.searchsorted(zs, z[sel]), 1, n_sites - 1)
-        site[sel] = np.where(np.abs(z[sel] - zs[j - 1]) <= np.abs(z[sel] - zs[j]), j - 1, j)
+    cfg, inside, g = run.config, np.asarray(run.seq) >= 0, _candidate_sites(run)
+    (n_rods, n_sites), k = inside.shape, len(cfg.metals)
+    z, mz, sz = g["z"], g["mz"], g["sz"]
+    rod, d2, site = g["cand"][:, 0], g["d2"][:, 0], g["site"][:, 0]  # the nearest axis
     dz = z - sz[rod, site]
     own_rod, own_site = np.asarray(run.ion_rod), np.asarray(run.ion_site)
     is_own = own_rod >= 0
@@ -461,10 +484,8 @@ def data_limit_posteriors(run, mass_bin_da: float = 0.002, smooth_da: float = 0.
         away = np.flatnonzero(is_own & ~home)
         rod, site = rod.copy(), site.copy()
         rod[away], site[away] = own_rod[away], own_site[away]
-        d2 = d2.copy()
-        d2[away] = ((x[away] - x0[rod[away]] - dx[rod[away]] * z[away]) ** 2
-                    + (y[away] - y0[rod[away]] - dy[rod[away]] * z[away]) ** 2)
-        dz = z - sz[rod, site]
+        d2, dz = d2.copy(), dz.copy()
+        d2[away], dz[away] = _own_offsets(g, rod[away], site[away], away)
         home = is_own.copy()
         c = 1.0
     # own ions' lateral and axial widths (Rayleigh and normal estimates on the ones at home)
@@ -472,18 +493,13 @@ def data_limit_posteriors(run, mass_bin_da: float = 0.002, smooth_da: float = 0.
     s_z = float(dz[home].std())
     pitch = float(np.nanmedian(np.diff(sz, axis=1)))
     area = float((run.truth.get("distortion") or {}).get("scale", 1.0)) ** 2 / run.lattice.rod_density_per_nm2
-    ratio = np.ones(x.size)
+    ratio = np.ones(z.size)
     if lateral:
         ratio *= np.exp(-d2 / (2 * s2_xy)) / (2 * np.pi * s2_xy) * area
     if axial:
         ratio *= np.exp(-dz ** 2 / (2 * s_z ** 2)) / (math.sqrt(2 * math.pi) * s_z) * pitch
     # the extras' mass-to-charge density per site
-    extra = ~home & inside[rod, site]
-    lo, hi = float(mz.min()) - 1.0, float(mz.max()) + 1.0
-    nb = int(math.ceil((hi - lo) / mass_bin_da))
-    hist = np.bincount(((mz[extra] - lo) / mass_bin_da).astype(np.int64), minlength=nb)[:nb].astype(float)
-    dens = gaussian_filter1d(hist, smooth_da / mass_bin_da) / (mass_bin_da * inside.sum())
-    lam = np.maximum(dens[np.clip(((mz - lo) / mass_bin_da).astype(np.int64), 0, nb - 1)], 1e-9)
+    lam = _extras_density(mz, ~home & inside[rod, site], int(inside.sum()), mass_bin_da, smooth_da)
     use = inside[rod, site]
     w = np.exp(metal_log_likelihood(cfg, mz[use])) * (ratio[use] / lam[use])[:, None]
     acc = np.zeros((n_rods, n_sites, k))
@@ -523,52 +539,23 @@ def data_limit_shared_posteriors(run, n_candidates: int = 4, mass_bin_da: float 
     -------
     (n_rods, n_sites, K) ndarray of float
     """
-    from scipy.ndimage import gaussian_filter1d
-    from scipy.spatial import cKDTree
-
-    cfg = run.config
-    seq = np.asarray(run.seq)
-    n_rods, n_sites = seq.shape
-    k = len(cfg.metals)
-    inside = seq >= 0
-    rods = run.truth["rods"]
-    x0 = np.array([r["x0"] for r in rods])
-    y0 = np.array([r["y0"] for r in rods])
-    dx = np.array([r["dxdz"] for r in rods])
-    dy = np.array([r["dydz"] for r in rods])
-    x, y, z = (np.asarray(v, float) for v in (run.ions.x, run.ions.y, run.ions.z))
-    mz = np.asarray(run.ions.mass_to_charge, float)
-    n_c = min(int(n_candidates), len(rods))
-    _, cand = cKDTree(np.column_stack([x0, y0])).query(np.column_stack([x - dx.mean() * z, y - dy.mean() * z]), k=n_c)
-    cand = cand.reshape(x.size, n_c)
-    d2 = ((x[:, None] - x0[cand] - dx[cand] * z[:, None]) ** 2 + (y[:, None] - y0[cand] - dy[cand] * z[:, None]) ** 2)
-    sz = np.asarray(run.site_z_nm, float)
-    site = np.empty(cand.shape, np.int64)
-    for c in range(n_c):
-        r = cand[:, c]
-        j = np.empty(r.size, np.int64)
-        for rr in np.unique(r):
-            sel = np.flatnonzero(r == rr)
-            j[sel] = np.clip(np.searchsorted(sz[rr], z[sel]), 1, n_sites - 1)
-        site[:, c] = np.where(np.abs(z - sz[r, j - 1]) <= np.abs(z - sz[r, j]), j - 1, j)
+    cfg, inside, g = run.config, np.asarray(run.seq) >= 0, _candidate_sites(run, n_candidates)
+    (n_rods, n_sites), k = inside.shape, len(cfg.metals)
+    z, mz, sz = g["z"], g["mz"], g["sz"]
+    cand, d2, site = g["cand"], g["d2"], g["site"]
+    n_c = cand.shape[1]
     dz = z[:, None] - sz[cand, site]
     own_rod, own_site = np.asarray(run.ion_rod), np.asarray(run.ion_site)
     is_own = own_rod >= 0
     oi = np.flatnonzero(is_own)
-    od2 = ((x[oi] - x0[own_rod[oi]] - dx[own_rod[oi]] * z[oi]) ** 2
-           + (y[oi] - y0[own_rod[oi]] - dy[own_rod[oi]] * z[oi]) ** 2)
-    s2 = float(od2.mean() / 2.0)
-    s_z = float((z[oi] - sz[own_rod[oi], own_site[oi]]).std())
+    od2, odz = _own_offsets(g, own_rod[oi], own_site[oi], oi)
+    s2, s_z = float(od2.mean() / 2.0), float(odz.std())
     pitch = float(np.nanmedian(np.diff(sz, axis=1)))
     area = float((run.truth.get("distortion") or {}).get("scale", 1.0)) ** 2 / run.lattice.rod_density_per_nm2
     o = (np.exp(-d2 / (2 * s2)) / (2 * np.pi * s2) * area
          * np.exp(-dz ** 2 / (2 * s_z ** 2)) / (math.sqrt(2 * math.pi) * s_z) * pitch)
     o = np.where(inside[cand, site], o, 0.0)
-    lo, hi = float(mz.min()) - 1.0, float(mz.max()) + 1.0
-    nb = int(math.ceil((hi - lo) / mass_bin_da))
-    hist = np.bincount(((mz[~is_own] - lo) / mass_bin_da).astype(np.int64), minlength=nb)[:nb].astype(float)
-    dens = gaussian_filter1d(hist, smooth_da / mass_bin_da) / (mass_bin_da * inside.sum())
-    lam = np.maximum(dens[np.clip(((mz - lo) / mass_bin_da).astype(np.int64), 0, nb - 1)], 1e-12)
+    lam = _extras_density(mz, ~is_own, int(inside.sum()), mass_bin_da, smooth_da)
     keep = o.sum(axis=1) > 0
     o, lam, cand, site = o[keep], lam[keep], cand[keep], site[keep]
     p = np.exp(metal_log_likelihood(cfg, mz[keep]))
