@@ -367,15 +367,12 @@ def fit_lateral_spread(d_nm, locator, max_iter: int = 200) -> LateralSpread:
     """
     from scipy.optimize import minimize_scalar
 
-    cell = _cell_d2(locator)
-    d2 = np.asarray(d_nm, dtype=np.float64) ** 2
-    d2 = d2[np.isfinite(d2)]
-    if cell.size:
-        d2 = d2[d2 < cell.max()]
-    default = LateralSpread(0.15, 0.0, int(d2.size), False)
-    if d2.size < 200 or cell.size < 16:
-        return default
     model = _radial_model(locator)
+    d2 = np.asarray(d_nm, dtype=np.float64) ** 2
+    d2 = d2[np.isfinite(d2) & (d2 < model.top)]
+    default = LateralSpread(0.15, 0.0, int(d2.size), False)
+    if d2.size < 200 or model.near.shape[0] < 16:
+        return default
     # the distances as a fine histogram of d^2 (2048 bins across the cell): the likelihood costs the
     # same for any number of ions and moves by far less than its own error
     count, edges = np.histogram(d2, bins=2048, range=(0.0, model.top))

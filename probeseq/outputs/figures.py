@@ -11,8 +11,9 @@ their fonts as TrueType (``pdf.fonttype = 42``) and SVG files keep text as text
 Sequence tracks
 ---------------
 Each selected rod is one horizontal track along depth; each site is a cell coloured by its decoded
-metal (the site call: the metal of largest posterior, as ``state`` in tracks.csv). The posterior probability ``p`` of that metal sets the opacity in a few levels
-(:data:`CONFIDENCE_LEVELS`): the lighter, the less certain. A site where no ion was detected and
+metal (the site call: the metal of largest posterior, as ``state`` in tracks.csv). The posterior
+probability ``p`` of that metal sets the opacity in a few levels (:data:`CONFIDENCE_LEVELS`): the
+lighter, the less certain. A site where no ion was detected and
 whose posterior stays within :data:`PRIOR_TOLERANCE` of the composition (the chain's stationary
 distribution, i.e. the prior) is left blank: the data say nothing about it. Masked sites (outside
 the analysed volume) are hatched in light grey. Neighbouring cells with the same metal and level

@@ -65,11 +65,10 @@ def tracks_table(columns: RodColumns, decoded, select=None, rods: slice | None =
         r += rods.indices(sel.shape[0])[0]
     xy, z = file_site_positions(columns, r, s)  # in the ion file's frame
     post = np.asarray(decoded.posteriors[r, s])
-    state = post.argmax(axis=1) if post.size else np.zeros(r.size, np.int64)  # the site call
+    state = post.argmax(axis=1)  # the site call
     names = state.astype(np.int8) if state_codes else np.asarray(columns.metals, dtype=object)[state]
     return {"rod": r, "rod_x_nm": xy[:, 0], "rod_y_nm": xy[:, 1], "site": s, "z_nm": z,
-            "state": names, "posterior": np.take_along_axis(post, state[:, None], axis=1)[:, 0] if post.size
-            else np.zeros(r.size, np.float32)}
+            "state": names, "posterior": post.max(axis=1)}
 
 
 def runs_table(columns: RodColumns, decoded) -> dict:
