@@ -14,7 +14,7 @@ from test_decode import make_columns
 
 from probeseq.decoding.decode import decode
 from probeseq.decoding.model import DecoderParams
-from probeseq.lattice.columns import ColumnBinner
+from probeseq.lattice.columns import ColumnBinner, assign_rods
 from probeseq.lattice.counting import CountPass, make_count_plan
 from probeseq.lattice.evidence import (N_LEVELS, UNITS, LateralSpread, _cell_d2, evidence_table, extras_shares,
                                        fit_lateral_spread, own_fractions, remove_own, run_evidence_table)
@@ -472,3 +472,114 @@ def test_a_metal_without_extras_keeps_the_same_least_share_in_ranges_and_in_the_
     mu = evidence_start(data, p, None).extra_rate
     mean = ev.reshape(-1, 2).mean(axis=0)
     assert mu == pytest.approx(EXTRAS_LEAST_SHARE * mean, rel=1e-9)
+
+
+def _shared_reference(ions, rr, geom, ev):
+    """The shared evidence of the metal-bearing ions, recomputed outside the pass: at the nearest
+    rod as :func:`_reference_evidence`, and at the second nearest rod's same site from the table's
+    codes of the grid cell (exchanged where the exact nearest rod is the cell centre's second)."""
+    from probeseq.lattice.counting import _FB, _FB_LIMIT
+    from probeseq.lattice.locator import nearest_candidate
+
+    ca = assign_channels(ions["m"], rr.ranges, METALS)
+    w = ca.metal_weights[:-1]
+    ri = ca.range_index
+    sel = (ri >= 0)
+    sel[sel] = (w[ri[sel]] > 0).any(axis=1)
+    x, y, z = (np.asarray(ions[c], np.float64)[sel] for c in "xyz")
+    kg = geom.kernel_geometry()
+    G, sh = int(kg.n_grid), int(kg.grid_bits)
+    F = [x * kg.cell_xy[r, 0] + y * kg.cell_xy[r, 1] + z * kg.cell_z[r] + kg.cell_origin[r] for r in range(2)]
+    I = [np.floor(f).astype(np.int64) for f in F]
+    cell = ((I[0] & (G - 1)) << sh) | (I[1] & (G - 1))
+    ci, cj = I[0] >> sh, I[1] >> sh
+    lv1, lv2 = ev.cell_level[cell].astype(np.int64), ev.second_level[cell].astype(np.int64)
+    c2 = ev.second_code[cell].astype(np.int64)
+    for q in np.flatnonzero(kg.lut_offset[cell] < _FB_LIMIT):  # exact nearest in the cells on an edge
+        f1 = kg.frac_xy[0, 0] * x[q] + kg.frac_xy[0, 1] * y[q] + kg.frac_z[0] * z[q] + kg.frac_origin[0]
+        f2 = kg.frac_xy[1, 0] * x[q] + kg.frac_xy[1, 1] * y[q] + kg.frac_z[1] * z[q] + kg.frac_origin[1]
+        code = nearest_candidate(kg.candidates, kg.lut_offset[cell[q]] - _FB, f1 - ci[q], f2 - cj[q], kg.code_frac,
+                                 kg.metric, kg.cutoff2_nm2)
+        if code >= 0 and code == c2[q]:
+            c2[q] = ev.first_code[cell[q]]
+            lv1[q], lv2[q] = lv2[q], lv1[q]
+    row = ri[sel]
+    inc1 = ev.increments[row * N_LEVELS + lv1]
+    ref = ColumnBinner(geom, len(METALS)).add(x, y, z, inc1).counts
+    rod1, site = assign_rods(x, y, z, geom)
+    ni, nj, nb = int(kg.n_cells_i), int(kg.n_cells_j), int(kg.rods_per_cell)
+    rod2 = kg.rod_key[np.clip(ci, 2, ni - 3) * (nj * nb) + np.clip(cj, 2, nj - 3) * nb + kg.code_offset[c2]]
+    ok = (rod1 >= 0) & (site >= 0) & (rod2 >= 0) & (lv2 > 0)
+    np.add.at(ref, (rod2[ok], site[ok]), ev.increments[row[ok] * N_LEVELS + lv2[ok]])
+    return ref, int(ok.sum())
+
+
+def test_shared_evidence_goes_to_the_two_nearest_rods_as_the_reference(run, fitted):  # noqa: F811
+    rr, _, geom = fitted
+    ions = as_dict(run.ions)
+    w, _, _ = _weights_for(rr.ranges, METALS)
+    ev = evidence_table(np.asarray(w[:-1]), [1.0, 1.0], [1.0, 1.0], geom.locator,
+                        LateralSpread(0.3, 0.9, 1000, True), shared=True)
+    assert ev.shared and (ev.second_level > 0).any()
+    plan = make_count_plan(rr.ranges, METALS, np.ones(2), geom, 5, evidence=ev)
+    plain = make_count_plan(rr.ranges, METALS, np.ones(2), geom, 5)
+    x, y, z, m = (np.asarray(ions[c], np.float64) for c in "xyzm")
+    out = []
+    for threads, block in ((1, 50_000), (2, 7_001)):
+        with CountPass(plan, threads=threads) as cp:
+            for s in range(0, x.size, block):
+                cp.add(s, x[s:s + block], y[s:s + block], z[s:s + block], m[s:s + block])
+            tally, _ = cp.result()
+            out.append((cp.counts.copy(), cp.evidence.copy(), tally.copy()))
+    with CountPass(plain, threads=1) as cp:
+        cp.add(0, x, y, z, m)
+        t_plain, _ = cp.result()
+        c_plain = cp.counts.copy()
+    for c, e, t in out:  # sharing adds evidence, never a count
+        np.testing.assert_array_equal(c, c_plain)
+        np.testing.assert_array_equal(t, t_plain)
+        np.testing.assert_array_equal(e, out[0][1])
+    ref, n_second = _shared_reference(ions, rr, geom, ev)
+    assert n_second > 1000
+    np.testing.assert_allclose(out[0][1], ref, atol=1e-5)
+
+
+def test_shared_ratios_split_an_ion_between_rods_at_the_midpoint_and_keep_the_own_evidence():
+    # at the midpoint of two rods the two ratios are equal; near an axis the ratio at the far rod
+    # is small; the own evidence counts what an own ion adds at its rod as nearest and as second
+    from probeseq.lattice.evidence import _near_codes, shared_ratios
+    from probeseq.lattice.locator import RodLocator
+    from probeseq.lattice.model import Lattice
+
+    lat = Lattice.from_preset("honeycomb", 1.5, 0.68)
+    loc = RodLocator.build(lat, 0.75 * lat.nearest_rod_distance_nm, 256)
+    spread = LateralSpread(0.2, 0.8, 1000, True)
+    rho1, rho2, codes, e_own = shared_ratios(loc, spread)
+    _, near = _near_codes(loc)
+    inside = rho1 > 0
+    mid = inside & (np.abs(np.sqrt(near[:, 0]) - np.sqrt(near[:, 1])) < 0.005)
+    close = inside & (near[:, 0] < 0.01)
+    assert mid.any() and close.any()
+    np.testing.assert_allclose(rho1[mid], rho2[mid], rtol=0.1)
+    assert (rho2[close] < 0.2 * rho1[close]).all()
+    nearer = inside & (near[:, 1] - near[:, 0] > 1e-6)
+    assert (rho1[nearer] >= rho2[nearer]).all()  # the nearer rod never gets the smaller share
+    assert ((rho1 + rho2)[inside]).mean() == pytest.approx(1.0)
+    assert (codes[:, 0] != codes[:, 1]).all()
+    # e_own against a Monte Carlo of own ions about each rod of the unit cell: an ion adds rho1 of
+    # its grid cell where its own rod is its nearest, rho2 where it is the second nearest
+    rng = np.random.default_rng(9)
+    G, C = int(loc.n_grid), lat.cell_matrix
+    frac, g = np.asarray(loc.code_frac), np.asarray(loc.metric)
+    got = []
+    for b in range(lat.rods_per_cell):
+        f = lat.rods_frac[b] + rng.normal(0.0, 0.2, (40_000, 2)) @ np.linalg.inv(C).T
+        cell_ij = np.floor(f)
+        u = f - cell_ij
+        du, dv = u[:, None, 0] - frac[None, :, 0], u[:, None, 1] - frac[None, :, 1]
+        order = np.argsort(g[0, 0] * du * du + 2 * g[0, 1] * du * dv + g[1, 1] * dv * dv, axis=1)[:, :2]
+        own = np.all(np.abs(frac[None, :, :] - (lat.rods_frac[b] - cell_ij)[:, None, :]) < 1e-9, axis=2).argmax(1)
+        gi = np.minimum((u * G).astype(np.int64), G - 1)
+        gcell = gi[:, 0] * G + gi[:, 1]
+        got.append(np.where(order[:, 0] == own, rho1[gcell], np.where(order[:, 1] == own, rho2[gcell], 0.0)))
+    assert e_own == pytest.approx(np.concatenate(got).mean(), rel=0.02)

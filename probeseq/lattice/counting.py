@@ -19,6 +19,9 @@ ions goes through compiled loops (:class:`CountPass`) that, without per-ion temp
    are resolved against their candidate rods) and on their site plane from the plane coordinate
    ``u = z + g . (x, y)`` (see :mod:`probeseq.lattice`). The arithmetic is that of
    :func:`probeseq.lattice.columns.assign_rods`, in the input's float type, so both give the same bins.
+   With a shared evidence table (:func:`probeseq.lattice.evidence.shared_ratios`, rods so close
+   that a tenth of their own ions stray) each placed ion also makes an evidence-only entry at the
+   same site of its second nearest rod.
 5. **Count.** Sort the bins of the block by block of rods and add ``counts[rod, site, metal] += 1``
    block of rods by block of rods (a block of ions is a thin depth slice, so each block of rods
    touches a few kB), the rod blocks shared out between the threads so none write the same bins.
@@ -138,6 +141,21 @@ class CountPlan:
     def ev_level(self) -> np.ndarray:
         """Radial level of every lookup-grid cell (an empty table without evidence)."""
         return self.evidence.cell_level if self.evidence is not None else np.zeros(0, np.int32)
+
+    @property
+    def ev_second(self) -> tuple:
+        """(second_level, first_code, second_code) of an evidence table shared between an ion's two
+        nearest rods (:func:`probeseq.lattice.evidence.shared_ratios`); empty tables otherwise."""
+        ev = self.evidence
+        if ev is None or not ev.shared:
+            e = np.zeros(0, np.int32)
+            return e, e, e
+        return ev.second_level, ev.first_code, ev.second_code
+
+    @property
+    def entries_per_ion(self) -> int:
+        """Sorted entries one selected ion may make (2 when its evidence is shared)."""
+        return 2 if self.evidence is not None and self.evidence.shared else 1
 
     @property
     def ev_bins(self) -> tuple:
@@ -307,13 +325,41 @@ def _sort_by_block(nk, keys, codes, bucket, bstart, order, ocodes, ev_on):
     bstart[0] = 0
 
 
-@numba.njit(cache=True, nogil=True)
-def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
-                   tally, keys, order, bucket, bstart, rshift, rngs, ev_level, codes, ocodes):
-    """Place the selected ions ``rows[lo:hi]`` (rows of x, y, z) with their drawn ``metals`` on
-    their rod and site (arithmetic as columns._assign_chunk), then sort their bins by block of rods.
+@numba.njit(cache=True, nogil=True, inline="always")
+def _push(nk, key, code, block, keys, codes, bucket, bstart, ev_on):
+    """Write entry ``nk`` (its bin, its evidence code when ``ev_on``) and count it in its rod block."""
+    keys[nk] = np.int32(key)
+    if ev_on:
+        codes[nk] = np.int32(code)
+    bucket[nk] = block
+    bstart[block + 1] += 1
 
-    ``geo`` is the :class:`probeseq.lattice.geometry.KernelGeometry` of the column geometry, read by name.
+
+@numba.njit(cache=True, nogil=True, inline="always")
+def _levels_and_second_rod(share, gcell, code, base, ev_level, ev_level2, ev_code1, ev_code2, rod_key, code_offset):
+    """The radial level at the ion's nearest rod, and with a shared table the second nearest rod
+    (-1: none) and the level there. ``code`` is the exact nearest code where the cell lies on a
+    Voronoi edge (else -1); where it is the cell centre's second, the two are exchanged. ``base``
+    is the rod table's index of the ion's cell (``ci * nj * nb + cj * nb``)."""
+    lv1 = np.int64(ev_level[gcell]) if ev_level.size > 0 else np.int64(0)
+    if not share:
+        return lv1, np.int64(-1), np.int64(0)
+    c2 = np.int64(ev_code2[gcell])
+    lv2 = np.int64(ev_level2[gcell])
+    if code >= 0 and code == c2:
+        c2 = np.int64(ev_code1[gcell])
+        lv1, lv2 = lv2, lv1
+    rod2 = np.int64(rod_key[base + code_offset[c2]]) if lv2 > 0 else np.int64(-1)
+    return lv1, rod2, lv2
+
+
+@numba.njit(cache=True, nogil=True)
+def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo, tally, keys, order, bucket, bstart, rshift,
+                   rngs, ev_level, codes, ocodes, ev_level2, ev_code1, ev_code2):
+    """Place the selected ions ``rows[lo:hi]`` (rows of x, y, z) with their drawn ``metals`` on
+    their rod and site (arithmetic as columns._assign_chunk), then sort their bins by block of rods;
+    with a shared table (``ev_level2``) also an evidence entry at the second nearest rod
+    (:func:`_levels_and_second_rod`). ``geo``: the column geometry's KernelGeometry, read by name.
     """
     fdt = x.dtype.type
     fac = fdt(factor)
@@ -350,6 +396,7 @@ def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
     nk = 0
     ncount = 0
     ev_on = ev_level.size > 0
+    share = ev_level2.size > 0
     for q in range(lo, hi):
         i = np.int64(rows[q])
         metal = np.int64(metals[q])
@@ -382,6 +429,7 @@ def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
         cj = I2 >> sh
         gcell = ((I1 & gm1) << sh) | (I2 & gm1)
         off = lut_offset[gcell]
+        code = np.int64(-1)
         if off < _FB_LIMIT:
             nfb += counted
             xf = np.float64(xi)
@@ -408,14 +456,16 @@ def _locate_kernel(x, y, z, rows, metals, lo, hi, factor, K, geo,
         if site < 0 or site >= ns:
             noutside += counted
             continue
-        keys[nk] = np.int32((np.int64(rod) * ns + site) * K + min(metal, K - 1))
-        if ev_on:
-            codes[nk] = np.int32(((np.int64(rngs[q]) * _N_LEVELS + ev_level[gcell]) << 1) | counted)
+        lv1, rod2, lv2 = _levels_and_second_rod(share, gcell, code, ci * (nj * nb) + cj * nb, ev_level, ev_level2,
+                                                ev_code1, ev_code2, rod_key, code_offset)
+        row = np.int64(rngs[q]) * _N_LEVELS
+        _push(nk, (np.int64(rod) * ns + site) * K + min(metal, K - 1), ((row + lv1) << 1) | counted,
+              np.int64(rod) >> rshift, keys, codes, bucket, bstart, ev_on)
         ncount += counted
-        b = np.int64(rod) >> rshift
-        bucket[nk] = b
-        bstart[b + 1] += 1
         nk += 1
+        if rod2 >= 0:  # evidence only, at the second nearest rod's same site
+            _push(nk, (rod2 * ns + site) * K, (row + lv2) << 1, rod2 >> rshift, keys, codes, bucket, bstart, True)
+            nk += 1
     _sort_by_block(nk, keys, codes, bucket, bstart, order, ocodes, ev_on)
     tally[4] += nmetal
     tally[5] += ncount
@@ -472,29 +522,33 @@ class _Slot:
         self.rshift = np.int64(rshift)
         self.nbk = (max(n_rods, 1) >> rshift) + 1
         size = max(int(rows), 1)
+        self.per_ion = plan.entries_per_ion
         self.sel = np.empty(size, np.int32)
         self.rows = np.empty(size, np.int32)
         self.metals = np.empty(size, np.int8)
         self.rngs = np.empty(size, np.int32)
-        ev = size if plan.ev_on else 1
+        entries = size * self.per_ion
+        ev = entries if plan.ev_on else 1
         self.codes = np.empty(ev, np.int32)
         self.ocodes = np.empty(ev, np.int32)
         self.ev_on = plan.ev_on
-        self.keys = np.empty(size, np.int32)
-        self.order = np.empty(size, np.int32)
-        self.bucket = np.empty(size, np.int32)
+        self.keys = np.empty(entries, np.int32)
+        self.order = np.empty(entries, np.int32)
+        self.bucket = np.empty(entries, np.int32)
         self.bstart = np.zeros(self.nbk + 1, np.int64)
         self.tally, self.ext = new_tally()
         self.ext_raw = self.ext.copy()  # extents of whole valid blocks, in the file's unit
 
     def grow(self, rows):
         if rows > self.sel.size:
-            names = [("sel", np.int32), ("rows", np.int32), ("metals", np.int8), ("keys", np.int32),
-                     ("order", np.int32), ("bucket", np.int32), ("rngs", np.int32)]
+            per_ion = [("sel", np.int32), ("rows", np.int32), ("metals", np.int8), ("rngs", np.int32)]
+            per_entry = [("keys", np.int32), ("order", np.int32), ("bucket", np.int32)]
             if self.ev_on:
-                names += [("codes", np.int32), ("ocodes", np.int32)]
-            for name, dt in names:
+                per_entry += [("codes", np.int32), ("ocodes", np.int32)]
+            for name, dt in per_ion:
                 setattr(self, name, np.empty(int(rows), dt))
+            for name, dt in per_entry:
+                setattr(self, name, np.empty(int(rows) * self.per_ion, dt))
 
 
 class CountPass:
@@ -707,7 +761,7 @@ class CountPass:
                 nk[k] = _locate_kernel(xs, ys, zs, sl.rows, sl.metals, np.int64(0), np.int64(hi),
                                        np.float64(self.factor), np.int64(plan.n_metals), plan.geometry,
                                        sl.tally, sl.keys, sl.order, sl.bucket, sl.bstart, sl.rshift, sl.rngs,
-                                       plan.ev_level, sl.codes, sl.ocodes)
+                                       plan.ev_level, sl.codes, sl.ocodes, *plan.ev_second)
             return run
 
         self._run([place(k) for k in range(parts)])

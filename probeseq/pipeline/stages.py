@@ -398,7 +398,8 @@ def _finish_pass(geom, counts, metals, tally, thin, ev=None, evidence=None):
     if ev is not None:
         extra["evidence"] = {"capture": dict(zip(metals, ev.capture.tolist())),
                              "own_scale": dict(zip(metals, ev.own_scale.tolist())),
-                             "lateral_spread": ev.spread.to_dict(), "lateral_capture": float(ev.lateral_capture)}
+                             "lateral_spread": ev.spread.to_dict(), "lateral_capture": float(ev.lateral_capture),
+                             "shared_with_second_rod": bool(ev.shared)}
     cols = columns_from_counts(geom, counts, metals, stats, extra_params=extra,
                                evidence=evidence if ev is not None else None)
     return cols, n_metal
