@@ -145,9 +145,9 @@ def test_table_quantisation_keeps_the_mean_and_exact_units(fitted):  # noqa: F81
     assert ev.own_scale[0] > 0.9 / 0.97
 
 
-def _reference_evidence(ions, rr, geom, ev, bins=None):
-    """numpy reference: grid cell of every ion as the kernels compute it (float64), its level, its
-    range's (or mass bin's) increments, binned with ColumnBinner."""
+def _metal_ions_on_the_grid(ions, rr, geom):
+    """The metal-bearing ions as the kernels see them: positions (float64), range index, which rows
+    they are, and their lookup-grid cell and unit-cell indices (the kernels' float64 arithmetic)."""
     ca = assign_channels(ions["m"], rr.ranges, METALS)
     w = ca.metal_weights[:-1]
     ri = ca.range_index
@@ -155,27 +155,25 @@ def _reference_evidence(ions, rr, geom, ev, bins=None):
     sel[sel] = (w[ri[sel]] > 0).any(axis=1)
     x, y, z = (np.asarray(ions[c], np.float64)[sel] for c in "xyz")
     kg = geom.kernel_geometry()
-    G = int(kg.n_grid)
-    sh = int(kg.grid_bits)
-    F = []
-    for r in range(2):
-        f = x * kg.cell_xy[r, 0]
-        f += y * kg.cell_xy[r, 1]
-        f += z * kg.cell_z[r]
-        f += kg.cell_origin[r]
-        F.append(np.floor(f).astype(np.int64))
-    cell = ((F[0] & (G - 1)) << sh) | (F[1] & (G - 1))
-    row = ri[sel] if bins is None else bins.bin_of(ri[sel], ions["m"][sel])
+    G, sh = int(kg.n_grid), int(kg.grid_bits)
+    I = [np.floor(x * kg.cell_xy[r, 0] + y * kg.cell_xy[r, 1] + z * kg.cell_z[r] + kg.cell_origin[r]).astype(np.int64)
+         for r in range(2)]
+    cell = ((I[0] & (G - 1)) << sh) | (I[1] & (G - 1))
+    return x, y, z, ri[sel], sel, cell, I[0] >> sh, I[1] >> sh
+
+
+def _reference_evidence(ions, rr, geom, ev, bins=None):
+    """numpy reference: grid cell of every ion as the kernels compute it (float64), its level, its
+    range's (or mass bin's) increments, binned with ColumnBinner."""
+    x, y, z, ri, sel, cell, _, _ = _metal_ions_on_the_grid(ions, rr, geom)
+    row = ri if bins is None else bins.bin_of(ri, ions["m"][sel])
     inc = ev.increments[row * N_LEVELS + ev.cell_level[cell]]
     return ColumnBinner(geom, len(METALS)).add(x, y, z, inc).counts
 
 
-def test_fused_pass_fills_the_evidence_as_the_reference(run, fitted):  # noqa: F811
-    rr, _, geom = fitted
-    ions = as_dict(run.ions)
-    w, _, _ = _weights_for(rr.ranges, METALS)
-    ev = evidence_table(np.asarray(w[:-1]), [1.0, 1.0], [1.0, 1.0], geom.locator,
-                        LateralSpread(0.15, 0.9, 1000, True))
+def _passes_with_and_without_evidence(ions, rr, geom, ev):
+    """The fused pass with the evidence table ``ev`` on one thread in large blocks and on two in
+    small ones ((counts, evidence, tally) each), and the counts and tally of the pass without."""
     plan = make_count_plan(rr.ranges, METALS, np.ones(2), geom, 5, evidence=ev)
     plain = make_count_plan(rr.ranges, METALS, np.ones(2), geom, 5)
     x, y, z, m = (np.asarray(ions[c], np.float64) for c in "xyzm")
@@ -189,7 +187,16 @@ def test_fused_pass_fills_the_evidence_as_the_reference(run, fitted):  # noqa: F
     with CountPass(plain, threads=1) as cp:
         cp.add(0, x, y, z, m)
         t_plain, _ = cp.result()
-        c_plain = cp.counts.copy()
+        return out, cp.counts.copy(), t_plain
+
+
+def test_fused_pass_fills_the_evidence_as_the_reference(run, fitted):  # noqa: F811
+    rr, _, geom = fitted
+    ions = as_dict(run.ions)
+    w, _, _ = _weights_for(rr.ranges, METALS)
+    ev = evidence_table(np.asarray(w[:-1]), [1.0, 1.0], [1.0, 1.0], geom.locator,
+                        LateralSpread(0.15, 0.9, 1000, True))
+    out, c_plain, t_plain = _passes_with_and_without_evidence(ions, rr, geom, ev)
     # the counts and tallies are those of the pass without evidence; the evidence is exact
     for c, e, t in out:
         np.testing.assert_array_equal(c, c_plain)
@@ -481,18 +488,8 @@ def _shared_reference(ions, rr, geom, ev):
     from probeseq.lattice.counting import _FB, _FB_LIMIT
     from probeseq.lattice.locator import nearest_candidate
 
-    ca = assign_channels(ions["m"], rr.ranges, METALS)
-    w = ca.metal_weights[:-1]
-    ri = ca.range_index
-    sel = (ri >= 0)
-    sel[sel] = (w[ri[sel]] > 0).any(axis=1)
-    x, y, z = (np.asarray(ions[c], np.float64)[sel] for c in "xyz")
+    x, y, z, row, _, cell, ci, cj = _metal_ions_on_the_grid(ions, rr, geom)
     kg = geom.kernel_geometry()
-    G, sh = int(kg.n_grid), int(kg.grid_bits)
-    F = [x * kg.cell_xy[r, 0] + y * kg.cell_xy[r, 1] + z * kg.cell_z[r] + kg.cell_origin[r] for r in range(2)]
-    I = [np.floor(f).astype(np.int64) for f in F]
-    cell = ((I[0] & (G - 1)) << sh) | (I[1] & (G - 1))
-    ci, cj = I[0] >> sh, I[1] >> sh
     lv1, lv2 = ev.cell_level[cell].astype(np.int64), ev.second_level[cell].astype(np.int64)
     c2 = ev.second_code[cell].astype(np.int64)
     for q in np.flatnonzero(kg.lut_offset[cell] < _FB_LIMIT):  # exact nearest in the cells on an edge
@@ -503,7 +500,6 @@ def _shared_reference(ions, rr, geom, ev):
         if code >= 0 and code == c2[q]:
             c2[q] = ev.first_code[cell[q]]
             lv1[q], lv2[q] = lv2[q], lv1[q]
-    row = ri[sel]
     inc1 = ev.increments[row * N_LEVELS + lv1]
     ref = ColumnBinner(geom, len(METALS)).add(x, y, z, inc1).counts
     rod1, site = assign_rods(x, y, z, geom)
@@ -521,20 +517,7 @@ def test_shared_evidence_goes_to_the_two_nearest_rods_as_the_reference(run, fitt
     ev = evidence_table(np.asarray(w[:-1]), [1.0, 1.0], [1.0, 1.0], geom.locator,
                         LateralSpread(0.3, 0.9, 1000, True), shared=True)
     assert ev.shared and (ev.second_level > 0).any()
-    plan = make_count_plan(rr.ranges, METALS, np.ones(2), geom, 5, evidence=ev)
-    plain = make_count_plan(rr.ranges, METALS, np.ones(2), geom, 5)
-    x, y, z, m = (np.asarray(ions[c], np.float64) for c in "xyzm")
-    out = []
-    for threads, block in ((1, 50_000), (2, 7_001)):
-        with CountPass(plan, threads=threads) as cp:
-            for s in range(0, x.size, block):
-                cp.add(s, x[s:s + block], y[s:s + block], z[s:s + block], m[s:s + block])
-            tally, _ = cp.result()
-            out.append((cp.counts.copy(), cp.evidence.copy(), tally.copy()))
-    with CountPass(plain, threads=1) as cp:
-        cp.add(0, x, y, z, m)
-        t_plain, _ = cp.result()
-        c_plain = cp.counts.copy()
+    out, c_plain, t_plain = _passes_with_and_without_evidence(ions, rr, geom, ev)
     for c, e, t in out:  # sharing adds evidence, never a count
         np.testing.assert_array_equal(c, c_plain)
         np.testing.assert_array_equal(t, t_plain)
@@ -547,7 +530,7 @@ def test_shared_evidence_goes_to_the_two_nearest_rods_as_the_reference(run, fitt
 def test_shared_ratios_split_an_ion_between_rods_at_the_midpoint_and_keep_the_own_evidence():
     # at the midpoint of two rods the two ratios are equal; near an axis the ratio at the far rod
     # is small; the own evidence counts what an own ion adds at its rod as nearest and as second
-    from probeseq.lattice.evidence import _near_codes, shared_ratios
+    from probeseq.lattice.evidence import _near_d2, shared_ratios
     from probeseq.lattice.locator import RodLocator
     from probeseq.lattice.model import Lattice
 
@@ -555,7 +538,7 @@ def test_shared_ratios_split_an_ion_between_rods_at_the_midpoint_and_keep_the_ow
     loc = RodLocator.build(lat, 0.75 * lat.nearest_rod_distance_nm, 256)
     spread = LateralSpread(0.2, 0.8, 1000, True)
     rho1, rho2, codes, e_own = shared_ratios(loc, spread)
-    _, near = _near_codes(loc)
+    near = _near_d2(loc)
     inside = rho1 > 0
     mid = inside & (np.abs(np.sqrt(near[:, 0]) - np.sqrt(near[:, 1])) < 0.005)
     close = inside & (near[:, 0] < 0.01)

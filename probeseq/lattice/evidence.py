@@ -244,9 +244,10 @@ def extras_shares(share, d_nm, range_index, locator, spread: LateralSpread, min_
     return remove_own(bins.share, c[bins.bin_range])
 
 
-def _near_d2(locator, n: int = 12, chunk: int = 8192) -> np.ndarray:
+def _near_d2(locator, n: int = 12, chunk: int = 8192, codes: bool = False):
     """Squared distances (nm^2) from the centre of every cell of the locator's grid to its ``n``
-    nearest rod axes, nearest first, (n_grid * n_grid, n), in :func:`_grid_d2`'s order."""
+    nearest rod axes, nearest first, (n_grid * n_grid, n), in :func:`_grid_d2`'s order; with
+    ``codes`` also the codes (rows of ``code_frac``) of the two nearest, (n_grid * n_grid, 2) int32."""
     G = int(locator.n_grid)
     c = (np.arange(G) + 0.5) / G
     u, v = np.meshgrid(c, c, indexing="ij")
@@ -254,12 +255,17 @@ def _near_d2(locator, n: int = 12, chunk: int = 8192) -> np.ndarray:
     frac, g = np.asarray(locator.code_frac, np.float64), np.asarray(locator.metric, np.float64)
     n = min(int(n), frac.shape[0])
     out = np.empty((u.size, n))
+    near_codes = np.empty((u.size, 2), np.int32)
     for a in range(0, u.size, chunk):
         du = u[a:a + chunk, None] - frac[None, :, 0]
         dv = v[a:a + chunk, None] - frac[None, :, 1]
         d2 = g[0, 0] * du * du + 2 * g[0, 1] * du * dv + g[1, 1] * dv * dv
-        out[a:a + chunk] = np.sort(np.partition(d2, n - 1, axis=1)[:, :n], axis=1)
-    return out
+        part = np.argpartition(d2, n - 1, axis=1)[:, :n]
+        order = np.take_along_axis(part, np.argsort(np.take_along_axis(d2, part, axis=1), axis=1, kind="stable"),
+                                   axis=1)
+        out[a:a + chunk] = np.take_along_axis(d2, order, axis=1)
+        near_codes[a:a + chunk] = order[:, :2]
+    return (out, near_codes) if codes else out
 
 
 class _RadialModel:
@@ -520,24 +526,6 @@ def lateral_capture(locator, spread: LateralSpread, d2=None) -> float:
     return float(min(max(g.sum() * area, 1e-3), 1.0))
 
 
-def _near_codes(locator, chunk: int = 8192):
-    """Codes (rows of ``code_frac``) and squared distances (nm^2) of the two nearest rod axes of
-    every cell centre of the locator's grid, and the summed Gaussian weight helper's inputs: the
-    squared distances to the 12 nearest, (n_grid * n_grid, 12), nearest first."""
-    G = int(locator.n_grid)
-    c = (np.arange(G) + 0.5) / G
-    u, v = np.meshgrid(c, c, indexing="ij")
-    u, v = u.reshape(-1), v.reshape(-1)
-    frac, g = np.asarray(locator.code_frac, np.float64), np.asarray(locator.metric, np.float64)
-    codes = np.empty((u.size, 2), np.int32)
-    for a in range(0, u.size, chunk):
-        du = u[a:a + chunk, None] - frac[None, :, 0]
-        dv = v[a:a + chunk, None] - frac[None, :, 1]
-        d2 = g[0, 0] * du * du + 2 * g[0, 1] * du * dv + g[1, 1] * dv * dv
-        codes[a:a + chunk] = np.argsort(d2, axis=1, kind="stable")[:, :2]
-    return codes, _near_d2(locator)
-
-
 def shared_ratios(locator, spread: LateralSpread):
     """Radial ratios of an ion at its nearest and at its second nearest rod, where rods are close.
 
@@ -571,7 +559,7 @@ def shared_ratios(locator, spread: LateralSpread):
         The evidence one own ion adds at its own rod, on average over its Gaussian (as the nearest
         rod or the second nearest), in units of rho.
     """
-    codes, near = _near_codes(locator)
+    near, codes = _near_d2(locator, codes=True)
     s2 = float(spread.sigma_nm) ** 2
     gauss = np.exp(-near / (2 * s2)) / (2 * np.pi * s2)  # (cells, 12)
     cut = float(locator.cutoff_nm) ** 2 if np.isfinite(locator.cutoff_nm) else np.inf
@@ -632,15 +620,15 @@ def evidence_table(share, capture, seen, locator, spread: LateralSpread, bins=No
     cut = float(locator.cutoff_nm) ** 2 if np.isfinite(locator.cutoff_nm) else np.inf
     inside = d2 < cut
     second = None
+    lateral = lateral_capture(locator, spread, d2)  # 1 without a fitted width
     if shared is None:
-        shared = spread.fitted and 1.0 - lateral_capture(locator, spread, d2) >= SHARE_MIN_STRAY
+        shared = 1.0 - lateral >= SHARE_MIN_STRAY
     if shared and spread.fitted:
         rho1, rho2, codes, e_own = shared_ratios(locator, spread)
         level, values = _levels(np.concatenate([rho1, rho2]))
         level, level2 = level[:rho1.size], level[rho1.size:]
         second = (np.ascontiguousarray(level2.astype(np.int32)), np.ascontiguousarray(codes[:, 0]),
                   np.ascontiguousarray(codes[:, 1]))
-        lateral = lateral_capture(locator, spread, d2)
     elif spread.fitted:
         g = np.exp(-d2 / (2.0 * spread.sigma_nm ** 2))
         level, values = _levels(np.where(inside, g, 0.0))
@@ -650,13 +638,11 @@ def evidence_table(share, capture, seen, locator, spread: LateralSpread, bins=No
         # (over the whole Gaussian: an own ion landing nearer another rod adds nothing at its site,
         # and the counts' visibility holds the share that lands nearest its rod, ``lateral``)
         gi = np.where(inside, g, 0.0)
-        lateral = lateral_capture(locator, spread, d2)
         e_own = lateral * float((gi * values[level]).sum() / max(gi.sum(), 1e-300))
     else:
         level = np.full(d2.size, N_LEVELS - 1, np.int32)
         values = np.ones(N_LEVELS)
         e_own = 1.0
-        lateral = 1.0
     inc = np.rint(share[:, None, :] * values[None, :, None] * UNITS) / UNITS  # (n_rows, N_LEVELS, K)
     capture = np.clip(np.asarray(capture, dtype=np.float64), 0.02, 1.0)
     own_scale = np.asarray(seen, dtype=np.float64) * e_own / capture
