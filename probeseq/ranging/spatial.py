@@ -10,15 +10,18 @@ rod), linker fragments and background fill the space between. After the lattice 
    clean metal ranges (the fit's metal share >= 0.97, no non-metal species in the range's design)
    give the metal profile ``g_M``; those of clean non-metal ranges (metal share <= 0.03, no metal
    species in the design) give the fragment profile ``g_F``. Both are measured on the run itself,
-   so no model of the blur or of the linker region is assumed.
+   so no model of the blur or of the linker region is assumed. The shares that pick the clean
+   ranges are of the species' ions alone, and the background the clean metal ranges hold (spread
+   as evenly as the fragments) is taken out of ``g_M``, so a high background neither empties the
+   metal reference nor makes every share read high.
 2. **Each overlapped range** (its design holds a metal species and a non-metal species, whatever
    their fitted amounts) gets the maximum-likelihood metal share ``w`` of the binned mixture
    ``w g_M + (1 - w) g_F`` of its ions' distances, with the standard error from the Fisher
    information (``sum_b h_b (g_M - g_F)^2 / p_b^2``), and a profile-likelihood 95 % interval.
-3. **Joint refit.** Each such range adds a row to the amounts fit, "the metal species of this
-   range hold ``w`` of its ions", weighted by that standard error; the isotope patterns and charge
-   states of every species still tie all lines together. The composition and the ranges' shares
-   follow from the refitted amounts.
+3. **Joint refit.** Each such range adds a row to the amounts fit, "the metal species hold the
+   share ``w`` of this range's expected ions" (a ratio, linearised), weighted by that standard
+   error; the isotope patterns and charge states of every species still tie all lines together.
+   The composition and the ranges' shares follow from the refitted amounts.
 
 A range whose profiles do not differ (too few reference ions, or rods not resolved) is left as the
 spectrum fit it.
@@ -146,11 +149,13 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
     tot = mu.sum(1) + np.maximum(rr.background_counts, 0.0)
     with np.errstate(divide="ignore", invalid="ignore"):
         w_fit = np.where(tot > 0, mu[:, is_metal].sum(1) / tot, 0.0)
+        # the species' share alone: a clean line stays clean under a high background
+        w_ions = np.where(mu.sum(1) > 0, mu[:, is_metal].sum(1) / mu.sum(1), 0.0)
     has_m = (A[:, is_metal] >= 0.02).any(1)
     has_f = (A[:, ~is_metal] >= 0.02).any(1)
     mixed = mixed_ranges(rr)
-    clean_m = (w_fit >= 0.97) & ~has_f
-    clean_f = (w_fit <= 0.03) & ~has_m
+    clean_m = (w_ions >= 0.97) & ~has_f
+    clean_f = (w_ions <= 0.03) & ~has_m
     prof = np.stack([_profile(u[ri == j]) for j in range(n_r)])
     g_m, g_f = prof[clean_m].sum(0), prof[clean_f].sum(0)
     if g_m.sum() < MIN_REFERENCE_IONS or g_f.sum() < MIN_REFERENCE_IONS:
@@ -158,6 +163,12 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
                           "to tell them apart by their distance to the rod axes")
         return rr
     g_m, g_f = g_m / g_m.sum(), g_f / g_f.sum()
+    # the clean metal ranges hold some background, spread as evenly as the fragments: take it out, or
+    # every share would read high by the factor 1 / (1 - that background share)
+    b_m = float(np.sum(np.maximum(rr.background_counts[clean_m], 0.0)) / max(float(np.sum(gross_all[:n_r][clean_m])), 1.0))
+    if 0.0 < b_m < 0.5:
+        g_m = np.maximum(g_m - b_m * g_f, 0.0)
+        g_m = g_m / g_m.sum()
     rows, report = [], []
     for j in np.flatnonzero(mixed):
         n_j = prof[j].sum()
@@ -176,13 +187,10 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
         _warn_unseparated(rr, A, is_metal, mixed, clean_m, "their ions are not told apart by their "
                           "distance to the rod axes")
         return replace(rr, overlap_refinement=tuple(report))
-    # the metal species with a real line in the range (not a far tail of one)
-    A_x = np.stack([np.where(is_metal & (A[j] >= 0.02), A[j], 0.0) for j, _, _ in rows])
-    scale = np.array([gross_all[j] for j, _, _ in rows])
-    c_x = np.array([w for _, w, _ in rows]) * scale
-    sd_x = np.array([s for _, _, s in rows]) * np.maximum(scale, 1.0)
+    A_x, c_x, sd_x = _share_rows(A, gross_all[:n_r], rr.background_counts, is_metal, rows)
     # species in play: those the spectrum fit used, and the metal species of the refitted ranges
-    active = (rr.amounts > 0) | ((A_x > 0).any(0) & is_metal)
+    real_line = (A[[j for j, _, _ in rows]] >= 0.02).any(0)
+    active = (rr.amounts > 0) | (real_line & is_metal)
     sub, sub_cov, _ = _solve_amounts(A_all[:, active], gross_all, bg_all, bgs_all, extra=(A_x[:, active], c_x, sd_x))
     amounts = np.zeros(active.size)
     cov = np.zeros((active.size, active.size))
@@ -201,6 +209,38 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
                    metal_atoms=M, metal_atoms_sigma=M_sig,
                    composition=x, composition_sigma=x_sig, overlap_refinement=tuple(report),
                    composition_spectrum=np.asarray(rr.composition, float))
+
+
+def _share_rows(A, counts, background, is_metal, rows):
+    """The extra rows of the joint refit: in each range ``j`` of ``rows`` (``(j, w, se)``), the metal
+    species hold the share ``w`` of the expected ions, ``m_j / (m_j + f_j + b_j) = w``.
+
+    Written linearly in the amounts, ``sum_s (A_js [s is metal] - w A_js) n_s = w b_j``, with the
+    standard deviation ``se * t_j`` (``t_j`` the range's ions, ``counts[j]``). The row
+    is about the split of the range's ions, not their number: the Poisson scatter of the range's
+    count is already in its own row, and a row "metal = w x counts" would count it twice, pulling
+    the metal's amount onto the one isotope line that overlaps (whose count scatters with the
+    isotope draw) instead of all its lines. Every metal species counts as metal, also by the far
+    tail of a line: space tells metal ions from the rest, whatever their line.
+
+    The share is held to [0, 1]. At 1 the row holds no metal amount (its coefficient ``1 - w`` is
+    zero), so a nearly pure metal range read as pure pulls nothing; an unbounded share above 1
+    would ask for more metal than ions and pull the metal's amount down.
+
+    Returns
+    -------
+    A_x : (n_rows, n_species) ndarray
+    c_x, sd_x : (n_rows,) ndarray
+    """
+    A_x, c_x, sd_x = [], [], []
+    for j, w, se in rows:
+        metal = np.where(is_metal, A[j], 0.0)
+        b = max(float(background[j]), 0.0)
+        t = float(counts[j])
+        A_x.append(metal - w * A[j])
+        c_x.append(w * b)
+        sd_x.append(se * max(t, 1.0))
+    return np.stack(A_x), np.asarray(c_x), np.asarray(sd_x)
 
 
 def _range_species(rr, A, j) -> str:
