@@ -33,6 +33,13 @@ bit for bit those without ``h`` and no work is added per site (measured on 2000 
 sites, K = 3: decode and E-step within 2 % of the kernels without ``h``; how the compiled code
 happens to be laid out moves these timings by up to 20 % between builds). The decode kernel's table of log
 factors is shared by the rods with ``h_r = 1`` and built per rod (16 entries) for the others.
+
+The per-site helpers (``_forward``, ``_backward_step``, ``_store_rod``) are inlined into the
+kernels in numba's own IR (``inline="always"``). As plain calls, LLVM inlined them only when the
+kernel was compiled in the running process: a kernel loaded from the on-disk cache (every run
+after ``probeseq prepare``) or one built without ``parallel`` ran 1.5x slower (K = 3, one thread,
+1000 rods x 500 sites: decode 91 against 60 ns per site, E-step 85 ns). Inlined, both run at
+34-37 ns per site, cached or not.
 """
 
 from __future__ import annotations
@@ -104,7 +111,7 @@ def _site(counts, r, t, ome, coef, mu, kt, n_out, fac_out, s, c_out):
     return b, True
 
 
-@numba.njit(cache=True, nogil=True, error_model="numpy")
+@numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def _forward(counts, mask, r, t0, length, ome, mu, coef, a, p, alpha, fac, invc, nb, cb, spl, kt,
              vt, ltab, loga, logp, vit, back, lin):
     """Forward pass of rod r over sites t0..t0+length-1, with the Viterbi recursion in the same
@@ -198,7 +205,7 @@ def _forward(counts, mask, r, t0, length, ome, mu, coef, a, p, alpha, fac, invc,
     return logc, log_b
 
 
-@numba.njit(cache=True, nogil=True, error_model="numpy")
+@numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def _backward_step(alpha, fac, ic, a, s, beta, nbeta, w, xil, count_pair):
     """One step of the scaled backward pass, from site s to s - 1, in place: with
     ``w = f_s * beta_s / c_s``, ``beta_{s-1} = A w``, and (when ``count_pair``) the expected
@@ -219,7 +226,7 @@ def _backward_step(alpha, fac, ic, a, s, beta, nbeta, w, xil, count_pair):
         beta[i] = nbeta[i]
 
 
-@numba.njit(cache=True, nogil=True, error_model="numpy")
+@numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def _store_rod(q, occl, xil, occ, xi):
     """Copy one rod's expected occupancy and transitions into row q of the shared outputs."""
     k = occl.size
