@@ -29,7 +29,7 @@ _NEG_INF = _NAN + 2
 ROWS_PER_BLOCK = 1 << 20
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, inline="always")  # per value: see decoding.rodchain on inlining
 def _write_uint(buf, pos, v):
     if v == 0:
         buf[pos] = 48
