@@ -241,3 +241,48 @@ def test_in_parts_covers_the_range_once_and_raises_a_part_error():
 
     with pytest.raises(ValueError, match="part failed"):
         runtime.in_parts(bad, 10, 2)
+
+
+def test_in_parts_threads_are_kept_nested_calls_get_their_own_and_a_forked_child_makes_new_ones():
+    """The parts run on one pool kept for the process (no new threads per call); a part that calls
+    in_parts itself does not wait for threads its caller holds (a shared pool of two would
+    deadlock here); a forked child, which inherits the pool but not its threads, still runs its
+    parts."""
+    import multiprocessing as mp
+    import threading
+
+    from probeseq import runtime
+
+    names = set()
+    runtime.in_parts(lambda lo, hi: names.add(threading.current_thread().name), 4, 2)
+    runtime.in_parts(lambda lo, hi: names.add(threading.current_thread().name), 4, 2)
+    assert len(names) <= 2 and all(n.startswith("probeseq-part") for n in names)
+
+    got = []
+
+    def outer(lo, hi):
+        inner = []
+        runtime.in_parts(lambda a, b: inner.append((a, b)), 6, 2)
+        got.append(sorted(inner))
+
+    done = threading.Event()
+    t = threading.Thread(target=lambda: (runtime.in_parts(outer, 2, 2), done.set()), daemon=True)
+    t.start()
+    assert done.wait(20), "nested in_parts did not finish"
+    assert got == [[(0, 3), (3, 6)]] * 2
+
+    if "fork" not in mp.get_all_start_methods():
+        return
+    q = mp.get_context("fork").Queue()
+    p = mp.get_context("fork").Process(target=_parts_in_child, args=(q,))
+    p.start()
+    p.join(20)
+    assert p.exitcode == 0 and q.get(timeout=5) == [(0, 5), (5, 10)]
+
+
+def _parts_in_child(q):
+    from probeseq import runtime
+
+    seen = []
+    runtime.in_parts(lambda lo, hi: seen.append((lo, hi)), 10, 2)
+    q.put(sorted(seen))
