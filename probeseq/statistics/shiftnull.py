@@ -160,7 +160,7 @@ def _rod_inputs(x, m, rods, vals, pre, cen, slots):
             _prefix_sums(v[0, :n_sites], m[r], cen[c, 0], cen[c, 1], pre[c])
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, inline="always")
 def _prefix_sums(a, used, ca, cq, p):
     """p (5, n + 1): prefix sums of used, of (a - ca) and of (a^2 - cq) at used sites, then the
     last two reversed (:func:`_rod_inputs`)."""
@@ -208,7 +208,7 @@ def _cross_spectra(spec, si, sj, uv, out):
 
 
 # ---------------------------------------------------------------------- sums over the window of shifts
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, inline="always")
 def _fold(row, n_sites, t0, out):
     """out[u] = circular sum at shift t0 + u from a row of circular sums, or of linear ones over
     n_fft > n_sites sites (shift t: lag t plus lag t - n_sites, stored at n_fft - n_sites + t)."""
@@ -221,14 +221,14 @@ def _fold(row, n_sites, t0, out):
             out[u] = row[t0 + u] + row[off + t0 + u]
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, inline="always")
 def _diff_add(out, ph, pl, const):
     """out += (ph - pl) + const, element by element (slices: one vectorised loop)."""
     for u in range(len(out)):
         out[u] += (ph[u] - pl[u]) + const
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, inline="always")
 def _sweep_run(out, p, bh, bl, n, tot):
     """out[u] += G(bh + u) - G(bl + u) for u < len(out), bh, bl in [0, 2n), one run's sum at each
     shift; G is the prefix sum p (length n + 1) continued periodically, ``G(k) = p[k - n] + tot``
@@ -246,7 +246,7 @@ def _sweep_run(out, p, bh, bl, n, tot):
     _diff_add(out[b:], p[bh - n + b:bh - n + w], p[bl - n + b:bl - n + w], 0.0)
 
 
-@numba.njit(cache=True, nogil=True)
+@numba.njit(cache=True, nogil=True, inline="always")
 def _sums_from_runs(n, t0, lo, hi, ki0, ki1, kj0, kj1, pre_i, pre_j, cen_i, cen_j, out):
     """N, Sx, Sy, Sxx, Syy of one pair at shifts t0 .. t0 + w - 1 into out[0:5] (each (w,)).
 
