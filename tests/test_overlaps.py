@@ -123,6 +123,41 @@ def test_a_metal_whose_every_line_overlaps_and_space_cannot_split_is_named():
     assert "--ranges" in msgs[0]
 
 
+def test_a_metal_given_none_of_an_overlapped_range_is_named_when_space_cannot_check_it():
+    """Mg has a clean line (MgO+ at 40 Da), but the spectrum gave it none of the 24 Da range it shares
+    with C2+ (the fit's vertex): when space cannot check that split, the composition may miss the
+    Mg+ ions and a warning says so; a metal whose overlapped range the fit did share (Co2+ with a
+    fragment it put at 4 %) is not named."""
+    from types import SimpleNamespace
+
+    import warnings
+
+    from probeseq.ranging.ranges import Range, RangeSet
+    from probeseq.ranging.spatial import _warn_unseparated
+
+    rs = RangeSet((Range(23.9, 24.3, "C2", 1), Range(39.8, 40.2, "MgO", 1), Range(29.4, 29.8, "Co", 2),
+                   Range(58.7, 59.2, "Co", 1)), ("Mg", "Co"))
+    rr = SimpleNamespace(ranges=rs, metals=("Mg", "Co"),
+                         species=(("Mg", 1), ("MgO", 1), ("C2", 1), ("Co", 2), ("Co", 1), ("CO", 1)),
+                         species_metal_atoms=np.array([[1, 0], [1, 0], [0, 0], [0, 1], [0, 1], [0, 0]]))
+    A = np.array([[0.79, 0.0, 0.98, 0.0, 0.0, 0.0], [0.0, 0.70, 0.0, 0.0, 0.0, 0.0],
+                  [0.0, 0.0, 0.0, 0.95, 0.0, 0.03], [0.0, 0.0, 0.0, 0.0, 0.95, 0.0]])
+    is_metal = np.array([True, True, False, True, True, False])
+    mixed = np.array([True, False, True, False])
+    clean_m = np.array([False, True, False, True])
+    w_fit = np.array([0.0, 1.0, 0.96, 1.0])
+    with warnings.catch_warnings(record=True) as got:
+        warnings.simplefilter("always")
+        _warn_unseparated(rr, A, is_metal, mixed, clean_m, "no reason", w_fit)
+    msgs = [str(w.message) for w in got]
+    assert len(msgs) == 1 and msgs[0].startswith("Mg: the mass spectrum gives it none of the ions of")
+    assert "23.90-24.30 Da (Mg+, C2+)" in msgs[0] and "no reason" in msgs[0] and "--ranges" in msgs[0]
+    with warnings.catch_warnings(record=True) as got:
+        warnings.simplefilter("always")
+        _warn_unseparated(rr, A, is_metal, mixed, clean_m, "no reason", np.array([0.3, 1.0, 0.96, 1.0]))
+    assert not got  # the spectrum did give Mg a share of the range: nothing to name
+
+
 def test_an_amount_at_the_bound_does_not_claim_a_zero_error():
     """The spectrum alone puts 24Mg+ at zero under C2+: its error is undetermined (NaN), not 0,
     and a free species at zero with its own window gets the error it would have if free."""

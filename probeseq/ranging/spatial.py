@@ -160,7 +160,7 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
     g_m, g_f = prof[clean_m].sum(0), prof[clean_f].sum(0)
     if g_m.sum() < MIN_REFERENCE_IONS or g_f.sum() < MIN_REFERENCE_IONS:
         _warn_unseparated(rr, A, is_metal, mixed, clean_m, "too few ions of clean metal or fragment lines "
-                          "to tell them apart by their distance to the rod axes")
+                          "to tell them apart by their distance to the rod axes", w_fit)
         return rr
     g_m, g_f = g_m / g_m.sum(), g_f / g_f.sum()
     # the clean metal ranges hold some background, spread as evenly as the fragments: take it out, or
@@ -185,7 +185,7 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
             rows.append((j, w, max(se, 1.0 / n_j)))
     if not rows:
         _warn_unseparated(rr, A, is_metal, mixed, clean_m, "their ions are not told apart by their "
-                          "distance to the rod axes")
+                          "distance to the rod axes", w_fit)
         return replace(rr, overlap_refinement=tuple(report))
     A_x, c_x, sd_x = _share_rows(A, gross_all[:n_r], rr.background_counts, is_metal, rows)
     # species in play: those the spectrum fit used, and the metal species of the refitted ranges
@@ -265,17 +265,30 @@ def _warn_split(rr, x, x_sig, A, is_metal, refined):
                       "alone", DataQualityWarning, stacklevel=3)
 
 
-def _warn_unseparated(rr, A, is_metal, mixed, clean_m, why):
-    """Warn for a metal every line of which sits in an overlapped range that could not be refitted."""
+def _warn_unseparated(rr, A, is_metal, mixed, clean_m, why, w_fit=None):
+    """Warn for a metal whose lines in overlapped ranges could not be checked by space: every line
+    of it overlaps, or (``w_fit``, the spectrum fit's metal share of each range) the spectrum gave
+    it none of the ions of a range that holds its line (the fit's vertex: all to the other species,
+    as at 24 Da for Mg+ under C2+), so its composition may miss them although clean lines of it
+    (MgO+, 25Mg2+) give it some."""
     atoms = np.asarray(rr.species_metal_atoms) > 0
     for k, el in enumerate(rr.metals):
         own = (A[:, atoms[:, k]] >= 0.02).any(1)
-        if not own.any() or (own & clean_m).any() or not (own & mixed).any():
+        if not own.any() or not (own & mixed).any():
             continue
-        where = [_range_species(rr, A, j) for j in np.flatnonzero(own & mixed)]
-        warnings.warn(f"{el}: every line overlaps another species and {why} ({'; '.join(where[:4])}); its "
-                      "composition rests on the isotope pattern alone. A higher resolving power, or a range file "
-                      "with known shares (--ranges), would help", DataQualityWarning, stacklevel=3)
+        if not (own & clean_m).any():
+            where = [_range_species(rr, A, j) for j in np.flatnonzero(own & mixed)]
+            warnings.warn(f"{el}: every line overlaps another species and {why} ({'; '.join(where[:4])}); its "
+                          "composition rests on the isotope pattern alone. A higher resolving power, or a range file "
+                          "with known shares (--ranges), would help", DataQualityWarning, stacklevel=3)
+            continue
+        lost = own & mixed & (np.asarray(w_fit) < 0.03) if w_fit is not None else np.zeros_like(own)
+        if lost.any():
+            where = [_range_species(rr, A, j) for j in np.flatnonzero(lost)]
+            warnings.warn(f"{el}: the mass spectrum gives it none of the ions of {'; '.join(where[:4])}, where its "
+                          f"lines sit under other species', and {why}; its composition may miss those ions. A higher "
+                          "resolving power, or a range file with known shares (--ranges), would help",
+                          DataQualityWarning, stacklevel=3)
 
 
 def warn_undetermined(rr) -> None:
