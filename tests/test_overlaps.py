@@ -218,3 +218,30 @@ def test_a_light_metal_under_fragments_is_split_under_a_high_background():
     detected = np.bincount(run.ion_metal[run.ion_metal >= 0], minlength=2) / np.sum(run.ion_metal >= 0)
     assert abs(d["composition"]["Mg"] - detected[0]) < 0.012
     assert abs(d["composition"]["Mg"] - run.truth["composition_sites"]["Mg"]) < 0.02
+
+
+def test_ranging_without_the_lattice_names_a_metal_whose_split_it_cannot_check(tmp_path):
+    """The range command has no rod lattice, so it cannot refit 24Mg+ under C2+: the spectrum alone
+    gives Mg 0.38 for a true 0.485 here, and a warning names the ranges; a run whose lines do not
+    overlap gets no such warning."""
+    import warnings
+
+    from probeseq.io.readers import write_ions
+    from probeseq.pipeline.stages import range_file
+
+    def messages(run, metals):
+        path = tmp_path / f"{'_'.join(metals)}.h5"
+        write_ions(run.ions, path)
+        with warnings.catch_warnings(record=True) as got:
+            warnings.simplefilter("always")
+            rr, _ = range_file(path, metals)
+        return [str(w.message) for w in got], rr
+
+    run = simulate_run(metals=("Mg", "Co"), fragments="carbon-rich", organic_per_site=3.0, mrp=400,
+                       depth_nm=24, top_radius_nm=6, seed=7, pattern="long-block")
+    msgs, rr = messages(run, ("Mg", "Co"))
+    assert rr.composition[0] < run.truth["composition_sites"]["Mg"] - 0.05
+    named = [m for m in msgs if m.startswith("Mg: the mass spectrum gives it none of the ions of")]
+    assert len(named) == 1 and "(Mg+, C2+)" in named[0] and "without the rod lattice" in named[0]
+    msgs, _ = messages(simulate_run(metals=("Co", "Zn"), depth_nm=12, top_radius_nm=5, seed=3), ("Co", "Zn"))
+    assert not [m for m in msgs if "mass spectrum gives it none" in m or "every line overlaps" in m]

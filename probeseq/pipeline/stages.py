@@ -650,6 +650,10 @@ def range_file(path, metals, *, species=None, ranges=None, length_unit=None, pos
     with runtime.single_threaded_blas():
         with clock.stage("ranging", f"ranging the mass spectrum of {n_fit} sampled ions"):
             rr = range_sample(sample, metals, species=species, ranges=ranges)
+    from ..ranging.spatial import warn_unrefined
+
+    warn_unrefined(rr, "without the rod lattice the ions' distance to the rod axes cannot check it ('analyze' "
+                       "with the lattice refits such ranges)")
     return rr, sample
 
 

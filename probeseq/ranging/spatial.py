@@ -38,7 +38,7 @@ import numpy as np
 from ..exceptions import DataQualityWarning
 from .isotopes import ion_label
 
-__all__ = ["refine_overlaps", "mixture_share", "mixed_ranges", "warn_undetermined"]
+__all__ = ["refine_overlaps", "warn_unrefined", "mixture_share", "mixed_ranges", "warn_undetermined"]
 
 #: distance bins, in units of the nearest-rod distance (the last bin takes everything farther)
 _EDGES = np.concatenate([np.linspace(0.0, 0.6, 13), [np.inf]])
@@ -111,6 +111,47 @@ def mixed_ranges(rr) -> np.ndarray:
     return (A[:, is_metal] >= 0.02).any(1) & (A[:, ~is_metal] >= 0.02).any(1)
 
 
+def _split_state(rr):
+    """What the refit and its warnings need of a ranging result's spectrum fit.
+
+    Returns
+    -------
+    A : (n_ranges, n_species) ndarray
+        The design rows of the ranges.
+    is_metal : (n_species,) ndarray of bool
+    mixed, clean_m, clean_f : (n_ranges,) ndarray of bool
+        Ranges with a metal and a non-metal line (:func:`mixed_ranges`); clean metal and clean
+        fragment ranges (the metal share of the fitted species' ions >= 0.97, resp. <= 0.03, and
+        no line of the other kind; judged without the background, so a clean line stays clean
+        under a high background).
+    w_fit : (n_ranges,) ndarray
+        The fit's metal share of each range's ions, background included.
+    """
+    A = rr.fit_rows[0][:len(rr.ranges)]
+    is_metal = np.asarray(rr.species_metal_atoms, float).sum(axis=1) > 0
+    mu = A * rr.amounts[None, :]
+    tot = mu.sum(1) + np.maximum(rr.background_counts, 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        w_fit = np.where(tot > 0, mu[:, is_metal].sum(1) / tot, 0.0)
+        w_ions = np.where(mu.sum(1) > 0, mu[:, is_metal].sum(1) / mu.sum(1), 0.0)
+    has_m = (A[:, is_metal] >= 0.02).any(1)
+    has_f = (A[:, ~is_metal] >= 0.02).any(1)
+    clean_m = (w_ions >= 0.97) & ~has_f
+    clean_f = (w_ions <= 0.03) & ~has_m
+    return A, is_metal, mixed_ranges(rr), clean_m, clean_f, w_fit
+
+
+def warn_unrefined(rr, why: str) -> None:
+    """The warnings of :func:`refine_overlaps` for a ranging result that is not refitted (no rod
+    lattice, e.g. the ``range`` command): each metal whose composition rests on a split of
+    overlapped ranges that space did not check, with ``why`` (what would check it)."""
+    if rr.fit_rows is None or not len(rr.ranges):
+        return
+    A, is_metal, mixed, clean_m, _, w_fit = _split_state(rr)
+    if mixed.any():
+        _warn_unseparated(rr, A, is_metal, mixed, clean_m, why, w_fit)
+
+
 def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
     """Refit the overlapped ranges of a ranging result with the ions' distance to the rod axes.
 
@@ -138,24 +179,11 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
         return rr
     A_all, gross_all, bg_all, bgs_all = rr.fit_rows
     n_r = len(rr.ranges)
-    A = A_all[:n_r]
-    atoms = np.asarray(rr.species_metal_atoms, float)
-    is_metal = atoms.sum(axis=1) > 0
+    A, is_metal, mixed, clean_m, clean_f, w_fit = _split_state(rr)
     ri = np.asarray(range_index)
     u = np.asarray(distance_nm, float) / float(d_nn_nm)
     ok = np.isfinite(u) & (ri >= 0)
     ri, u = ri[ok], u[ok]
-    mu = A * rr.amounts[None, :]
-    tot = mu.sum(1) + np.maximum(rr.background_counts, 0.0)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        w_fit = np.where(tot > 0, mu[:, is_metal].sum(1) / tot, 0.0)
-        # the species' share alone: a clean line stays clean under a high background
-        w_ions = np.where(mu.sum(1) > 0, mu[:, is_metal].sum(1) / mu.sum(1), 0.0)
-    has_m = (A[:, is_metal] >= 0.02).any(1)
-    has_f = (A[:, ~is_metal] >= 0.02).any(1)
-    mixed = mixed_ranges(rr)
-    clean_m = (w_ions >= 0.97) & ~has_f
-    clean_f = (w_ions <= 0.03) & ~has_m
     prof = np.stack([_profile(u[ri == j]) for j in range(n_r)])
     g_m, g_f = prof[clean_m].sum(0), prof[clean_f].sum(0)
     if g_m.sum() < MIN_REFERENCE_IONS or g_f.sum() < MIN_REFERENCE_IONS:
@@ -198,7 +226,7 @@ def refine_overlaps(rr, range_index, distance_nm, d_nn_nm: float):
     cov[np.ix_(active, active)] = sub_cov
     if not np.isfinite(amounts).all() or amounts.sum() > 2.0 * max(float(np.sum(gross_all)), 1.0):
         return replace(rr, overlap_refinement=tuple(dict(d, used=False) for d in report))
-    M, M_sig, x, x_sig = _composition(amounts, cov, atoms)
+    M, M_sig, x, x_sig = _composition(amounts, cov, np.asarray(rr.species_metal_atoms, float))
     mu_new = A * amounts[None, :]
     ranges, deconv = _share_ranges(rr.ranges, mu_new, rr.background_counts, list(rr.species), rr.metals,
                                    bool((rr.range_peak >= 0).all()))
