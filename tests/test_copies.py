@@ -130,3 +130,49 @@ def test_too_few_rods_fall_back_with_the_reason():
     params = DecoderParams(transmat=np.array([[0.6, 0.4], [0.4, 0.6]]), eta=0.5, extra_rate=np.array([0.1, 0.1]))
     cr = decode_copies(_columns(counts), params)
     assert not cr.applied and "too few rods" in cr.reason
+
+
+@pytest.mark.parametrize("linear", [False, True])
+def test_compiled_passes_equal_the_emission_factors_formulas(linear):
+    """The compiled passes (decoding.copypass) against the formulas written with
+    decoding.model.emission_factors in numpy: fractional counts (a split ion, or soft evidence read
+    linearly), a per-rod efficiency, per-metal visibilities and masked sites, over more rods than
+    one block of the master's partial sums."""
+    from probeseq.decoding.copypass import RODS_PER_BLOCK, master_log_emission, rod_pass
+
+    rng = np.random.default_rng(11)
+    n_rods, n_sites, k = RODS_PER_BLOCK + 37, 25, 3
+    counts = rng.poisson(0.7, (n_rods, n_sites, k)).astype(float)
+    counts[rng.random(counts.shape) < 0.15] += rng.integers(1, 8, 1)[0] / 8.0  # fractional parts
+    mask = rng.random((n_rods, n_sites)) < 0.8
+    h = rng.uniform(0.7, 1.2, n_rods)
+    params = DecoderParams(transmat=np.array([[0.6, 0.3, 0.1], [0.2, 0.7, 0.1], [0.3, 0.3, 0.4]]), eta=0.55,
+                           extra_rate=np.array([0.2, 0.35, 0.5]), visibility=np.array([1.0, 0.8, 0.6]))
+    f, eps = params.stationary, 0.15
+    C = (1 - eps) * np.eye(k) + eps * f[None, :]
+    rods = np.arange(n_rods)
+    e = emission_factors(counts, params, efficiency=h[:, None] * np.ones(n_sites), linear=linear)
+    mix = e @ C.T
+    mix[~mask] = 1.0
+    want_logE = np.log(mix).sum(axis=0)
+    gamma = rng.dirichlet(np.ones(k), n_sites)
+    w = gamma[None] / mix
+    want_post = np.where(mask[..., None], (w @ C) * e, 0.0)
+    want_redraw = np.where(mask, (w * (eps * (e @ f))[..., None]).sum(-1), 0.0).sum(1)
+    eta = params.state_eta
+    got_logE = master_log_emission(counts, mask, rods, eta, params.extra_rate, C, h, linear=linear)
+    post, redraw, n_obs = rod_pass(counts, mask, rods, eta, params.extra_rate, C, gamma, eps, f, h, linear=linear)
+    np.testing.assert_allclose(got_logE, want_logE, rtol=1e-12, atol=1e-9)
+    np.testing.assert_allclose(post, want_post, rtol=1e-12, atol=1e-15)
+    np.testing.assert_allclose(redraw, want_redraw, rtol=1e-12)
+    np.testing.assert_array_equal(n_obs, mask.sum(1))
+    # the same sums on one thread as on all (fixed blocks of rods)
+    from probeseq import runtime
+
+    before = runtime.kernel_threads()
+    try:
+        runtime.configure(1)
+        again = master_log_emission(counts, mask, rods, eta, params.extra_rate, C, h, linear=linear)
+    finally:
+        runtime.configure(before)
+    np.testing.assert_array_equal(again, got_logE)

@@ -33,8 +33,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from ..lattice.rodcolumns import RodColumns
+from .copypass import master_log_emission, rod_pass
 from .hmm import forward_backward, update_transmat
-from .model import DecoderParams, emission_factors
+from .model import DecoderParams, _eta_of
 
 __all__ = ['CopyResult', 'decode_copies', 'copies_suspected', 'pooled_result', 'MIN_RODS', 'FOLLOW_Z',
            'SUSPECT_KAPPA', 'SUSPECT_Z']
@@ -52,10 +53,6 @@ FOLLOW_Z = 3.0
 #: evidence per site is weak
 SUSPECT_KAPPA = 0.005
 SUSPECT_Z = 5.0
-
-#: rods per block when the master's emission is summed (bounded memory)
-_BLOCK = 512
-
 
 @dataclass(frozen=True)
 class CopyResult:
@@ -114,48 +111,25 @@ class CopyResult:
         return out
 
 
-def _factors(columns: RodColumns, params: DecoderParams, rods, efficiency):
-    """Emission factors (n, T, K) of some rods (1 at masked sites) and their mask."""
+def _pass_args(columns: RodColumns, params: DecoderParams, efficiency):
+    """The arrays and emission parameters the compiled passes take (:mod:`.copypass`)."""
     soft = columns.evidence is not None  # the decoder read the soft evidence: so do the copies
-    c = np.asarray((columns.evidence if soft else columns.counts)[rods], float)
-    m = np.asarray(columns.mask[rods], bool)
-    h = None if efficiency is None else np.broadcast_to(np.asarray(efficiency, float)[rods][:, None], m.shape)
-    e = emission_factors(c, params, efficiency=h, linear=soft)
-    e[~m] = 1.0
-    return e, m
+    values = columns.evidence if soft else columns.counts
+    return values, columns.mask, _eta_of(params), params.extra_rate, efficiency, soft
 
 
 def _master_terms(columns, params, rods, C, efficiency):
     """log E_t(m) summed over the given rods, (T, K)."""
-    T, K = columns.n_sites, C.shape[0]
-    logE = np.zeros((T, K))
-    for b in range(0, rods.size, _BLOCK):
-        e, m = _factors(columns, params, rods[b:b + _BLOCK], efficiency)
-        mix = e @ C.T  # (n, T, M): sum_k C[m, k] e(k)
-        mix[~m] = 1.0
-        logE += np.log(np.maximum(mix, 1e-300)).sum(axis=0)
-    return logE
+    values, mask, eta, mu, h, soft = _pass_args(columns, params, efficiency)
+    return master_log_emission(values, mask, np.asarray(rods, np.int64), eta, mu, C, h, linear=soft)
 
 
-def _rod_posteriors(columns, params, rods, C, gamma, eps, f, efficiency):
-    """Site posteriors of rods given the master posterior, their expected redraws and copied share."""
-    K = C.shape[0]
-    post = np.zeros((rods.size, columns.n_sites, K))
-    redraw = np.zeros(rods.size)
-    n_obs = np.zeros(rods.size)
-    for b in range(0, rods.size, _BLOCK):
-        e, m = _factors(columns, params, rods[b:b + _BLOCK], efficiency)
-        mix = e @ C.T  # (n, T, M)
-        w = gamma[None, :, :] / np.maximum(mix, 1e-300)  # P(M_t = m) / sum_k C[m, k] e(k)
-        p = (w @ C) * e  # sum_m w_m C[m, k] e(k)
-        p[~m] = 0.0
-        post[b:b + _BLOCK] = p
-        # expected redraws: sum_m gamma_m eps (f . e) / mix_m
-        r = (w * (eps * (e @ f))[..., None]).sum(-1)
-        r[~m] = 0.0
-        redraw[b:b + _BLOCK] = r.sum(1)
-        n_obs[b:b + _BLOCK] = m.sum(1)
-    return post, redraw, n_obs
+def _rod_posteriors(columns, params, rods, C, gamma, eps, f, efficiency, posteriors=True):
+    """Site posteriors of rods given the master posterior (None without ``posteriors``), their
+    expected redraws and observed sites."""
+    values, mask, eta, mu, h, soft = _pass_args(columns, params, efficiency)
+    return rod_pass(values, mask, np.asarray(rods, np.int64), eta, mu, C, gamma, eps, f, h, linear=soft,
+                    posteriors=posteriors)
 
 
 def decode_copies(columns: RodColumns, params: DecoderParams, single_posteriors=None, *, rod_efficiency=None,
@@ -236,7 +210,7 @@ def _fit_master(columns, params, rods, A, eps, f, efficiency, max_iter, tol):
         fb = forward_backward(logE[None], A, start)
         gamma = fb.posteriors[0]
         ll = float(fb.loglik[0])
-        _, redraw, nobs = _rod_posteriors(columns, params, rods, C, gamma, eps, f, efficiency)
+        _, redraw, nobs = _rod_posteriors(columns, params, rods, C, gamma, eps, f, efficiency, posteriors=False)
         eps = float(np.clip(redraw.sum() / max(nobs.sum(), 1), 1e-4, 0.999))
         A = update_transmat(fb.xi, gamma[0], A)
         if abs(ll - prev) < tol * n_obs:

@@ -273,6 +273,17 @@ def _analysis(part: KernelPart, tmp: Path):
     path = write_ions(run.ions, tmp / "ions.h5", dtype=np.float32)
     res = analyze_file(path, run.config.metals, run.lattice, options=AnalysisOptions())
     write_analysis(res, tmp / "out", report=False)
+    _copy_passes(res.columns, res.decoded)
+
+
+def _copy_passes(columns, decoded):
+    """The copy-aware decoding's passes, as the analysis calls them when neighbouring rods agree
+    (from the counts; run here whether or not they do)."""
+    from dataclasses import replace
+
+    from ..decoding.copies import decode_copies
+
+    decode_copies(replace(columns, evidence=None), decoded.params, None, max_iter=2)
 
 
 def _text(part: KernelPart, tmp: Path):
@@ -293,6 +304,7 @@ def _decoding(part: KernelPart, tmp: Path):
 
     cols, opts = drawn_columns(part.n_metals), AnalysisOptions()
     dec, _ = decode_stage(cols, opts)
+    _copy_passes(cols, dec)
     if part.statistics:
         from ..statistics.summary import compute_statistics
 
