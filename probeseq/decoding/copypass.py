@@ -21,31 +21,12 @@ import numba
 import numpy as np
 
 from .. import runtime
-from .rodchain import _EPS, _site, _state_eta, _states, _kernel_arrays, _rod_efficiency
+from .rodchain import _kernel_arrays, _rod_efficiency, _state_eta, _states, site_factors
 
 __all__ = ["master_log_emission", "rod_pass", "RODS_PER_BLOCK"]
 
 #: rods per partial sum of the master's emission
 RODS_PER_BLOCK = 64
-
-
-@numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
-def _factors_at(counts, r, t, ome, coef, mur, kt, nb, fac, cb, lin):
-    """The emission factors of site (r, t) into ``fac[0]``: ``1 - eta_k h_r + xe_k eta_k / mu_k``
-    (see :func:`probeseq.decoding.rodchain._forward`)."""
-    k = len(kt)
-    linear = len(lin) > 0
-    whole = True
-    for j in range(k):
-        v = float(counts[r, t, j])
-        n = math.floor(v + _EPS)
-        if v - n >= _EPS:
-            whole = False
-            if linear:
-                n = v
-        fac[0, j] = ome[j] + n * coef[j]
-    if not whole and not linear:
-        _site(counts, r, t, ome, coef, mur, kt, nb, fac, 0, cb)
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
@@ -73,7 +54,7 @@ def _master_kernel(counts, mask, rods, eta, mu, h, C, parts, kt, lin):
             for t in range(n_sites):
                 if not mask[r, t]:
                     continue
-                _factors_at(counts, r, t, ome, coef, mur, kt, nb, fac, cb, lin)
+                site_factors(counts, r, t, ome, coef, mur, kt, nb, fac, 0, cb, len(lin) > 0)
                 for m in range(k):
                     s = 0.0
                     for j in range(k):
@@ -102,7 +83,7 @@ def _rod_kernel(counts, mask, rods, eta, mu, h, C, gamma, eps, f, redraw, n_obs,
             if not mask[r, t]:
                 continue
             seen += 1
-            _factors_at(counts, r, t, ome, coef, mur, kt, nb, fac, cb, lin)
+            site_factors(counts, r, t, ome, coef, mur, kt, nb, fac, 0, cb, len(lin) > 0)
             fe = 0.0
             for j in range(k):
                 fe += f[j] * fac[0, j]

@@ -112,6 +112,28 @@ def _site(counts, r, t, ome, coef, mu, kt, n_out, fac_out, s, c_out):
 
 
 @numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def site_factors(counts, r, t, ome, coef, mu, kt, nb, fac, s, cb, linear):
+    """The emission factors of observed site (r, t) into ``fac[s]``: ``ome_k + xe_k coef_k`` with
+    the effective counts ``xe`` (the counts when whole; with ``linear`` the values themselves; else
+    whole ions plus one split ion, :func:`_site`). Returns ``(B, split, whole)``: the split ion's
+    term (1 without one), whether the site has one, whether every value is whole."""
+    k = len(kt)
+    whole = True
+    for j in range(k):
+        v = float(counts[r, t, j])
+        n = math.floor(v + _EPS)
+        if v - n >= _EPS:
+            whole = False
+            if linear:
+                n = v
+        fac[s, j] = ome[j] + n * coef[j]
+    if whole or linear:
+        return 1.0, False, whole
+    b, _ = _site(counts, r, t, ome, coef, mu, kt, nb, fac, s, cb)
+    return b, True, whole
+
+
+@numba.njit(cache=True, nogil=True, error_model="numpy", inline="always")
 def _forward(counts, mask, r, t0, length, ome, mu, coef, a, p, alpha, fac, invc, nb, cb, spl, kt,
              vt, ltab, loga, logp, vit, back, lin):
     """Forward pass of rod r over sites t0..t0+length-1, with the Viterbi recursion in the same
@@ -146,24 +168,14 @@ def _forward(counts, mask, r, t0, length, ome, mu, coef, a, p, alpha, fac, invc,
         t = t0 + s
         spl[s] = False
         if mask[r, t]:
-            whole = True
-            for j in range(k):
-                v = float(counts[r, t, j])
-                n = math.floor(v + _EPS)
-                if v - n >= _EPS:
-                    whole = False
-                    if linear:
-                        n = v
-                fac[s, j] = ome[j] + n * coef[j]
-                if viterbi:
-                    le[j] = ltab[j, int(n)] if (n < n_tab and (whole or not linear)) else math.log(fac[s, j])
-            if not whole and not linear:
-                b, _ = _site(counts, r, t, ome, coef, mu, kt, nb, fac, s, cb)
+            b, split, whole = site_factors(counts, r, t, ome, coef, mu, kt, nb, fac, s, cb, linear)
+            if split:
                 spl[s] = True
                 log_b += math.log(b)
-                if viterbi:
-                    for j in range(k):
-                        le[j] = math.log(fac[s, j])
+            if viterbi:  # the table holds the same logs of whole counts' factors, bit for bit
+                for j in range(k):
+                    n = math.floor(float(counts[r, t, j]) + _EPS)
+                    le[j] = ltab[j, int(n)] if (whole and n < n_tab) else math.log(fac[s, j])
         else:
             for j in range(k):
                 fac[s, j] = 1.0
