@@ -27,7 +27,8 @@ import numpy as np
 from ..exceptions import DataQualityWarning
 from .correction import ReconstructionCorrection
 from .depthscale import DepthCalibration, calibrate_depth
-from .geometry import _outline, _plane_model
+from .geometry import _plane_model
+from .outline import _outline
 from .registration import FIT_RADIUS_FRAC, Registration, _refine
 from .locator import _cached_locator
 

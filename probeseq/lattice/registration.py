@@ -82,6 +82,7 @@ from .fourier import (
 )
 from .locator import _cached_locator, _cell_boundaries, _gn_pass, _locator_arrays, _rot, lattice_symmetry
 from .model import Lattice
+from .outline import _outline
 from .sanity import NoLatticeSignal, SearchData, check_registered_scale, diagnose_no_signal
 
 __all__ = ['Registration', 'register_lattice', 'expected_misassigned_fraction', 'MIN_METAL_IONS', 'MIN_PEAK_RATIO', 'RESOLVABLE_MISASSIGNED']
@@ -608,44 +609,42 @@ def _spread(x, y, z, lattice, locator, p, z_ref_nm, fit_r):
     return dist, ok, sig_lat, sig_err, bg, misassigned
 
 
-def _away_from_edge(x, y, z, rod_x, rod_y, band_nm: float, n_slabs: int = 16) -> np.ndarray:
+def _away_from_edge(x, y, z, rod_x, rod_y, band_nm: float) -> np.ndarray:
     """(n,) bool: points whose rod (``rod_x, rod_y``, NaN for none) lies farther than ``band_nm``
-    inside the specimen's outline at their depth. The outline is taken per depth slab of equal
-    counts from the points themselves: the centre between the 1st and 99th percentiles of x and y,
-    the radius from the 98th percentile of the distance to it, as for the whole specimen. Points
-    are kept or dropped with their rod, so the rods kept keep all their points (a cut through the
-    points would pull the rods at the cut inwards, as the outline does)."""
-    keep = np.zeros(x.size, bool)
-    order = np.argsort(z, kind="stable")
-    for part in np.array_split(order, max(1, min(n_slabs, x.size // 200))):
-        if part.size == 0:
-            continue
-        px, py = x[part], y[part]
-        cx = 0.5 * (np.percentile(px, 1) + np.percentile(px, 99))
-        cy = 0.5 * (np.percentile(py, 1) + np.percentile(py, 99))
-        radius = np.percentile(np.hypot(px - cx, py - cy), 98) / math.sqrt(0.98)
-        with np.errstate(invalid="ignore"):
-            keep[part] = np.hypot(rod_x[part] - cx, rod_y[part] - cy) < radius - band_nm
-    return keep
+    inside the specimen's outline at their depth (:func:`probeseq.lattice.outline._outline` of the
+    points, in 16 depth slabs). Points are kept or dropped with their rod, so the rods kept keep all
+    their points (a cut through the points would pull the rods at the cut inwards, as the outline
+    does)."""
+    zc, cen, rad = _outline(x, y, z, slab_nm=max((float(z.max()) - float(z.min())) / 16, 0.5))
+    cx, cy, r = (np.interp(z, zc, v) for v in (cen[:, 0], cen[:, 1], rad))
+    with np.errstate(invalid="ignore"):
+        return np.hypot(rod_x - cx, rod_y - cy) < r - band_nm
 
 
 def _rod_positions(x, y, z, lattice, locator, p, z_ref):
     """Reconstruction-frame position (nm) of every point's nearest rod axis at its depth under the
     placement ``p`` (NaN where the locator finds none)."""
+    f, rf, ok, A, zr = _nearest_rods(x, y, z, lattice, locator, p, z_ref)
+    rx, ry = np.full(x.size, np.nan), np.full(x.size, np.nan)
+    q = rf @ (A @ lattice.cell_matrix).T
+    rx[ok] = q[:, 0] + p[0] + p[2] * zr[ok]
+    ry[ok] = q[:, 1] + p[1] + p[3] * zr[ok]
+    return rx, ry
+
+
+def _nearest_rods(x, y, z, lattice, locator, p, z_ref):
+    """The points in the lattice's fractional frame under the placement ``p`` ((n, 2)), their nearest
+    rods' fractional positions ((m, 2), for the points with one), which points have one, the
+    transform ``scale R(rotation)`` and the depths from ``z_ref``."""
     C = lattice.cell_matrix
     A = p[5] * _rot(p[4])
     zr = z - z_ref
     Ainv = np.linalg.inv(A @ C)
     px, py = x - p[0] - p[2] * zr, y - p[1] - p[3] * zr
-    f1 = Ainv[0, 0] * px + Ainv[0, 1] * py
-    f2 = Ainv[1, 0] * px + Ainv[1, 1] * py
-    ci, cj, code = locator.locate(f1, f2)
+    f = np.column_stack([Ainv[0, 0] * px + Ainv[0, 1] * py, Ainv[1, 0] * px + Ainv[1, 1] * py])
+    ci, cj, code = locator.locate(f[:, 0], f[:, 1])
     ok = code >= 0
-    rx, ry = np.full(x.size, np.nan), np.full(x.size, np.nan)
-    q = locator.rod_frac(ci[ok], cj[ok], code[ok]) @ (A @ C).T
-    rx[ok] = q[:, 0] + p[0] + p[2] * zr[ok]
-    ry[ok] = q[:, 1] + p[1] + p[3] * zr[ok]
-    return rx, ry
+    return f, locator.rod_frac(ci[ok], cj[ok], code[ok]), ok, A, zr
 
 
 def _check_registration_inputs(x, y, z, lattice, scale_range, max_tilt_deg, random_state):
@@ -765,18 +764,9 @@ def _fundamental_placement(p, lattice, shift_frac, period, fit_rotation, fit_off
 
 
 def _distances(x, y, z, lattice, locator, p, z_ref):
-    C = lattice.cell_matrix
-    A = p[5] * _rot(p[4])
-    zr = z - z_ref
-    px = x - p[0] - p[2] * zr
-    py = y - p[1] - p[3] * zr
-    Ainv = np.linalg.inv(A @ C)
-    f1 = Ainv[0, 0] * px + Ainv[0, 1] * py
-    f2 = Ainv[1, 0] * px + Ainv[1, 1] * py
-    ci, cj, code = locator.locate(f1, f2)
-    ok = code >= 0
+    """Distance (lattice frame, nm) of every point to its nearest rod under ``p`` (inf for none), and
+    which points have one."""
+    f, rf, ok, _, _ = _nearest_rods(x, y, z, lattice, locator, p, z_ref)
     d = np.full(x.size, np.inf)
-    rf = locator.rod_frac(ci[ok], cj[ok], code[ok])
-    df = np.column_stack([f1[ok], f2[ok]]) - rf
-    d[ok] = np.sqrt(((df @ C.T) ** 2).sum(1))
+    d[ok] = np.sqrt((((f[ok] - rf) @ lattice.cell_matrix.T) ** 2).sum(1))
     return d, ok
